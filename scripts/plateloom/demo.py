@@ -1,0 +1,225 @@
+"""The embedded demo screen: simulated live-cell plates with planted effects.
+
+Cells are ellipses that move as a persistent random walk (Ornstein-Uhlenbeck velocity,
+Fürth 1920), carry a nuclear stain and an oscillating nuclear reporter, and are imaged
+with background, vignetting, blur and noise. Treatments change nuclear area, reporter
+level and speed by Hill-equation ratios; days, plates, wells and edge wells add nuisance
+offsets. Everything is drawn from generators seeded by the scenario seed and the plate
+and batch names, so a plate's images do not depend on which other plates exist.
+"""
+
+from __future__ import annotations
+
+import os
+import zlib
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+import tifffile
+import yaml
+from scipy import ndimage
+
+from .plate_formats import is_edge_well, plate_format
+
+QUANTITIES = ("area", "reporter", "speed", "nuclear", "cell_count")
+
+
+def load_scenario(path: str, frames: int | None = None, image_size_px: int | None = None) -> dict:
+    """Read the scenario YAML; ``frames`` and ``image_size_px`` override it for small runs."""
+    with open(path, encoding="utf-8") as handle:
+        scenario = yaml.safe_load(handle)
+    if frames:
+        scenario["frames"] = int(frames)
+    if image_size_px:
+        scenario["image_size_px"] = int(image_size_px)
+    return scenario
+
+
+def demo_plates(scenario: dict) -> dict[str, str]:
+    """Plate id -> batch for every plate the scenario defines."""
+    return {plate: entry["batch"] for entry in scenario["batches"] for plate in entry["plates"]}
+
+
+def hill_ratio(dose: float, max_ratio: float, ec50: float, hill: float) -> float:
+    """Ratio to control at ``dose`` (same unit as ``ec50``): 1 + (max - 1) d^h / (d^h + EC50^h)."""
+    if not dose or dose <= 0:
+        return 1.0
+    fraction = dose**hill / (dose**hill + ec50**hill)
+    return 1.0 + (max_ratio - 1.0) * fraction
+
+
+def treatment_ratios(scenario: dict, condition: str, dose: float) -> dict[str, float]:
+    """Planted ratio to the negative control for each quantity of one treatment."""
+    ratios = {q: 1.0 for q in QUANTITIES}
+    for compound in scenario["compounds"]:
+        if compound["name"] == condition:
+            for quantity, max_ratio in compound["max_ratio"].items():
+                ratios[quantity] = hill_ratio(dose, max_ratio, compound["ec50_um"], compound["hill"])
+    return ratios
+
+
+def feature_of_quantity(scenario: dict) -> dict[str, str]:
+    """Which well feature (column name) carries each planted quantity."""
+    reporter = scenario["channels"]["reporter"]
+    return {"area": "area_um2", "reporter": f"mean_intensity_{reporter}", "speed": "speed_um_per_min"}
+
+
+def planted_ratios(scenario: dict, layout: pd.DataFrame) -> pd.DataFrame:
+    """The planted truth: one row per (treatment, feature) with the ratio to the negative control.
+
+    Covers every non-control treatment of the layout and the three planted quantities
+    (nuclear area, reporter mean intensity, track speed); a ratio of 1 means no effect.
+    """
+    features = feature_of_quantity(scenario)
+    rows = []
+    treated = layout[layout["role"].isin(["test", "positive_control"])].drop_duplicates("treatment")
+    for _, well in treated.iterrows():
+        ratios = treatment_ratios(scenario, well["condition"], float(well["dose"]))
+        for quantity, feature in features.items():
+            rows.append({"treatment": well["treatment"], "condition": well["condition"], "dose": well["dose"],
+                         "feature": feature, "ratio": ratios[quantity]})
+    return pd.DataFrame(rows)
+
+
+def _stable_rng(seed: int, *names: str) -> np.random.Generator:
+    return np.random.default_rng([int(seed)] + [zlib.crc32(name.encode()) for name in names])
+
+
+def _log_offsets(rng: np.random.Generator, sd: float) -> dict[str, float]:
+    return {q: float(np.exp(rng.normal(0.0, sd))) for q in QUANTITIES}
+
+
+def vignetting(size: int, corner: float) -> np.ndarray:
+    """Relative illumination, 1 at the centre falling quadratically to ``corner`` at the corners."""
+    coords = (np.arange(size) - (size - 1) / 2) / ((size - 1) / 2)
+    r2 = (coords[:, None] ** 2 + coords[None, :] ** 2) / 2.0
+    return (1.0 - (1.0 - corner) * r2).astype(np.float32)
+
+
+@dataclass
+class _Cells:
+    position: np.ndarray   # (n, 2) pixels, (y, x)
+    velocity: np.ndarray   # (n, 2) um/min
+    semi_major: np.ndarray  # pixels
+    semi_minor: np.ndarray
+    angle: np.ndarray
+    nuclear: np.ndarray
+    reporter: np.ndarray
+    phase: np.ndarray
+
+
+def _draw_cells(rng: np.random.Generator, scenario: dict, factor: dict[str, float], size: int) -> _Cells:
+    cell = scenario["cell"]
+    pixel = scenario["pixel_size_um"]
+    n = int(rng.poisson(scenario["cells_per_site"] * factor["cell_count"]))
+    radius = cell["nucleus_radius_um"] / pixel * np.sqrt(factor["area"]) * np.exp(rng.normal(0, cell["nucleus_radius_log_sd"], n))
+    elongation = np.exp(np.abs(rng.normal(0, cell["elongation_log_sd"], n)))
+    semi_major, semi_minor = radius * np.sqrt(elongation), radius / np.sqrt(elongation)
+    margin = semi_major + 3
+    position = rng.uniform(margin[:, None], size - margin[:, None], (n, 2))
+    sigma = cell["rms_speed_um_per_min"] * factor["speed"] / np.sqrt(2.0)
+    return _Cells(position, rng.normal(0, sigma, (n, 2)), semi_major, semi_minor, rng.uniform(0, np.pi, n),
+                  cell["nuclear_level"] * factor["nuclear"] * np.exp(rng.normal(0, cell["nuclear_level_log_sd"], n)),
+                  cell["reporter_level"] * factor["reporter"] * np.exp(rng.normal(0, cell["reporter_level_log_sd"], n)),
+                  rng.uniform(0, 2 * np.pi, n))
+
+
+def _step(rng: np.random.Generator, cells: _Cells, scenario: dict, speed_factor: float, size: int) -> None:
+    """One frame of the persistent random walk, reflecting at the field edges, nuclei kept apart."""
+    dt = scenario["frame_interval_min"]
+    decay = np.exp(-dt / scenario["cell"]["persistence_min"])
+    sigma = scenario["cell"]["rms_speed_um_per_min"] * speed_factor / np.sqrt(2.0)
+    cells.position += cells.velocity * dt / scenario["pixel_size_um"]
+    cells.velocity[:] = decay * cells.velocity + np.sqrt(1 - decay**2) * rng.normal(0, sigma, cells.velocity.shape)
+    low, high = cells.semi_major[:, None] + 2, size - cells.semi_major[:, None] - 2
+    below, above = cells.position < low, cells.position > high
+    cells.position[:] = np.where(below, 2 * low - cells.position, cells.position)
+    cells.position[:] = np.where(above, 2 * high - cells.position, cells.position)
+    cells.velocity[below | above] *= -1
+    _separate(cells, size, iterations=1)
+
+
+def _separate(cells: _Cells, size: int, iterations: int) -> None:
+    """Push overlapping nuclei apart (keeps identities clear), staying inside the field."""
+    low, high = cells.semi_major[:, None] + 2, size - cells.semi_major[:, None] - 2
+    for _ in range(iterations if len(cells.position) > 1 else 0):
+        delta = cells.position[:, None, :] - cells.position[None, :, :]
+        distance = np.sqrt((delta**2).sum(-1)) + np.eye(len(delta)) * 1e6
+        overlap = np.clip(cells.semi_major[:, None] + cells.semi_major[None, :] + 2 - distance, 0, None)
+        push = (delta / distance[..., None] * overlap[..., None] / 2).sum(1)
+        cells.position[:] = np.clip(cells.position + push, low, high)
+
+
+def _render(cells: _Cells, levels: np.ndarray, size: int) -> np.ndarray:
+    """Sum of uniformly bright ellipses (one per cell) on a zero background."""
+    image = np.zeros((size, size), np.float32)
+    cos, sin = np.cos(cells.angle), np.sin(cells.angle)
+    for i in range(len(levels)):  # per object, each vectorised over its bounding box
+        y0, x0 = cells.position[i]
+        reach = int(np.ceil(cells.semi_major[i])) + 1
+        ys = np.arange(max(0, int(y0) - reach), min(size, int(y0) + reach + 2))
+        xs = np.arange(max(0, int(x0) - reach), min(size, int(x0) + reach + 2))
+        dy, dx = ys[:, None] - y0, xs[None, :] - x0
+        u, v = dx * cos[i] + dy * sin[i], -dx * sin[i] + dy * cos[i]
+        inside = (u / cells.semi_major[i]) ** 2 + (v / cells.semi_minor[i]) ** 2 <= 1.0
+        image[ys[0]:ys[-1] + 1, xs[0]:xs[-1] + 1] += levels[i] * inside
+    return image
+
+
+def simulate_site(scenario: dict, factor: dict[str, float], rng: np.random.Generator) -> np.ndarray:
+    """Images of one site: array (frames, 2 channels, y, x) uint16, nuclei then reporter."""
+    size, frames = scenario["image_size_px"], scenario["frames"]
+    imaging, cell = scenario["imaging"], scenario["cell"]
+    cells = _draw_cells(rng, scenario, factor, size)
+    _separate(cells, size, iterations=20)
+    illumination = vignetting(size, imaging["vignetting_corner"])
+    stack = np.empty((frames, 2, size, size), np.uint16)
+    for frame in range(frames):
+        time = frame * scenario["frame_interval_min"]
+        oscillation = 1 + cell["reporter_oscillation_amplitude"] * np.sin(2 * np.pi * time / cell["reporter_period_min"] + cells.phase)
+        for channel, levels in enumerate((cells.nuclear, cells.reporter * oscillation)):
+            signal = ndimage.gaussian_filter(_render(cells, levels, size), imaging["blur_sigma_px"])
+            image = (signal + imaging["background"]) * illumination + rng.normal(0, imaging["noise_sd"], (size, size))
+            stack[frame, channel] = np.clip(np.rint(image), 0, 65535).astype(np.uint16)
+        _step(rng, cells, scenario, factor["speed"], size)
+    return stack
+
+
+def well_factors(scenario: dict, plate: str, batch: str, well: str, condition: str, dose: float) -> dict[str, float]:
+    """Product of treatment ratio and nuisance offsets (batch, plate, well, edge) per quantity."""
+    nuisance, seed = scenario["nuisance"], scenario["seed"]
+    batch_offset = _log_offsets(_stable_rng(seed, "batch", batch), nuisance["batch_log_sd"])
+    plate_offset = _log_offsets(_stable_rng(seed, "plate", plate), nuisance["plate_log_sd"])
+    well_offset = _log_offsets(_stable_rng(seed, "well", plate, well), nuisance["well_log_sd"])
+    treatment = treatment_ratios(scenario, condition, dose)
+    edge = is_edge_well(well, plate_format(scenario["plate_format"]))
+    factor = {}
+    for q in QUANTITIES:
+        edge_ratio = nuisance["edge_ratio"].get(q, 1.0) if edge else 1.0
+        factor[q] = treatment[q] * batch_offset[q] * plate_offset[q] * well_offset[q] * edge_ratio
+    return factor
+
+
+def write_demo_plate(scenario: dict, layout: pd.DataFrame, plate: str, batch: str, folder: str) -> int:
+    """Simulate every non-empty well of ``layout`` for one plate into ``folder``.
+
+    Files follow the template '{well}_s{site}_{channel}.tif', one multi-page TIFF (a page per
+    frame) per site and channel. Returns the number of files written.
+    """
+    os.makedirs(folder, exist_ok=True)
+    names = [scenario["channels"]["nuclei"], scenario["channels"]["reporter"]]
+    written = 0
+    for _, row in layout[layout["role"] != "empty"].iterrows():
+        dose = 0.0 if np.isnan(row["dose"]) else float(row["dose"])
+        factor = well_factors(scenario, plate, batch, row["well"], row["condition"], dose)
+        for site in range(1, scenario["sites_per_well"] + 1):
+            rng = _stable_rng(scenario["seed"], "site", plate, row["well"], str(site))
+            stack = simulate_site(scenario, factor, rng)
+            for channel, name in enumerate(names):
+                path = os.path.join(folder, f"{row['well']}_s{site}_{name}.tif")
+                tmp = path + ".part"
+                tifffile.imwrite(tmp, stack[:, channel], compression="zlib", photometric="minisblack")
+                os.replace(tmp, path)
+                written += 1
+    return written

@@ -1,0 +1,155 @@
+"""Finding images by a filename template and streaming them frame by frame."""
+
+from __future__ import annotations
+
+import os
+import re
+from collections.abc import Iterator
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+import tifffile
+
+from .errors import InputError
+from .plate_formats import canonical_well, plate_format
+
+FIELD_PATTERNS = {
+    "well": r"(?P<well>[A-Za-z]{1,2}\d{1,2})",
+    "site": r"(?P<site>\d+)",
+    "frame": r"(?P<frame>\d+)",
+    "channel": r"(?P<channel>[A-Za-z0-9_]+?)",
+}
+
+
+def template_regex(template: str) -> re.Pattern[str]:
+    """Compile a filename template such as '{well}_s{site}_t{frame}_{channel}.tif' to a regex."""
+    fields = re.findall(r"{(\w+)}", template)
+    unknown = sorted(set(fields) - set(FIELD_PATTERNS))
+    if unknown or not {"well", "site", "channel"} <= set(fields):
+        raise InputError("config images.filename_template", f"template {template!r} has fields {fields}.",
+                         "use {well}, {site}, {channel} and optionally {frame}, each once.")
+    if len(fields) != len(set(fields)):
+        raise InputError("config images.filename_template", f"template {template!r} repeats a field.", "use each field once.")
+    pattern = ""
+    for literal, field in re.findall(r"([^{]*)(?:{(\w+)})?", template):
+        pattern += re.escape(literal)
+        if field:
+            pattern += FIELD_PATTERNS[field]
+    return re.compile(f"^{pattern}$")
+
+
+@dataclass(frozen=True)
+class ImageIndex:
+    """The images of one plate: a table with well, site, frame (-1 for stacks), channel, path."""
+
+    table: pd.DataFrame
+    stacks: bool
+    unmatched: tuple[str, ...]
+
+
+def index_plate_images(folder: str, template: str, wells: int, channels: list[str]) -> ImageIndex:
+    """List a plate's image folder once and parse every file name with the template.
+
+    Files whose names do not fit the template are returned in ``unmatched`` (reported, not
+    silently ignored); files of channels not in config are also unmatched.
+    """
+    if not os.path.isdir(folder):
+        raise InputError(folder, "the image folder does not exist.", "check image_folder in the screen sheet.")
+    regex = template_regex(template)
+    stacks = "{frame}" not in template
+    fmt = plate_format(wells)
+    rows, unmatched = [], []
+    for name in sorted(os.listdir(folder)):
+        match = regex.match(name)
+        if not match or match.group("channel") not in channels:
+            unmatched.append(name)
+            continue
+        try:
+            well = canonical_well(match.group("well"), fmt)
+        except ValueError:
+            unmatched.append(name)
+            continue
+        frame = -1 if stacks else int(match.group("frame"))
+        rows.append((well, int(match.group("site")), frame, match.group("channel"), os.path.join(folder, name)))
+    table = pd.DataFrame(rows, columns=["well", "site", "frame", "channel", "path"])
+    return ImageIndex(table, stacks, tuple(unmatched))
+
+
+def _check_plane(plane: np.ndarray, path: str, shape: tuple[int, ...] | None) -> np.ndarray:
+    if plane.ndim != 2:
+        raise InputError(path, f"expected one 2-D plane per page, found shape {plane.shape}.",
+                         "save one channel per file (and one page per frame for stacks).")
+    if shape is not None and plane.shape != shape:
+        raise InputError(path, f"plane shape {plane.shape} differs from the other channels/frames {shape}.",
+                         "all images of a site must have the same size.")
+    if not (np.issubdtype(plane.dtype, np.integer) or np.issubdtype(plane.dtype, np.floating)):
+        raise InputError(path, f"pixel type {plane.dtype} is not numeric.", "save grey-level images (uint8, uint16 or float).")
+    return plane.astype(np.float32, copy=False)
+
+
+def _read_page(path: str, page: int) -> np.ndarray:
+    try:
+        with tifffile.TiffFile(path) as tif:
+            if page >= len(tif.pages):
+                raise InputError(path, f"has {len(tif.pages)} pages, frame {page} is missing.", "re-export the full time series.")
+            return tif.pages[page].asarray()
+    except InputError:
+        raise
+    except Exception as error:  # tifffile raises many kinds for truncated or corrupt files
+        raise InputError(path, f"cannot be read as TIFF ({type(error).__name__}: {error}).",
+                         "re-copy the file from the microscope; a truncated transfer is the usual cause.") from None
+
+
+def _page_count(path: str) -> int:
+    try:
+        with tifffile.TiffFile(path) as tif:
+            return len(tif.pages)
+    except Exception as error:
+        raise InputError(path, f"cannot be read as TIFF ({type(error).__name__}: {error}).",
+                         "re-copy the file from the microscope; a truncated transfer is the usual cause.") from None
+
+
+def site_frame_count(index: ImageIndex, well: str, site: int, channels: list[str]) -> int:
+    """Number of frames of one site (the same for every channel, else an error)."""
+    files = index.table[(index.table["well"] == well) & (index.table["site"] == site)]
+    counts = {}
+    for channel in channels:
+        paths = files.loc[files["channel"] == channel, "path"].tolist()
+        if not paths:
+            raise InputError(f"well {well}, site {site}", f"no image for channel {channel!r}.", "check the file names against images.filename_template.")
+        counts[channel] = _page_count(paths[0]) if index.stacks else len(paths)
+    if len(set(counts.values())) != 1:
+        raise InputError(f"well {well}, site {site}", f"channels have different frame counts {counts}.", "re-export the missing frames.")
+    return next(iter(counts.values()))
+
+
+def stream_site(index: ImageIndex, well: str, site: int, channels: list[str]) -> Iterator[tuple[int, np.ndarray]]:
+    """Yield (frame, planes) for one site, one frame at a time; planes is (channels, y, x) float32.
+
+    Only one frame of every channel is held in memory at once.
+    """
+    files = index.table[(index.table["well"] == well) & (index.table["site"] == site)]
+    n_frames = site_frame_count(index, well, site, channels)
+    by_channel = {c: files[files["channel"] == c].sort_values("frame") for c in channels}
+    if not index.stacks:
+        for channel, table in by_channel.items():
+            expected = list(range(int(table["frame"].min()), int(table["frame"].min()) + n_frames))
+            if table["frame"].tolist() != expected:
+                missing = sorted(set(expected) - set(table["frame"]))
+                raise InputError(f"well {well}, site {site}, channel {channel}", f"frames {missing} are missing.", "re-export the missing frames.")
+    shape: tuple[int, ...] | None = None
+    for frame in range(n_frames):
+        planes = []
+        for channel in channels:
+            table = by_channel[channel]
+            if index.stacks:
+                path = table["path"].iloc[0]
+                plane = _read_page(path, frame)
+            else:
+                path = table["path"].iloc[frame]
+                plane = _read_page(path, 0)
+            plane = _check_plane(plane, path, shape)
+            shape = plane.shape
+            planes.append(plane)
+        yield frame, np.stack(planes)
