@@ -1,0 +1,87 @@
+"""The screen plan, known at parse time: plates, layouts, chunks of wells, demo plates, features."""
+
+from __future__ import annotations
+
+import os
+from dataclasses import dataclass, field
+
+import pandas as pd
+
+from .demo import demo_plates, load_scenario
+from .errors import InputError
+from .screen import PlateEntry, analysed_wells, chunk_wells, load_layout, load_screen_sheet
+
+DEMO_IMAGE_ROOT = "demo_images"
+
+
+@dataclass
+class ScreenPlan:
+    """What the workflow will do; built once from config, screen sheet and layouts."""
+
+    plates: dict[str, PlateEntry]
+    layouts: dict[str, pd.DataFrame]
+    chunks: dict[str, list[list[str]]]
+    demo_plates: set[str] = field(default_factory=set)
+    features: list[str] = field(default_factory=list)
+    log_features: list[str] = field(default_factory=list)
+
+    def chunk_ids(self, plate: str) -> list[str]:
+        """Zero-padded chunk ids of one plate ('000', '001', ...)."""
+        return [f"{i:03d}" for i in range(len(self.chunks[plate]))]
+
+
+def channel_names(config: dict) -> dict[str, str]:
+    """Role -> channel name for the nuclei and reporter channels (reporter falls back to nuclei)."""
+    roles = {}
+    for channel in config["channels"]:
+        roles.setdefault(channel["role"], channel["name"])
+    if "nuclei" not in roles:
+        raise InputError("config channels", "no channel has role nuclei.", "give the nuclear stain role: nuclei.")
+    nuclei_count = sum(c["role"] == "nuclei" for c in config["channels"])
+    if nuclei_count > 1:
+        raise InputError("config channels", "more than one channel has role nuclei.", "keep one nuclei channel.")
+    names = [c["name"] for c in config["channels"]]
+    if len(set(names)) != len(names):
+        raise InputError("config channels", f"channel names repeat: {names}.", "give every channel its own name.")
+    roles.setdefault("reporter", roles["nuclei"])
+    return roles
+
+
+def resolve_features(names: list[str], config: dict) -> list[str]:
+    """Replace {nuclei} and {reporter} in feature names by the channel names."""
+    roles = channel_names(config)
+    return [name.format(nuclei=roles["nuclei"], reporter=roles["reporter"]) for name in names]
+
+
+def plan_screen(config: dict) -> ScreenPlan:
+    """Read and check the screen sheet and every layout; decide the chunks of wells.
+
+    Raises InputError naming file, row and column for every problem found.
+    """
+    channel_names(config)
+    entries = load_screen_sheet(config["screen_sheet"])
+    scenario_path = config.get("demo", {}).get("scenario", "")
+    scenario_plates = demo_plates(load_scenario(scenario_path)) if scenario_path and os.path.isfile(scenario_path) else {}
+    plan = ScreenPlan({}, {}, {})
+    layouts_by_path: dict[tuple[str, int], pd.DataFrame] = {}
+    for entry in entries:
+        key = (entry.layout, entry.plate_format)
+        if key not in layouts_by_path:
+            layouts_by_path[key] = load_layout(entry.layout, entry.plate_format)
+        layout = layouts_by_path[key]
+        is_demo = entry.plate in scenario_plates and os.path.normpath(entry.image_folder) == os.path.join(DEMO_IMAGE_ROOT, entry.plate)
+        if not is_demo and not os.path.isdir(entry.image_folder):
+            raise InputError(f"{config['screen_sheet']}, plate {entry.plate}, column image_folder",
+                             f"image folder {entry.image_folder!r} does not exist.",
+                             "check the path (relative to the folder you run snakemake from).")
+        wells = analysed_wells(layout)
+        if not wells:
+            raise InputError(entry.layout, "no well to analyse (all empty).", "give wells a role other than empty.")
+        plan.plates[entry.plate] = entry
+        plan.layouts[entry.plate] = layout
+        plan.chunks[entry.plate] = chunk_wells(wells, int(config["chunk_wells"]))
+        if is_demo:
+            plan.demo_plates.add(entry.plate)
+    plan.features = resolve_features(config["screen"]["features"], config)
+    plan.log_features = resolve_features(config["screen"]["log_scale_features"], config)
+    return plan

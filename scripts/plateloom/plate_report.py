@@ -1,0 +1,71 @@
+"""The plate report: heatmaps in plate geometry, control distributions, Z' table, exclusions."""
+
+from __future__ import annotations
+
+import matplotlib.pyplot as plt
+import numpy as np
+import pandas as pd
+import seaborn as sns
+
+from .plate_formats import PlateFormat, row_label, well_grid
+from .report import escape, figure_tag, page, table_tag
+
+ROLE_ORDER = ["negative_control", "positive_control", "test"]
+
+
+def plate_heatmap(profile: pd.DataFrame, feature: str, fmt: PlateFormat) -> plt.Figure:
+    """Heatmap of one well feature laid out as the plate; excluded wells marked with x."""
+    grid = well_grid(dict(zip(profile["well"], profile[feature])), fmt)
+    width = min(14.0, 2 + fmt.columns * 0.45)
+    figure, axis = plt.subplots(figsize=(width, width * fmt.rows / fmt.columns * 0.9 + 0.8))
+    sns.heatmap(grid, ax=axis, cmap="viridis", square=True, cbar_kws={"label": feature},
+                xticklabels=[str(c + 1) for c in range(fmt.columns)],
+                yticklabels=[row_label(r) for r in range(fmt.rows)], linewidths=0.5, linecolor="white")
+    for _, well in profile[profile["excluded_by"] != ""].iterrows():
+        axis.text(well["column"] - 0.5, well["row"] - 0.5, "x", ha="center", va="center", color="red", fontsize=12)
+    axis.set_title(f"{feature} (x: excluded well; blank: no value)")
+    axis.tick_params(labelsize=7 if fmt.wells <= 96 else 5)
+    return figure
+
+
+def control_distributions(profile: pd.DataFrame, features: list[str]) -> plt.Figure:
+    """Well values by role, one panel per feature."""
+    figure, axes = plt.subplots(1, len(features), figsize=(4.2 * len(features), 3.6), squeeze=False)
+    data = profile[profile["excluded_by"] == ""]
+    for axis, feature in zip(axes[0], features):
+        order = [r for r in ROLE_ORDER if (data["role"] == r).any()]
+        sns.stripplot(data=data, x="role", y=feature, order=order, ax=axis, size=4, jitter=0.25)
+        sns.boxplot(data=data, x="role", y=feature, order=order, ax=axis, showfliers=False,
+                    boxprops={"facecolor": "none"}, width=0.5)
+        axis.tick_params(axis="x", labelrotation=20, labelsize=8)
+        axis.set_xlabel("")
+    figure.tight_layout()
+    return figure
+
+
+def build_plate_report(profile: pd.DataFrame, qc: pd.DataFrame, plate: str, batch: str, fmt: PlateFormat,
+                       report_feature: str, provenance: dict) -> str:
+    """The self-contained HTML report of one plate."""
+    excluded = profile[profile["excluded_by"] != ""][["well", "role", "treatment", "cell_count", "excluded_by"]]
+    n_kept = int((profile["excluded_by"] == "").sum())
+    summary = (f"<p>Plate <b>{escape(plate)}</b>, batch <b>{escape(batch)}</b>, {fmt.wells}-well format: "
+               f"{len(profile)} analysed wells, {n_kept} kept, {len(excluded)} excluded; "
+               f"{int(profile['n_observations'].sum())} observations, {int(profile['n_tracks'].sum())} tracks.</p>")
+    heatmaps = figure_tag(plate_heatmap(profile, "cell_count", fmt), "cell count heatmap")
+    if report_feature in profile.columns and report_feature != "cell_count":
+        heatmaps += figure_tag(plate_heatmap(profile, report_feature, fmt), f"{report_feature} heatmap")
+    shown = [f for f in ("cell_count", report_feature) if f in profile.columns]
+    distributions = figure_tag(control_distributions(profile, list(dict.fromkeys(shown))), "control distributions")
+    qc_table = table_tag(qc[["feature", "n_negative", "n_positive", "negative_median", "positive_median",
+                             "negative_cv", "z_prime", "robust_z_prime", "verdict"]])
+    ledger = ("<p>No well was excluded.</p>" if excluded.empty else table_tag(excluded))
+    sections = [
+        ("Summary", summary),
+        ("Plate maps", heatmaps),
+        ("Control and test wells", distributions),
+        ("Z'-factor per feature", "<p>Z' = 1 - 3(sd<sub>pos</sub> + sd<sub>neg</sub>) / |mean<sub>pos</sub> - "
+         "mean<sub>neg</sub>| (Zhang, Chung &amp; Oldenburg 1999); the robust form uses medians and 1.4826 x MAD.</p>"
+         + qc_table),
+        ("Excluded wells", ledger),
+    ]
+    return page(f"plateloom plate report: {plate}", sections, provenance)

@@ -1,0 +1,74 @@
+"""Well profiles: the well (not the cell) is the experimental unit, so cells are summarised per well."""
+
+from __future__ import annotations
+
+import glob
+import os
+
+import numpy as np
+import pandas as pd
+import pyarrow.dataset as ds
+
+from .plate_formats import is_edge_well, parse_well, plate_format
+
+TRACK_FEATURES = ("speed_um_per_min", "straightness")
+NON_FEATURE_COLUMNS = ("plate", "well", "site", "frame", "time_min", "object", "track", "touches_border",
+                       "centroid_x_um", "centroid_y_um", "chunk")
+
+
+def observation_features(columns: list[str]) -> list[str]:
+    """The measured per-observation features among a cells table's columns."""
+    return [c for c in columns if c not in NON_FEATURE_COLUMNS]
+
+
+def read_plate_dataset(folders: list[str], columns: list[str] | None = None) -> pd.DataFrame:
+    """Read the per-well Parquet files under the given chunk folders (only ``columns`` if given).
+
+    Files are read in sorted path order, so the row order is the same on every run.
+    """
+    files = sorted(glob.glob(os.path.join(folder, "well=*", "*.parquet")) for folder in folders)
+    paths = [path for group in files for path in sorted(group)]
+    if not paths:
+        raise FileNotFoundError(f"no per-well tables under {folders}")
+    return ds.dataset(paths, format="parquet").to_table(columns=columns).to_pandas()
+
+
+def summarise_wells(cells: pd.DataFrame, tracks: pd.DataFrame, layout: pd.DataFrame, plate: str, batch: str,
+                    wells: int) -> pd.DataFrame:
+    """One row per analysed well: keys, layout, counts and the median of every feature.
+
+    cell_count is the mean number of nuclei per site and frame; observation features are
+    medians over observations not touching the image border; speed and straightness are
+    medians over tracks with enough frames (see tracking.min_track_frames).
+    """
+    fmt = plate_format(wells)
+    whole = cells[~cells["touches_border"]]
+    features = observation_features(list(cells.columns))
+    medians = whole.groupby("well")[features].median()
+    per_frame = cells.groupby(["well", "site", "frame"]).size().groupby("well").mean().rename("cell_count")
+    n_obs = cells.groupby("well").size().rename("n_observations")
+    sites = cells.groupby("well")["site"].nunique().rename("n_sites")
+    frames = cells.groupby("well")["frame"].nunique().rename("n_frames")
+    usable = tracks[tracks["speed_um_per_min"].notna() & ~tracks["touches_border"]]
+    motion = usable.groupby("well")[list(TRACK_FEATURES)].median()
+    n_tracks = usable.groupby("well").size().rename("n_tracks")
+    analysed = layout[layout["role"] != "empty"].set_index("well")
+    profile = analysed.join([per_frame, n_obs, sites, frames, n_tracks, medians, motion], how="left")
+    profile["cell_count"] = profile["cell_count"].fillna(0.0)
+    for column in ("n_observations", "n_tracks"):
+        profile[column] = profile[column].fillna(0).astype(np.int64)
+    profile = profile.reset_index()
+    position = np.array([parse_well(w) for w in profile["well"]]).reshape(-1, 2)
+    profile.insert(0, "plate", plate)
+    profile.insert(1, "batch", batch)
+    profile.insert(3, "row", position[:, 0] + 1)
+    profile.insert(4, "column", position[:, 1] + 1)
+    profile.insert(5, "is_edge", [is_edge_well(w, fmt) for w in profile["well"]])
+    return profile
+
+
+def well_features(profile: pd.DataFrame) -> list[str]:
+    """The feature columns of a well-profile table (cell_count, medians, motility)."""
+    fixed = {"plate", "batch", "well", "row", "column", "is_edge", "role", "condition", "dose", "dose_unit",
+             "treatment", "n_observations", "n_sites", "n_frames", "n_tracks", "excluded_by"}
+    return [c for c in profile.columns if c not in fixed and not c.endswith("_robust_z")]

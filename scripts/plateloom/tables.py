@@ -1,0 +1,69 @@
+"""Parquet output: atomic writes with provenance in the file metadata; Hive-style paths."""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+import platform
+from importlib import metadata
+
+import pandas as pd
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+PROVENANCE_KEY = b"plateloom_provenance"
+_PACKAGES = ("plateloom", "numpy", "scipy", "scikit-image", "pandas", "pyarrow", "statsmodels", "snakemake")
+
+
+def config_digest(settings: object) -> str:
+    """SHA-256 of the settings as canonical JSON (sorted keys): the same settings, the same digest."""
+    return hashlib.sha256(json.dumps(settings, sort_keys=True, default=str).encode()).hexdigest()
+
+
+def provenance(settings: object) -> dict[str, object]:
+    """What produced an output: digest of the settings used and the package versions."""
+    versions = {}
+    for name in _PACKAGES:
+        try:
+            versions[name] = metadata.version(name)
+        except metadata.PackageNotFoundError:
+            versions[name] = "not installed"
+    return {"config_sha256": config_digest(settings), "python": platform.python_version(), "packages": versions}
+
+
+def write_parquet(frame: pd.DataFrame, path: str, settings: object) -> None:
+    """Write ``frame`` to ``path`` atomically (temporary file in the same folder, then rename).
+
+    An interrupted write never leaves a readable partial file at ``path``.
+    """
+    folder = os.path.dirname(path) or "."
+    os.makedirs(folder, exist_ok=True)
+    table = pa.Table.from_pandas(frame, preserve_index=False)
+    meta = dict(table.schema.metadata or {})
+    meta[PROVENANCE_KEY] = json.dumps(provenance(settings), sort_keys=True).encode()
+    table = table.replace_schema_metadata(meta)
+    tmp = os.path.join(folder, f".{os.path.basename(path)}.{os.getpid()}.tmp")
+    pq.write_table(table, tmp)
+    os.replace(tmp, path)
+
+
+def write_text(text: str, path: str) -> None:
+    """Write a text file (report, CSV) atomically."""
+    folder = os.path.dirname(path) or "."
+    os.makedirs(folder, exist_ok=True)
+    tmp = os.path.join(folder, f".{os.path.basename(path)}.{os.getpid()}.tmp")
+    with open(tmp, "w", encoding="utf-8") as handle:
+        handle.write(text)
+    os.replace(tmp, path)
+
+
+def read_provenance(path: str) -> dict[str, object]:
+    """The provenance record stored in a plateloom Parquet file."""
+    meta = pq.read_schema(path).metadata or {}
+    return json.loads(meta[PROVENANCE_KEY])
+
+
+def well_part_path(root: str, well: str) -> str:
+    """Path of one well's table inside a Hive-style chunk folder: <root>/well=<W>/part-0.parquet."""
+    return os.path.join(root, f"well={well}", "part-0.parquet")

@@ -1,0 +1,16 @@
+"""Rule analyse_wells: segment, track and measure one chunk of wells of one plate."""
+from plateloom.images import index_plate_images
+from plateloom.steps import run_step
+from plateloom.wellwork import WellSettings, analyse_chunk
+
+sm = snakemake  # noqa: F821  (injected by Snakemake's script directive)
+
+
+def step() -> None:
+    settings = WellSettings(**sm.params.settings)
+    index = index_plate_images(sm.input.images, sm.params.template, sm.params.plate_format, list(settings.channels))
+    analyse_chunk(index, sm.wildcards.plate, list(sm.params.wells), settings,
+                  sm.output.cells, sm.output.tracks, sm.output.site_qc, dict(sm.params.settings))
+
+
+run_step(sm.log[0], step, f"analyse_wells {sm.wildcards.plate} chunk {sm.wildcards.chunk}")

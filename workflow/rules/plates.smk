@@ -1,0 +1,51 @@
+# Per plate (fan-in over wells): well profiles, exclusions, robust z, Z', plate report.
+
+PLATE_SETTINGS = {"min_cells_per_well": config["plate"]["min_cells_per_well"]}
+
+
+rule plate_profiles:
+    input:
+        cells=lambda w: chunk_folders("cells", w.plate),
+        tracks=lambda w: chunk_folders("tracks", w.plate),
+        layout=lambda w: PLAN.plates[w.plate].layout,
+    output:
+        wells=f"{RESULTS}/wells/plate={{plate}}/part-0.parquet",
+        qc=f"{RESULTS}/plate_qc/plate={{plate}}/part-0.parquet",
+    params:
+        batch=lambda w: PLAN.plates[w.plate].batch,
+        plate_format=lambda w: PLAN.plates[w.plate].plate_format,
+        min_cells_per_well=config["plate"]["min_cells_per_well"],
+        settings=PLATE_SETTINGS,
+    log:
+        f"{RESULTS}/logs/plate_profiles/{{plate}}.log",
+    benchmark:
+        f"{RESULTS}/benchmarks/plate_profiles/{{plate}}.tsv"
+    threads: 1
+    resources:
+        mem_mb=2000,
+        runtime=30,
+    script:
+        "../../scripts/steps/plate_profiles.py"
+
+
+rule plate_report:
+    input:
+        wells=f"{RESULTS}/wells/plate={{plate}}/part-0.parquet",
+        qc=f"{RESULTS}/plate_qc/plate={{plate}}/part-0.parquet",
+    output:
+        report=f"{RESULTS}/reports/plates/{{plate}}.html",
+    params:
+        batch=lambda w: PLAN.plates[w.plate].batch,
+        plate_format=lambda w: PLAN.plates[w.plate].plate_format,
+        report_feature=config["plate"]["report_feature"],
+        settings={"report_feature": config["plate"]["report_feature"]},
+    log:
+        f"{RESULTS}/logs/plate_report/{{plate}}.log",
+    benchmark:
+        f"{RESULTS}/benchmarks/plate_report/{{plate}}.tsv"
+    threads: 1
+    resources:
+        mem_mb=1000,
+        runtime=10,
+    script:
+        "../../scripts/steps/plate_report.py"

@@ -1,0 +1,40 @@
+# Per well (fan-out): one job per chunk of wells of one plate; one Parquet file per well.
+
+WELL_SETTINGS = {
+    "channels": [c["name"] for c in config["channels"]],
+    "nuclei_channel": next(c["name"] for c in config["channels"] if c["role"] == "nuclei"),
+    "pixel_size_um": config["images"]["pixel_size_um"],
+    "frame_interval_min": config["images"]["frame_interval_min"],
+    **config["segmentation"],
+    **config["tracking"],
+}
+
+
+def chunk_folders(kind, plate):
+    return [f"{RESULTS}/{kind}/plate={plate}/chunk={chunk}" for chunk in PLAN.chunk_ids(plate)]
+
+
+rule analyse_wells:
+    input:
+        images=lambda w: PLAN.plates[w.plate].image_folder,
+    output:
+        cells=directory(f"{RESULTS}/cells/plate={{plate}}/chunk={{chunk}}"),
+        tracks=directory(f"{RESULTS}/tracks/plate={{plate}}/chunk={{chunk}}"),
+        site_qc=directory(f"{RESULTS}/site_qc/plate={{plate}}/chunk={{chunk}}"),
+    params:
+        wells=lambda w: PLAN.chunks[w.plate][int(w.chunk)],
+        plate_format=lambda w: PLAN.plates[w.plate].plate_format,
+        template=lambda w: config["images"]["filename_template"],
+        settings=WELL_SETTINGS,
+    wildcard_constraints:
+        chunk=r"\d{3}",
+    log:
+        f"{RESULTS}/logs/analyse_wells/{{plate}}_{{chunk}}.log",
+    benchmark:
+        f"{RESULTS}/benchmarks/analyse_wells/{{plate}}_{{chunk}}.tsv"
+    threads: 1
+    resources:
+        mem_mb=2000,
+        runtime=60,
+    script:
+        "../../scripts/steps/analyse_wells.py"
