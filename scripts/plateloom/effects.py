@@ -37,7 +37,9 @@ class NestedFit:
     boundary: bool              # a variance component was estimated at zero (singular fit)
 
 
+# Warnings that only say a variance component sits at zero; the fixed effects are still valid.
 BOUNDARY_MESSAGES = ("boundary", "Hessian", "singular")
+BOUNDARY_SHARE = 1e-4  # a component below this share of the variance counts as estimated at zero
 
 
 def fit_nested_random_intercepts(data: pd.DataFrame, formula: str, batch: str, plate: str | None,
@@ -61,13 +63,14 @@ def fit_nested_random_intercepts(data: pd.DataFrame, formula: str, batch: str, p
                 problems.append(f"{method}: {error}")
                 continue
         messages = [str(w.message) for w in caught if issubclass(w.category, (ConvergenceWarning, RuntimeWarning))]
-        boundary = any(any(key in m for key in BOUNDARY_MESSAGES) for m in messages)
         other = [m for m in messages if not any(key in m for key in BOUNDARY_MESSAGES)]
         if not result.converged or other or not np.all(np.isfinite(result.bse_fe)):
             problems.append(f"{method}: {'; '.join(other) or 'not converged'}")
             continue
-        vcomp = np.atleast_1d(result.vcomp) if plate else np.array([0.0])
-        return NestedFit(result.fe_params, result.bse_fe, float(result.cov_re.iloc[0, 0]), float(vcomp[0]),
+        vcomp = np.atleast_1d(result.vcomp) if plate else np.array([np.inf])
+        batch_variance = float(result.cov_re.iloc[0, 0])
+        boundary = min(batch_variance, float(vcomp[0])) < BOUNDARY_SHARE * (batch_variance + float(result.scale))
+        return NestedFit(result.fe_params, result.bse_fe, batch_variance, float(vcomp[0]) if plate else 0.0,
                          float(result.scale), method, boundary)
     raise RuntimeError("mixed model did not converge: " + " | ".join(problems))
 

@@ -6,11 +6,13 @@ import numpy as np
 from scipy import ndimage
 from skimage.feature import peak_local_max
 from skimage.filters import threshold_otsu
+from skimage.morphology import h_maxima
 from skimage.segmentation import relabel_sequential, watershed
 
 # A threshold closer to the background than this many robust noise SDs means the field holds
 # no objects (Otsu always finds a threshold, even in pure noise).
 MIN_CONTRAST_NOISE_SDS = 5.0
+SEED_DEPTH_PX = 1.0
 
 
 def robust_sd(values: np.ndarray) -> float:
@@ -46,8 +48,11 @@ def segment_nuclei(image: np.ndarray, pixel_size_um: float, smoothing_sigma_um: 
     distance = ndimage.distance_transform_edt(mask)
     min_distance_px = max(1, int(round(split_min_distance_um / pixel_size_um)))
     peaks = peak_local_max(distance, min_distance=min_distance_px, labels=components, exclude_border=False)
-    markers = np.zeros(image.shape, np.int32)
-    markers[tuple(peaks.T)] = np.arange(1, len(peaks) + 1)
+    # A seed must rise at least SEED_DEPTH_PX above the saddle to the next one, so the long
+    # ridge of an elongated nucleus does not give it several seeds.
+    regions, _ = ndimage.label(h_maxima(distance, SEED_DEPTH_PX))
+    seeded = np.unique(regions[tuple(peaks.T)])
+    markers = np.where(np.isin(regions, seeded[seeded > 0]), regions, 0).astype(np.int32)
     labels = watershed(-distance, markers, mask=mask)
     labels = half_maximum_masks(labels, smooth, float(np.median(smooth[~mask])) if (~mask).any() else 0.0)
     sizes = np.bincount(labels.ravel())

@@ -1,0 +1,42 @@
+"""Shared fixtures: a private copy of the workflow to run Snakemake in."""
+
+from __future__ import annotations
+
+import os
+import shutil
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+
+ROOT = Path(__file__).resolve().parents[1]
+WORKFLOW_PARTS = ("Snakefile", "workflow", "config", "resources", "scripts")
+
+
+def copy_workflow(target: Path) -> Path:
+    """Copy what a run needs (not results or generated images) into ``target``."""
+    target.mkdir(parents=True, exist_ok=True)
+    ignore = shutil.ignore_patterns("__pycache__", "*.egg-info")
+    for part in WORKFLOW_PARTS:
+        source = ROOT / part
+        if source.is_dir():
+            shutil.copytree(source, target / part, ignore=ignore)
+        else:
+            shutil.copy2(source, target / part)
+    return target
+
+
+def run_snakemake(workdir: Path, *args: str, check: bool = True) -> subprocess.CompletedProcess:
+    """Run Snakemake in ``workdir`` with the test's Python; returns the finished process."""
+    command = [sys.executable, "-m", "snakemake", "--cores", "2", "--scheduler", "greedy", *args]
+    env = {**os.environ, "PYTHONHASHSEED": "0"}
+    result = subprocess.run(command, cwd=workdir, capture_output=True, text=True, env=env)
+    if check and result.returncode != 0:
+        raise AssertionError(f"snakemake failed ({result.returncode}):\n{result.stdout[-4000:]}\n{result.stderr[-6000:]}")
+    return result
+
+
+@pytest.fixture
+def workflow_dir(tmp_path: Path) -> Path:
+    return copy_workflow(tmp_path / "screen")

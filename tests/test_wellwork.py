@@ -1,0 +1,103 @@
+"""Segmentation, features and linking against analytic shapes, reference libraries and planted truth."""
+
+import numpy as np
+import pytest
+from skimage.draw import disk, ellipse
+from skimage.filters import threshold_otsu
+
+from plateloom.demo import QUANTITIES, load_scenario, simulate_site
+from plateloom.features import measure_objects
+from plateloom.segment import segment_nuclei
+from plateloom.track import link_frames, track_features
+
+from conftest import ROOT
+
+PIXEL = 0.5  # um
+
+
+def _image_with(masks, level=1000.0, background=100.0, noise=5.0, seed=0):
+    image = np.full((200, 200), background, np.float32)
+    for mask in masks:
+        image[mask] += level
+    return image + np.random.default_rng(seed).normal(0, noise, image.shape).astype(np.float32)
+
+
+def test_disk_area_and_eccentricity_match_geometry():
+    # A disk of radius r has area pi r^2 and eccentricity 0 (geometry).
+    mask = np.zeros((200, 200), bool)
+    mask[disk((100, 100), 30)] = True
+    image = _image_with([mask])
+    labels, _ = segment_nuclei(image, PIXEL, 0.5, 10.0, 5.0)
+    table = measure_objects(labels, image[None], ["dna"], np.array([100.0]), PIXEL)
+    assert len(table) == 1
+    assert table["area_um2"].iloc[0] == pytest.approx(np.pi * (30 * PIXEL) ** 2, rel=0.02)
+    assert table["eccentricity"].iloc[0] < 0.1
+    assert table["mean_intensity_dna"].iloc[0] == pytest.approx(1000.0, rel=0.05)
+
+
+def test_ellipse_eccentricity_matches_geometry():
+    # An ellipse with semi-axes a >= b has eccentricity sqrt(1 - b^2/a^2) (geometry).
+    mask = np.zeros((200, 200), bool)
+    mask[ellipse(100, 100, 20, 40)] = True
+    image = _image_with([mask])
+    labels, _ = segment_nuclei(image, PIXEL, 0.5, 10.0, 5.0)
+    table = measure_objects(labels, image[None], ["dna"], np.array([100.0]), PIXEL)
+    assert table["eccentricity"].iloc[0] == pytest.approx(np.sqrt(1 - 20**2 / 40**2), abs=0.02)
+    assert table["area_um2"].iloc[0] == pytest.approx(np.pi * 20 * 40 * PIXEL**2, rel=0.03)
+
+
+def test_threshold_is_otsu_of_the_smoothed_image():
+    # Otsu 1979; scikit-image's threshold_otsu is the reference implementation.
+    from scipy import ndimage
+    mask = np.zeros((200, 200), bool)
+    mask[disk((60, 60), 20)] = True
+    mask[disk((140, 130), 25)] = True
+    image = _image_with([mask])
+    _, threshold = segment_nuclei(image, PIXEL, 1.0, 10.0, 5.0)
+    assert threshold == pytest.approx(threshold_otsu(ndimage.gaussian_filter(image, 1.0 / PIXEL)), rel=1e-6)
+
+
+def test_touching_disks_are_split_and_a_blank_field_has_none():
+    a, b = np.zeros((200, 200), bool), np.zeros((200, 200), bool)
+    a[disk((100, 75), 25)] = True
+    b[disk((100, 124), 25)] = True
+    labels, _ = segment_nuclei(_image_with([a | b]), PIXEL, 0.5, 10.0, 8.0)
+    assert labels.max() == 2
+    blank, threshold = segment_nuclei(_image_with([]), PIXEL, 0.5, 10.0, 8.0)
+    assert blank.max() == 0 and np.isnan(threshold)
+
+
+def test_demo_nuclei_counted_as_planted():
+    # Planted truth: the simulated site knows how many nuclei it drew.
+    scenario = load_scenario(str(ROOT / "resources/demo/scenario.yaml"), frames=3)
+    factor = {q: 1.0 for q in QUANTITIES}
+    exact = 0
+    for seed in range(10):
+        rng = np.random.default_rng(seed)
+        expected = int(np.random.default_rng(seed).poisson(scenario["cells_per_site"]))
+        stack = simulate_site(scenario, factor, rng)
+        labels, _ = segment_nuclei(stack[0, 0], scenario["pixel_size_um"], 1.0, 30.0, 7.0)
+        exact += labels.max() == expected
+    assert exact >= 9
+
+
+def test_linking_recovers_a_permutation_and_starts_far_objects_anew():
+    rng = np.random.default_rng(4)
+    previous = rng.uniform(0, 500, (60, 2))
+    order = rng.permutation(60)
+    current = previous[order] + rng.normal(0, 0.5, (60, 2))
+    current = np.vstack([current, [[2000.0, 2000.0]]])
+    links = link_frames(previous, current, max_displacement_um=5.0)
+    np.testing.assert_array_equal(links[:60], order)
+    assert links[60] == -1
+
+
+def test_track_features_of_a_straight_constant_speed_walk():
+    frames = np.arange(6)
+    x = 2.0 * frames  # 2 um per frame, frame interval 5 min -> 0.4 um/min
+    features = track_features(frames, np.zeros(6, int), x.astype(float), np.zeros(6), 5.0, 3)
+    assert features["speed_um_per_min"][0] == pytest.approx(0.4)
+    assert features["straightness"][0] == pytest.approx(1.0)
+    assert features["net_displacement_um"][0] == pytest.approx(10.0)
+    short = track_features(frames[:2], np.zeros(2, int), x[:2], np.zeros(2), 5.0, 3)
+    assert np.isnan(short["speed_um_per_min"][0])
