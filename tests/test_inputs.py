@@ -1,0 +1,119 @@
+"""Bad input fails fast with a message naming the file, row or key, and the fix."""
+
+from pathlib import Path
+
+import numpy as np
+import pytest
+import tifffile
+
+from plateloom.errors import InputError
+from plateloom.images import index_plate_images, stream_site, template_regex
+from plateloom.screen import load_layout, load_screen_sheet
+from plateloom.wellwork import WellSettings, analyse_well
+
+from conftest import run_snakemake
+
+HEADER = "well,role,condition,dose,dose_unit\n"
+
+
+def _layout(tmp_path: Path, body: str) -> str:
+    path = tmp_path / "layout.csv"
+    path.write_text(HEADER + body)
+    return str(path)
+
+
+@pytest.mark.parametrize("body, needle", [
+    ("M13,test,X,1,uM\nA01,negative_control,vehicle,,\n", "row 2, column well: well 'M13' is not on a 96-well plate"),
+    ("A01,negative_control,vehicle,,\nA1,test,X,1,uM\n", "row 3, column well: well A01 is listed twice (also row 2)"),
+    ("A01,negative_control,vehicle,,\nA02,treated,X,1,uM\n", "row 3, column role: unknown role 'treated'"),
+    ("A01,negative_control,vehicle,,\nA02,test,X,1,\n", "row 3, column dose_unit: well A02 has a dose but no unit"),
+    ("A01,test,X,1,uM\n", "the layout has no negative_control wells"),
+])
+def test_bad_layouts_are_named(tmp_path, body, needle):
+    path = _layout(tmp_path, body)
+    with pytest.raises(InputError) as caught:
+        load_layout(path, 96)
+    assert str(caught.value).startswith(path)
+    assert needle in str(caught.value)
+    assert "Fix:" in str(caught.value)
+
+
+def test_condition_names_with_markup_commas_and_non_ascii_are_kept(tmp_path):
+    path = _layout(tmp_path, 'A01,negative_control,vehicle,,\nA02,test,"<b>Ölsäure, 2""x</b>",1,uM\n')
+    layout = load_layout(path, 96)
+    assert layout.loc[1, "treatment"] == '<b>Ölsäure, 2"x</b> 1 uM'
+
+
+def test_bad_screen_sheets_are_named(tmp_path):
+    layout = _layout(tmp_path, "A01,negative_control,vehicle,,\n")
+    sheet = tmp_path / "plates.csv"
+    sheet.write_text(f"plate,batch,plate_format,layout,image_folder\nP1,d1,96,{layout},img\nP1,d1,96,{layout},img\n")
+    with pytest.raises(InputError, match=r"row 3: plate id 'P1' already used in row 2"):
+        load_screen_sheet(str(sheet))
+    sheet.write_text("plate,batch,plate_format,layout,image_folder\nP1,d1,96,missing.csv,img\n")
+    with pytest.raises(InputError, match=r"row 2, column layout: layout file 'missing.csv' does not exist"):
+        load_screen_sheet(str(sheet))
+    sheet.write_text(f"plate,batch,plate_format,layout,image_folder\nP1,d1,95,{layout},img\n")
+    with pytest.raises(InputError, match=r"column plate_format: '95' is not a plate format"):
+        load_screen_sheet(str(sheet))
+
+
+def test_template_needs_its_fields():
+    with pytest.raises(InputError, match="filename_template"):
+        template_regex("{well}_{colour}.tif")
+    assert template_regex("{well}_s{site}_t{frame}_{channel}.tif").match("B03_s2_t0007_dapi.tif").group("frame") == "0007"
+
+
+def _settings() -> WellSettings:
+    return WellSettings(("dna",), "dna", 1.0, 1.0, 1.0, 10.0, 5.0, 5.0, 3)
+
+
+def test_missing_image_of_a_listed_well_is_named(tmp_path):
+    tifffile.imwrite(tmp_path / "A01_s1_dna.tif", np.zeros((2, 32, 32), np.uint16), photometric="minisblack")
+    index = index_plate_images(str(tmp_path), "{well}_s{site}_{channel}.tif", 96, ["dna"])
+    with pytest.raises(InputError, match="well B02: the layout lists this well but no image of it was found"):
+        analyse_well(index, "B02", _settings())
+
+
+def test_truncated_tiff_is_named(tmp_path):
+    path = tmp_path / "A01_s1_dna.tif"
+    tifffile.imwrite(path, np.ones((3, 64, 64), np.uint16), photometric="minisblack")
+    path.write_bytes(path.read_bytes()[:100])
+    index = index_plate_images(str(tmp_path), "{well}_s{site}_{channel}.tif", 96, ["dna"])
+    with pytest.raises(InputError, match=r"A01_s1_dna.tif: cannot be read as TIFF.*re-copy the file"):
+        list(stream_site(index, "A01", 1, ["dna"]))
+
+
+def test_missing_frame_in_a_per_frame_series_is_named(tmp_path):
+    for frame in (0, 1, 3):
+        tifffile.imwrite(tmp_path / f"A01_s1_t{frame}_dna.tif", np.ones((16, 16), np.uint16))
+    tifffile.imwrite(tmp_path / "A01_s1_t4_dna.tif", np.ones((16, 16), np.uint16))
+    index = index_plate_images(str(tmp_path), "{well}_s{site}_t{frame}_{channel}.tif", 96, ["dna"])
+    with pytest.raises(InputError, match=r"frames \[2\] are missing"):
+        list(stream_site(index, "A01", 1, ["dna"]))
+
+
+def test_unknown_config_key_stops_the_workflow_with_its_name(workflow_dir):
+    config = workflow_dir / "config" / "config.yaml"
+    config.write_text(config.read_text().replace("chunk_wells: 24", "chunk_wells: 24\nchunk_welz: 3"))
+    result = run_snakemake(workflow_dir, "-n", check=False)
+    assert result.returncode != 0
+    assert "chunk_welz" in result.stdout + result.stderr
+
+
+def test_unknown_well_stops_the_workflow_naming_layout_row(workflow_dir):
+    layout = workflow_dir / "config" / "layouts" / "demo_96.csv"
+    layout.write_text(layout.read_text() + "Q01,test,TW-101,1,uM\n")
+    result = run_snakemake(workflow_dir, "-n", check=False)
+    output = result.stdout + result.stderr
+    assert result.returncode != 0
+    assert "config/layouts/demo_96.csv, row 98, column well: well 'Q01' is not on a 96-well plate" in output
+
+
+def test_missing_image_folder_stops_the_workflow_naming_the_plate(workflow_dir):
+    sheet = workflow_dir / "config" / "plates.csv"
+    sheet.write_text(sheet.read_text() + "LAB-1,day4,96,config/layouts/demo_96.csv,/nonexistent/plate1\n")
+    result = run_snakemake(workflow_dir, "-n", check=False)
+    output = result.stdout + result.stderr
+    assert result.returncode != 0
+    assert "plate LAB-1, column image_folder: image folder '/nonexistent/plate1' does not exist" in output

@@ -1,0 +1,109 @@
+"""End to end on a reduced demo screen: planted truth recovered, new plates cost only their own jobs."""
+
+import re
+
+import numpy as np
+import pandas as pd
+import pytest
+import yaml
+from scipy import stats
+
+from plateloom.demo import load_scenario, planted_ratios
+from plateloom.screen import load_layout
+
+from conftest import copy_workflow, run_snakemake
+
+NEW_PLATE = "TW-D3-P3"
+
+
+@pytest.fixture(scope="module")
+def finished_screen(tmp_path_factory):
+    """The demo screen with 5 frames a site, run to the end once for the tests of this module.
+
+    The scenario gains a seventh plate that the screen sheet does not list yet (added later by a test).
+    """
+    workdir = copy_workflow(tmp_path_factory.mktemp("e2e") / "screen")
+    scenario_path = workdir / "resources" / "demo" / "scenario.yaml"
+    scenario = yaml.safe_load(scenario_path.read_text())
+    scenario["batches"][2]["plates"].append(NEW_PLATE)
+    scenario_path.write_text(yaml.safe_dump(scenario, sort_keys=False))
+    config_path = workdir / "config" / "config.yaml"
+    config = yaml.safe_load(config_path.read_text())
+    config["demo"]["frames"] = 5
+    config_path.write_text(yaml.safe_dump(config, sort_keys=False))
+    run_snakemake(workdir)
+    return workdir
+
+
+def _truth_and_effects(workdir):
+    scenario = load_scenario(str(workdir / "resources/demo/scenario.yaml"))
+    layout = load_layout(str(workdir / "config/layouts/demo_96.csv"), 96)
+    effects = pd.read_parquet(workdir / "results/effects.parquet")
+    truth = planted_ratios(scenario, layout)[["treatment", "feature", "ratio"]].rename(columns={"ratio": "true_ratio"})
+    merged = truth.merge(effects, on=["treatment", "feature"], validate="one_to_one")
+    merged["log_truth"] = np.log(merged["true_ratio"])
+    return effects, merged
+
+
+@pytest.mark.slow
+def test_effects_table_is_complete(finished_screen):
+    effects = pd.read_parquet(finished_screen / "results/effects.parquet")
+    config = yaml.safe_load((finished_screen / "config/config.yaml").read_text())
+    treatments = load_layout(str(finished_screen / "config/layouts/demo_96.csv"), 96)
+    expected = set(treatments.loc[treatments["role"].isin(["test", "positive_control"]), "treatment"])
+    assert set(effects["treatment"]) == expected
+    assert len(effects) == len(expected) * effects["feature"].nunique()
+    assert effects["feature"].nunique() == 10
+    for column in ("estimate", "ci_low", "ci_high", "q_value", "std_error"):
+        assert effects[column].notna().all(), column
+    assert effects["converged"].all()
+    csv = pd.read_csv(finished_screen / "results/effects.csv")
+    assert len(csv) == len(effects)
+    assert config["screen"]["ci_level"] == 0.95
+
+
+@pytest.mark.slow
+def test_planted_effects_recovered_within_their_intervals(finished_screen):
+    effects, merged = _truth_and_effects(finished_screen)
+    # 99% intervals around the planted log ratios (the scenario states truth as ratios to control).
+    half = stats.t.ppf(0.995, merged["df"]) * merged["std_error"]
+    inside = (merged["estimate"] - half <= merged["log_truth"]) & (merged["log_truth"] <= merged["estimate"] + half)
+    # With calibrated 99% intervals, misses among n are Binomial(n, 0.01); more than 3 of 51 has probability
+    # about 0.2%, while a biased measure or model misses far more often.
+    assert len(merged) == 51
+    assert (~inside).sum() <= 3, merged.loc[~inside, ["treatment", "feature", "true_ratio", "ratio"]]
+    # The positive control's 95% CI on nuclear area excludes no effect (0 on the log scale).
+    positive = effects[(effects["role"] == "positive_control") & (effects["feature"] == "area_um2")].iloc[0]
+    assert positive["ci_low"] > 0
+    # The no-effect compound: simultaneous 95% intervals (Bonferroni over its doses and the planted features) cover 0,
+    # and it is no hit on any feature.
+    null = merged[merged["condition"] == "TW-104"]
+    wide = stats.t.ppf(1 - 0.025 / len(null), null["df"]) * null["std_error"]
+    assert ((null["estimate"] - wide <= 0) & (0 <= null["estimate"] + wide)).all()
+    assert not effects.loc[effects["condition"] == "TW-104", "hit"].any()
+
+
+@pytest.mark.slow
+def test_reports_are_self_contained(finished_screen):
+    report = (finished_screen / "results/reports/screen.html").read_text()
+    assert "data:image/png;base64," in report and "<script" not in report and "http://" not in report
+    assert "not for clinical" in report
+    plate = (finished_screen / "results/reports/plates/TW-D1-P1.html").read_text()
+    assert "Z&#x27;-factor per feature" in plate or "Z'-factor per feature" in plate
+    assert plate.count("data:image/png;base64,") >= 3
+
+
+@pytest.mark.slow
+def test_new_plate_schedules_only_its_own_jobs_and_the_fan_ins(finished_screen):
+    sheet = finished_screen / "config" / "plates.csv"
+    sheet.write_text(sheet.read_text() + f"{NEW_PLATE},day3,96,config/layouts/demo_96.csv,demo_images/{NEW_PLATE}\n")
+    result = run_snakemake(finished_screen, "-n")
+    output = result.stdout + result.stderr
+    jobs = re.findall(r"^rule (\w+):", output, flags=re.M)
+    counts = pd.Series(jobs).value_counts().to_dict()
+    assert counts == {"make_demo_plate": 1, "analyse_wells": 2, "plate_profiles": 1, "plate_report": 1,
+                      "screen_effects": 1, "screen_report": 1, "all": 1}
+    blocks = re.split(r"^rule ", output, flags=re.M)[1:]
+    per_plate = [b for b in blocks if b.split(":")[0] in ("make_demo_plate", "analyse_wells", "plate_profiles", "plate_report")]
+    plates = {re.search(r"wildcards: plate=([\w.-]+)", block).group(1) for block in per_plate}
+    assert plates == {NEW_PLATE}
