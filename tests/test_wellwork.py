@@ -101,3 +101,27 @@ def test_track_features_of_a_straight_constant_speed_walk():
     assert features["net_displacement_um"][0] == pytest.approx(10.0)
     short = track_features(frames[:2], np.zeros(2, int), x[:2], np.zeros(2), 5.0, 3)
     assert np.isnan(short["speed_um_per_min"][0])
+
+
+def test_stacks_and_one_file_per_frame_give_the_same_tables(tmp_path):
+    # The two image layouts of the filename template must be read identically.
+    import tifffile
+
+    from plateloom.images import index_plate_images
+    from plateloom.wellwork import WellSettings, analyse_well
+
+    scenario = load_scenario(str(ROOT / "resources/demo/scenario.yaml"), frames=4)
+    stack = simulate_site(scenario, {q: 1.0 for q in QUANTITIES}, np.random.default_rng(5))
+    stacks, frames = tmp_path / "stacks", tmp_path / "frames"
+    stacks.mkdir()
+    frames.mkdir()
+    for channel, name in enumerate(("nuc", "rep")):
+        tifffile.imwrite(stacks / f"C03_s1_{name}.tif", stack[:, channel], photometric="minisblack")
+        for frame in range(4):
+            tifffile.imwrite(frames / f"C03_s1_t{frame:03d}_{name}.tif", stack[frame, channel])
+    settings = WellSettings(("nuc", "rep"), "nuc", scenario["pixel_size_um"], 5.0, 1.0, 30.0, 7.0, 8.0, 3)
+    from_stacks = analyse_well(index_plate_images(str(stacks), "{well}_s{site}_{channel}.tif", 96, ["nuc", "rep"]), "C03", settings)
+    from_frames = analyse_well(index_plate_images(str(frames), "{well}_s{site}_t{frame}_{channel}.tif", 96, ["nuc", "rep"]), "C03", settings)
+    for a, b in zip(from_stacks, from_frames):
+        assert len(a) > 0
+        assert a.equals(b)

@@ -5,6 +5,7 @@ from __future__ import annotations
 import matplotlib.pyplot as plt
 import numpy as np
 import pandas as pd
+from matplotlib.ticker import FormatStrFormatter
 
 from .report import escape, figure_tag, page, table_tag
 
@@ -24,6 +25,9 @@ def forest_plot(effects: pd.DataFrame, feature: str, ci_level: float) -> plt.Fig
     axis.axvline(1.0 if log_scale else 0.0, color="grey", linestyle="--", linewidth=1)
     if log_scale:
         axis.set_xscale("log")
+        axis.xaxis.set_major_formatter(FormatStrFormatter("%.3g"))
+        axis.xaxis.set_minor_formatter(FormatStrFormatter("%.3g"))
+        axis.tick_params(axis="x", which="minor", labelsize=7)
     axis.set_yticks(y, rows["treatment"], fontsize=8)
     label = "ratio to negative control" if log_scale else "difference from negative control"
     axis.set_xlabel(f"{feature}: {label} ({ci_level:.0%} CI; red = hit)")
