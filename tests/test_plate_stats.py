@@ -4,7 +4,8 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from plateloom.plate_stats import (MAD_TO_SD, add_robust_z, apply_well_exclusions, robust_z, robust_z_prime, z_prime,
+from plateloom.exclusions import ExclusionRules, well_exclusions
+from plateloom.plate_stats import (MAD_TO_SD, robust_ssmd, robust_z, robust_z_prime, signal_window, ssmd, z_prime,
                                    z_prime_verdict)
 
 
@@ -45,11 +46,23 @@ def test_robust_z_is_nan_when_controls_have_no_spread():
     assert np.isnan(robust_z(np.array([1.0]), np.array([2.0, 2.0, 2.0]))[0])
 
 
-def test_exclusion_rule_marks_low_count_wells_and_robust_z_ignores_them():
-    profile = pd.DataFrame({"well": ["A01", "A02", "A03", "A04"], "role": ["negative_control"] * 4,
-                            "cell_count": [20.0, 22.0, 2.0, 21.0], "x": [1.0, 2.0, 1000.0, 3.0]})
-    marked = apply_well_exclusions(profile, min_cells_per_well=5)
+def test_exclusion_rule_marks_low_count_wells_in_table_and_ledger():
+    profile = pd.DataFrame({"plate": "P1", "well": ["A01", "A02", "A03", "A04"], "role": ["negative_control"] * 4,
+                            "cell_count": [20.0, 22.0, 2.0, 21.0]})
+    marked, ledger = well_exclusions(profile, ExclusionRules(min_cells_per_well=5))
     assert list(marked["excluded_by"] != "") == [False, False, True, False]
     assert "min_cells_per_well" in marked.loc[2, "excluded_by"]
-    scored = add_robust_z(marked, ["x"])
-    assert scored.loc[1, "x_robust_z"] == pytest.approx(0.0)  # the excluded outlier does not move the median
+    assert ledger[["level", "well", "rule", "value", "threshold"]].values.tolist() == [
+        ["well", "A03", "min_cells_per_well", 2.0, 5.0]]
+
+
+def test_ssmd_worked_example():
+    # Zhang 2007: SSMD = (mean1 - mean2) / sqrt(var1 + var2); means 12 and 2, variances 4 and 1 -> 10 / sqrt(5).
+    assert ssmd([10, 12, 14], [1, 2, 3]) == pytest.approx(10 / np.sqrt(5))
+    # robust form: medians 12 and 2, MADs 2 and 1 -> 10 / (1.4826 sqrt(5))
+    assert robust_ssmd([10, 12, 14], [1, 2, 3]) == pytest.approx(10 / (1.4826 * np.sqrt(5)))
+
+
+def test_signal_window_worked_example():
+    # (|12 - 2| - 3 (2 + 1)) / 2 = 0.5 (definition recalled from memory, Iversen et al. 2006)
+    assert signal_window([10, 12, 14], [1, 2, 3]) == pytest.approx(0.5)

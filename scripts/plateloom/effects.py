@@ -185,7 +185,8 @@ def bh_qvalues(p_values: np.ndarray) -> np.ndarray:
 def screen_effects(wells: pd.DataFrame, features: list[str], log_features: set[str], ci_level: float,
                    hit_q_value: float, hit_min_effect: float) -> pd.DataFrame:
     """Effects of every treatment on every feature, with BH q-values across all pairs and hit calls."""
-    kept = wells[(wells["excluded_by"] == "") & wells["role"].isin(["negative_control", "positive_control", "test"])]
+    plate_kept = wells["plate_excluded_by"] == "" if "plate_excluded_by" in wells else True
+    kept = wells[(wells["excluded_by"] == "") & plate_kept & wells["role"].isin(["negative_control", "positive_control", "test"])]
     missing = [f for f in features if f not in kept.columns]
     if missing:
         raise ValueError(f"features {missing} are not columns of the well profiles; check screen.features in config")

@@ -76,6 +76,13 @@ def index_plate_images(folder: str, template: str, wells: int, channels: list[st
     return ImageIndex(table, stacks, tuple(unmatched))
 
 
+def saturated_fraction(plane: np.ndarray) -> float:
+    """Fraction of pixels at the largest value of an integer pixel type (NaN for float images)."""
+    if not np.issubdtype(plane.dtype, np.integer):
+        return float("nan")
+    return float(np.count_nonzero(plane == np.iinfo(plane.dtype).max) / plane.size)
+
+
 def _check_plane(plane: np.ndarray, path: str, shape: tuple[int, ...] | None) -> np.ndarray:
     if plane.ndim != 2:
         raise InputError(path, f"expected one 2-D plane per page, found shape {plane.shape}.",
@@ -124,8 +131,11 @@ def site_frame_count(index: ImageIndex, well: str, site: int, channels: list[str
     return next(iter(counts.values()))
 
 
-def stream_site(index: ImageIndex, well: str, site: int, channels: list[str]) -> Iterator[tuple[int, np.ndarray]]:
-    """Yield (frame, planes) for one site, one frame at a time; planes is (channels, y, x) float32.
+def stream_site(index: ImageIndex, well: str, site: int, channels: list[str]) -> Iterator[tuple[int, np.ndarray, np.ndarray]]:
+    """Yield (frame, planes, saturated) for one site, one frame at a time.
+
+    planes is (channels, y, x) float32; saturated the per-channel fraction of pixels at the
+    pixel type's maximum.
 
     Only one frame of every channel is held in memory at once.
     """
@@ -140,7 +150,7 @@ def stream_site(index: ImageIndex, well: str, site: int, channels: list[str]) ->
                 raise InputError(f"well {well}, site {site}, channel {channel}", f"frames {missing} are missing.", "re-export the missing frames.")
     shape: tuple[int, ...] | None = None
     for frame in range(n_frames):
-        planes = []
+        planes, saturated = [], []
         for channel in channels:
             table = by_channel[channel]
             if index.stacks:
@@ -149,7 +159,8 @@ def stream_site(index: ImageIndex, well: str, site: int, channels: list[str]) ->
             else:
                 path = table["path"].iloc[frame]
                 plane = _read_page(path, 0)
+            saturated.append(saturated_fraction(plane))
             plane = _check_plane(plane, path, shape)
             shape = plane.shape
             planes.append(plane)
-        yield frame, np.stack(planes)
+        yield frame, np.stack(planes), np.array(saturated)

@@ -43,29 +43,44 @@ def control_distributions(profile: pd.DataFrame, features: list[str]) -> plt.Fig
     return figure
 
 
-def build_plate_report(profile: pd.DataFrame, qc: pd.DataFrame, plate: str, batch: str, fmt: PlateFormat,
-                       report_feature: str, provenance: dict) -> str:
+def build_plate_report(profile: pd.DataFrame, qc: pd.DataFrame, ledger: pd.DataFrame, edge: pd.DataFrame,
+                       warnings: list[str], plate: str, batch: str, fmt: PlateFormat, report_feature: str,
+                       provenance: dict) -> str:
     """The self-contained HTML report of one plate."""
-    excluded = profile[profile["excluded_by"] != ""][["well", "role", "treatment", "cell_count", "excluded_by"]]
+    excluded = profile[profile["excluded_by"] != ""]
     n_kept = int((profile["excluded_by"] == "").sum())
+    plate_rule = profile["plate_excluded_by"].iloc[0] if "plate_excluded_by" in profile and len(profile) else ""
+    status = (f"<p class=\"caution\"><b>This plate is left out of the screen model</b> by the rule {escape(plate_rule)}.</p>"
+              if plate_rule else "<p>This plate enters the screen model.</p>")
     summary = (f"<p>Plate <b>{escape(plate)}</b>, batch <b>{escape(batch)}</b>, {fmt.wells}-well format: "
                f"{len(profile)} analysed wells, {n_kept} kept, {len(excluded)} excluded; "
-               f"{int(profile['n_observations'].sum())} observations, {int(profile['n_tracks'].sum())} tracks.</p>")
+               f"{int(profile['n_observations'].sum())} observations, {int(profile['n_tracks'].sum())} tracks.</p>" + status)
+    if warnings:
+        summary += "<ul>" + "".join(f"<li>{escape(w)}</li>" for w in warnings) + "</ul>"
+    outliers = profile[profile.get("cell_count_outlier", False) == True]  # noqa: E712
+    if len(outliers):
+        summary += f"<p>Cell-count outliers (|robust z| &gt; 3.5): {escape(', '.join(outliers['well']))}.</p>"
     heatmaps = figure_tag(plate_heatmap(profile, "cell_count", fmt), "cell count heatmap")
     if report_feature in profile.columns and report_feature != "cell_count":
         heatmaps += figure_tag(plate_heatmap(profile, report_feature, fmt), f"{report_feature} heatmap")
     shown = [f for f in ("cell_count", report_feature) if f in profile.columns]
     distributions = figure_tag(control_distributions(profile, list(dict.fromkeys(shown))), "control distributions")
-    qc_table = table_tag(qc[["feature", "n_negative", "n_positive", "negative_median", "positive_median",
-                             "negative_cv", "z_prime", "robust_z_prime", "verdict"]])
-    ledger = ("<p>No well was excluded.</p>" if excluded.empty else table_tag(excluded))
+    qc_table = table_tag(qc[["feature", "n_negative", "n_positive", "negative_median", "positive_median", "negative_cv",
+                             "positive_cv", "z_prime", "robust_z_prime", "ssmd", "robust_ssmd", "signal_window", "verdict"]])
+    edge_html = ("<p>Least squares of each well value on its treatment plus an outer-well indicator (log scale for "
+                 "positive features): edge_shift is the outer-minus-inner difference (log ratio or unit).</p>"
+                 + table_tag(edge))
+    ledger_html = "<p>Nothing was excluded.</p>" if ledger.empty else table_tag(ledger)
     sections = [
         ("Summary", summary),
         ("Plate maps", heatmaps),
         ("Control and test wells", distributions),
-        ("Z'-factor per feature", "<p>Z' = 1 - 3(sd<sub>pos</sub> + sd<sub>neg</sub>) / |mean<sub>pos</sub> - "
-         "mean<sub>neg</sub>| (Zhang, Chung &amp; Oldenburg 1999); the robust form uses medians and 1.4826 x MAD.</p>"
-         + qc_table),
-        ("Excluded wells", ledger),
+        ("Z'-factor and SSMD per feature", "<p>Z' = 1 - 3(sd<sub>pos</sub> + sd<sub>neg</sub>) / |mean<sub>pos</sub> - "
+         "mean<sub>neg</sub>| (Zhang, Chung &amp; Oldenburg 1999), robust form with medians and 1.4826 x MAD; "
+         "SSMD = (mean<sub>pos</sub> - mean<sub>neg</sub>) / sqrt(var<sub>pos</sub> + var<sub>neg</sub>) (Zhang 2007). "
+         "Verdict bands: Z' &ge; 0.5 excellent, 0 &lt; Z' &lt; 0.5 marginal, Z' &le; 0 unusable for single-point "
+         "screening.</p>" + qc_table),
+        ("Edge effect", edge_html),
+        ("Exclusion ledger", ledger_html),
     ]
     return page(f"plateloom plate report: {plate}", sections, provenance)

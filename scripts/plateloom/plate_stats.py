@@ -60,26 +60,8 @@ def z_prime_verdict(value: float) -> str:
     return "unusable for single-point screening (Z' <= 0)"
 
 
-def add_robust_z(profile: pd.DataFrame, features: list[str]) -> pd.DataFrame:
-    """Add <feature>_robust_z columns, scaled on the plate's negative-control wells that were kept."""
-    out = profile.copy()
-    controls = out[(out["role"] == "negative_control") & (out["excluded_by"] == "")]
-    for feature in features:
-        out[f"{feature}_robust_z"] = robust_z(out[feature].to_numpy(float), controls[feature].to_numpy(float))
-    return out
-
-
-def apply_well_exclusions(profile: pd.DataFrame, min_cells_per_well: float) -> pd.DataFrame:
-    """Mark wells by the declared exclusion rules in column excluded_by ('' when kept)."""
-    out = profile.copy()
-    reason = np.where(out["cell_count"] < min_cells_per_well,
-                      [f"min_cells_per_well: {c:.1f} cells < {min_cells_per_well:g}" for c in out["cell_count"]], "")
-    out["excluded_by"] = reason
-    return out
-
-
 def plate_qc(profile: pd.DataFrame, features: list[str]) -> pd.DataFrame:
-    """Per feature: control counts, medians, Z', robust Z' and the verdict band."""
+    """Per feature: control counts, medians and CVs, Z', robust Z', SSMD, signal window, verdict band."""
     kept = profile[profile["excluded_by"] == ""]
     negative = kept[kept["role"] == "negative_control"]
     positive = kept[kept["role"] == "positive_control"]
@@ -91,5 +73,41 @@ def plate_qc(profile: pd.DataFrame, features: list[str]) -> pd.DataFrame:
                      "negative_median": float(np.median(neg)) if len(neg) else np.nan,
                      "positive_median": float(np.median(pos)) if len(pos) else np.nan,
                      "negative_cv": float(neg.std(ddof=1) / neg.mean()) if len(neg) > 1 and neg.mean() != 0 else np.nan,
-                     "z_prime": value, "robust_z_prime": robust_z_prime(pos, neg), "verdict": z_prime_verdict(value)})
+                     "positive_cv": float(pos.std(ddof=1) / pos.mean()) if len(pos) > 1 and pos.mean() != 0 else np.nan,
+                     "z_prime": value, "robust_z_prime": robust_z_prime(pos, neg), "ssmd": ssmd(pos, neg),
+                     "robust_ssmd": robust_ssmd(pos, neg), "signal_window": signal_window(pos, neg),
+                     "verdict": z_prime_verdict(value)})
     return pd.DataFrame(rows)
+
+
+def ssmd(first: np.ndarray, second: np.ndarray) -> float:
+    """Strictly standardised mean difference (Zhang 2007): (mean1 - mean2) / sqrt(var1 + var2)."""
+    first, second = np.asarray(first, float), np.asarray(second, float)
+    if len(first) < 2 or len(second) < 2:
+        return float("nan")
+    spread = np.sqrt(first.var(ddof=1) + second.var(ddof=1))
+    return float((first.mean() - second.mean()) / spread) if spread > 0 else float("nan")
+
+
+def robust_ssmd(first: np.ndarray, second: np.ndarray) -> float:
+    """SSMD with medians and 1.4826 x MAD in place of means and SDs (Zhang 2007, robust form)."""
+    first, second = np.asarray(first, float), np.asarray(second, float)
+    if len(first) < 2 or len(second) < 2:
+        return float("nan")
+    spread = MAD_TO_SD * np.sqrt(mad(first) ** 2 + mad(second) ** 2)
+    return float((np.median(first) - np.median(second)) / spread) if spread > 0 else float("nan")
+
+
+def signal_window(positive: np.ndarray, negative: np.ndarray) -> float:
+    """Signal window: (|mean_pos - mean_neg| - 3 (sd_pos + sd_neg)) / sd_pos.
+
+    Definition recalled from memory (assay-validation practice, e.g. Iversen et al. 2006);
+    values of 2 or more are usually taken as acceptable.
+    """
+    positive, negative = np.asarray(positive, float), np.asarray(negative, float)
+    if len(positive) < 2 or len(negative) < 2:
+        return float("nan")
+    sd_pos = positive.std(ddof=1)
+    if sd_pos == 0:
+        return float("nan")
+    return float((abs(positive.mean() - negative.mean()) - 3 * (sd_pos + negative.std(ddof=1))) / sd_pos)

@@ -33,24 +33,39 @@ def read_plate_dataset(folders: list[str], columns: list[str] | None = None) -> 
     return ds.dataset(paths, format="parquet").to_table(columns=columns).to_pandas()
 
 
+def _summary(table: pd.DataFrame, features: list[str], statistic: str) -> pd.DataFrame:
+    grouped = table.groupby("well")[features]
+    if statistic == "median":
+        return grouped.median()
+    if statistic != "mean_log":
+        raise ValueError(f"unknown well summary {statistic!r}; use median or mean_log")
+    positive = [f for f in features if (table[f].dropna() > 0).all()]
+    summary = grouped.median()
+    if positive:
+        summary[positive] = np.exp(np.log(table[positive]).groupby(table["well"]).mean())
+    return summary
+
+
 def summarise_wells(cells: pd.DataFrame, tracks: pd.DataFrame, layout: pd.DataFrame, plate: str, batch: str,
-                    wells: int) -> pd.DataFrame:
+                    wells: int, statistic: str = "median") -> pd.DataFrame:
     """One row per analysed well: keys, layout, counts and the median of every feature.
 
     cell_count is the mean number of nuclei per site and frame; observation features are
-    medians over observations not touching the image border; speed and straightness are
-    medians over tracks with enough frames (see tracking.min_track_frames).
+    summarised over observations not touching the image border; speed and straightness over
+    tracks with enough frames (see tracking.min_track_frames). ``statistic`` is "median" or
+    "mean_log" (exp of the mean of natural logs, for skewed positive features; features
+    with non-positive values fall back to the median).
     """
     fmt = plate_format(wells)
     whole = cells[~cells["touches_border"]]
     features = observation_features(list(cells.columns))
-    medians = whole.groupby("well")[features].median()
+    medians = _summary(whole, features, statistic)
     per_frame = cells.groupby(["well", "site", "frame"]).size().groupby("well").mean().rename("cell_count")
     n_obs = cells.groupby("well").size().rename("n_observations")
     sites = cells.groupby("well")["site"].nunique().rename("n_sites")
     frames = cells.groupby("well")["frame"].nunique().rename("n_frames")
     usable = tracks[tracks["speed_um_per_min"].notna() & ~tracks["touches_border"]]
-    motion = usable.groupby("well")[list(TRACK_FEATURES)].median()
+    motion = _summary(usable, list(TRACK_FEATURES), statistic)
     n_tracks = usable.groupby("well").size().rename("n_tracks")
     analysed = layout[layout["role"] != "empty"].set_index("well")
     profile = analysed.join([per_frame, n_obs, sites, frames, n_tracks, medians, motion], how="left")
@@ -70,5 +85,7 @@ def summarise_wells(cells: pd.DataFrame, tracks: pd.DataFrame, layout: pd.DataFr
 def well_features(profile: pd.DataFrame) -> list[str]:
     """The feature columns of a well-profile table (cell_count, medians, motility)."""
     fixed = {"plate", "batch", "well", "row", "column", "is_edge", "role", "condition", "dose", "dose_unit",
-             "treatment", "n_observations", "n_sites", "n_frames", "n_tracks", "excluded_by"}
-    return [c for c in profile.columns if c not in fixed and not c.endswith("_robust_z")]
+             "treatment", "n_observations", "n_sites", "n_frames", "n_tracks", "excluded_by", "plate_excluded_by",
+             "cell_count_outlier"}
+    derived = ("_robust_z", "_percent_of_control", "_b_score", "_uncorrected")
+    return [c for c in profile.columns if c not in fixed and not c.endswith(derived)]

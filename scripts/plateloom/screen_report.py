@@ -35,12 +35,15 @@ def forest_plot(effects: pd.DataFrame, feature: str, ci_level: float) -> plt.Fig
     return figure
 
 
-def build_screen_report(effects: pd.DataFrame, wells: pd.DataFrame, ci_level: float, hit_q_value: float,
-                        hit_min_effect: float, provenance: dict) -> str:
+def build_screen_report(effects: pd.DataFrame, wells: pd.DataFrame, ledger: pd.DataFrame, ci_level: float,
+                        hit_q_value: float, hit_min_effect: float, provenance: dict) -> str:
     """The self-contained HTML report of the whole screen."""
-    plates = wells.groupby(["batch", "plate"]).agg(wells=("well", "size"), excluded=("excluded_by", lambda s: int((s != "").sum()))).reset_index()
+    plates = wells.groupby(["batch", "plate"]).agg(wells=("well", "size"),
+                                                   excluded_wells=("excluded_by", lambda s: int((s != "").sum())),
+                                                   plate_excluded_by=("plate_excluded_by", "first")).reset_index()
+    in_model = (wells["excluded_by"] == "") & (wells["plate_excluded_by"] == "")
     summary = (f"<p>{wells['plate'].nunique()} plates in {wells['batch'].nunique()} batches, "
-               f"{int((wells['excluded_by'] == '').sum())} wells in the model, {effects['treatment'].nunique()} treatments, "
+               f"{int(in_model.sum())} wells in the model, {effects['treatment'].nunique()} treatments, "
                f"{effects['feature'].nunique()} features. Hits: q &lt; {hit_q_value:g} (Benjamini-Hochberg over all "
                f"{len(effects)} feature-treatment pairs) and |effect| &ge; {hit_min_effect:g} "
                f"(natural-log ratio for log-scale features).</p>") + table_tag(plates)
@@ -56,9 +59,11 @@ def build_screen_report(effects: pd.DataFrame, wells: pd.DataFrame, ci_level: fl
     forest = "".join(figure_tag(forest_plot(effects, f, ci_level), f"forest plot {f}") for f in effects["feature"].unique())
     components = effects.drop_duplicates("feature")[["feature", "scale", "batch_variance", "plate_variance",
                                                      "residual_variance", "icc_batch_plate", "converged", "method", "note"]]
-    excluded = wells[wells["excluded_by"] != ""][["plate", "well", "treatment", "excluded_by"]]
-    ledger = "<p>No well was excluded.</p>" if excluded.empty else table_tag(excluded)
+    counts = ledger.groupby(["level", "rule"]).size().rename("count").reset_index() if len(ledger) else ledger
+    ledger_html = ("<p>Nothing was excluded.</p>" if ledger.empty else
+                   table_tag(counts) + "<p>Wells and plates left out of the model:</p>"
+                   + table_tag(ledger[ledger["level"] != "site_frame"]))
     sections = [("Summary", summary), ("Method", method), ("Hits", hit_html), ("Effects with confidence intervals", forest),
-                ("Variance components", table_tag(components)), ("Excluded wells", ledger),
+                ("Variance components", table_tag(components)), ("Exclusion ledger", ledger_html),
                 ("All effects", table_tag(effects[columns + ["p_value", "hit"]]))]
     return page("plateloom screen report", sections, provenance)

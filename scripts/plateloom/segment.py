@@ -82,3 +82,14 @@ def background_levels(planes: np.ndarray, labels: np.ndarray, margin_px: int = 3
     if background.sum() < 0.05 * background.size:  # field full of cells: fall back to a low percentile
         return np.percentile(planes.reshape(len(planes), -1), 5, axis=1)
     return np.median(planes[:, background], axis=1)
+
+
+def focus_score(image: np.ndarray) -> float:
+    """Variance of the Laplacian (Pech-Pacheco et al. 2000) of the lightly smoothed image over its squared mean.
+
+    Unitless; sharp fields score high, defocused ones low. Dividing by the squared mean makes
+    the score independent of exposure.
+    """
+    smooth = ndimage.gaussian_filter(image.astype(np.float32), 1.0)
+    mean = float(smooth.mean())
+    return float(ndimage.laplace(smooth).var() / mean**2) if mean > 0 else float("nan")

@@ -11,7 +11,7 @@ import pandas as pd
 from .errors import InputError
 from .features import measure_objects
 from .images import ImageIndex, stream_site
-from .segment import background_levels, segment_nuclei
+from .segment import background_levels, focus_score, segment_nuclei
 from .tables import well_part_path, write_parquet
 from .track import link_frames, track_features
 
@@ -48,7 +48,7 @@ def analyse_site(index: ImageIndex, well: str, site: int, settings: WellSettings
     previous_xy = np.empty((0, 2))
     previous_tracks = np.empty(0, dtype=np.int64)
     next_track = 0
-    for frame, planes in stream_site(index, well, site, channels):
+    for frame, planes, saturated in stream_site(index, well, site, channels):
         if not np.isfinite(planes).all():
             raise InputError(f"well {well}, site {site}, frame {frame}", "image holds NaN or infinite pixels.",
                              "re-export the images; plateloom expects finite grey levels.")
@@ -66,8 +66,9 @@ def analyse_site(index: ImageIndex, well: str, site: int, settings: WellSettings
         table.insert(1, "track", tracks.astype(np.int64))
         observations.append(table)
         qc = {"site": site, "frame": frame, "n_objects": len(table), "foreground_fraction": float((labels > 0).mean()),
-              "threshold": threshold}
+              "threshold": threshold, "focus_score": focus_score(planes[nuclei_index])}
         qc.update({f"background_{c}": float(b) for c, b in zip(channels, background)})
+        qc.update({f"saturated_fraction_{c}": float(f) for c, f in zip(channels, saturated)})
         qc_rows.append(qc)
         previous_xy, previous_tracks = xy, tracks.astype(np.int64)
     cells = pd.concat(observations, ignore_index=True)

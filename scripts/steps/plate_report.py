@@ -1,19 +1,23 @@
 """Rule plate_report: the self-contained HTML report of one plate."""
+import json
+
 import pandas as pd
 
 from plateloom.plate_formats import plate_format
 from plateloom.plate_report import build_plate_report
 from plateloom.steps import run_step
-from plateloom.tables import provenance, write_text
+from plateloom.tables import read_provenance, write_text
 
 sm = snakemake  # noqa: F821  (injected by Snakemake's script directive)
 
 
 def step() -> None:
-    profile = pd.read_parquet(sm.input.wells)
-    qc = pd.read_parquet(sm.input.qc)
-    html = build_plate_report(profile, qc, sm.wildcards.plate, sm.params.batch, plate_format(sm.params.plate_format),
-                              sm.params.report_feature, provenance(dict(sm.params.settings)))
+    with open(sm.input.notes, encoding="utf-8") as handle:
+        notes = json.load(handle)
+    html = build_plate_report(pd.read_parquet(sm.input.wells), pd.read_parquet(sm.input.qc),
+                              pd.read_parquet(sm.input.ledger), pd.read_parquet(sm.input.edge), notes["warnings"],
+                              sm.wildcards.plate, sm.params.batch, plate_format(sm.params.plate_format),
+                              sm.params.report_feature, read_provenance(sm.input.wells))
     write_text(html, sm.output.report)
 
 

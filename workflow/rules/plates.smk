@@ -1,20 +1,26 @@
 # Per plate (fan-in over wells): well profiles, exclusions, robust z, Z', plate report.
 
-PLATE_SETTINGS = {"min_cells_per_well": config["plate"]["min_cells_per_well"]}
+PLATE_SETTINGS = {
+    "plate": {k: v for k, v in config["plate"].items() if k != "report_feature"},
+    "exclusion_rules": config["exclusion_rules"],
+}
 
 
 rule plate_profiles:
     input:
         cells=lambda w: chunk_folders("cells", w.plate),
         tracks=lambda w: chunk_folders("tracks", w.plate),
+        site_qc=lambda w: chunk_folders("site_qc", w.plate),
         layout=lambda w: PLAN.plates[w.plate].layout,
     output:
         wells=f"{RESULTS}/wells/plate={{plate}}/part-0.parquet",
         qc=f"{RESULTS}/plate_qc/plate={{plate}}/part-0.parquet",
+        ledger=f"{RESULTS}/exclusions/plate={{plate}}/part-0.parquet",
+        edge=f"{RESULTS}/edge_effects/plate={{plate}}/part-0.parquet",
+        notes=f"{RESULTS}/plate_notes/{{plate}}.json",
     params:
         batch=lambda w: PLAN.plates[w.plate].batch,
         plate_format=lambda w: PLAN.plates[w.plate].plate_format,
-        min_cells_per_well=config["plate"]["min_cells_per_well"],
         settings=PLATE_SETTINGS,
     log:
         f"{RESULTS}/logs/plate_profiles/{{plate}}.log",
@@ -32,6 +38,9 @@ rule plate_report:
     input:
         wells=f"{RESULTS}/wells/plate={{plate}}/part-0.parquet",
         qc=f"{RESULTS}/plate_qc/plate={{plate}}/part-0.parquet",
+        ledger=f"{RESULTS}/exclusions/plate={{plate}}/part-0.parquet",
+        edge=f"{RESULTS}/edge_effects/plate={{plate}}/part-0.parquet",
+        notes=f"{RESULTS}/plate_notes/{{plate}}.json",
     output:
         report=f"{RESULTS}/reports/plates/{{plate}}.html",
     params:

@@ -8,6 +8,7 @@ SCREEN_SETTINGS = {
     "hit_min_log_ratio": config["screen"]["hit_min_log_ratio"],
 }
 ALL_WELL_TABLES = expand(f"{RESULTS}/wells/plate={{plate}}/part-0.parquet", plate=sorted(PLAN.plates))
+ALL_LEDGERS = expand(f"{RESULTS}/exclusions/plate={{plate}}/part-0.parquet", plate=sorted(PLAN.plates))
 
 
 rule screen_effects:
@@ -34,6 +35,7 @@ rule screen_report:
     input:
         effects=f"{RESULTS}/effects.parquet",
         wells=ALL_WELL_TABLES,
+        ledgers=ALL_LEDGERS,
     output:
         report=f"{RESULTS}/reports/screen.html",
     params:

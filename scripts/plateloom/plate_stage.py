@@ -1,0 +1,114 @@
+"""The plate fan-in as one pure function: well profiles, exclusions, correction, normalization, QC."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+import pandas as pd
+
+from .exclusions import (ExclusionRules, drop_excluded_site_frames, plate_exclusion, site_frame_exclusions,
+                         well_exclusions)
+from .plate_formats import plate_format, well_grid
+from .plate_stats import MAD_TO_SD, mad, plate_qc, robust_z
+from .positional import b_scores, edge_effect, positional_correction
+from .profiles import summarise_wells, well_features
+
+NORMALIZATIONS = ("robust_z", "percent_of_control", "raw")
+
+
+@dataclass(frozen=True)
+class PlateSettings:
+    """Plate-stage choices from config."""
+
+    normalization: str = "robust_z"
+    normalization_by_feature: dict[str, str] = field(default_factory=dict)
+    positional_correction: str = "none"
+    well_summary: str = "median"
+
+
+@dataclass
+class PlateTables:
+    profile: pd.DataFrame
+    qc: pd.DataFrame
+    ledger: pd.DataFrame
+    edge: pd.DataFrame
+    warnings: list[str]
+
+
+def _grid_values(profile: pd.DataFrame, values: np.ndarray, fmt) -> np.ndarray:
+    return well_grid(dict(zip(profile["well"], values)), fmt)
+
+
+def _from_grid(profile: pd.DataFrame, grid: np.ndarray) -> np.ndarray:
+    return grid[profile["row"].to_numpy() - 1, profile["column"].to_numpy() - 1]
+
+
+def percent_of_control(values: np.ndarray, negative: np.ndarray, positive: np.ndarray) -> np.ndarray:
+    """100 x (x - median(neg)) / (median(pos) - median(neg)): 0 at the negative, 100 at the positive control."""
+    if len(negative) == 0 or len(positive) == 0:
+        return np.full(np.shape(values), np.nan)
+    span = np.median(positive) - np.median(negative)
+    return 100.0 * (values - np.median(negative)) / span if span != 0 else np.full(np.shape(values), np.nan)
+
+
+def build_plate_tables(cells: pd.DataFrame, tracks: pd.DataFrame, site_qc: pd.DataFrame, layout: pd.DataFrame,
+                       plate: str, batch: str, wells: int, settings: PlateSettings, rules: ExclusionRules) -> PlateTables:
+    """Everything the plate stage writes, from the per-well tables of one plate."""
+    fmt = plate_format(wells)
+    warnings: list[str] = []
+    ledger = [site_frame_exclusions(site_qc, rules, plate)]
+    kept_cells = drop_excluded_site_frames(cells, ledger[0])
+    profile = summarise_wells(kept_cells, tracks, layout, plate, batch, wells, settings.well_summary)
+    profile, well_ledger = well_exclusions(profile, rules)
+    ledger.append(well_ledger)
+    features = well_features(profile)
+    kept = (profile["excluded_by"] == "").to_numpy()
+    roles = profile["role"].to_numpy()
+    for treatment, count in profile.loc[kept & (roles != "negative_control"), "treatment"].value_counts().items():
+        if count == 1:
+            warnings.append(f"treatment {treatment!r} has a single kept well on this plate")
+    if not ((roles == "negative_control") & kept).any():
+        warnings.append("no negative-control well passed the exclusion rules: normalized values are NaN")
+    edge_rows = []
+    for feature in features:
+        values = profile[feature].to_numpy(float)
+        log_scale = bool(np.all(values[np.isfinite(values)] > 0))
+        edge_rows.append(edge_effect(profile, feature, log_scale) | {"scale": "log" if log_scale else "linear"})
+        if settings.positional_correction == "median_polish":
+            scaled = np.log(values) if log_scale else values
+            grid = _grid_values(profile, np.where(kept, scaled, np.nan), fmt)
+            fit_mask = _grid_values(profile, ((roles == "test") & kept).astype(float), fmt) == 1
+            corrected, notes = positional_correction(grid, fit_mask)
+            warnings += [f"{feature}: {note}" for note in notes]
+            corrected_values = _from_grid(profile, corrected)
+            corrected_values = np.where(kept, corrected_values, scaled)
+            profile[f"{feature}_uncorrected"] = values
+            profile[feature] = np.exp(corrected_values) if log_scale else corrected_values
+            profile[f"{feature}_b_score"] = _from_grid(profile, b_scores(grid))
+            after = edge_effect(profile, feature, log_scale)
+            edge_rows[-1] |= {"edge_shift_corrected": after["edge_shift"], "p_value_corrected": after["p_value"]}
+    negative = profile[(profile["role"] == "negative_control") & kept]
+    positive = profile[(profile["role"] == "positive_control") & kept]
+    for feature in features:
+        method = settings.normalization_by_feature.get(feature, settings.normalization)
+        values = profile[feature].to_numpy(float)
+        if method == "robust_z":
+            profile[f"{feature}_robust_z"] = robust_z(values, negative[feature].to_numpy(float))
+        elif method == "percent_of_control":
+            profile[f"{feature}_percent_of_control"] = percent_of_control(values, negative[feature].dropna().to_numpy(float),
+                                                                          positive[feature].dropna().to_numpy(float))
+    counts = profile.loc[kept, "cell_count"].to_numpy(float)
+    if len(counts) >= 5 and mad(counts) > 0:
+        z = (profile["cell_count"].to_numpy(float) - np.median(counts)) / (MAD_TO_SD * mad(counts))
+        profile["cell_count_outlier"] = np.abs(z) > 3.5
+    else:
+        profile["cell_count_outlier"] = False
+    qc = plate_qc(profile, features)
+    ledger.append(plate_exclusion(qc, rules, plate))
+    frames = [table for table in ledger if not table.empty]
+    ledger_table = pd.concat(frames, ignore_index=True) if frames else ledger[0]
+    plate_rows = ledger_table[ledger_table["level"] == "plate"]
+    profile["plate_excluded_by"] = (f"{plate_rows['rule'].iloc[0]}: {plate_rows['value'].iloc[0]:.3g} < "
+                                    f"{plate_rows['threshold'].iloc[0]:g}") if len(plate_rows) else ""
+    return PlateTables(profile, qc, ledger_table, pd.DataFrame(edge_rows), warnings)
