@@ -36,12 +36,12 @@ def test_b_score_leaves_no_row_or_column_trend():
 
 def test_positional_correction_guards_control_only_columns():
     plate = np.ones((8, 12))
-    fit_mask = np.ones((8, 12), bool)
-    fit_mask[:, [0, 11]] = False  # controls in the edge columns
-    corrected, notes = positional_correction(plate, fit_mask)
-    assert notes == ["column 1: 0 fitted wells, column effect not estimated",
-                     "column 12: 0 fitted wells, column effect not estimated"]
-    np.testing.assert_allclose(corrected, plate)
+    plate[:, 5] += 0.5  # a column effect in the fitted wells
+    fit = plate.copy()
+    fit[:, [0, 11]] = np.nan  # controls in the edge columns, left out of the fit
+    corrected, notes = positional_correction(plate, fit)
+    assert notes == ["columns 1, 12: fewer than 3 wells, effect not estimated"]
+    np.testing.assert_allclose(corrected, 1.0)
 
 
 def test_edge_effect_found_when_planted_and_absent_otherwise():

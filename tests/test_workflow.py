@@ -89,8 +89,33 @@ def test_reports_are_self_contained(finished_screen):
     assert "data:image/png;base64," in report and "<script" not in report and "http://" not in report
     assert "not for clinical" in report
     plate = (finished_screen / "results/reports/plates/TW-D1-P1.html").read_text()
-    assert "Z&#x27;-factor per feature" in plate or "Z'-factor per feature" in plate
+    assert "Z&#x27;-factor and SSMD per feature" in plate
     assert plate.count("data:image/png;base64,") >= 3
+
+
+@pytest.mark.slow
+def test_planted_edge_effect_detected_then_removed_by_median_polish(finished_screen):
+    # The scenario plants a 1.12 ratio on the reporter in every outer well of every plate.
+    reporter = "mean_intensity_reporter"
+
+    def edges():
+        tables = [pd.read_parquet(p) for p in sorted((finished_screen / "results/edge_effects").glob("plate=*/part-0.parquet"))]
+        return pd.concat(tables).set_index("feature").loc[reporter]
+
+    before = edges()
+    assert len(before) == 6
+    assert (before["p_value"] < 0.05).sum() >= 5
+    assert before["edge_shift"].median() == pytest.approx(np.log(1.12), abs=0.05)
+    config_path = finished_screen / "config" / "config.yaml"
+    config = yaml.safe_load(config_path.read_text())
+    config["plate"]["positional_correction"] = "median_polish"
+    config_path.write_text(yaml.safe_dump(config, sort_keys=False))
+    result = run_snakemake(finished_screen)
+    assert "analyse_wells" not in re.findall(r"^rule (\w+):", result.stdout + result.stderr, flags=re.M)
+    after = edges()
+    assert after["edge_shift_corrected"].abs().median() < 0.4 * np.log(1.12)
+    wells = pd.read_parquet(finished_screen / "results/wells/plate=TW-D1-P1/part-0.parquet")
+    assert f"{reporter}_b_score" in wells and f"{reporter}_uncorrected" in wells
 
 
 @pytest.mark.slow

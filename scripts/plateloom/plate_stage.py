@@ -71,6 +71,7 @@ def build_plate_tables(cells: pd.DataFrame, tracks: pd.DataFrame, site_qc: pd.Da
     if not ((roles == "negative_control") & kept).any():
         warnings.append("no negative-control well passed the exclusion rules: normalized values are NaN")
     edge_rows = []
+    position_notes: set[str] = set()
     for feature in features:
         values = profile[feature].to_numpy(float)
         log_scale = bool(np.all(values[np.isfinite(values)] > 0))
@@ -78,9 +79,10 @@ def build_plate_tables(cells: pd.DataFrame, tracks: pd.DataFrame, site_qc: pd.Da
         if settings.positional_correction == "median_polish":
             scaled = np.log(values) if log_scale else values
             grid = _grid_values(profile, np.where(kept, scaled, np.nan), fmt)
-            fit_mask = _grid_values(profile, ((roles == "test") & kept).astype(float), fmt) == 1
-            corrected, notes = positional_correction(grid, fit_mask)
-            warnings += [f"{feature}: {note}" for note in notes]
+            centred = pd.Series(np.where(kept, scaled, np.nan)).groupby(profile["treatment"].to_numpy()).transform("median")
+            fit_grid = _grid_values(profile, np.where(kept, scaled - centred.to_numpy(), np.nan), fmt)
+            corrected, notes = positional_correction(grid, fit_grid)
+            position_notes.update(notes)
             corrected_values = _from_grid(profile, corrected)
             corrected_values = np.where(kept, corrected_values, scaled)
             profile[f"{feature}_uncorrected"] = values
@@ -88,6 +90,7 @@ def build_plate_tables(cells: pd.DataFrame, tracks: pd.DataFrame, site_qc: pd.Da
             profile[f"{feature}_b_score"] = _from_grid(profile, b_scores(grid))
             after = edge_effect(profile, feature, log_scale)
             edge_rows[-1] |= {"edge_shift_corrected": after["edge_shift"], "p_value_corrected": after["p_value"]}
+    warnings += [f"positional correction: {note}" for note in sorted(position_notes)]
     negative = profile[(profile["role"] == "negative_control") & kept]
     positive = profile[(profile["role"] == "positive_control") & kept]
     for feature in features:

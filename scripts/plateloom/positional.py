@@ -59,27 +59,25 @@ def b_scores(grid: np.ndarray) -> np.ndarray:
     return residual / scale if scale > 0 else np.full(residual.shape, np.nan)
 
 
-def positional_correction(grid: np.ndarray, fit_mask: np.ndarray, min_wells_per_line: int = 3) -> tuple[np.ndarray, list[str]]:
-    """Remove row and column effects estimated by median polish on the wells in ``fit_mask``.
+def positional_correction(grid: np.ndarray, fit_grid: np.ndarray, min_wells_per_line: int = 3) -> tuple[np.ndarray, list[str]]:
+    """Remove from ``grid`` the row and column effects that median polish finds in ``fit_grid``.
 
-    Effects are fitted on ``fit_mask`` wells (normally test wells, whose median is the plate
-    background) and subtracted from every well, controls included. A row or column with
-    fewer than ``min_wells_per_line`` fitted wells (for example control-only edge columns)
-    cannot be estimated: its effect is left at 0 and named in the returned warnings.
+    ``fit_grid`` holds the values to fit (NaN elsewhere), normally each well minus the median
+    of its treatment on the plate, so treatments do not pose as positions. A row or column
+    with fewer than ``min_wells_per_line`` fitted wells (for example control-only edge
+    columns when controls are left out) cannot be estimated: its effect stays 0 and is named
+    in the returned notes.
     """
-    fitted = np.where(fit_mask, grid, np.nan)
-    polish = median_polish(fitted)
-    warnings = []
-    row_support = np.isfinite(fitted).sum(axis=1)
-    column_support = np.isfinite(fitted).sum(axis=0)
+    polish = median_polish(fit_grid)
+    notes = []
     row, column = polish.row.copy(), polish.column.copy()
-    for index in np.flatnonzero(row_support < min_wells_per_line):
-        row[index] = 0.0
-        warnings.append(f"row {index + 1}: {row_support[index]} fitted wells, row effect not estimated")
-    for index in np.flatnonzero(column_support < min_wells_per_line):
-        column[index] = 0.0
-        warnings.append(f"column {index + 1}: {column_support[index]} fitted wells, column effect not estimated")
-    return grid - row[:, None] - column[None, :], warnings
+    for name, effects, support in (("row", row, np.isfinite(fit_grid).sum(axis=1)),
+                                   ("column", column, np.isfinite(fit_grid).sum(axis=0))):
+        thin = np.flatnonzero(support < min_wells_per_line)
+        effects[thin] = 0.0
+        if len(thin):
+            notes.append(f"{name}{'s' if len(thin) > 1 else ''} {', '.join(str(i + 1) for i in thin)}: fewer than {min_wells_per_line} wells, effect not estimated")
+    return grid - row[:, None] - column[None, :], notes
 
 
 def edge_effect(profile: pd.DataFrame, feature: str, log_scale: bool) -> dict[str, float]:

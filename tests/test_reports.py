@@ -1,0 +1,69 @@
+"""Reports: hostile names escaped, excluded plates said so, pages render offline in headless Chromium."""
+
+import os
+import shutil
+import subprocess
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from plateloom.exclusions import ExclusionRules
+from plateloom.plate_formats import plate_format
+from plateloom.plate_report import build_plate_report
+from plateloom.plate_stage import PlateSettings, build_plate_tables
+
+from test_plate_stage import _plate
+
+HOSTILE = '<b>x</b> "quoted", comma & Ölsäure'
+
+
+def _report(tmp_path: Path, rules=ExclusionRules()) -> Path:
+    cells, tracks, qc, layout = _plate()
+    layout.loc[layout["role"] == "test", "treatment"] = HOSTILE
+    tables = build_plate_tables(cells, tracks, qc, layout, "P1", "d1", 96, PlateSettings(), rules)
+    tables.profile.loc[tables.profile["well"] == "D05", "treatment"] = HOSTILE
+    html = build_plate_report(tables.profile, tables.qc, tables.ledger, tables.edge, tables.warnings + [HOSTILE], "P1", "d1",
+                              plate_format(96), "area_um2", {"config_sha256": "abc"})
+    path = tmp_path / "plate.html"
+    path.write_text(html, encoding="utf-8")
+    return path
+
+
+def test_condition_names_are_escaped(tmp_path):
+    html = _report(tmp_path).read_text(encoding="utf-8")
+    assert "<b>x</b>" not in html
+    assert "&lt;b&gt;x&lt;/b&gt;" in html and "Ölsäure" in html
+
+
+def test_excluded_plate_report_says_so(tmp_path):
+    html = _report(tmp_path, ExclusionRules(min_plate_z_prime=0.99)).read_text(encoding="utf-8")
+    assert "This plate is left out of the screen model" in html
+    assert "min_plate_z_prime (area_um2)" in html
+
+
+def _chromium() -> str | None:
+    return shutil.which("chromium") or shutil.which("chromium-browser")
+
+
+def test_plate_report_renders_offline_in_headless_chromium(tmp_path):
+    from skimage.io import imread
+
+    if _chromium() is None:
+        if os.environ.get("PLATELOOM_REQUIRE_CHROMIUM"):
+            pytest.fail("chromium is required here (PLATELOOM_REQUIRE_CHROMIUM is set) but not installed")
+        pytest.skip("Debian package chromium not installed (.ci/run installs it)")
+
+    page = _report(tmp_path)
+    shot = tmp_path / "shot.png"
+    command = [_chromium(), "--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
+               "--disable-background-networking", "--disable-component-update", "--disable-sync",
+               f"--user-data-dir={tmp_path / 'profile'}", "--window-size=1200,2400", f"--screenshot={shot}",
+               page.as_uri()]
+    subprocess.run(command, check=True, capture_output=True, timeout=120)
+    image = imread(shot)
+    assert image.shape[0] >= 1000
+    grey = image[..., :3].mean(axis=-1)
+    # not blank: the heatmaps and tables put many distinct grey levels on the page
+    assert grey.std() > 10 and len(np.unique(grey.astype(int))) > 50
