@@ -27,7 +27,7 @@ def _plate(edge_ratio=1.2, seed=0):
             cells.append(pd.DataFrame({"well": well, "site": 1, "frame": frame, "object": np.arange(n), "track": np.arange(n),
                                        "touches_border": False, "centroid_x_um": 0.0, "centroid_y_um": 0.0,
                                        "area_um2": level * np.exp(rng.normal(0, 0.02, n))}))
-            qc.append({"well": well, "site": 1, "frame": frame, "focus_score": 1.0, "saturated_fraction_dna": 0.2 if (well, frame) == ("B03", 1) else 0.0})
+            qc.append({"well": well, "site": 1, "frame": frame, "n_objects": n, "focus_score": 1.0, "saturated_fraction_dna": 0.2 if (well, frame) == ("B03", 1) else 0.0})
         tracks.append(pd.DataFrame({"well": well, "track": np.arange(n), "speed_um_per_min": 1.0, "straightness": 0.5,
                                     "touches_border": False}))
     return pd.concat(cells, ignore_index=True), pd.concat(tracks, ignore_index=True), pd.DataFrame(qc), layout
@@ -69,3 +69,12 @@ def test_percent_of_control_puts_controls_at_0_and_100():
     neg = profile.loc[profile["role"] == "negative_control", "area_um2_percent_of_control"]
     pos = profile.loc[profile["role"] == "positive_control", "area_um2_percent_of_control"]
     assert np.median(neg) == pytest.approx(0.0, abs=1e-9) and np.median(pos) == pytest.approx(100.0, abs=1e-9)
+
+
+def test_single_well_treatment_and_image_qc_are_reported():
+    cells, tracks, qc, layout = _plate(edge_ratio=1.0)
+    layout.loc[layout["well"] == "A02", "treatment"] = "lonely 1 uM"
+    tables = build_plate_tables(cells, tracks, qc, layout, "P1", "d1", 96, PlateSettings(), ExclusionRules())
+    assert "treatment 'lonely 1 uM' has a single kept well on this plate" in tables.warnings
+    assert tables.site_summary["site_frames"] == 192 and tables.site_summary["saturated_fraction_max"] == pytest.approx(0.2)
+    assert tables.profile["fraction_observations_used"].between(0, 1).all()

@@ -24,7 +24,7 @@ def _report(tmp_path: Path, rules=ExclusionRules()) -> Path:
     layout.loc[layout["role"] == "test", "treatment"] = HOSTILE
     tables = build_plate_tables(cells, tracks, qc, layout, "P1", "d1", 96, PlateSettings(), rules)
     tables.profile.loc[tables.profile["well"] == "D05", "treatment"] = HOSTILE
-    html = build_plate_report(tables.profile, tables.qc, tables.ledger, tables.edge, tables.warnings + [HOSTILE], "P1", "d1",
+    html = build_plate_report(tables.profile, tables.qc, tables.ledger, tables.edge, tables.warnings + [HOSTILE], tables.site_summary, "P1", "d1",
                               plate_format(96), "area_um2", {"config_sha256": "abc"})
     path = tmp_path / "plate.html"
     path.write_text(html, encoding="utf-8")

@@ -29,8 +29,10 @@ def plate_heatmap(profile: pd.DataFrame, feature: str, fmt: PlateFormat) -> plt.
 
 
 def control_distributions(profile: pd.DataFrame, features: list[str]) -> plt.Figure:
-    """Well values by role, one panel per feature."""
-    figure, axes = plt.subplots(1, len(features), figsize=(4.2 * len(features), 3.6), squeeze=False)
+    """Well values by role, one panel per feature (four to a row)."""
+    figure, axes = plt.subplots(1, 4, figsize=(16.8, 3.6), squeeze=False)
+    for axis in axes[0][len(features):]:
+        axis.set_visible(False)
     data = profile[profile["excluded_by"] == ""]
     for axis, feature in zip(axes[0], features):
         order = [r for r in ROLE_ORDER if (data["role"] == r).any()]
@@ -44,7 +46,7 @@ def control_distributions(profile: pd.DataFrame, features: list[str]) -> plt.Fig
 
 
 def build_plate_report(profile: pd.DataFrame, qc: pd.DataFrame, ledger: pd.DataFrame, edge: pd.DataFrame,
-                       warnings: list[str], plate: str, batch: str, fmt: PlateFormat, report_feature: str,
+                       warnings: list[str], site_summary: dict[str, float], plate: str, batch: str, fmt: PlateFormat, report_feature: str,
                        provenance: dict) -> str:
     """The self-contained HTML report of one plate."""
     excluded = profile[profile["excluded_by"] != ""]
@@ -63,8 +65,10 @@ def build_plate_report(profile: pd.DataFrame, qc: pd.DataFrame, ledger: pd.DataF
     heatmaps = figure_tag(plate_heatmap(profile, "cell_count", fmt), "cell count heatmap")
     if report_feature in profile.columns and report_feature != "cell_count":
         heatmaps += figure_tag(plate_heatmap(profile, report_feature, fmt), f"{report_feature} heatmap")
-    shown = [f for f in ("cell_count", report_feature) if f in profile.columns]
-    distributions = figure_tag(control_distributions(profile, list(dict.fromkeys(shown))), "control distributions")
+    features = qc["feature"].tolist()
+    distributions = "".join(figure_tag(control_distributions(profile, features[i:i + 4]), "control distributions")
+                            for i in range(0, len(features), 4))
+    site_html = table_tag(pd.DataFrame([site_summary]))
     qc_table = table_tag(qc[["feature", "n_negative", "n_positive", "negative_median", "positive_median", "negative_cv",
                              "positive_cv", "z_prime", "robust_z_prime", "ssmd", "robust_ssmd", "signal_window", "verdict"]])
     edge_html = ("<p>Least squares of each well value on its treatment plus an outer-well indicator (log scale for "
@@ -81,6 +85,8 @@ def build_plate_report(profile: pd.DataFrame, qc: pd.DataFrame, ledger: pd.DataF
          "Verdict bands: Z' &ge; 0.5 excellent, 0 &lt; Z' &lt; 0.5 marginal, Z' &le; 0 unusable for single-point "
          "screening.</p>" + qc_table),
         ("Edge effect", edge_html),
+        ("Image QC", "<p>Per site and frame: focus score (variance of the Laplacian over the squared mean), "
+         "empty fields (no nucleus found) and the largest saturated-pixel fraction of any channel.</p>" + site_html),
         ("Exclusion ledger", ledger_html),
     ]
     return page(f"plateloom plate report: {plate}", sections, provenance)

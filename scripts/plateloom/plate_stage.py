@@ -34,6 +34,16 @@ class PlateTables:
     ledger: pd.DataFrame
     edge: pd.DataFrame
     warnings: list[str]
+    site_summary: dict[str, float]
+
+
+def summarise_site_qc(site_qc: pd.DataFrame) -> dict[str, float]:
+    """Plate-level image QC: site-frames, empty fields, focus score spread, worst saturation."""
+    saturation = [c for c in site_qc.columns if c.startswith("saturated_fraction_")]
+    return {"site_frames": int(len(site_qc)), "empty_site_frames": int((site_qc["n_objects"] == 0).sum()),
+            "focus_score_median": float(site_qc["focus_score"].median()),
+            "focus_score_min": float(site_qc["focus_score"].min()),
+            "saturated_fraction_max": float(np.nanmax(site_qc[saturation].to_numpy())) if saturation and site_qc[saturation].notna().any().any() else float("nan")}
 
 
 def _grid_values(profile: pd.DataFrame, values: np.ndarray, fmt) -> np.ndarray:
@@ -60,6 +70,10 @@ def build_plate_tables(cells: pd.DataFrame, tracks: pd.DataFrame, site_qc: pd.Da
     ledger = [site_frame_exclusions(site_qc, rules, plate)]
     kept_cells = drop_excluded_site_frames(cells, ledger[0])
     profile = summarise_wells(kept_cells, tracks, layout, plate, batch, wells, settings.well_summary)
+    measured = cells.groupby("well").size()
+    used = kept_cells[~kept_cells["touches_border"]].groupby("well").size()
+    profile["fraction_observations_used"] = (used.reindex(profile["well"]).fillna(0).to_numpy()
+                                             / measured.reindex(profile["well"]).to_numpy(float))
     profile, well_ledger = well_exclusions(profile, rules)
     ledger.append(well_ledger)
     features = well_features(profile)
@@ -114,4 +128,4 @@ def build_plate_tables(cells: pd.DataFrame, tracks: pd.DataFrame, site_qc: pd.Da
     plate_rows = ledger_table[ledger_table["level"] == "plate"]
     profile["plate_excluded_by"] = (f"{plate_rows['rule'].iloc[0]}: {plate_rows['value'].iloc[0]:.3g} < "
                                     f"{plate_rows['threshold'].iloc[0]:g}") if len(plate_rows) else ""
-    return PlateTables(profile, qc, ledger_table, pd.DataFrame(edge_rows), warnings)
+    return PlateTables(profile, qc, ledger_table, pd.DataFrame(edge_rows), warnings, summarise_site_qc(site_qc))

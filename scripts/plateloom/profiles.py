@@ -86,6 +86,6 @@ def well_features(profile: pd.DataFrame) -> list[str]:
     """The feature columns of a well-profile table (cell_count, medians, motility)."""
     fixed = {"plate", "batch", "well", "row", "column", "is_edge", "role", "condition", "dose", "dose_unit",
              "treatment", "n_observations", "n_sites", "n_frames", "n_tracks", "excluded_by", "plate_excluded_by",
-             "cell_count_outlier"}
+             "cell_count_outlier", "fraction_observations_used"}
     derived = ("_robust_z", "_percent_of_control", "_b_score", "_uncorrected")
     return [c for c in profile.columns if c not in fixed and not c.endswith(derived)]

@@ -22,7 +22,8 @@ def step() -> None:
     write_parquet(tables.qc, sm.output.qc, settings)
     write_parquet(tables.ledger, sm.output.ledger, settings)
     write_parquet(tables.edge, sm.output.edge, settings)
-    write_text(json.dumps({"plate": sm.wildcards.plate, "warnings": tables.warnings}, indent=1), sm.output.notes)
+    write_text(json.dumps({"plate": sm.wildcards.plate, "warnings": tables.warnings,
+                                   "site_qc": tables.site_summary}, indent=1), sm.output.notes)
 
 
 run_step(sm.log[0], step, f"plate_profiles {sm.wildcards.plate}")

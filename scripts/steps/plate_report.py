@@ -15,7 +15,7 @@ def step() -> None:
     with open(sm.input.notes, encoding="utf-8") as handle:
         notes = json.load(handle)
     html = build_plate_report(pd.read_parquet(sm.input.wells), pd.read_parquet(sm.input.qc),
-                              pd.read_parquet(sm.input.ledger), pd.read_parquet(sm.input.edge), notes["warnings"],
+                              pd.read_parquet(sm.input.ledger), pd.read_parquet(sm.input.edge), notes["warnings"], notes["site_qc"],
                               sm.wildcards.plate, sm.params.batch, plate_format(sm.params.plate_format),
                               sm.params.report_feature, read_provenance(sm.input.wells))
     write_text(html, sm.output.report)
