@@ -54,10 +54,10 @@ def z_prime_verdict(value: float) -> str:
     if not np.isfinite(value):
         return "not computable"
     if value >= 0.5:
-        return "excellent (Z' >= 0.5)"
+        return "excellent"
     if value > 0:
-        return "marginal (0 < Z' < 0.5)"
-    return "unusable for single-point screening (Z' <= 0)"
+        return "marginal"
+    return "unusable"
 
 
 def plate_qc(profile: pd.DataFrame, features: list[str]) -> pd.DataFrame:
