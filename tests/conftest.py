@@ -37,6 +37,12 @@ def run_snakemake(workdir: Path, *args: str, check: bool = True) -> subprocess.C
     return result
 
 
+def pytest_collection_modifyitems(config, items):
+    """Run the cluster tests last: once SLURM's client tools are installed and its daemons stopped,
+    every later Snakemake start would wait on them."""
+    items.sort(key=lambda item: item.get_closest_marker("cluster") is not None)
+
+
 @pytest.fixture
 def workflow_dir(tmp_path: Path) -> Path:
     return copy_workflow(tmp_path / "screen")

@@ -1,6 +1,12 @@
 """End to end on a reduced demo screen: planted truth recovered, new plates cost only their own jobs."""
 
+import os
 import re
+import shutil
+import signal
+import subprocess
+import sys
+import time
 
 import numpy as np
 import pandas as pd
@@ -94,6 +100,28 @@ def test_reports_are_self_contained(finished_screen):
 
 
 @pytest.mark.slow
+def test_hard_stop_during_per_well_stage_then_resume_gives_identical_tables(finished_screen, tmp_path):
+    # SIGKILL the whole Snakemake process group while per-well jobs run, rerun, compare with the uninterrupted run.
+    workdir = copy_workflow(tmp_path / "screen")
+    shutil.copy2(finished_screen / "config" / "config.yaml", workdir / "config" / "config.yaml")
+    shutil.copy2(finished_screen / "resources" / "demo" / "scenario.yaml", workdir / "resources" / "demo" / "scenario.yaml")
+    command = [sys.executable, "-m", "snakemake", "--cores", "2", "--scheduler", "greedy"]
+    process = subprocess.Popen(command, cwd=workdir, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, start_new_session=True)
+    cells = workdir / "results" / "cells"
+    deadline = time.time() + 600
+    while time.time() < deadline and len(list(cells.glob("plate=*/chunk=*/well=*/part-0.parquet"))) < 30:
+        time.sleep(0.2)
+    os.killpg(process.pid, signal.SIGKILL)
+    process.wait()
+    assert not (workdir / "results" / "effects.parquet").exists()
+    run_snakemake(workdir, "--unlock")  # a killed Snakemake leaves its lock behind
+    run_snakemake(workdir, "--rerun-incomplete")
+    for table in ["effects.parquet"] + [f"wells/plate={p}/part-0.parquet" for p in ("TW-D1-P1", "TW-D2-P2", "TW-D3-P1")]:
+        pd.testing.assert_frame_equal(pd.read_parquet(workdir / "results" / table),
+                                      pd.read_parquet(finished_screen / "results" / table))
+
+
+@pytest.mark.slow
 def test_planted_edge_effect_detected_then_removed_by_median_polish(finished_screen):
     # The scenario plants a 1.12 ratio on the reporter in every outer well of every plate.
     reporter = "mean_intensity_reporter"
@@ -132,3 +160,10 @@ def test_new_plate_schedules_only_its_own_jobs_and_the_fan_ins(finished_screen):
     per_plate = [b for b in blocks if b.split(":")[0] in ("make_demo_plate", "analyse_wells", "plate_profiles", "plate_report")]
     plates = {re.search(r"wildcards: plate=([\w.-]+)", block).group(1) for block in per_plate}
     assert plates == {NEW_PLATE}
+    # after the run, the old plates' reports are untouched: same bytes, same modification times
+    reports = sorted((finished_screen / "results/reports/plates").glob("*.html"))
+    before = {p.name: (p.read_bytes(), p.stat().st_mtime_ns) for p in reports}
+    run_snakemake(finished_screen)
+    after = {p.name: (p.read_bytes(), p.stat().st_mtime_ns) for p in reports}
+    assert after == before
+    assert (finished_screen / f"results/reports/plates/{NEW_PLATE}.html").exists()
