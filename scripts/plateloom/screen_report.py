@@ -7,7 +7,7 @@ import numpy as np
 import pandas as pd
 from matplotlib.ticker import FormatStrFormatter
 
-from .report import escape, figure_tag, page, table_tag
+from .report import figure_tag, page, table_tag
 
 
 def forest_plot(effects: pd.DataFrame, feature: str, ci_level: float) -> plt.Figure:

@@ -1,0 +1,90 @@
+"""Snakemake overhead for a 40-plate x 384-well screen (trivial inputs), as ratios within one run.
+
+Builds a screen sheet of 40 plates of 384 wells (all wells analysed) whose image folders are
+empty, then times (1) a dry run with every job still to do, (2) creating empty stand-ins for
+every output and `--touch` recording them complete, (3) a dry run of the complete screen. Prints job counts and times; the last line is
+the ratio of the complete-screen dry run to the goal of 10 s.
+
+    python benchmarks/workflow_overhead.py
+"""
+
+from __future__ import annotations
+
+import re
+import shutil
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parents[1]
+PLATES, ROWS, COLUMNS = 40, 16, 24
+
+
+def _create_outputs(results: Path) -> None:
+    """Empty stand-ins for every output, created in pipeline order (trivial inputs)."""
+    chunks = (ROWS * COLUMNS + 47) // 48
+    for kind in ("cells", "tracks", "site_qc"):
+        for p in range(PLATES):
+            for c in range(chunks):
+                (results / kind / f"plate=B{p:02d}" / f"chunk={c:03d}").mkdir(parents=True, exist_ok=True)
+    time.sleep(1.1)
+    for p in range(PLATES):
+        for kind in ("wells", "plate_qc", "exclusions", "edge_effects"):
+            path = results / kind / f"plate=B{p:02d}" / "part-0.parquet"
+            path.parent.mkdir(parents=True, exist_ok=True)
+            path.touch()
+        (results / "plate_notes").mkdir(exist_ok=True)
+        (results / "plate_notes" / f"B{p:02d}.json").touch()
+    time.sleep(1.1)
+    (results / "reports" / "plates").mkdir(parents=True, exist_ok=True)
+    for p in range(PLATES):
+        (results / "reports" / "plates" / f"B{p:02d}.html").touch()
+    for name in ("effects.parquet", "effects.csv"):
+        (results / name).touch()
+    time.sleep(1.1)
+    (results / "reports" / "screen.html").touch()
+
+
+def main() -> None:
+    work = Path(tempfile.mkdtemp(prefix="plateloom-overhead-"))
+    for part in ("Snakefile", "workflow", "config", "resources", "scripts"):
+        source = ROOT / part
+        (shutil.copytree if source.is_dir() else shutil.copy2)(source, work / part)
+    wells = [f"{chr(65 + r)}{c + 1:02d}" for r in range(ROWS) for c in range(COLUMNS)]
+    lines = ["well,role,condition,dose,dose_unit"]
+    lines += [f"{w},{'negative_control' if i % 16 == 0 else 'test'},{'vehicle' if i % 16 == 0 else f'X{i % 40}'},,"
+              for i, w in enumerate(wells)]
+    (work / "config/layouts/bench_384.csv").write_text("\n".join(lines) + "\n")
+    (work / "images").mkdir()
+    sheet = ["plate,batch,plate_format,layout,image_folder"]
+    sheet += [f"B{p:02d},day{p // 8},384,config/layouts/bench_384.csv,images" for p in range(PLATES)]
+    (work / "config/plates.csv").write_text("\n".join(sheet) + "\n")
+    config = (work / "config/config.yaml").read_text().replace("chunk_wells: 24", "chunk_wells: 48")
+    (work / "config/config.yaml").write_text(config)
+    base = [sys.executable, "-m", "snakemake", "--cores", "2", "--scheduler", "greedy"]
+
+    def timed(*args: str) -> tuple[float, str]:
+        start = time.perf_counter()
+        result = subprocess.run(base + list(args), cwd=work, capture_output=True, text=True)
+        if result.returncode != 0:
+            raise SystemExit(result.stderr[-3000:])
+        return time.perf_counter() - start, result.stdout + result.stderr
+
+    todo, output = timed("-n", "--quiet", "rules")
+    jobs = {name: int(count) for name, count in re.findall(r"^(\w+)\s+(\d+)$", output, flags=re.M)}
+    start = time.perf_counter()
+    _create_outputs(work / "results")
+    touch, _ = timed("--touch", "--quiet")
+    touch += time.perf_counter() - start
+    done, output_done = timed("-n")
+    print(f"plates {PLATES}, wells {PLATES * ROWS * COLUMNS}, jobs {jobs}")
+    print(f"dry run, all to do: {todo:.1f} s; touch all outputs: {touch:.1f} s; dry run, complete: {done:.1f} s")
+    print("complete screen up to date:", "Nothing to be done" in output_done)
+    print(f"ratio dry-run(complete) / 10 s goal: {done / 10.0:.2f}")
+    shutil.rmtree(work)
+
+
+if __name__ == "__main__":
+    main()
