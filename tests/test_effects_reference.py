@@ -77,3 +77,13 @@ def test_planted_log_effect_recovered_as_ratio():
     assert row["ratio"] == pytest.approx(np.exp(0.3), rel=0.03)
     # between-within degrees of freedom: 144 wells - 6 plates - 1 treatment
     assert row["df"] == 137
+
+
+def test_plate_excluded_by_rule_leaves_the_screen_model():
+    from plateloom.effects import screen_effects
+
+    wells = _planted_screen(np.random.default_rng(12))
+    wells["excluded_by"] = ""
+    wells["plate_excluded_by"] = np.where(wells["plate"] == "d0p0", "min_plate_z_prime (value): -0.2 < 0", "")
+    effects = screen_effects(wells, ["value"], {"value"}, 0.95, 0.05, 0.1)
+    assert effects.loc[0, "n_plates"] == 5 and effects.loc[0, "n_wells"] == 60
