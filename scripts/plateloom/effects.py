@@ -75,6 +75,10 @@ def fit_nested_random_intercepts(data: pd.DataFrame, formula: str, batch: str, p
     raise RuntimeError("mixed model did not converge: " + " | ".join(problems))
 
 
+class _ConstantFeature(Exception):
+    """A feature with no spread across wells: nothing to fit."""
+
+
 def _fixed_plate_fit(data: pd.DataFrame) -> tuple[pd.Series, pd.Series, float]:
     """Fallback: ordinary least squares with a fixed effect per plate (absorbs batch too)."""
     result = smf.ols("y ~ C(code) + C(plate_code)", data).fit()
@@ -112,7 +116,7 @@ def fit_feature_effects(wells: pd.DataFrame, feature: str, log_scale: bool, ci_l
     params: pd.Series
     try:
         if np.nanstd(data["y"]) == 0:
-            raise RuntimeError("feature is constant across wells")
+            raise _ConstantFeature("feature is constant across wells")
         if n_batches >= 2:
             fit = fit_nested_random_intercepts(data, formula, "batch_code", "plate_code" if n_plates > n_batches else None)
         else:
@@ -124,14 +128,13 @@ def fit_feature_effects(wells: pd.DataFrame, feature: str, log_scale: bool, ci_l
         method = f"REML mixed model ({fit.method})"
         if fit.boundary:
             note = "; ".join(filter(None, [note, "a variance component was estimated at zero (singular fit)"]))
+    except _ConstantFeature as error:
+        params, errors, converged, components, method = pd.Series(dtype=float), pd.Series(dtype=float), False, (np.nan,) * 3, "not fitted"
+        note = "; ".join(filter(None, [note, str(error)]))
     except RuntimeError as error:
-        if "constant" in str(error):
-            params, errors, converged, components, method = pd.Series(dtype=float), pd.Series(dtype=float), False, (np.nan,) * 3, "not fitted"
-            note = "; ".join(filter(None, [note, str(error)]))
-        else:
-            params, errors, residual = _fixed_plate_fit(data)
-            converged, components, method = False, (np.nan, np.nan, residual), "fallback: OLS with plate fixed effects"
-            note = "; ".join(filter(None, [note, str(error)]))
+        params, errors, residual = _fixed_plate_fit(data)
+        converged, components, method = False, (np.nan, np.nan, residual), "fallback: OLS with plate fixed effects"
+        note = "; ".join(filter(None, [note, str(error)]))
     t_quantile = stats.t.ppf(0.5 + ci_level / 2, df)
     total = np.nansum(components)
     rows = []

@@ -5,6 +5,7 @@ from __future__ import annotations
 import os
 import re
 from collections.abc import Iterator
+from contextlib import ExitStack
 from dataclasses import dataclass
 
 import numpy as np
@@ -95,26 +96,30 @@ def _check_plane(plane: np.ndarray, path: str, shape: tuple[int, ...] | None) ->
     return plane.astype(np.float32, copy=False)
 
 
-def _read_page(path: str, page: int) -> np.ndarray:
+def _unreadable(path: str, error: Exception) -> InputError:
+    return InputError(path, f"cannot be read as TIFF ({type(error).__name__}: {error}).",
+                      "re-copy the file from the microscope; a truncated transfer is the usual cause.")
+
+
+def _open_tiff(path: str) -> tifffile.TiffFile:
     try:
-        with tifffile.TiffFile(path) as tif:
-            if page >= len(tif.pages):
-                raise InputError(path, f"has {len(tif.pages)} pages, frame {page} is missing.", "re-export the full time series.")
-            return tif.pages[page].asarray()
-    except InputError:
-        raise
+        return tifffile.TiffFile(path)
     except Exception as error:  # tifffile raises many kinds for truncated or corrupt files
-        raise InputError(path, f"cannot be read as TIFF ({type(error).__name__}: {error}).",
-                         "re-copy the file from the microscope; a truncated transfer is the usual cause.") from None
+        raise _unreadable(path, error) from None
+
+
+def _page(tif: tifffile.TiffFile, path: str, page: int) -> np.ndarray:
+    if page >= len(tif.pages):
+        raise InputError(path, f"has {len(tif.pages)} pages, frame {page} is missing.", "re-export the full time series.")
+    try:
+        return tif.pages[page].asarray()
+    except Exception as error:
+        raise _unreadable(path, error) from None
 
 
 def _page_count(path: str) -> int:
-    try:
-        with tifffile.TiffFile(path) as tif:
-            return len(tif.pages)
-    except Exception as error:
-        raise InputError(path, f"cannot be read as TIFF ({type(error).__name__}: {error}).",
-                         "re-copy the file from the microscope; a truncated transfer is the usual cause.") from None
+    with _open_tiff(path) as tif:
+        return len(tif.pages)
 
 
 def site_frame_count(index: ImageIndex, well: str, site: int, channels: list[str]) -> int:
@@ -149,18 +154,22 @@ def stream_site(index: ImageIndex, well: str, site: int, channels: list[str]) ->
                 missing = sorted(set(expected) - set(table["frame"]))
                 raise InputError(f"well {well}, site {site}, channel {channel}", f"frames {missing} are missing.", "re-export the missing frames.")
     shape: tuple[int, ...] | None = None
-    for frame in range(n_frames):
-        planes, saturated = [], []
-        for channel in channels:
-            table = by_channel[channel]
-            if index.stacks:
-                path = table["path"].iloc[0]
-                plane = _read_page(path, frame)
-            else:
-                path = table["path"].iloc[frame]
-                plane = _read_page(path, 0)
-            saturated.append(saturated_fraction(plane))
-            plane = _check_plane(plane, path, shape)
-            shape = plane.shape
-            planes.append(plane)
-        yield frame, np.stack(planes), np.array(saturated)
+    with ExitStack() as stack:
+        # a stack file is opened once per site, not once per frame
+        opened = {c: stack.enter_context(_open_tiff(by_channel[c]["path"].iloc[0])) for c in channels} if index.stacks else {}
+        for frame in range(n_frames):
+            planes, saturated = [], []
+            for channel in channels:
+                table = by_channel[channel]
+                if index.stacks:
+                    path = table["path"].iloc[0]
+                    plane = _page(opened[channel], path, frame)
+                else:
+                    path = table["path"].iloc[frame]
+                    with _open_tiff(path) as tif:
+                        plane = _page(tif, path, 0)
+                saturated.append(saturated_fraction(plane))
+                plane = _check_plane(plane, path, shape)
+                shape = plane.shape
+                planes.append(plane)
+            yield frame, np.stack(planes), np.array(saturated)

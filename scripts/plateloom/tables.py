@@ -32,27 +32,30 @@ def provenance(settings: object) -> dict[str, object]:
     return {"config_sha256": config_digest(settings), "python": platform.python_version(), "packages": versions}
 
 
+def _temporary_path(path: str) -> str:
+    """A hidden temporary file beside ``path`` (same folder, so the final rename is atomic)."""
+    folder = os.path.dirname(path) or "."
+    os.makedirs(folder, exist_ok=True)
+    return os.path.join(folder, f".{os.path.basename(path)}.{os.getpid()}.tmp")
+
+
 def write_parquet(frame: pd.DataFrame, path: str, settings: object) -> None:
     """Write ``frame`` to ``path`` atomically (temporary file in the same folder, then rename).
 
     An interrupted write never leaves a readable partial file at ``path``.
     """
-    folder = os.path.dirname(path) or "."
-    os.makedirs(folder, exist_ok=True)
+    tmp = _temporary_path(path)
     table = pa.Table.from_pandas(frame, preserve_index=False)
     meta = dict(table.schema.metadata or {})
     meta[PROVENANCE_KEY] = json.dumps(provenance(settings), sort_keys=True).encode()
     table = table.replace_schema_metadata(meta)
-    tmp = os.path.join(folder, f".{os.path.basename(path)}.{os.getpid()}.tmp")
     pq.write_table(table, tmp)
     os.replace(tmp, path)
 
 
 def write_text(text: str, path: str) -> None:
     """Write a text file (report, CSV) atomically."""
-    folder = os.path.dirname(path) or "."
-    os.makedirs(folder, exist_ok=True)
-    tmp = os.path.join(folder, f".{os.path.basename(path)}.{os.getpid()}.tmp")
+    tmp = _temporary_path(path)
     with open(tmp, "w", encoding="utf-8") as handle:
         handle.write(text)
     os.replace(tmp, path)

@@ -1,5 +1,7 @@
 # The embedded demo screen: images are simulated from resources/demo/scenario.yaml.
 
+from plateloom.plan import DEMO_IMAGE_ROOT
+
 DEMO = config["demo"]
 
 
@@ -8,7 +10,7 @@ rule make_demo_plate:
         scenario=DEMO["scenario"],
         layout=lambda w: PLAN.plates[w.plate].layout,
     output:
-        images=directory("demo_images/{plate}"),
+        images=directory(f"{DEMO_IMAGE_ROOT}/{{plate}}"),
     params:
         batch=lambda w: PLAN.plates[w.plate].batch,
         plate_format=lambda w: PLAN.plates[w.plate].plate_format,

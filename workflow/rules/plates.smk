@@ -47,7 +47,6 @@ rule plate_report:
         batch=lambda w: PLAN.plates[w.plate].batch,
         plate_format=lambda w: PLAN.plates[w.plate].plate_format,
         report_feature=config["plate"]["report_feature"],
-        settings={"report_feature": config["plate"]["report_feature"]},
     log:
         f"{RESULTS}/logs/plate_report/{{plate}}.log",
     benchmark:

@@ -1,13 +1,10 @@
 # Per well (fan-out): one job per chunk of wells of one plate; one Parquet file per well.
 
-WELL_SETTINGS = {
-    "channels": [c["name"] for c in config["channels"]],
-    "nuclei_channel": next(c["name"] for c in config["channels"] if c["role"] == "nuclei"),
-    "pixel_size_um": config["images"]["pixel_size_um"],
-    "frame_interval_min": config["images"]["frame_interval_min"],
-    **config["segmentation"],
-    **config["tracking"],
-}
+from dataclasses import asdict
+
+from plateloom.wellwork import WellSettings
+
+WELL_SETTINGS = asdict(WellSettings.from_config(config))
 
 
 def chunk_folders(kind, plate):
