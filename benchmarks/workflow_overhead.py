@@ -41,10 +41,20 @@ def _create_outputs(results: Path) -> None:
     (results / "reports" / "plates").mkdir(parents=True, exist_ok=True)
     for p in range(PLATES):
         (results / "reports" / "plates" / f"B{p:02d}.html").touch()
-    for name in ("effects.parquet", "effects.csv"):
-        (results / name).touch()
-    time.sleep(1.1)
-    (results / "reports" / "screen.html").touch()
+    screen_stages = [
+        ["screen/model_wells.parquet", "screen/treatments.parquet", "screen/batch_variance_shares.parquet",
+         "screen/batch_principal_components.parquet"],
+        [f"screen/effects_parts/chunk={c:03d}.parquet" for c in range(2)],
+        ["effects.parquet", "effects.csv", "dose_response.parquet", "dose_response.csv",
+         "screen/dose_response_points.parquet"],
+        ["design_check.parquet", "design_check.csv"],
+        ["reports/screen.html"],
+    ]
+    for stage in screen_stages:
+        for name in stage:
+            (results / name).parent.mkdir(parents=True, exist_ok=True)
+            (results / name).touch()
+        time.sleep(1.1)
 
 
 def main() -> None:

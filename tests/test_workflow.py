@@ -36,6 +36,7 @@ def finished_screen(tmp_path_factory):
     config_path = workdir / "config" / "config.yaml"
     config = yaml.safe_load(config_path.read_text())
     config["demo"]["frames"] = 5
+    config["screen"]["design_check"]["n_screens"] = 30
     config_path.write_text(yaml.safe_dump(config, sort_keys=False))
     run_snakemake(workdir)
     return workdir
@@ -90,10 +91,40 @@ def test_planted_effects_recovered_within_their_intervals(finished_screen):
 
 
 @pytest.mark.slow
+def test_planted_ec50s_fall_inside_their_intervals(finished_screen):
+    # The scenario plants Hill curves (ratio to control) with these EC50s on the features they move.
+    fits = pd.read_parquet(finished_screen / "results/dose_response.parquet").set_index(["condition", "feature"])
+    scenario = load_scenario(str(finished_screen / "resources/demo/scenario.yaml"))
+    planted = {c["name"]: c["ec50_um"] for c in scenario["compounds"]}
+    for compound, feature in (("TW-101", "area_um2"), ("TW-102", "mean_intensity_reporter"),
+                              ("TW-103", "speed_um_per_min")):
+        fit = fits.loc[(compound, feature)]
+        assert fit["identifiable"], fit["flag"]
+        assert fit["ec50_ci_low"] <= planted[compound] <= fit["ec50_ci_high"], (compound, fit["ec50"])
+    # The no-effect compound has no identifiable dose-response on any feature, and says why.
+    null = fits.loc["TW-104"]
+    assert not null["identifiable"].any() and null["flag"].str.contains("no dose-response").all()
+
+
+@pytest.mark.slow
+def test_design_check_reports_coverage_near_nominal(finished_screen):
+    table = pd.read_parquet(finished_screen / "results/design_check.parquet").set_index("design")
+    assert list(table.index) == ["as imaged", "+2 batches"]
+    assert table.loc["+2 batches", "n_batches"] == 5
+    for design in table.index:
+        coverage, se = table.loc[design, ["coverage", "coverage_mc_se"]]
+        assert abs(coverage - 0.95) < 4 * se + 0.01, (design, coverage)
+    assert table.loc["+2 batches", "mean_ci_width"] < table.loc["as imaged", "mean_ci_width"]
+
+
+@pytest.mark.slow
 def test_reports_are_self_contained(finished_screen):
     report = (finished_screen / "results/reports/screen.html").read_text()
     assert "data:image/png;base64," in report and "<script" not in report and "http://" not in report
     assert "not for clinical" in report
+    for section in ("Volcano plot", "Dose-response", "Batch diagnostics", "Design check", "Variance components",
+                    "Exclusion ledger", "Method"):
+        assert f"<h2>{section}</h2>" in report
     plate = (finished_screen / "results/reports/plates/TW-D1-P1.html").read_text()
     assert "Z&#x27;-factor and SSMD per feature" in plate
     assert plate.count("data:image/png;base64,") >= 3
@@ -155,7 +186,8 @@ def test_new_plate_schedules_only_its_own_jobs_and_the_fan_ins(finished_screen):
     jobs = re.findall(r"^rule (\w+):", output, flags=re.M)
     counts = pd.Series(jobs).value_counts().to_dict()
     assert counts == {"make_demo_plate": 1, "analyse_wells": 2, "plate_profiles": 1, "plate_report": 1,
-                      "screen_effects": 1, "screen_report": 1, "all": 1}
+                      "correct_batches": 1, "fit_effects": 2, "screen_effects": 1, "dose_response": 1,
+                      "design_check": 1, "screen_report": 1, "all": 1}
     blocks = re.split(r"^rule ", output, flags=re.M)[1:]
     per_plate = [b for b in blocks if b.split(":")[0] in ("make_demo_plate", "analyse_wells", "plate_profiles", "plate_report")]
     plates = {re.search(r"wildcards: plate=([\w.-]+)", block).group(1) for block in per_plate}

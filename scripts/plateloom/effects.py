@@ -21,6 +21,8 @@ import statsmodels.formula.api as smf
 from scipy import stats
 from statsmodels.tools.sm_exceptions import ConvergenceWarning
 
+from .reml import fit_nested_exact
+
 REFERENCE = "negative_control"
 
 
@@ -92,79 +94,134 @@ def _codes(treatments: pd.Series) -> tuple[pd.Series, dict[str, str]]:
     return treatments.map(mapping), mapping
 
 
-def fit_feature_effects(wells: pd.DataFrame, feature: str, log_scale: bool, ci_level: float) -> pd.DataFrame:
+FITTERS = ("statsmodels", "exact")
+
+
+def _design(codes: pd.Series, mapping: dict[str, str]) -> tuple[np.ndarray, list[str]]:
+    """Intercept plus one indicator per non-reference treatment, named as statsmodels names them."""
+    levels = [code for code in sorted(mapping.values()) if code != mapping[REFERENCE]]
+    present = [code for code in levels if (codes == code).any()]
+    matrix = np.column_stack([np.ones(len(codes))] + [(codes == code).to_numpy(float) for code in present])
+    return matrix, ["Intercept"] + [f"C(code)[T.{code}]" for code in present]
+
+
+def _fit(data: pd.DataFrame, mapping: dict[str, str], fitter: str) -> NestedFit:
+    """The nested fit of y on treatment codes; one batch only: a random intercept per plate."""
+    n_batches, n_plates = data["batch"].nunique(), data["plate"].nunique()
+    groups, nested = ("batch_code", "plate_code" if n_plates > n_batches else None) if n_batches >= 2 else ("plate_code", None)
+    if fitter == "statsmodels":
+        fit = fit_nested_random_intercepts(data, "y ~ C(code)", groups, nested)
+    else:
+        design, names = _design(data["code"], mapping)
+        exact = fit_nested_exact(data["y"].to_numpy(), design, data[groups].to_numpy(),
+                                 data[nested].to_numpy() if nested else None)
+        if not exact.converged:
+            raise RuntimeError("exact REML optimisation did not converge")
+        total = exact.batch_variance + exact.plate_variance + exact.residual_variance
+        boundary = min(exact.batch_variance, exact.plate_variance if nested else np.inf) < BOUNDARY_SHARE * total
+        fit = NestedFit(pd.Series(exact.params, index=names), pd.Series(exact.std_errors, index=names),
+                        exact.batch_variance, exact.plate_variance if nested else 0.0, exact.residual_variance,
+                        "exact", boundary)
+    if n_batches < 2:
+        fit = NestedFit(fit.params, fit.std_errors, 0.0, fit.batch_variance, fit.residual_variance, fit.method, fit.boundary)
+    return fit
+
+
+def _join(*notes: str) -> str:
+    return "; ".join(n for n in notes if n)
+
+
+def fit_feature_effects(wells: pd.DataFrame, feature: str, scale: str, ci_level: float, fitter: str = "statsmodels",
+                        treatments: pd.DataFrame | None = None) -> pd.DataFrame:
     """Effects of every treatment on one feature against the pooled negative controls.
 
-    ``wells`` holds kept wells with columns batch, plate, role, treatment, condition, dose,
-    dose_unit and the feature. Returns one row per non-reference treatment.
+    ``wells`` holds the wells in the model with columns batch, plate, role, treatment, condition,
+    dose, dose_unit and the feature already on its model scale (``scale`` is "log" for natural
+    logs, else "linear"). ``treatments`` (treatment, condition, dose, dose_unit, role), if given,
+    lists every treatment of the screen, so one whose wells were all excluded still gets a row
+    saying so. Returns one row per non-reference treatment; the effect is in model-scale units
+    (a natural-log ratio or a difference in the feature's unit).
     """
+    if fitter not in FITTERS:
+        raise ValueError(f"unknown fitter {fitter!r}; choose one of {', '.join(FITTERS)}")
     data = wells[["batch", "plate", "role", "treatment", "condition", "dose", "dose_unit", feature]].copy()
     data["treatment"] = np.where(data["role"] == "negative_control", REFERENCE, data["treatment"])
-    values = data[feature].to_numpy(float)
-    note = ""
-    if log_scale and np.any(values[np.isfinite(values)] <= 0):
-        log_scale, note = False, "non-positive values: modelled on the linear scale"
-    data["y"] = np.log(values) if log_scale else values
+    data["y"] = data[feature].to_numpy(float)
+    n_not_finite = int((~np.isfinite(data["y"])).sum())
     data = data[np.isfinite(data["y"])]
+    if (data["treatment"] == REFERENCE).sum() == 0:
+        raise ValueError(f"feature {feature}: no negative-control wells are left in the model; "
+                         "check the layouts' role column and the exclusion ledger")
     data["code"], mapping = _codes(data["treatment"])
     data["plate_code"] = pd.factorize(data["plate"], sort=True)[0].astype(str)
     data["batch_code"] = pd.factorize(data["batch"], sort=True)[0].astype(str)
-    n_wells, n_plates, n_batches = len(data), data["plate"].nunique(), data["batch"].nunique()
+    n_wells, n_plates = len(data), data["plate"].nunique()
     n_treatments = len(mapping)
     df = max(n_wells - n_plates - (n_treatments - 1), 1)
-    formula = "y ~ C(code)"
-    params: pd.Series
+    plates_per_batch = data.groupby("batch")["plate"].nunique()
+    feature_note = _join(f"{n_not_finite} wells with a missing value left out" if n_not_finite else "",
+                         f"batch {', '.join(plates_per_batch.index[plates_per_batch == 1])} has a single plate"
+                         if data["batch"].nunique() >= 2 and (plates_per_batch == 1).any() and n_plates > data["batch"].nunique() else "")
     try:
         if np.nanstd(data["y"]) == 0:
-            raise _ConstantFeature("feature is constant across wells")
-        if n_batches >= 2:
-            fit = fit_nested_random_intercepts(data, formula, "batch_code", "plate_code" if n_plates > n_batches else None)
-        else:
-            fit = fit_nested_random_intercepts(data, formula, "plate_code", None)
-            fit = NestedFit(fit.params, fit.std_errors, 0.0, fit.batch_variance, fit.residual_variance, fit.method, fit.boundary)
-            note = "; ".join(filter(None, [note, "one batch only: random intercept per plate"]))
+            raise _ConstantFeature("feature is constant across wells: not fitted")
+        fit = _fit(data, mapping, fitter)
         params, errors, converged = fit.params, fit.std_errors, True
         components = (fit.batch_variance, fit.plate_variance, fit.residual_variance)
         method = f"REML mixed model ({fit.method})"
+        if data["batch"].nunique() < 2:
+            feature_note = _join(feature_note, "one batch only: random intercept per plate")
         if fit.boundary:
-            note = "; ".join(filter(None, [note, "a variance component was estimated at zero (singular fit)"]))
+            feature_note = _join(feature_note, "a variance component was estimated at zero (singular fit)")
     except _ConstantFeature as error:
         params, errors, converged, components, method = pd.Series(dtype=float), pd.Series(dtype=float), False, (np.nan,) * 3, "not fitted"
-        note = "; ".join(filter(None, [note, str(error)]))
+        feature_note = _join(feature_note, str(error))
     except RuntimeError as error:
         params, errors, residual = _fixed_plate_fit(data)
         converged, components, method = False, (np.nan, np.nan, residual), "fallback: OLS with plate fixed effects"
-        note = "; ".join(filter(None, [note, str(error)]))
+        feature_note = _join(feature_note, f"mixed model failed ({error}); fallback used")
     t_quantile = stats.t.ppf(0.5 + ci_level / 2, df)
     total = np.nansum(components)
+    catalogue = _treatment_catalogue(wells, treatments)
     rows = []
-    for name, code in mapping.items():
-        if name == REFERENCE:
-            continue
+    for name, first in catalogue.iterrows():
+        code = mapping.get(name)
+        subset = data[data["code"] == code] if code else data.iloc[0:0]
         term = f"C(code)[T.{code}]"
-        subset = data[data["code"] == code]
-        estimate = float(params.get(term, np.nan))
-        error = float(errors.get(term, np.nan))
+        estimate = float(params.get(term, np.nan)) if code else np.nan
+        error = float(errors.get(term, np.nan)) if code else np.nan
         t_value = estimate / error if error > 0 else np.nan
-        first = subset.iloc[0]
+        row_note = feature_note
+        if subset.empty:
+            row_note = _join("all wells of this treatment were excluded or missing: no estimate", feature_note)
+        elif subset["batch"].nunique() == 1 and data["batch"].nunique() > 1:
+            row_note = _join(f"present in one batch only ({subset['batch'].iloc[0]}): "
+                             "estimated against that batch's controls", feature_note)
         rows.append({
             "feature": feature, "treatment": name, "condition": first["condition"], "dose": first["dose"],
-            "dose_unit": first["dose_unit"], "role": first["role"], "scale": "log" if log_scale else "linear",
+            "dose_unit": first["dose_unit"], "role": first["role"], "scale": scale,
             "estimate": estimate, "std_error": error, "df": float(df),
             "ci_low": estimate - t_quantile * error, "ci_high": estimate + t_quantile * error,
             "t_value": t_value, "p_value": float(2 * stats.t.sf(abs(t_value), df)) if np.isfinite(t_value) else np.nan,
             "n_wells": len(subset), "n_plates": subset["plate"].nunique(), "n_batches": subset["batch"].nunique(),
             "batch_variance": components[0], "plate_variance": components[1], "residual_variance": components[2],
             "icc_batch_plate": (components[0] + components[1]) / total if total > 0 else np.nan,
-            "converged": converged, "method": method, "note": note,
+            "converged": converged, "method": method, "note": row_note,
         })
     table = pd.DataFrame(rows)
     if not table.empty:
-        ratio = log_scale
-        table["ratio"] = np.exp(table["estimate"]) if ratio else np.nan
-        table["ratio_ci_low"] = np.exp(table["ci_low"]) if ratio else np.nan
-        table["ratio_ci_high"] = np.exp(table["ci_high"]) if ratio else np.nan
+        log_scale = scale == "log"
+        for column, source in (("ratio", "estimate"), ("ratio_ci_low", "ci_low"), ("ratio_ci_high", "ci_high")):
+            table[column] = np.exp(table[source]) if log_scale else np.nan
     return table
+
+
+def _treatment_catalogue(wells: pd.DataFrame, treatments: pd.DataFrame | None) -> pd.DataFrame:
+    """One row per non-reference treatment (index: treatment), from ``treatments`` or from the wells."""
+    source = treatments if treatments is not None else wells
+    source = source[source["role"].isin(["positive_control", "test"])]
+    return (source.drop_duplicates("treatment").set_index("treatment")[["condition", "dose", "dose_unit", "role"]]
+            .sort_index())
 
 
 def bh_qvalues(p_values: np.ndarray) -> np.ndarray:
@@ -185,16 +242,27 @@ def bh_qvalues(p_values: np.ndarray) -> np.ndarray:
     return q
 
 
-def screen_effects(wells: pd.DataFrame, features: list[str], log_features: set[str], ci_level: float,
-                   hit_q_value: float, hit_min_effect: float) -> pd.DataFrame:
-    """Effects of every treatment on every feature, with BH q-values across all pairs and hit calls."""
+def in_model(wells: pd.DataFrame) -> pd.Series:
+    """Wells that enter the screen model: kept, on a kept plate, with a role the model uses."""
     plate_kept = wells["plate_excluded_by"] == "" if "plate_excluded_by" in wells else True
-    kept = wells[(wells["excluded_by"] == "") & plate_kept & wells["role"].isin(["negative_control", "positive_control", "test"])]
-    missing = [f for f in features if f not in kept.columns]
-    if missing:
-        raise ValueError(f"features {missing} are not columns of the well profiles; check screen.features in config")
-    parts = [fit_feature_effects(kept, feature, feature in log_features, ci_level) for feature in features]
-    table = pd.concat([p for p in parts if not p.empty], ignore_index=True)
+    return (wells["excluded_by"] == "") & plate_kept & wells["role"].isin(["negative_control", "positive_control", "test"])
+
+
+def add_hit_calls(table: pd.DataFrame, hit_q_value: float, hit_min_effect: float) -> pd.DataFrame:
+    """BH q-values over all (feature, treatment) pairs with a p-value, and the hit call."""
+    table = table.copy()
     table["q_value"] = bh_qvalues(table["p_value"].to_numpy())
     table["hit"] = (table["q_value"] < hit_q_value) & (table["estimate"].abs() >= hit_min_effect)
     return table
+
+
+def screen_effects(model_wells: pd.DataFrame, features: list[str], scales: dict[str, str], ci_level: float,
+                   hit_q_value: float, hit_min_effect: float, fitter: str = "statsmodels",
+                   treatments: pd.DataFrame | None = None) -> pd.DataFrame:
+    """Effects of every treatment on every feature (model-scale values), BH q-values across all pairs, hit calls."""
+    missing = [f for f in features if f not in model_wells.columns]
+    if missing:
+        raise ValueError(f"features {missing} are not columns of the well profiles; check screen.features in config")
+    parts = [fit_feature_effects(model_wells, feature, scales[feature], ci_level, fitter, treatments) for feature in features]
+    table = pd.concat([p for p in parts if not p.empty], ignore_index=True)
+    return add_hit_calls(table, hit_q_value, hit_min_effect)

@@ -13,6 +13,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 PROVENANCE_KEY = b"plateloom_provenance"
+EXTRA_KEY = b"plateloom_extra"
 _PACKAGES = ("plateloom", "numpy", "scipy", "scikit-image", "pandas", "pyarrow", "statsmodels", "snakemake")
 
 
@@ -39,15 +40,18 @@ def _temporary_path(path: str) -> str:
     return os.path.join(folder, f".{os.path.basename(path)}.{os.getpid()}.tmp")
 
 
-def write_parquet(frame: pd.DataFrame, path: str, settings: object) -> None:
+def write_parquet(frame: pd.DataFrame, path: str, settings: object, extra: dict | None = None) -> None:
     """Write ``frame`` to ``path`` atomically (temporary file in the same folder, then rename).
 
-    An interrupted write never leaves a readable partial file at ``path``.
+    An interrupted write never leaves a readable partial file at ``path``. ``extra`` (JSON-able)
+    is stored in the file metadata and read back by ``read_extra``.
     """
     tmp = _temporary_path(path)
     table = pa.Table.from_pandas(frame, preserve_index=False)
     meta = dict(table.schema.metadata or {})
     meta[PROVENANCE_KEY] = json.dumps(provenance(settings), sort_keys=True).encode()
+    if extra is not None:
+        meta[EXTRA_KEY] = json.dumps(extra, sort_keys=True).encode()
     table = table.replace_schema_metadata(meta)
     pq.write_table(table, tmp)
     os.replace(tmp, path)
@@ -65,6 +69,12 @@ def read_provenance(path: str) -> dict[str, object]:
     """The provenance record stored in a plateloom Parquet file."""
     meta = pq.read_schema(path).metadata or {}
     return json.loads(meta[PROVENANCE_KEY])
+
+
+def read_extra(path: str) -> dict:
+    """The ``extra`` record stored by ``write_parquet`` (empty if none)."""
+    meta = pq.read_schema(path).metadata or {}
+    return json.loads(meta[EXTRA_KEY]) if EXTRA_KEY in meta else {}
 
 
 def well_part_path(root: str, well: str) -> str:

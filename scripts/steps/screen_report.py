@@ -12,9 +12,10 @@ def step() -> None:
     effects = pd.read_parquet(sm.input.effects)
     wells = pd.concat([pd.read_parquet(path) for path in sm.input.wells], ignore_index=True)
     ledger = pd.concat([pd.read_parquet(path) for path in sm.input.ledgers], ignore_index=True)
-    p = sm.params.settings
-    html = build_screen_report(effects, wells, ledger, p["ci_level"], p["hit_q_value"], p["hit_min_log_ratio"],
-                               read_provenance(sm.input.effects))
+    html = build_screen_report(effects, wells, ledger, dict(sm.params.settings), read_provenance(sm.input.effects),
+                               pd.read_parquet(sm.input.dose_response), pd.read_parquet(sm.input.dose_points),
+                               pd.read_parquet(sm.input.variance), pd.read_parquet(sm.input.components),
+                               pd.read_parquet(sm.input.design_check))
     write_text(html, sm.output.report)
 
 
