@@ -2,10 +2,13 @@
 
 Builds a screen sheet of 40 plates of 384 wells (all wells analysed) whose image folders are
 empty, then times (1) a dry run with every job still to do, (2) creating empty stand-ins for
-every output and `--touch` recording them complete, (3) a dry run of the complete screen. Prints job counts and times; the last line is
-the ratio of the complete-screen dry run to the goal of 10 s.
+every output and `--touch` recording them complete, (3) a dry run of the complete screen, and
+(4) with --full, a full run of the same job graph in which every rule's script is replaced by a
+stand-in that only creates its outputs: its wall time is Snakemake's overhead for the screen
+(scheduling plus one script start per job). Prints job counts and times; the last line is the
+ratio of the complete-screen dry run to the goal of 10 s.
 
-    python benchmarks/workflow_overhead.py
+    python benchmarks/workflow_overhead.py [--full]
 """
 
 from __future__ import annotations
@@ -57,7 +60,28 @@ def _create_outputs(results: Path) -> None:
         time.sleep(1.1)
 
 
+STAND_IN = """# Benchmark stand-in for every rule: create the outputs (and the log), compute nothing.
+import os
+sm = snakemake  # noqa: F821
+for path in list(sm.output) + list(sm.log):
+    if os.path.splitext(path)[1]:
+        os.makedirs(os.path.dirname(path) or ".", exist_ok=True)
+        open(path, "w").close()
+    else:
+        os.makedirs(path, exist_ok=True)
+"""
+
+
+def _use_stand_ins(work: Path) -> None:
+    """Point every rule's script: at the stand-in."""
+    (work / "scripts" / "steps" / "stand_in.py").write_text(STAND_IN)
+    for rules in (work / "workflow" / "rules").glob("*.smk"):
+        text = re.sub(r'"\.\./\.\./scripts/steps/\w+\.py"', '"../../scripts/steps/stand_in.py"', rules.read_text())
+        rules.write_text(text)
+
+
 def main() -> None:
+    full = "--full" in sys.argv
     work = Path(tempfile.mkdtemp(prefix="plateloom-overhead-"))
     for part in ("Snakefile", "workflow", "config", "resources", "scripts"):
         source = ROOT / part
@@ -92,6 +116,14 @@ def main() -> None:
     print(f"plates {PLATES}, wells {PLATES * ROWS * COLUMNS}, jobs {jobs}")
     print(f"dry run, all to do: {todo:.1f} s; touch all outputs: {touch:.1f} s; dry run, complete: {done:.1f} s")
     print("complete screen up to date:", "Nothing to be done" in output_done)
+    if full:
+        shutil.rmtree(work / "results")
+        shutil.rmtree(work / ".snakemake", ignore_errors=True)
+        _use_stand_ins(work)
+        run, _ = timed("--quiet")
+        n_jobs = sum(jobs.values())
+        print(f"full run with stand-in jobs: {run:.1f} s for {n_jobs} jobs on 2 cores "
+              f"({2 * run / n_jobs:.2f} core-seconds of overhead per job)")
     print(f"ratio dry-run(complete) / 10 s goal: {done / 10.0:.2f}")
     shutil.rmtree(work)
 

@@ -131,6 +131,17 @@ def test_reports_are_self_contained(finished_screen):
 
 
 @pytest.mark.slow
+def test_snakemake_report_holds_the_plate_and_screen_reports(finished_screen, tmp_path):
+    target = tmp_path / "run_report.zip"
+    run_snakemake(finished_screen, "--report", str(target))
+    import zipfile
+
+    names = zipfile.ZipFile(target).namelist()
+    for expected in ("screen.html", "TW-D1-P1.html", "volcano.png", "batch_pca.png", "effects.csv", "dose_response.csv"):
+        assert any(name.endswith(expected) for name in names), expected
+
+
+@pytest.mark.slow
 def test_hard_stop_during_per_well_stage_then_resume_gives_identical_tables(finished_screen, tmp_path):
     # SIGKILL the whole Snakemake process group while per-well jobs run, rerun, compare with the uninterrupted run.
     workdir = copy_workflow(tmp_path / "screen")
@@ -181,6 +192,10 @@ def test_planted_edge_effect_detected_then_removed_by_median_polish(finished_scr
 def test_new_plate_schedules_only_its_own_jobs_and_the_fan_ins(finished_screen):
     sheet = finished_screen / "config" / "plates.csv"
     sheet.write_text(sheet.read_text() + f"{NEW_PLATE},day3,96,config/layouts/demo_96.csv,demo_images/{NEW_PLATE}\n")
+    # a quick look at the new plate alone: its own jobs and report, no screen model
+    look = run_snakemake(finished_screen, "-n", "--config", f'only_plates=["{NEW_PLATE}"]')
+    look_jobs = pd.Series(re.findall(r"^rule (\w+):", look.stdout + look.stderr, flags=re.M)).value_counts().to_dict()
+    assert look_jobs == {"make_demo_plate": 1, "analyse_wells": 2, "plate_profiles": 1, "plate_report": 1, "all": 1}
     result = run_snakemake(finished_screen, "-n")
     output = result.stdout + result.stderr
     jobs = re.findall(r"^rule (\w+):", output, flags=re.M)

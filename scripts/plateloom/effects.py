@@ -89,7 +89,7 @@ def _fixed_plate_fit(data: pd.DataFrame) -> tuple[pd.Series, pd.Series, float]:
 
 def _codes(treatments: pd.Series) -> tuple[pd.Series, dict[str, str]]:
     """Formula-safe codes for treatment names; the reference sorts first (t0000)."""
-    names = sorted(set(treatments) - {REFERENCE})
+    names = sorted(set(pd.unique(treatments)) - {REFERENCE})
     mapping = {REFERENCE: "t0000", **{name: f"t{i + 1:04d}" for i, name in enumerate(names)}}
     return treatments.map(mapping), mapping
 
@@ -97,12 +97,15 @@ def _codes(treatments: pd.Series) -> tuple[pd.Series, dict[str, str]]:
 FITTERS = ("statsmodels", "exact")
 
 
-def _design(codes: pd.Series, mapping: dict[str, str]) -> tuple[np.ndarray, list[str]]:
-    """Intercept plus one indicator per non-reference treatment, named as statsmodels names them."""
-    levels = [code for code in sorted(mapping.values()) if code != mapping[REFERENCE]]
-    present = [code for code in levels if (codes == code).any()]
-    matrix = np.column_stack([np.ones(len(codes))] + [(codes == code).to_numpy(float) for code in present])
-    return matrix, ["Intercept"] + [f"C(code)[T.{code}]" for code in present]
+def _design(codes: pd.Series) -> tuple[np.ndarray, list[str]]:
+    """Intercept plus one indicator per non-reference treatment present, named as statsmodels names them."""
+    index, levels = pd.factorize(codes, sort=True)
+    levels = np.asarray(levels, dtype=str)
+    indicators = np.zeros((len(codes), len(levels)))
+    indicators[np.arange(len(codes)), index] = 1.0
+    keep = levels != "t0000"
+    matrix = np.column_stack([np.ones(len(codes)), indicators[:, keep]])
+    return matrix, ["Intercept"] + [f"C(code)[T.{code}]" for code in levels[keep]]
 
 
 def _fit(data: pd.DataFrame, mapping: dict[str, str], fitter: str) -> NestedFit:
@@ -112,9 +115,9 @@ def _fit(data: pd.DataFrame, mapping: dict[str, str], fitter: str) -> NestedFit:
     if fitter == "statsmodels":
         fit = fit_nested_random_intercepts(data, "y ~ C(code)", groups, nested)
     else:
-        design, names = _design(data["code"], mapping)
-        exact = fit_nested_exact(data["y"].to_numpy(), design, data[groups].to_numpy(),
-                                 data[nested].to_numpy() if nested else None)
+        design, names = _design(data["code"])
+        exact = fit_nested_exact(data["y"].to_numpy(), design, data[groups].to_numpy(int),
+                                 data[nested].to_numpy(int) if nested else None)
         if not exact.converged:
             raise RuntimeError("exact REML optimisation did not converge")
         total = exact.batch_variance + exact.plate_variance + exact.residual_variance
@@ -153,8 +156,8 @@ def fit_feature_effects(wells: pd.DataFrame, feature: str, scale: str, ci_level:
         raise ValueError(f"feature {feature}: no negative-control wells are left in the model; "
                          "check the layouts' role column and the exclusion ledger")
     data["code"], mapping = _codes(data["treatment"])
-    data["plate_code"] = pd.factorize(data["plate"], sort=True)[0].astype(str)
-    data["batch_code"] = pd.factorize(data["batch"], sort=True)[0].astype(str)
+    data["plate_code"] = pd.factorize(data["plate"], sort=True)[0]
+    data["batch_code"] = pd.factorize(data["batch"], sort=True)[0]
     n_wells, n_plates = len(data), data["plate"].nunique()
     n_treatments = len(mapping)
     df = max(n_wells - n_plates - (n_treatments - 1), 1)
@@ -183,19 +186,23 @@ def fit_feature_effects(wells: pd.DataFrame, feature: str, scale: str, ci_level:
     t_quantile = stats.t.ppf(0.5 + ci_level / 2, df)
     total = np.nansum(components)
     catalogue = _treatment_catalogue(wells, treatments)
+    groups = data.groupby("code")
+    counts = pd.DataFrame({"n_wells": groups.size(), "n_plates": groups["plate"].nunique(),
+                           "n_batches": groups["batch"].nunique(), "first_batch": groups["batch"].first()})
+    n_batches_all = data["batch"].nunique()
     rows = []
     for name, first in catalogue.iterrows():
         code = mapping.get(name)
-        subset = data[data["code"] == code] if code else data.iloc[0:0]
+        count = counts.loc[code] if code in counts.index else None
         term = f"C(code)[T.{code}]"
         estimate = float(params.get(term, np.nan)) if code else np.nan
         error = float(errors.get(term, np.nan)) if code else np.nan
         t_value = estimate / error if error > 0 else np.nan
         row_note = feature_note
-        if subset.empty:
+        if count is None:
             row_note = _join("all wells of this treatment were excluded or missing: no estimate", feature_note)
-        elif subset["batch"].nunique() == 1 and data["batch"].nunique() > 1:
-            row_note = _join(f"present in one batch only ({subset['batch'].iloc[0]}): "
+        elif count["n_batches"] == 1 and n_batches_all > 1:
+            row_note = _join(f"present in one batch only ({count['first_batch']}): "
                              "estimated against that batch's controls", feature_note)
         rows.append({
             "feature": feature, "treatment": name, "condition": first["condition"], "dose": first["dose"],
@@ -203,7 +210,9 @@ def fit_feature_effects(wells: pd.DataFrame, feature: str, scale: str, ci_level:
             "estimate": estimate, "std_error": error, "df": float(df),
             "ci_low": estimate - t_quantile * error, "ci_high": estimate + t_quantile * error,
             "t_value": t_value, "p_value": float(2 * stats.t.sf(abs(t_value), df)) if np.isfinite(t_value) else np.nan,
-            "n_wells": len(subset), "n_plates": subset["plate"].nunique(), "n_batches": subset["batch"].nunique(),
+            "n_wells": int(count["n_wells"]) if count is not None else 0,
+            "n_plates": int(count["n_plates"]) if count is not None else 0,
+            "n_batches": int(count["n_batches"]) if count is not None else 0,
             "batch_variance": components[0], "plate_variance": components[1], "residual_variance": components[2],
             "icc_batch_plate": (components[0] + components[1]) / total if total > 0 else np.nan,
             "converged": converged, "method": method, "note": row_note,

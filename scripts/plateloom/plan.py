@@ -10,6 +10,7 @@ import pandas as pd
 from .demo import demo_plates, load_scenario
 from .errors import InputError
 from .screen import PlateEntry, analysed_wells, chunk_wells, load_layout, load_screen_sheet
+from .sizing import ImagingSize, JobSize, analyse_wells_size, screen_size
 
 DEMO_IMAGE_ROOT = "demo_images"
 
@@ -24,10 +25,23 @@ class ScreenPlan:
     demo_plates: set[str] = field(default_factory=set)
     features: list[str] = field(default_factory=list)
     log_features: list[str] = field(default_factory=list)
+    imaging: dict[str, ImagingSize] = field(default_factory=dict)
+    sizing: dict = field(default_factory=dict)
 
     def chunk_ids(self, plate: str) -> list[str]:
         """Zero-padded chunk ids of one plate ('000', '001', ...)."""
         return [f"{i:03d}" for i in range(len(self.chunks[plate]))]
+
+    def well_job_size(self, plate: str, chunk: str) -> JobSize:
+        """mem_mb and runtime of the per-well job of one chunk, from the expected image sizes."""
+        return analyse_wells_size(self.imaging[plate], len(self.chunks[plate][int(chunk)]),
+                                  float(self.sizing.get("seconds_per_megapixel_frame", 1.5)),
+                                  float(self.sizing.get("safety_factor", 2.0)))
+
+    def screen_job_size(self) -> JobSize:
+        """mem_mb and runtime of a screen-level job, from the number of wells and features."""
+        n_wells = sum(len(wells) for chunks in self.chunks.values() for wells in chunks)
+        return screen_size(n_wells, len(self.features), float(self.sizing.get("safety_factor", 2.0)))
 
 
 def channel_names(config: dict) -> dict[str, str]:
@@ -61,8 +75,14 @@ def plan_screen(config: dict) -> ScreenPlan:
     channel_names(config)
     entries = load_screen_sheet(config["screen_sheet"])
     scenario_path = config.get("demo", {}).get("scenario", "")
-    scenario_plates = demo_plates(load_scenario(scenario_path)) if scenario_path and os.path.isfile(scenario_path) else {}
+    demo = config.get("demo", {})
+    scenario = (load_scenario(scenario_path, demo.get("frames"), demo.get("image_size_px"))
+                if scenario_path and os.path.isfile(scenario_path) else None)
+    scenario_plates = demo_plates(scenario) if scenario else {}
     plan = ScreenPlan({}, {}, {})
+    plan.sizing = dict(config.get("job_sizing", {}))
+    expected = ImagingSize(int(plan.sizing.get("image_side_px", 1024)), int(plan.sizing.get("frames_per_site", 100)),
+                           int(plan.sizing.get("sites_per_well", 4)), len(config["channels"]))
     layouts_by_path: dict[tuple[str, int], pd.DataFrame] = {}
     for entry in entries:
         key = (entry.layout, entry.plate_format)
@@ -80,8 +100,11 @@ def plan_screen(config: dict) -> ScreenPlan:
         plan.plates[entry.plate] = entry
         plan.layouts[entry.plate] = layout
         plan.chunks[entry.plate] = chunk_wells(wells, int(config["chunk_wells"]))
+        plan.imaging[entry.plate] = expected
         if is_demo:
             plan.demo_plates.add(entry.plate)
+            plan.imaging[entry.plate] = ImagingSize(int(scenario["image_size_px"]), int(scenario["frames"]),
+                                                    int(scenario["sites_per_well"]), len(config["channels"]))
     plan.features = resolve_features(config["screen"]["features"], config)
     plan.log_features = resolve_features(config["screen"]["log_scale_features"], config)
     return plan

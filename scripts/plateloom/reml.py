@@ -22,7 +22,8 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import optimize
+import pandas as pd
+from scipy import optimize, sparse
 
 
 @dataclass(frozen=True)
@@ -51,16 +52,17 @@ class _GroupSums:
 
 
 def _group_sums(y: np.ndarray, design: np.ndarray, batch: np.ndarray, plate: np.ndarray) -> _GroupSums:
-    batch_index = np.unique(batch, return_inverse=True)[1]
-    pairs, plate_index = np.unique(np.column_stack([batch_index, np.unique(plate, return_inverse=True)[1]]),
-                                   axis=0, return_inverse=True)
-    plate_index = plate_index.ravel()
+    batch_index = pd.factorize(batch, sort=True)[0]
+    plate_codes = pd.factorize(plate, sort=True)[0]
+    plate_index, keys = pd.factorize(batch_index.astype(np.int64) * (int(plate_codes.max()) + 1) + plate_codes, sort=True)
+    pairs = np.column_stack([np.asarray(keys) // (int(plate_codes.max()) + 1), np.asarray(keys) % (int(plate_codes.max()) + 1)])
     columns = np.column_stack([design, y])
-    plate_sums = np.zeros((len(pairs), columns.shape[1]))
-    np.add.at(plate_sums, plate_index, columns)
+    n_plates = len(pairs)
+    membership_rows = sparse.csr_matrix((np.ones(len(y)), (plate_index, np.arange(len(y)))), shape=(n_plates, len(y)))
+    plate_sums = np.asarray(membership_rows @ columns)
     n_batches = int(batch_index.max()) + 1
     membership = (np.arange(n_batches)[:, None] == pairs[:, 0][None, :]).astype(float)
-    return _GroupSums(columns.T @ columns, plate_sums, np.bincount(plate_index, minlength=len(pairs)).astype(float),
+    return _GroupSums(columns.T @ columns, plate_sums, np.bincount(plate_index, minlength=n_plates).astype(float),
                       pairs[:, 0], membership, n_batches, len(y), design.shape[1])
 
 

@@ -38,6 +38,16 @@ def figure_tag(figure: plt.Figure, alt: str) -> str:
     return f'<img alt="{escape(alt)}" src="data:image/png;base64,{data}">'
 
 
+def write_figure(figure: plt.Figure, path: str) -> None:
+    """Save a figure as PNG atomically (temporary file, then rename) and close it."""
+    from .tables import _temporary_path
+
+    tmp = _temporary_path(path)
+    figure.savefig(tmp, format="png", dpi=110, bbox_inches="tight", metadata={"Software": None})
+    plt.close(figure)
+    os.replace(tmp, path)
+
+
 def table_tag(frame: pd.DataFrame, float_format: str = "{:.4g}") -> str:
     """An HTML table of ``frame`` with every cell escaped."""
     formatted = frame.copy()

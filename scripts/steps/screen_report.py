@@ -1,7 +1,8 @@
 """Rule screen_report: the self-contained HTML report of the screen."""
 import pandas as pd
 
-from plateloom.screen_report import build_screen_report
+from plateloom.report import write_figure
+from plateloom.screen_report import batch_components_plot, build_screen_report, volcano_plot
 from plateloom.steps import run_step
 from plateloom.tables import read_provenance, write_text
 
@@ -16,6 +17,8 @@ def step() -> None:
                                pd.read_parquet(sm.input.dose_response), pd.read_parquet(sm.input.dose_points),
                                pd.read_parquet(sm.input.variance), pd.read_parquet(sm.input.components),
                                pd.read_parquet(sm.input.design_check))
+    write_figure(volcano_plot(effects), sm.output.volcano)
+    write_figure(batch_components_plot(pd.read_parquet(sm.input.components)), sm.output.batch_pca)
     write_text(html, sm.output.report)
 
 

@@ -42,7 +42,8 @@ rule plate_report:
         edge=f"{RESULTS}/edge_effects/plate={{plate}}/part-0.parquet",
         notes=f"{RESULTS}/plate_notes/{{plate}}.json",
     output:
-        report=f"{RESULTS}/reports/plates/{{plate}}.html",
+        report=report(f"{RESULTS}/reports/plates/{{plate}}.html", caption="../report/plate_report.rst",
+                      category="Plates", subcategory="{plate}"),
     params:
         batch=lambda w: PLAN.plates[w.plate].batch,
         plate_format=lambda w: PLAN.plates[w.plate].plate_format,

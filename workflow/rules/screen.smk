@@ -22,6 +22,7 @@ SCREEN_SETTINGS = {
 ALL_WELL_TABLES = expand(f"{RESULTS}/wells/plate={{plate}}/part-0.parquet", plate=sorted(PLAN.plates))
 ALL_LEDGERS = expand(f"{RESULTS}/exclusions/plate={{plate}}/part-0.parquet", plate=sorted(PLAN.plates))
 MODEL_WELLS = f"{RESULTS}/screen/model_wells.parquet"
+SCREEN_JOB = PLAN.screen_job_size()
 EFFECT_PARTS = expand(f"{RESULTS}/screen/effects_parts/chunk={{chunk}}.parquet",
                       chunk=[f"{i:03d}" for i in range(len(FEATURE_CHUNKS))])
 
@@ -42,8 +43,8 @@ rule correct_batches:
         f"{RESULTS}/benchmarks/correct_batches.tsv"
     threads: 1
     resources:
-        mem_mb=4000,
-        runtime=30,
+        mem_mb=SCREEN_JOB.mem_mb,
+        runtime=SCREEN_JOB.runtime_min,
     script:
         "../../scripts/steps/correct_batches.py"
 
@@ -65,8 +66,8 @@ rule fit_effects:
         f"{RESULTS}/benchmarks/fit_effects/{{chunk}}.tsv"
     threads: 1
     resources:
-        mem_mb=4000,
-        runtime=60,
+        mem_mb=SCREEN_JOB.mem_mb,
+        runtime=SCREEN_JOB.runtime_min,
     script:
         "../../scripts/steps/fit_effects.py"
 
@@ -76,7 +77,7 @@ rule screen_effects:
         parts=EFFECT_PARTS,
     output:
         parquet=f"{RESULTS}/effects.parquet",
-        csv=f"{RESULTS}/effects.csv",
+        csv=report(f"{RESULTS}/effects.csv", caption="../report/effects.rst", category="Screen"),
     params:
         settings=SCREEN_SETTINGS,
     log:
@@ -85,8 +86,8 @@ rule screen_effects:
         f"{RESULTS}/benchmarks/screen_effects.tsv"
     threads: 1
     resources:
-        mem_mb=2000,
-        runtime=10,
+        mem_mb=SCREEN_JOB.mem_mb,
+        runtime=SCREEN_JOB.runtime_min,
     script:
         "../../scripts/steps/screen_effects.py"
 
@@ -96,7 +97,7 @@ rule dose_response:
         model_wells=MODEL_WELLS,
     output:
         parquet=f"{RESULTS}/dose_response.parquet",
-        csv=f"{RESULTS}/dose_response.csv",
+        csv=report(f"{RESULTS}/dose_response.csv", caption="../report/dose_response.rst", category="Screen"),
         points=f"{RESULTS}/screen/dose_response_points.parquet",
     params:
         settings=SCREEN_SETTINGS,
@@ -106,8 +107,8 @@ rule dose_response:
         f"{RESULTS}/benchmarks/dose_response.tsv"
     threads: 1
     resources:
-        mem_mb=2000,
-        runtime=30,
+        mem_mb=SCREEN_JOB.mem_mb,
+        runtime=SCREEN_JOB.runtime_min,
     script:
         "../../scripts/steps/dose_response.py"
 
@@ -118,7 +119,7 @@ rule design_check:
         effects=f"{RESULTS}/effects.parquet",
     output:
         parquet=f"{RESULTS}/design_check.parquet",
-        csv=f"{RESULTS}/design_check.csv",
+        csv=report(f"{RESULTS}/design_check.csv", caption="../report/design_check.rst", category="Screen"),
     params:
         settings=SCREEN_SETTINGS,
     log:
@@ -127,8 +128,8 @@ rule design_check:
         f"{RESULTS}/benchmarks/design_check.tsv"
     threads: 1
     resources:
-        mem_mb=2000,
-        runtime=60,
+        mem_mb=SCREEN_JOB.mem_mb,
+        runtime=SCREEN_JOB.runtime_min,
     script:
         "../../scripts/steps/design_check.py"
 
@@ -144,7 +145,10 @@ rule screen_report:
         components=f"{RESULTS}/screen/batch_principal_components.parquet",
         design_check=f"{RESULTS}/design_check.parquet",
     output:
-        report=f"{RESULTS}/reports/screen.html",
+        report=report(f"{RESULTS}/reports/screen.html", caption="../report/screen_report.rst", category="Screen"),
+        volcano=report(f"{RESULTS}/reports/figures/volcano.png", caption="../report/volcano.rst", category="Figures"),
+        batch_pca=report(f"{RESULTS}/reports/figures/batch_pca.png", caption="../report/batch_pca.rst",
+                         category="Figures"),
     params:
         settings=SCREEN_SETTINGS,
     log:
@@ -153,7 +157,7 @@ rule screen_report:
         f"{RESULTS}/benchmarks/screen_report.tsv"
     threads: 1
     resources:
-        mem_mb=2000,
-        runtime=10,
+        mem_mb=SCREEN_JOB.mem_mb,
+        runtime=SCREEN_JOB.runtime_min,
     script:
         "../../scripts/steps/screen_report.py"

@@ -31,7 +31,7 @@ rule analyse_wells:
         f"{RESULTS}/benchmarks/analyse_wells/{{plate}}_{{chunk}}.tsv"
     threads: 1
     resources:
-        mem_mb=2000,
-        runtime=60,
+        mem_mb=lambda w: PLAN.well_job_size(w.plate, w.chunk).mem_mb,
+        runtime=lambda w: PLAN.well_job_size(w.plate, w.chunk).runtime_min,
     script:
         "../../scripts/steps/analyse_wells.py"
