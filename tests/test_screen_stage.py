@@ -186,3 +186,29 @@ def test_design_check_command_explains_a_missing_run(tmp_path, capsys):
 
     assert main(["design-check", "--results", str(tmp_path / "nowhere")]) == 2
     assert "Run the workflow first" in capsys.readouterr().err
+
+
+def test_a_fit_that_fails_to_converge_is_marked_and_falls_back(monkeypatch):
+    import plateloom.effects as effects
+
+    def refuse(*args, **kwargs):
+        raise RuntimeError("mixed model did not converge: lbfgs: not converged")
+
+    monkeypatch.setattr(effects, "fit_nested_random_intercepts", refuse)
+    model = build_model_wells(_wells(seed=9), ["value"], {"value"}, "control_location")
+    table = screen_effects(model.wells, ["value"], model.scales, 0.95, 0.05, 0.1, "statsmodels")
+    x = table.set_index("treatment").loc["X 1 uM"]
+    assert not x["converged"] and x["method"] == "fallback: OLS with plate fixed effects"
+    assert "did not converge" in x["note"] and "fallback used" in x["note"]
+    # the fallback still estimates the planted 0.3 within its interval (plate fixed effects absorb the offsets)
+    assert x["ci_low"] < 0.3 < x["ci_high"]
+
+
+def test_batch_whose_controls_were_all_excluded_is_left_unaligned_and_named():
+    wells = _wells(seed=10)
+    wells.loc[(wells["batch"] == "d1") & (wells["role"] == "negative_control"), "excluded_by"] = "min_cells_per_well: 0 < 5"
+    model = build_model_wells(wells, ["value", "other"], {"value", "other"}, "control_location")
+    assert model.notes and "batch d1 has no negative-control well left" in model.notes[0]
+    assert model.wells[["value", "other"]].notna().all().all()        # no silent NaN
+    effects = screen_effects(model.wells, ["value"], model.scales, 0.95, 0.05, 0.1, "exact")
+    assert effects["estimate"].notna().all()

@@ -214,3 +214,29 @@ def test_new_plate_schedules_only_its_own_jobs_and_the_fan_ins(finished_screen):
     after = {p.name: (p.read_bytes(), p.stat().st_mtime_ns) for p in reports}
     assert after == before
     assert (finished_screen / f"results/reports/plates/{NEW_PLATE}.html").exists()
+
+
+@pytest.mark.slow
+def test_keep_going_finishes_the_good_plate_when_one_image_is_corrupt(tmp_path):
+    # Two plates of the demo, one with a truncated TIFF: with --keep-going the good plate's report is
+    # written, the bad chunk's log names the file and the fix, and the failed job leaves no output behind.
+    workdir = copy_workflow(tmp_path / "screen")
+    sheet = workdir / "config" / "plates.csv"
+    lines = sheet.read_text().splitlines()
+    sheet.write_text("\n".join([lines[0]] + [line for line in lines[1:] if line.split(",")[0] in ("TW-D1-P1", "TW-D2-P1")]) + "\n")
+    config_path = workdir / "config" / "config.yaml"
+    config = yaml.safe_load(config_path.read_text())
+    config["demo"]["frames"] = 3
+    config_path.write_text(yaml.safe_dump(config, sort_keys=False))
+    run_snakemake(workdir, "demo_images/TW-D1-P1", "demo_images/TW-D2-P1")
+    bad = workdir / "demo_images" / "TW-D2-P1" / "A01_s1_nuclear.tif"
+    bad.write_bytes(bad.read_bytes()[:200])
+    result = run_snakemake(workdir, "--keep-going", check=False)
+    assert result.returncode != 0
+    assert (workdir / "results/reports/plates/TW-D1-P1.html").exists()
+    assert not (workdir / "results/reports/plates/TW-D2-P1.html").exists()
+    assert not (workdir / "results/reports/screen.html").exists()
+    log = (workdir / "results/logs/analyse_wells/TW-D2-P1_000.log").read_text()
+    assert "A01_s1_nuclear.tif: cannot be read as TIFF" in log and "re-copy the file" in log
+    assert not (workdir / "results/cells/plate=TW-D2-P1/chunk=000").exists()
+    assert (workdir / "results/cells/plate=TW-D2-P1/chunk=001").exists()      # the other chunk of that plate is kept

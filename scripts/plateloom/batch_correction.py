@@ -42,8 +42,18 @@ def model_scale(wells: pd.DataFrame, features: list[str], log_features: set[str]
     return values, scales
 
 
+def batches_without_controls(batch: np.ndarray, is_control: np.ndarray) -> list[str]:
+    """Batches with no negative-control well (in the rows given)."""
+    batch, is_control = np.asarray(batch), np.asarray(is_control, bool)
+    return sorted(str(b) for b in np.unique(batch) if not np.any(is_control[batch == b]))
+
+
 def align_to_controls(values: pd.DataFrame, batch: np.ndarray, is_control: np.ndarray, scale: bool) -> pd.DataFrame:
-    """Shift (and, with ``scale``, rescale) each batch so its negative controls match the pooled controls."""
+    """Shift (and, with ``scale``, rescale) each batch so its negative controls match the pooled controls.
+
+    A batch without negative controls cannot be aligned and is left as it is
+    (``batches_without_controls`` names it, for the report).
+    """
     corrected = values.copy()
     batch = np.asarray(batch)
     is_control = np.asarray(is_control, bool)
@@ -55,6 +65,8 @@ def align_to_controls(values: pd.DataFrame, batch: np.ndarray, is_control: np.nd
     for name in np.unique(batch):
         rows = batch == name
         batch_controls = values[rows & is_control]
+        if batch_controls.empty:
+            continue
         centre = batch_controls.median()
         factor = 1.0
         if scale:

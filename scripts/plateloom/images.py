@@ -77,6 +77,17 @@ def index_plate_images(folder: str, template: str, wells: int, channels: list[st
     return ImageIndex(table, stacks, tuple(unmatched))
 
 
+def unmatched_note(folder: str, template: str, wells: int, channels: list[str], shown: int = 5) -> str | None:
+    """A plate-report warning listing files of the image folder that were not analysed, or None."""
+    index = index_plate_images(folder, template, wells, channels)
+    files = [name for name in index.unmatched if not name.startswith(".")]
+    if not files:
+        return None
+    listed = ", ".join(repr(name) for name in files[:shown]) + (f" and {len(files) - shown} more" if len(files) > shown else "")
+    return (f"{len(files)} file(s) in {folder} match neither images.filename_template {template!r} nor a configured "
+            f"channel and were not analysed: {listed}. Fix: rename them, or adjust the template or channels.")
+
+
 def saturated_fraction(plane: np.ndarray) -> float:
     """Fraction of pixels at the largest value of an integer pixel type (NaN for float images)."""
     if not np.issubdtype(plane.dtype, np.integer):

@@ -122,7 +122,7 @@ def _method_text(settings: dict, provenance: dict) -> str:
 def build_screen_report(effects: pd.DataFrame, wells: pd.DataFrame, ledger: pd.DataFrame, settings: dict,
                         provenance: dict, dose_fits: pd.DataFrame | None = None, dose_points: pd.DataFrame | None = None,
                         variance: pd.DataFrame | None = None, components: pd.DataFrame | None = None,
-                        design: pd.DataFrame | None = None) -> str:
+                        design: pd.DataFrame | None = None, correction_notes: list[str] | None = None) -> str:
     """The self-contained HTML report of the whole screen."""
     ci_level, hit_q_value, hit_min_effect = settings["ci_level"], settings["hit_q_value"], settings["hit_min_log_ratio"]
     plates = wells.groupby(["batch", "plate"]).agg(wells=("well", "size"),
@@ -150,16 +150,20 @@ def build_screen_report(effects: pd.DataFrame, wells: pd.DataFrame, ledger: pd.D
                    + table_tag(ledger[ledger["level"] != "site_frame"]))
     batch_html = "<p>No diagnostics.</p>"
     if variance is not None and components is not None:
-        shares = variance.pivot(index="feature", columns="stage", values="batch_share").reset_index()
-        shares = shares.rename(columns={"before": "batch_share_before", "after": "batch_share_after"})
+        wide = variance.pivot(index="feature", columns="stage",
+                              values=["batch_share", "plate_share", "residual_share"])
+        wide.columns = [f"{share}_{stage}" for share, stage in wide.columns]
+        order = [f"{share}_{stage}" for share in ("batch_share", "plate_share", "residual_share")
+                 for stage in ("before", "after")]
         batch_html = (figure_tag(batch_components_plot(components), "principal components by batch")
                       + "<p>Share of treatment-adjusted variance between batches, plates within batch and wells, "
-                        "before and after correction:</p>" + table_tag(variance)
-                      + table_tag(shares))
+                        "before and after correction:</p>" + table_tag(wide[order].reset_index()))
+    if correction_notes:
+        batch_html += "<ul>" + "".join(f"<li>{escape(n)}</li>" for n in correction_notes) + "</ul>"
     dose_html = "<p>No compound has enough doses for a dose-response fit.</p>"
     if dose_fits is not None and len(dose_fits):
-        shown = dose_fits[["feature", "condition", "dose_unit", "ec50", "ec50_ci_low", "ec50_ci_high", "hill", "bottom",
-                           "top", "n_wells", "identifiable", "flag"]]
+        shown = dose_fits[["feature", "condition", "ec50", "ec50_ci_low", "ec50_ci_high", "dose_unit", "hill", "top",
+                           "identifiable", "flag"]]
         figures = "".join(
             figure_tag(dose_response_plot(fit, dose_points[(dose_points["feature"] == fit["feature"])
                                                            & ((dose_points["condition"] == fit["condition"])

@@ -7,7 +7,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from .batch_correction import correct_batches, model_scale, principal_components, variance_shares
+from .batch_correction import batches_without_controls, correct_batches, model_scale, principal_components, variance_shares
 from .effects import in_model
 
 KEY_COLUMNS = ["plate", "batch", "well", "row", "column", "is_edge", "role", "condition", "dose", "dose_unit", "treatment"]
@@ -21,6 +21,7 @@ class ModelWells:
     scales: dict[str, str]          # feature -> "log" | "linear"
     variance: pd.DataFrame          # feature, stage (before/after), batch_share, plate_share, residual_share
     components: pd.DataFrame        # plate, well, batch, stage, pc1, pc2, pc1_share, pc2_share
+    notes: list[str]                # what the correction could not do, for the report
 
 
 def build_model_wells(wells: pd.DataFrame, features: list[str], log_features: set[str], method: str) -> ModelWells:
@@ -42,6 +43,10 @@ def build_model_wells(wells: pd.DataFrame, features: list[str], log_features: se
     is_control = (kept["role"] == "negative_control").to_numpy()
     treatment = np.where(is_control, "negative_control", kept["treatment"])
     corrected = correct_batches(values, kept["batch"].to_numpy(), is_control, treatment, method)
+    notes = [f"batch {name} has no negative-control well left in the model: it was not aligned "
+             "(its effects still come from within-plate contrasts where its plates have controls; check the ledger)"
+             for name in batches_without_controls(kept["batch"].to_numpy(), is_control)
+             if method in ("control_location", "control_location_scale")]
     diagnostics_v, diagnostics_pc = [], []
     for stage, table in (("before", values), ("after", corrected)):
         shares = variance_shares(table, kept["batch"].to_numpy(), kept["plate"].to_numpy(), treatment)
@@ -50,7 +55,8 @@ def build_model_wells(wells: pd.DataFrame, features: list[str], log_features: se
         diagnostics_pc.append(kept[["plate", "well", "batch"]].assign(stage=stage, pc1=scores[:, 0], pc2=scores[:, 1],
                                                                        pc1_share=explained[0], pc2_share=explained[1]))
     model = pd.concat([kept[[c for c in KEY_COLUMNS if c in kept]], corrected], axis=1)
-    return ModelWells(model, scales, pd.concat(diagnostics_v, ignore_index=True), pd.concat(diagnostics_pc, ignore_index=True))
+    return ModelWells(model, scales, pd.concat(diagnostics_v, ignore_index=True), pd.concat(diagnostics_pc, ignore_index=True),
+                      notes)
 
 
 def treatment_catalogue(wells: pd.DataFrame) -> pd.DataFrame:

@@ -12,7 +12,7 @@ def step() -> None:
     wells = pd.concat([pd.read_parquet(path) for path in sm.input.wells], ignore_index=True)
     p = sm.params.settings
     model = build_model_wells(wells, list(p["features"]), set(p["log_features"]), p["batch_correction"])
-    write_parquet(model.wells, sm.output.model_wells, dict(p), extra={"scales": model.scales})
+    write_parquet(model.wells, sm.output.model_wells, dict(p), extra={"scales": model.scales, "notes": model.notes})
     write_parquet(treatment_catalogue(wells), sm.output.treatments, dict(p))
     write_parquet(model.variance, sm.output.variance, dict(p))
     write_parquet(model.components, sm.output.components, dict(p))

@@ -2,6 +2,7 @@
 import json
 
 from plateloom.exclusions import ExclusionRules
+from plateloom.images import unmatched_note
 from plateloom.plate_stage import PlateSettings, build_plate_tables
 from plateloom.profiles import read_plate_dataset
 from plateloom.screen import load_layout
@@ -18,11 +19,13 @@ def step() -> None:
                                 read_plate_dataset(list(sm.input.site_qc)), layout, sm.wildcards.plate, sm.params.batch,
                                 sm.params.plate_format, PlateSettings(**settings["plate"]),
                                 ExclusionRules.from_config(settings["exclusion_rules"]))
+    note = unmatched_note(sm.params.image_folder, sm.params.template, sm.params.plate_format, list(sm.params.channels))
+    warnings = tables.warnings + ([note] if note else [])
     write_parquet(tables.profile, sm.output.wells, settings)
     write_parquet(tables.qc, sm.output.qc, settings)
     write_parquet(tables.ledger, sm.output.ledger, settings)
     write_parquet(tables.edge, sm.output.edge, settings)
-    write_text(json.dumps({"plate": sm.wildcards.plate, "warnings": tables.warnings,
+    write_text(json.dumps({"plate": sm.wildcards.plate, "warnings": warnings,
                                    "site_qc": tables.site_summary}, indent=1), sm.output.notes)
 
 

@@ -4,7 +4,7 @@ import pandas as pd
 from plateloom.report import write_figure
 from plateloom.screen_report import batch_components_plot, build_screen_report, volcano_plot
 from plateloom.steps import run_step
-from plateloom.tables import read_provenance, write_text
+from plateloom.tables import read_extra, read_provenance, write_text
 
 sm = snakemake  # noqa: F821  (injected by Snakemake's script directive)
 
@@ -16,7 +16,7 @@ def step() -> None:
     html = build_screen_report(effects, wells, ledger, dict(sm.params.settings), read_provenance(sm.input.effects),
                                pd.read_parquet(sm.input.dose_response), pd.read_parquet(sm.input.dose_points),
                                pd.read_parquet(sm.input.variance), pd.read_parquet(sm.input.components),
-                               pd.read_parquet(sm.input.design_check))
+                               pd.read_parquet(sm.input.design_check), read_extra(sm.input.model_wells).get("notes", []))
     write_figure(volcano_plot(effects), sm.output.volcano)
     write_figure(batch_components_plot(pd.read_parquet(sm.input.components)), sm.output.batch_pca)
     write_text(html, sm.output.report)

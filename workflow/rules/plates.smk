@@ -21,6 +21,9 @@ rule plate_profiles:
     params:
         batch=lambda w: PLAN.plates[w.plate].batch,
         plate_format=lambda w: PLAN.plates[w.plate].plate_format,
+        image_folder=lambda w: PLAN.plates[w.plate].image_folder,
+        template=config["images"]["filename_template"],
+        channels=[c["name"] for c in config["channels"]],
         settings=PLATE_SETTINGS,
     log:
         f"{RESULTS}/logs/plate_profiles/{{plate}}.log",

@@ -144,6 +144,7 @@ rule screen_report:
         variance=f"{RESULTS}/screen/batch_variance_shares.parquet",
         components=f"{RESULTS}/screen/batch_principal_components.parquet",
         design_check=f"{RESULTS}/design_check.parquet",
+        model_wells=MODEL_WELLS,
     output:
         report=report(f"{RESULTS}/reports/screen.html", caption="../report/screen_report.rst", category="Screen"),
         volcano=report(f"{RESULTS}/reports/figures/volcano.png", caption="../report/volcano.rst", category="Figures"),

@@ -1,0 +1,143 @@
+"""The bad-input catalogue, second part: images, sites and plates that are wrong in ways a lab meets.
+
+Each case asserts the message (file, well, fix) or the QC flag and ledger entry, and that what
+was right is kept. The first part (layouts, screen sheets, templates, truncated TIFFs, missing
+frames and folders, unknown config keys and wells) is in test_inputs.py.
+"""
+
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+import tifffile
+
+from plateloom.errors import InputError
+from plateloom.exclusions import ExclusionRules
+from plateloom.images import index_plate_images, stream_site, unmatched_note
+from plateloom.plate_stage import PlateSettings, build_plate_tables
+from plateloom.screen_stage import build_model_wells
+from plateloom.wellwork import WellSettings, analyse_well
+
+from conftest import run_snakemake
+from test_plate_stage import _plate
+
+TEMPLATE = "{well}_s{site}_{channel}.tif"
+
+
+def _settings(channels=("dna",)) -> WellSettings:
+    return WellSettings(tuple(channels), "dna", 1.0, 1.0, 1.0, 10.0, 5.0, 5.0, 3)
+
+
+def _nuclei_stack(frames=3, size=64, level=1000, dtype=np.uint16):
+    yy, xx = np.mgrid[:size, :size]
+    image = np.full((size, size), 100.0)
+    image[(yy - 32) ** 2 + (xx - 32) ** 2 < 64] += level
+    return np.repeat(image[None], frames, axis=0).astype(dtype)
+
+
+def _index(folder: Path, channels=("dna",)):
+    return index_plate_images(str(folder), TEMPLATE, 96, list(channels))
+
+
+def test_files_that_fit_no_template_field_are_listed_in_a_plate_note(tmp_path):
+    tifffile.imwrite(tmp_path / "A01_s1_dna.tif", _nuclei_stack(), photometric="minisblack")
+    (tmp_path / "A01_s1_dna_copy.tif").write_bytes(b"x")
+    (tmp_path / "notes.txt").write_text("from the microscope")
+    (tmp_path / "A01_s1_brightfield.tif").write_bytes(b"x")       # a channel not in config
+    note = unmatched_note(str(tmp_path), TEMPLATE, 96, ["dna"])
+    assert note.startswith("3 file(s) in ")
+    for name in ("A01_s1_dna_copy.tif", "notes.txt", "A01_s1_brightfield.tif"):
+        assert repr(name) in note
+    assert "Fix: rename them" in note
+    assert len(_index(tmp_path).table) == 1                          # the good file is still analysed
+
+
+def test_rgb_page_is_named_with_its_shape(tmp_path):
+    tifffile.imwrite(tmp_path / "A01_s1_dna.tif", np.zeros((32, 32, 3), np.uint8), photometric="rgb")
+    with pytest.raises(InputError, match=r"A01_s1_dna.tif: expected one 2-D plane per page, found shape \(32, 32, 3\)"):
+        list(stream_site(_index(tmp_path), "A01", 1, ["dna"]))
+
+
+def test_channels_of_different_sizes_are_named(tmp_path):
+    tifffile.imwrite(tmp_path / "A01_s1_dna.tif", _nuclei_stack(size=64), photometric="minisblack")
+    tifffile.imwrite(tmp_path / "A01_s1_gfp.tif", _nuclei_stack(size=48), photometric="minisblack")
+    with pytest.raises(InputError, match=r"A01_s1_gfp.tif: plane shape \(48, 48\) differs"):
+        list(stream_site(_index(tmp_path, ("dna", "gfp")), "A01", 1, ["dna", "gfp"]))
+
+
+def test_missing_channel_is_named(tmp_path):
+    tifffile.imwrite(tmp_path / "A01_s1_dna.tif", _nuclei_stack(), photometric="minisblack")
+    with pytest.raises(InputError, match=r"well A01, site 1: no image for channel 'gfp'.*filename_template"):
+        list(stream_site(_index(tmp_path, ("dna", "gfp")), "A01", 1, ["dna", "gfp"]))
+
+
+def test_channels_with_different_frame_counts_are_named(tmp_path):
+    tifffile.imwrite(tmp_path / "A01_s1_dna.tif", _nuclei_stack(frames=3), photometric="minisblack")
+    tifffile.imwrite(tmp_path / "A01_s1_gfp.tif", _nuclei_stack(frames=2), photometric="minisblack")
+    with pytest.raises(InputError, match=r"channels have different frame counts"):
+        list(stream_site(_index(tmp_path, ("dna", "gfp")), "A01", 1, ["dna", "gfp"]))
+
+
+def test_nan_pixels_are_named_with_well_site_and_frame(tmp_path):
+    stack = _nuclei_stack(dtype=np.float32)
+    stack[1, 5, 5] = np.nan
+    tifffile.imwrite(tmp_path / "A01_s1_dna.tif", stack, photometric="minisblack")
+    with pytest.raises(InputError, match=r"well A01, site 1, frame 1: image holds NaN or infinite pixels"):
+        analyse_well(_index(tmp_path), "A01", _settings())
+
+
+def test_all_black_site_gives_an_empty_well_not_a_crash(tmp_path):
+    tifffile.imwrite(tmp_path / "A01_s1_dna.tif", np.zeros((3, 64, 64), np.uint16), photometric="minisblack")
+    cells, tracks, qc = analyse_well(_index(tmp_path), "A01", _settings())
+    assert len(cells) == 0 and len(tracks) == 0
+    assert list(qc["n_objects"]) == [0, 0, 0]
+
+
+def test_saturated_site_is_measured_and_flagged(tmp_path):
+    stack = _nuclei_stack(level=70000 - 100, dtype=np.uint32).clip(0, 65535).astype(np.uint16)
+    tifffile.imwrite(tmp_path / "A01_s1_dna.tif", stack, photometric="minisblack")
+    _, _, qc = analyse_well(_index(tmp_path), "A01", _settings())
+    assert (qc["saturated_fraction_dna"] > 0.04).all()
+
+
+def test_paths_with_spaces_and_non_ascii_letters_are_read(tmp_path):
+    folder = tmp_path / "my plates" / "Prüfung 1"
+    folder.mkdir(parents=True)
+    tifffile.imwrite(folder / "A01_s1_dna.tif", _nuclei_stack(), photometric="minisblack")
+    cells, _, _ = analyse_well(_index(folder), "A01", _settings())
+    assert len(cells) == 3 and cells["area_um2"].iloc[0] == pytest.approx(np.pi * 64, rel=0.15)
+
+
+def test_well_with_no_cells_is_excluded_with_a_ledger_entry():
+    cells, tracks, qc, layout = _plate()
+    cells = cells[cells["well"] != "C03"]
+    tracks = tracks[tracks["well"] != "C03"]
+    qc.loc[qc["well"] == "C03", "n_objects"] = 0
+    tables = build_plate_tables(cells, tracks, qc, layout, "P1", "d1", 96, PlateSettings(), ExclusionRules())
+    row = tables.profile.set_index("well").loc["C03"]
+    assert row["cell_count"] == 0 and row["excluded_by"].startswith("min_cells_per_well")
+    assert ((tables.ledger["well"] == "C03") & (tables.ledger["rule"] == "min_cells_per_well")).any()
+    assert len(tables.profile) == 96                                  # no row dropped
+
+
+def test_plate_whose_every_well_fails_qc_leaves_the_model_and_the_rest_continues():
+    cells, tracks, qc, layout = _plate(seed=1)
+    failing = build_plate_tables(cells.iloc[0:0], tracks.iloc[0:0], qc.assign(n_objects=0), layout, "P1", "d1", 96,
+                                 PlateSettings(), ExclusionRules())
+    assert (failing.profile["excluded_by"] != "").all()
+    assert (failing.ledger["rule"] == "min_cells_per_well").sum() == 96
+    good = [build_plate_tables(*_plate(seed=s)[:3], layout, f"P{s}", f"d{s}", 96, PlateSettings(), ExclusionRules()).profile
+            for s in (2, 3)]
+    wells = pd.concat([failing.profile, *good], ignore_index=True)
+    model = build_model_wells(wells, ["area_um2"], {"area_um2"}, "control_location")
+    assert set(model.wells["plate"]) == {"P2", "P3"}
+
+
+def test_config_value_of_the_wrong_type_stops_the_workflow_with_its_key(workflow_dir):
+    config = workflow_dir / "config" / "config.yaml"
+    config.write_text(config.read_text().replace("chunk_wells: 24", "chunk_wells: twenty"))
+    result = run_snakemake(workflow_dir, "-n", check=False)
+    output = result.stdout + result.stderr
+    assert result.returncode != 0
+    assert "chunk_wells" in output and "'twenty' is not of type 'integer'" in output

@@ -1,0 +1,87 @@
+"""Property-based checks (hypothesis) of the statistical stages: invariances the declared model implies."""
+
+import numpy as np
+import pandas as pd
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from plateloom.effects import bh_qvalues, screen_effects
+from plateloom.plate_stage import PlateSettings, build_plate_tables
+from plateloom.plate_stats import robust_z, z_prime
+from plateloom.exclusions import ExclusionRules
+from plateloom.screen_stage import build_model_wells, treatment_catalogue
+
+from test_plate_stage import _plate
+from test_screen_stage import _wells
+
+FAST = settings(max_examples=15, deadline=None)
+
+
+def _effects(wells):
+    model = build_model_wells(wells, ["value", "other"], {"value", "other"}, "control_location")
+    table = screen_effects(model.wells, ["value", "other"], model.scales, 0.95, 0.05, 0.1, "exact", treatment_catalogue(wells))
+    return table.sort_values(["feature", "treatment"]).reset_index(drop=True)
+
+
+BASE = _wells(seed=11)
+BASE_EFFECTS = _effects(BASE)
+
+
+@FAST
+@given(shift=st.floats(-3, 3), batch=st.sampled_from(["d0", "d1", "d2"]))
+def test_a_constant_added_to_one_batch_leaves_corrected_effects_unchanged(shift, batch):
+    shifted = BASE.copy()
+    rows = shifted["batch"] == batch
+    shifted.loc[rows, ["value", "other"]] *= np.exp(shift)          # a constant on the log (model) scale
+    table = _effects(shifted)
+    np.testing.assert_allclose(table["estimate"], BASE_EFFECTS["estimate"], atol=1e-8)
+    np.testing.assert_allclose(table["std_error"], BASE_EFFECTS["std_error"], rtol=1e-5)
+
+
+@FAST
+@given(seed=st.integers(0, 2**32 - 1))
+def test_row_order_of_the_well_table_does_not_change_the_effects(seed):
+    permuted = BASE.sample(frac=1.0, random_state=np.random.RandomState(seed % (2**32 - 1))).reset_index(drop=True)
+    table = _effects(permuted)
+    pd.testing.assert_frame_equal(table, BASE_EFFECTS, check_exact=False, rtol=1e-7, atol=1e-10)
+
+
+@FAST
+@given(values=st.lists(st.floats(-1e3, 1e3), min_size=3, max_size=40))
+def test_robust_z_of_the_controls_themselves_has_median_zero(values):
+    controls = np.asarray(values)
+    z = robust_z(controls, controls)
+    if np.all(np.isfinite(z)):
+        assert abs(np.median(z)) < 1e-9
+
+
+@FAST
+@given(p=st.lists(st.floats(0, 1), min_size=1, max_size=60), seed=st.integers(0, 1000))
+def test_bh_q_values_are_at_least_p_monotone_and_order_free(p, seed):
+    p = np.asarray(p)
+    q = bh_qvalues(p)
+    assert np.all(q >= p - 1e-15) and np.all(q <= 1)
+    order = np.argsort(p, kind="stable")
+    assert np.all(np.diff(q[order]) >= -1e-15)
+    permutation = np.random.default_rng(seed).permutation(len(p))
+    np.testing.assert_allclose(bh_qvalues(p[permutation]), q[permutation])
+
+
+@FAST
+@given(seed=st.integers(0, 1000))
+def test_plate_tables_do_not_depend_on_the_order_of_cells(seed):
+    cells, tracks, qc, layout = _plate(seed=3)
+    reference = build_plate_tables(cells, tracks, qc, layout, "P1", "d1", 96, PlateSettings(), ExclusionRules())
+    shuffled = cells.sample(frac=1.0, random_state=seed).reset_index(drop=True)
+    tables = build_plate_tables(shuffled, tracks.sample(frac=1.0, random_state=seed), qc, layout, "P1", "d1", 96,
+                                PlateSettings(), ExclusionRules())
+    pd.testing.assert_frame_equal(tables.profile, reference.profile, check_exact=False, rtol=1e-9)
+    pd.testing.assert_frame_equal(tables.qc, reference.qc, check_exact=False, rtol=1e-9)
+
+
+@FAST
+@given(shift=st.floats(-100, 100), scale=st.floats(0.1, 10))
+def test_z_prime_is_unchanged_by_a_change_of_units(shift, scale):
+    rng = np.random.default_rng(4)
+    positive, negative = rng.normal(10, 1, 16), rng.normal(0, 1, 16)
+    assert np.isclose(z_prime(positive * scale + shift, negative * scale + shift), z_prime(positive, negative))
