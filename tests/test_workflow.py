@@ -127,7 +127,8 @@ def test_reports_are_self_contained(finished_screen):
         assert f"<h2>{section}</h2>" in report
     plate = (finished_screen / "results/reports/plates/TW-D1-P1.html").read_text()
     assert "Z&#x27;-factor and SSMD per feature" in plate
-    assert plate.count("data:image/png;base64,") >= 3
+    assert plate.count("data:image/png;base64,") >= 4
+    assert "<h2>Illumination</h2>" in plate and "illumination profiles" in plate
 
 
 @pytest.mark.slow
@@ -195,16 +196,19 @@ def test_new_plate_schedules_only_its_own_jobs_and_the_fan_ins(finished_screen):
     # a quick look at the new plate alone: its own jobs and report, no screen model
     look = run_snakemake(finished_screen, "-n", "--config", f'only_plates=["{NEW_PLATE}"]')
     look_jobs = pd.Series(re.findall(r"^rule (\w+):", look.stdout + look.stderr, flags=re.M)).value_counts().to_dict()
-    assert look_jobs == {"make_demo_plate": 1, "analyse_wells": 2, "plate_profiles": 1, "plate_report": 1, "all": 1}
+    assert look_jobs == {"make_demo_plate": 1, "estimate_illumination": 2, "analyse_wells": 2, "plate_profiles": 1,
+                         "plate_report": 1, "all": 1}
     result = run_snakemake(finished_screen, "-n")
     output = result.stdout + result.stderr
     jobs = re.findall(r"^rule (\w+):", output, flags=re.M)
     counts = pd.Series(jobs).value_counts().to_dict()
-    assert counts == {"make_demo_plate": 1, "analyse_wells": 2, "plate_profiles": 1, "plate_report": 1,
+    assert counts == {"make_demo_plate": 1, "estimate_illumination": 2, "analyse_wells": 2, "plate_profiles": 1,
+                      "plate_report": 1,
                       "correct_batches": 1, "fit_effects": 2, "screen_effects": 1, "dose_response": 1,
                       "design_check": 1, "screen_report": 1, "all": 1}
     blocks = re.split(r"^rule ", output, flags=re.M)[1:]
-    per_plate = [b for b in blocks if b.split(":")[0] in ("make_demo_plate", "analyse_wells", "plate_profiles", "plate_report")]
+    per_plate = [b for b in blocks if b.split(":")[0] in ("make_demo_plate", "estimate_illumination", "analyse_wells",
+                                                          "plate_profiles", "plate_report")]
     plates = {re.search(r"wildcards: plate=([\w.-]+)", block).group(1) for block in per_plate}
     assert plates == {NEW_PLATE}
     # after the run, the old plates' reports are untouched: same bytes, same modification times

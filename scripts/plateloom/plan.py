@@ -38,6 +38,12 @@ class ScreenPlan:
                                   float(self.sizing.get("seconds_per_megapixel_frame", 1.5)),
                                   float(self.sizing.get("safety_factor", 2.0)))
 
+    def illumination_job_size(self, plate: str, n_planes: int) -> JobSize:
+        """mem_mb of the flat-field job: the sampled planes of one channel held at once (float32)."""
+        size = self.imaging[plate]
+        planes_mb = n_planes * size.side_px ** 2 * 4 * 3 / 1e6   # planes, their scaled copy, the median's work
+        return JobSize(int(-(-(float(self.sizing.get("safety_factor", 2.0)) * (700 + planes_mb)) // 100) * 100), 30)
+
     def screen_job_size(self) -> JobSize:
         """mem_mb and runtime of a screen-level job, from the number of wells and features."""
         n_wells = sum(len(wells) for chunks in self.chunks.values() for wells in chunks)

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import matplotlib.pyplot as plt
+import numpy as np
 import pandas as pd
 import seaborn as sns
 
@@ -44,10 +45,33 @@ def control_distributions(profile: pd.DataFrame, features: list[str]) -> plt.Fig
     return figure
 
 
+def flat_field_figure(flat_fields: dict[str, np.ndarray]) -> plt.Figure:
+    """The illumination profile of every channel (relative illumination, mean 1)."""
+    figure, axes = plt.subplots(1, len(flat_fields), figsize=(3.6 * len(flat_fields), 3.2), squeeze=False)
+    for axis, (channel, profile) in zip(axes[0], flat_fields.items()):
+        shown = axis.imshow(profile, cmap="viridis")
+        axis.set_title(f"{channel}: {profile.min():.2f} to {profile.max():.2f}", fontsize=9)
+        axis.set_xticks([])
+        axis.set_yticks([])
+        figure.colorbar(shown, ax=axis, fraction=0.046)
+    figure.tight_layout()
+    return figure
+
+
+def illumination_html(flat_fields: dict[str, np.ndarray] | None) -> str:
+    """The report section on illumination correction."""
+    if not flat_fields:
+        return "<p>No illumination correction (illumination.method: none).</p>"
+    return ("<p>Flat-field profiles estimated from this plate's own sites (a low per-pixel percentile of images scaled by "
+            "their medians, smoothed, mean 1); every image was divided by its channel's profile before "
+            "segmentation and measurement. Title: lowest to highest relative illumination.</p>"
+            + figure_tag(flat_field_figure(flat_fields), "illumination profiles"))
+
+
 def build_plate_report(profile: pd.DataFrame, qc: pd.DataFrame, ledger: pd.DataFrame, edge: pd.DataFrame,
                        warnings: list[str], site_summary: dict[str, float], plate: str, batch: str, fmt: PlateFormat, report_feature: str,
-                       provenance: dict) -> str:
-    """The self-contained HTML report of one plate."""
+                       provenance: dict, flat_fields: dict[str, np.ndarray] | None = None) -> str:
+    """The self-contained HTML report of one plate; ``flat_fields`` are the illumination profiles per channel."""
     excluded = profile[profile["excluded_by"] != ""]
     n_kept = int((profile["excluded_by"] == "").sum())
     plate_rule = profile["plate_excluded_by"].iloc[0] if "plate_excluded_by" in profile and len(profile) else ""
@@ -86,6 +110,7 @@ def build_plate_report(profile: pd.DataFrame, qc: pd.DataFrame, ledger: pd.DataF
         ("Edge effect", edge_html),
         ("Image QC", "<p>Per site and frame: focus score (variance of the Laplacian over the squared mean), "
          "empty fields (no nucleus found) and the largest saturated-pixel fraction of any channel.</p>" + site_html),
+        ("Illumination", illumination_html(flat_fields)),
         ("Exclusion ledger", ledger_html),
     ]
     return page(f"plateloom plate report: {plate}", sections, provenance)

@@ -57,6 +57,17 @@ def write_parquet(frame: pd.DataFrame, path: str, settings: object, extra: dict 
     os.replace(tmp, path)
 
 
+def write_profile_tiff(image, path: str, description: dict) -> None:
+    """Write a float32 image as a one-page TIFF atomically; ``description`` (JSON) goes in its ImageDescription."""
+    import numpy as np
+    import tifffile
+
+    tmp = _temporary_path(path)
+    tifffile.imwrite(tmp, np.asarray(image, np.float32), photometric="minisblack",
+                     description=json.dumps(description, sort_keys=True), metadata=None)
+    os.replace(tmp, path)
+
+
 def write_text(text: str, path: str) -> None:
     """Write a text file (report, CSV) atomically."""
     tmp = _temporary_path(path)

@@ -10,6 +10,7 @@ import pandas as pd
 
 from .errors import InputError
 from .features import measure_objects
+from .illumination import apply_flat_field
 from .images import ImageIndex, stream_site
 from .segment import background_levels, focus_score, segment_nuclei
 from .tables import well_part_path, write_parquet
@@ -40,8 +41,12 @@ class WellSettings:
                    trk["min_track_frames"])
 
 
-def analyse_site(index: ImageIndex, well: str, site: int, settings: WellSettings) -> tuple[pd.DataFrame, pd.DataFrame]:
-    """Observations (with track ids local to the site) and per-frame QC of one site."""
+def analyse_site(index: ImageIndex, well: str, site: int, settings: WellSettings,
+                 flat_field: np.ndarray | None = None) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """Observations (with track ids local to the site) and per-frame QC of one site.
+
+    ``flat_field`` (channels, y, x), if given, divides every frame before segmentation and measurement.
+    """
     channels = list(settings.channels)
     nuclei_index = channels.index(settings.nuclei_channel)
     observations, qc_rows = [], []
@@ -52,6 +57,7 @@ def analyse_site(index: ImageIndex, well: str, site: int, settings: WellSettings
         if not np.isfinite(planes).all():
             raise InputError(f"well {well}, site {site}, frame {frame}", "image holds NaN or infinite pixels.",
                              "re-export the images; plateloom expects finite grey levels.")
+        planes = apply_flat_field(planes, flat_field)
         labels, threshold = segment_nuclei(planes[nuclei_index], settings.pixel_size_um, settings.smoothing_sigma_um,
                                            settings.min_nucleus_area_um2, settings.split_min_distance_um)
         background = background_levels(planes, labels)
@@ -76,7 +82,8 @@ def analyse_site(index: ImageIndex, well: str, site: int, settings: WellSettings
     return cells, pd.DataFrame(qc_rows)
 
 
-def analyse_well(index: ImageIndex, well: str, settings: WellSettings) -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame]:
+def analyse_well(index: ImageIndex, well: str, settings: WellSettings,
+                 flat_field: np.ndarray | None = None) -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame]:
     """Cells, tracks and site QC of one well over all its sites.
 
     Track ids are unique within the well (site-local ids are offset site by site).
@@ -87,7 +94,7 @@ def analyse_well(index: ImageIndex, well: str, settings: WellSettings) -> tuple[
                          "check images.filename_template and the plate's image_folder, or mark the well empty.")
     cell_parts, qc_parts, offset = [], [], 0
     for site in sites:
-        cells, qc = analyse_site(index, well, int(site), settings)
+        cells, qc = analyse_site(index, well, int(site), settings, flat_field)
         cells["track"] += offset
         offset = int(cells["track"].max()) + 1 if len(cells) else offset
         cell_parts.append(cells)
@@ -112,12 +119,13 @@ def _with_keys(frame: pd.DataFrame, plate: str, well: str) -> pd.DataFrame:
 
 
 def analyse_chunk(index: ImageIndex, plate: str, wells: list[str], settings: WellSettings,
-                  out_cells: str, out_tracks: str, out_site_qc: str, config_for_provenance: object) -> None:
+                  out_cells: str, out_tracks: str, out_site_qc: str, config_for_provenance: object,
+                  flat_field: np.ndarray | None = None) -> None:
     """Analyse the wells of one chunk; one Parquet file per well in each of three Hive folders."""
     for folder in (out_cells, out_tracks, out_site_qc):
         os.makedirs(folder, exist_ok=True)
     for well in wells:
-        cells, tracks, site_qc = analyse_well(index, well, settings)
+        cells, tracks, site_qc = analyse_well(index, well, settings, flat_field)
         write_parquet(_with_keys(cells, plate, well), well_part_path(out_cells, well), config_for_provenance)
         write_parquet(_with_keys(tracks, plate, well), well_part_path(out_tracks, well), config_for_provenance)
         write_parquet(_with_keys(site_qc, plate, well), well_part_path(out_site_qc, well), config_for_provenance)

@@ -2,6 +2,7 @@
 import json
 
 import pandas as pd
+import tifffile
 
 from plateloom.plate_formats import plate_format
 from plateloom.plate_report import build_plate_report
@@ -17,7 +18,8 @@ def step() -> None:
     html = build_plate_report(pd.read_parquet(sm.input.wells), pd.read_parquet(sm.input.qc),
                               pd.read_parquet(sm.input.ledger), pd.read_parquet(sm.input.edge), notes["warnings"], notes["site_qc"],
                               sm.wildcards.plate, sm.params.batch, plate_format(sm.params.plate_format),
-                              sm.params.report_feature, read_provenance(sm.input.wells))
+                              sm.params.report_feature, read_provenance(sm.input.wells),
+                              {c: tifffile.imread(p) for c, p in zip(sm.params.channels, sm.input.flat_fields)})
     write_text(html, sm.output.report)
 
 

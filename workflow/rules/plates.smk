@@ -22,7 +22,7 @@ rule plate_profiles:
         batch=lambda w: PLAN.plates[w.plate].batch,
         plate_format=lambda w: PLAN.plates[w.plate].plate_format,
         image_folder=lambda w: PLAN.plates[w.plate].image_folder,
-        template=config["images"]["filename_template"],
+        template=lambda w: config["images"]["filename_template"],
         channels=[c["name"] for c in config["channels"]],
         settings=PLATE_SETTINGS,
     log:
@@ -44,6 +44,7 @@ rule plate_report:
         ledger=f"{RESULTS}/exclusions/plate={{plate}}/part-0.parquet",
         edge=f"{RESULTS}/edge_effects/plate={{plate}}/part-0.parquet",
         notes=f"{RESULTS}/plate_notes/{{plate}}.json",
+        flat_fields=lambda w: flat_field_files(w.plate),
     output:
         report=report(f"{RESULTS}/reports/plates/{{plate}}.html", caption="../report/plate_report.rst",
                       category="Plates", subcategory="{plate}"),
@@ -51,6 +52,7 @@ rule plate_report:
         batch=lambda w: PLAN.plates[w.plate].batch,
         plate_format=lambda w: PLAN.plates[w.plate].plate_format,
         report_feature=config["plate"]["report_feature"],
+        channels=CHANNELS,
     log:
         f"{RESULTS}/logs/plate_report/{{plate}}.log",
     benchmark:
