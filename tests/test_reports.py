@@ -6,6 +6,7 @@ import subprocess
 from pathlib import Path
 
 import numpy as np
+import pandas as pd
 import pytest
 
 from plateloom.exclusions import ExclusionRules
@@ -66,3 +67,23 @@ def test_plate_report_renders_offline_in_headless_chromium(tmp_path):
     grey = image[..., :3].mean(axis=-1)
     # not blank: the heatmaps and tables put many distinct grey levels on the page
     assert grey.std() > 10 and len(np.unique(grey.astype(int))) > 50
+
+
+def test_screen_report_escapes_hostile_treatment_names(tmp_path):
+    from plateloom.effects import screen_effects
+    from plateloom.screen_report import build_screen_report
+    from plateloom.screen_stage import build_model_wells
+
+    from test_screen_stage import _wells
+
+    wells = _wells(seed=2)
+    wells.loc[wells["condition"] == "X", "treatment"] = HOSTILE
+    model = build_model_wells(wells, ["value"], {"value"}, "control_location")
+    effects = screen_effects(model.wells, ["value"], model.scales, 0.95, 0.05, 0.1, "exact")
+    ledger = pd.DataFrame(columns=["level", "plate", "well", "site", "frame", "rule", "value", "threshold"])
+    settings = {"ci_level": 0.95, "hit_q_value": 0.05, "hit_min_log_ratio": 0.1, "batch_correction": "control_location",
+                "fitter": "exact"}
+    html = build_screen_report(effects, wells, ledger, settings, {"packages": {}}, variance=model.variance,
+                               components=model.components, correction_notes=[HOSTILE])
+    assert "<b>x</b>" not in html
+    assert "&lt;b&gt;x&lt;/b&gt; &quot;quoted&quot;, comma &amp; Ölsäure" in html

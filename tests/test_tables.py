@@ -1,0 +1,47 @@
+"""Outputs are written atomically: an interrupted write never leaves a readable partial file."""
+
+import os
+
+import pandas as pd
+import pyarrow.parquet as pq
+import pytest
+
+from plateloom import tables
+
+
+def test_interrupted_parquet_write_leaves_the_old_file_untouched(tmp_path, monkeypatch):
+    path = tmp_path / "wells.parquet"
+    tables.write_parquet(pd.DataFrame({"a": [1, 2, 3]}), str(path), {"v": 1})
+    before = path.read_bytes()
+
+    def killed(table, where, **kwargs):
+        with open(where, "wb") as handle:           # half a file, then the process dies
+            handle.write(b"PAR1 partial")
+        raise KeyboardInterrupt
+
+    monkeypatch.setattr(pq, "write_table", killed)
+    with pytest.raises(KeyboardInterrupt):
+        tables.write_parquet(pd.DataFrame({"a": [9]}), str(path), {"v": 2})
+    assert path.read_bytes() == before
+    assert pd.read_parquet(path)["a"].tolist() == [1, 2, 3]
+
+
+def test_a_write_stopped_before_the_rename_leaves_no_file_at_the_final_path(tmp_path, monkeypatch):
+    path = tmp_path / "report.html"
+
+    def no_rename(source, target):
+        raise KeyboardInterrupt
+
+    monkeypatch.setattr(os, "replace", no_rename)
+    with pytest.raises(KeyboardInterrupt):
+        tables.write_text("<html>complete</html>", str(path))
+    assert not path.exists()
+    leftovers = [p.name for p in tmp_path.iterdir()]
+    assert leftovers and all(name.startswith(".report.html.") and name.endswith(".tmp") for name in leftovers)
+
+
+def test_provenance_is_stored_and_read_back(tmp_path):
+    path = tmp_path / "t.parquet"
+    tables.write_parquet(pd.DataFrame({"a": [1]}), str(path), {"k": 1}, extra={"scales": {"a": "log"}})
+    assert tables.read_provenance(str(path))["config_sha256"] == tables.config_digest({"k": 1})
+    assert tables.read_extra(str(path)) == {"scales": {"a": "log"}}
