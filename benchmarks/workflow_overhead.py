@@ -28,6 +28,12 @@ PLATES, ROWS, COLUMNS = 40, 16, 24
 def _create_outputs(results: Path) -> None:
     """Empty stand-ins for every output, created in pipeline order (trivial inputs)."""
     chunks = (ROWS * COLUMNS + 47) // 48
+    for p in range(PLATES):
+        for channel in ("nuclear", "reporter"):
+            path = results / "illumination" / f"plate=B{p:02d}" / f"{channel}.tif"
+            path.parent.mkdir(parents=True, exist_ok=True)
+            path.touch()
+    time.sleep(1.1)
     for kind in ("cells", "tracks", "site_qc"):
         for p in range(PLATES):
             for c in range(chunks):

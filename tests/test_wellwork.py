@@ -125,3 +125,105 @@ def test_stacks_and_one_file_per_frame_give_the_same_tables(tmp_path):
     for a, b in zip(from_stacks, from_frames):
         assert len(a) > 0
         assert a.equals(b)
+
+
+def _dense_reference_links(previous, current, max_displacement):
+    # Reference: the same augmented LAP solved densely by scipy.optimize.linear_sum_assignment.
+    from scipy.optimize import linear_sum_assignment
+
+    n, m = len(previous), len(current)
+    d2 = ((previous[:, None, :] - current[None, :, :]) ** 2).sum(-1)
+    big = 1e12
+    cost = np.full((n + m, m + n), big)
+    allowed = d2 <= max_displacement**2
+    cost[:n, :m] = np.where(allowed, d2, big)
+    cost[n:, m:] = np.where(allowed.T, d2.T, big)
+    cost[np.arange(n), m + np.arange(n)] = max_displacement**2
+    cost[n + np.arange(m), np.arange(m)] = max_displacement**2
+    rows, cols = linear_sum_assignment(cost)
+    links = np.full(m, -1)
+    keep = (rows < n) & (cols < m)
+    links[cols[keep]] = rows[keep]
+    return links, cost[rows, cols].sum()
+
+
+def test_sparse_linking_equals_the_dense_assignment():
+    rng = np.random.default_rng(7)
+    for trial in range(20):
+        previous = rng.uniform(0, 60, (40, 2))
+        current = np.vstack([previous[5:] + rng.normal(0, 1.5, (35, 2)), rng.uniform(0, 60, (4, 2))])
+        links = link_frames(previous, current, 4.0)
+        reference, _ = _dense_reference_links(previous, current, 4.0)
+        np.testing.assert_array_equal(links, reference)
+
+
+def _frame_to_frame_tracks(frame, x, y, max_displacement):
+    """Track ids from linking consecutive frames only (what the per-frame stage produces)."""
+    track = np.full(len(frame), -1)
+    next_id = 0
+    previous_rows = np.array([], int)
+    for t in np.unique(frame):
+        rows = np.nonzero(frame == t)[0]
+        links = link_frames(np.column_stack([x[previous_rows], y[previous_rows]]), np.column_stack([x[rows], y[rows]]),
+                            max_displacement)
+        for row, link in zip(rows, links):
+            if link >= 0:
+                track[row] = track[previous_rows[link]]
+            else:
+                track[row], next_id = next_id, next_id + 1
+        previous_rows = rows
+    return track
+
+
+def test_gap_closing_rejoins_tracks_across_missed_frames():
+    # Planted truth: 25 well-separated random walkers over 20 frames; each loses 1 or 2 consecutive frames.
+    from plateloom.track import close_gaps
+
+    rng = np.random.default_rng(3)
+    grid = np.array([(i, j) for i in range(5) for j in range(5)], float) * 40 + 20
+    rows = []
+    for cell, (x0, y0) in enumerate(grid):
+        x, y = x0 + np.cumsum(rng.normal(0, 1.0, 20)), y0 + np.cumsum(rng.normal(0, 1.0, 20))
+        gap_start, gap_length = rng.integers(4, 15), rng.integers(1, 3)
+        for t in range(20):
+            if not gap_start <= t < gap_start + gap_length:
+                rows.append((t, cell, x[t], y[t]))
+    frame, truth, x, y = (np.array(c) for c in zip(*rows))
+    linked = _frame_to_frame_tracks(frame, x, y, 6.0)
+    assert len(np.unique(linked)) == 50                     # every walker split in two by its gap
+    closed = close_gaps(frame, linked, x, y, max_gap_frames=2, max_displacement_um=6.0)
+    recovered = sum(len(np.unique(closed[truth == cell])) == 1 for cell in range(25))
+    assert recovered == 25
+    assert len(np.unique(closed)) == 25
+
+
+def test_divisions_are_found_with_recall_of_at_least_0_8():
+    # Planted truth: 20 mothers tracked for 8 frames, then each divides into two daughters 3 um either side.
+    from plateloom.track import find_divisions
+
+    rng = np.random.default_rng(4)
+    rows = []
+    for cell in range(20):
+        x0, y0 = (cell % 5) * 40.0 + 20, (cell // 5) * 40.0 + 20
+        x, y = x0 + np.cumsum(rng.normal(0, 0.5, 16)), y0 + np.cumsum(rng.normal(0, 0.5, 16))
+        angle = rng.uniform(0, np.pi)
+        offset = 3.0 * np.array([np.cos(angle), np.sin(angle)])
+        for t in range(16):
+            if t < 8:
+                rows.append((t, x[t], y[t], f"m{cell}"))
+            else:
+                rows.append((t, x[t] + offset[0], y[t] + offset[1], f"a{cell}"))
+                rows.append((t, x[t] - offset[0], y[t] - offset[1], f"b{cell}"))
+    frame, x, y, truth = (np.array(c) for c in zip(*rows))
+    frame, x, y = frame.astype(int), x.astype(float), y.astype(float)
+    linked = _frame_to_frame_tracks(frame, x, y, 6.0)
+    relabelled, parents = find_divisions(frame, linked, x, y, max_distance_um=8.0)
+    found = 0
+    for cell in range(20):
+        mother = set(relabelled[truth == f"m{cell}"])
+        daughters = [set(relabelled[truth == f"{d}{cell}"]) for d in "ab"]
+        if len(mother) == 1 and all(len(d) == 1 for d in daughters):
+            children = parents[parents["parent_track"] == mother.pop()]["track"]
+            found += set(children) == {daughters[0].pop(), daughters[1].pop()}
+    assert found / 20 >= 0.8, found
+    assert len(parents) <= 2 * 20 + 4                        # few spurious divisions

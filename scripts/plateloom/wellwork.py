@@ -14,7 +14,7 @@ from .illumination import apply_flat_field
 from .images import ImageIndex, stream_site
 from .segment import background_levels, focus_score, segment_nuclei
 from .tables import well_part_path, write_parquet
-from .track import link_frames, track_features
+from .track import close_gaps, find_divisions, link_frames, track_features
 
 
 @dataclass(frozen=True)
@@ -30,6 +30,8 @@ class WellSettings:
     split_min_distance_um: float
     max_displacement_um: float
     min_track_frames: int
+    max_gap_frames: int = 0
+    division_max_distance_um: float | None = None
 
     @classmethod
     def from_config(cls, config: dict) -> "WellSettings":
@@ -38,7 +40,7 @@ class WellSettings:
         seg, trk, img = config["segmentation"], config["tracking"], config["images"]
         return cls(channels, nuclei[0], img["pixel_size_um"], img["frame_interval_min"], seg["smoothing_sigma_um"],
                    seg["min_nucleus_area_um2"], seg["split_min_distance_um"], trk["max_displacement_um"],
-                   trk["min_track_frames"])
+                   trk["min_track_frames"], int(trk.get("max_gap_frames", 2)), trk.get("division_max_distance_um"))
 
 
 def analyse_site(index: ImageIndex, well: str, site: int, settings: WellSettings,
@@ -79,6 +81,14 @@ def analyse_site(index: ImageIndex, well: str, site: int, settings: WellSettings
         previous_xy, previous_tracks = xy, tracks.astype(np.int64)
     cells = pd.concat(observations, ignore_index=True)
     cells.insert(0, "site", site)
+    cells["parent_track"] = -1
+    if len(cells):
+        frame, x, y = cells["frame"].to_numpy(), cells["centroid_x_um"].to_numpy(), cells["centroid_y_um"].to_numpy()
+        track = close_gaps(frame, cells["track"].to_numpy(), x, y, settings.max_gap_frames, settings.max_displacement_um)
+        if settings.division_max_distance_um:
+            track, parents = find_divisions(frame, track, x, y, settings.division_max_distance_um)
+            cells["parent_track"] = pd.Series(parents.set_index("track")["parent_track"]).reindex(track).fillna(-1).to_numpy(np.int64)
+        cells["track"] = track
     return cells, pd.DataFrame(qc_rows)
 
 
@@ -96,6 +106,7 @@ def analyse_well(index: ImageIndex, well: str, settings: WellSettings,
     for site in sites:
         cells, qc = analyse_site(index, well, int(site), settings, flat_field)
         cells["track"] += offset
+        cells.loc[cells["parent_track"] >= 0, "parent_track"] += offset
         offset = int(cells["track"].max()) + 1 if len(cells) else offset
         cell_parts.append(cells)
         qc_parts.append(qc)
@@ -108,6 +119,7 @@ def analyse_well(index: ImageIndex, well: str, settings: WellSettings,
     tracks.insert(0, "site", first.loc[tracks["track"], "site"].to_numpy())
     border = cells.groupby("track")["touches_border"].any()
     tracks["touches_border"] = border.loc[tracks["track"]].to_numpy()
+    tracks["parent_track"] = cells.groupby("track")["parent_track"].first().loc[tracks["track"]].to_numpy()
     return cells, tracks, pd.concat(qc_parts, ignore_index=True)
 
 
