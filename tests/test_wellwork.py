@@ -227,3 +227,38 @@ def test_divisions_are_found_with_recall_of_at_least_0_8():
             found += set(children) == {daughters[0].pop(), daughters[1].pop()}
     assert found / 20 >= 0.8, found
     assert len(parents) <= 2 * 20 + 4                        # few spurious divisions
+
+
+def test_neighbourhood_matches_brute_force_distances():
+    # Reference: scipy.spatial.distance.cdist over all pairs.
+    from scipy.spatial.distance import cdist
+
+    from plateloom.features import neighbourhood
+
+    xy = np.random.default_rng(8).uniform(0, 200, (300, 2))
+    counts, nearest = neighbourhood(xy, 25.0)
+    d = cdist(xy, xy)
+    np.fill_diagonal(d, np.inf)
+    np.testing.assert_array_equal(counts, (d <= 25.0).sum(axis=1))
+    np.testing.assert_allclose(nearest, d.min(axis=1))
+    alone_counts, alone_nearest = neighbourhood(xy[:1], 25.0)
+    assert alone_counts[0] == 0 and np.isnan(alone_nearest[0])
+
+
+def test_axis_lengths_and_form_factor_match_geometry():
+    # An ellipse with semi-axes a, b has axes 2a and 2b; a disk has form factor 4 pi A / P^2 = 1 (geometry;
+    # the pixel perimeter estimate makes it slightly lower).
+    mask = np.zeros((200, 200), bool)
+    mask[ellipse(100, 100, 20, 40)] = True
+    disk_mask = np.zeros((200, 200), bool)
+    disk_mask[disk((100, 100), 30)] = True
+    for m, checks in ((mask, "ellipse"), (disk_mask, "disk")):
+        image = _image_with([m])
+        labels, _ = segment_nuclei(image, PIXEL, 0.5, 10.0, 5.0)
+        row = measure_objects(labels, image[None], ["dna"], np.array([100.0]), PIXEL).iloc[0]
+        if checks == "ellipse":
+            assert row["major_axis_um"] == pytest.approx(2 * 40 * PIXEL, rel=0.03)
+            assert row["minor_axis_um"] == pytest.approx(2 * 20 * PIXEL, rel=0.05)
+        else:
+            assert 0.9 < row["form_factor"] <= 1.05
+            assert row["std_intensity_dna"] < 0.1 * row["mean_intensity_dna"]

@@ -136,14 +136,17 @@ def _page_count(path: str) -> int:
 def site_frame_count(index: ImageIndex, well: str, site: int, channels: list[str]) -> int:
     """Number of frames of one site (the same for every channel, else an error)."""
     files = index.table[(index.table["well"] == well) & (index.table["site"] == site)]
-    counts = {}
+    counts, sources = {}, {}
     for channel in channels:
         paths = files.loc[files["channel"] == channel, "path"].tolist()
         if not paths:
             raise InputError(f"well {well}, site {site}", f"no image for channel {channel!r}.", "check the file names against images.filename_template.")
         counts[channel] = _page_count(paths[0]) if index.stacks else len(paths)
+        sources[channel] = os.path.basename(paths[0]) if index.stacks else f"{len(paths)} files"
     if len(set(counts.values())) != 1:
-        raise InputError(f"well {well}, site {site}", f"channels have different frame counts {counts}.", "re-export the missing frames.")
+        details = ", ".join(f"{c}: {n} in {sources[c]}" for c, n in counts.items())
+        raise InputError(f"well {well}, site {site}", f"channels have different frame counts ({details}).",
+                         "re-copy or re-export the file with fewer frames; a truncated copy is the usual cause.")
     return next(iter(counts.values()))
 
 

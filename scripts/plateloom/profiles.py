@@ -12,7 +12,7 @@ import pyarrow.dataset as ds
 from .plate_formats import is_edge_well, parse_well, plate_format
 
 TRACK_FEATURES = ("speed_um_per_min", "straightness")
-NON_FEATURE_COLUMNS = ("plate", "well", "site", "frame", "time_min", "object", "track", "touches_border",
+NON_FEATURE_COLUMNS = ("plate", "well", "site", "frame", "time_min", "object", "track", "parent_track", "touches_border",
                        "centroid_x_um", "centroid_y_um", "chunk")
 
 

@@ -9,7 +9,7 @@ import numpy as np
 import pandas as pd
 
 from .errors import InputError
-from .features import measure_objects
+from .features import measure_objects, neighbourhood
 from .illumination import apply_flat_field
 from .images import ImageIndex, stream_site
 from .segment import background_levels, focus_score, segment_nuclei
@@ -32,6 +32,7 @@ class WellSettings:
     min_track_frames: int
     max_gap_frames: int = 0
     division_max_distance_um: float | None = None
+    neighbour_radius_um: float = 25.0
 
     @classmethod
     def from_config(cls, config: dict) -> "WellSettings":
@@ -40,7 +41,8 @@ class WellSettings:
         seg, trk, img = config["segmentation"], config["tracking"], config["images"]
         return cls(channels, nuclei[0], img["pixel_size_um"], img["frame_interval_min"], seg["smoothing_sigma_um"],
                    seg["min_nucleus_area_um2"], seg["split_min_distance_um"], trk["max_displacement_um"],
-                   trk["min_track_frames"], int(trk.get("max_gap_frames", 2)), trk.get("division_max_distance_um"))
+                   trk["min_track_frames"], int(trk.get("max_gap_frames", 2)), trk.get("division_max_distance_um"),
+                   float(config.get("measurement", {}).get("neighbour_radius_um", 25.0)))
 
 
 def analyse_site(index: ImageIndex, well: str, site: int, settings: WellSettings,
@@ -65,6 +67,7 @@ def analyse_site(index: ImageIndex, well: str, site: int, settings: WellSettings
         background = background_levels(planes, labels)
         table = measure_objects(labels, planes, channels, background, settings.pixel_size_um)
         xy = table[["centroid_x_um", "centroid_y_um"]].to_numpy()
+        table["neighbours"], table["nearest_neighbour_um"] = neighbourhood(xy, settings.neighbour_radius_um)
         links = link_frames(previous_xy, xy, settings.max_displacement_um)
         tracks = np.where(links >= 0, previous_tracks[np.clip(links, 0, None)] if len(previous_tracks) else -1, -1)
         new = tracks < 0
