@@ -69,18 +69,21 @@ def estimate_flat_field(index: ImageIndex, channel: str, channels: list[str], se
     A sampled site that cannot be read is skipped and named (its own per-well job reports it as an
     error); the estimate fails only when fewer than 3 planes are left.
     """
+    if channel not in channels:
+        raise InputError(f"illumination of channel {channel}", f"channel {channel!r} is not in config channels {channels}.",
+                         "use a channel name from config channels.")
     planes, skipped = [], []
-    position = channels.index(channel)
     for well, site in sampled_sites(index, settings.max_sites):
         site_planes = []
         try:
-            n_frames = site_frame_count(index, well, site, channels)
+            # only this channel is read; the per-well jobs check that all channels of a site agree
+            n_frames = site_frame_count(index, well, site, [channel])
             wanted = set(np.linspace(0, n_frames - 1, min(settings.frames_per_site, n_frames)).round().astype(int).tolist())
-            frames = stream_site(index, well, site, channels)
+            frames = stream_site(index, well, site, [channel])
             try:
                 for frame, stack, _ in frames:
                     if frame in wanted:
-                        site_planes.append(stack[position])
+                        site_planes.append(stack[0])
                     if frame >= max(wanted):
                         break
             finally:
