@@ -53,17 +53,25 @@ def test_files_that_fit_no_template_field_are_listed_in_a_plate_note(tmp_path):
     assert len(_index(tmp_path).table) == 1                          # the good file is still analysed
 
 
+def _problems(folder, channels=("dna",)):
+    return [item.problem for item in stream_site(_index(folder, channels), "A01", 1, list(channels))]
+
+
 def test_rgb_page_is_named_with_its_shape(tmp_path):
     tifffile.imwrite(tmp_path / "A01_s1_dna.tif", np.zeros((32, 32, 3), np.uint8), photometric="rgb")
-    with pytest.raises(InputError, match=r"A01_s1_dna.tif: expected one 2-D plane per page, found shape \(32, 32, 3\)"):
-        list(stream_site(_index(tmp_path), "A01", 1, ["dna"]))
+    assert _problems(tmp_path)[0].endswith(
+        "A01_s1_dna.tif: expected one 2-D plane per page, found shape (32, 32, 3). Fix: save one channel per file "
+        "(and one page per frame for stacks).")
+    # every frame of the site is unusable: that is no glitch of one frame, so the well job stops and says so
+    with pytest.raises(InputError, match=r"well A01, site 1: no frame of this site can be used.*found shape \(32, 32, 3\)"):
+        analyse_well(_index(tmp_path), "A01", _settings())
 
 
 def test_channels_of_different_sizes_are_named(tmp_path):
     tifffile.imwrite(tmp_path / "A01_s1_dna.tif", _nuclei_stack(size=64), photometric="minisblack")
     tifffile.imwrite(tmp_path / "A01_s1_gfp.tif", _nuclei_stack(size=48), photometric="minisblack")
-    with pytest.raises(InputError, match=r"A01_s1_gfp.tif: plane shape \(48, 48\) differs"):
-        list(stream_site(_index(tmp_path, ("dna", "gfp")), "A01", 1, ["dna", "gfp"]))
+    problems = _problems(tmp_path, ("dna", "gfp"))
+    assert len(problems) == 3 and all("A01_s1_gfp.tif: plane shape (48, 48) differs" in p for p in problems)
 
 
 def test_missing_channel_is_named(tmp_path):
@@ -72,19 +80,46 @@ def test_missing_channel_is_named(tmp_path):
         list(stream_site(_index(tmp_path, ("dna", "gfp")), "A01", 1, ["dna", "gfp"]))
 
 
-def test_channels_with_different_frame_counts_are_named(tmp_path):
+def test_a_stack_shorter_than_the_other_channel_flags_the_missing_frames_and_keeps_the_rest(tmp_path):
     tifffile.imwrite(tmp_path / "A01_s1_dna.tif", _nuclei_stack(frames=3), photometric="minisblack")
     tifffile.imwrite(tmp_path / "A01_s1_gfp.tif", _nuclei_stack(frames=2), photometric="minisblack")
-    with pytest.raises(InputError, match=r"channels have different frame counts"):
-        list(stream_site(_index(tmp_path, ("dna", "gfp")), "A01", 1, ["dna", "gfp"]))
+    cells, _, qc = analyse_well(_index(tmp_path, ("dna", "gfp")), "A01", _settings(("dna", "gfp")))
+    assert sorted(cells["frame"].unique()) == [0, 1]
+    problem = qc.set_index("frame")["frame_problem"]
+    assert problem[0] == "" and problem[1] == ""
+    assert "A01_s1_gfp.tif: has 2 pages while another channel has 3; frame 2 is missing" in problem[2]
+    assert "Fix: re-copy or re-export the file" in problem[2]
 
 
-def test_nan_pixels_are_named_with_well_site_and_frame(tmp_path):
+def test_nan_pixels_flag_their_frame_and_the_rest_of_the_well_is_analysed(tmp_path):
     stack = _nuclei_stack(dtype=np.float32)
     stack[1, 5, 5] = np.nan
     tifffile.imwrite(tmp_path / "A01_s1_dna.tif", stack, photometric="minisblack")
-    with pytest.raises(InputError, match=r"well A01, site 1, frame 1: image holds NaN or infinite pixels"):
-        analyse_well(_index(tmp_path), "A01", _settings())
+    cells, _, qc = analyse_well(_index(tmp_path), "A01", _settings())
+    assert sorted(cells["frame"].unique()) == [0, 2]
+    flagged = qc[qc["frame_problem"] != ""]
+    assert flagged["frame"].tolist() == [1]
+    assert flagged["frame_problem"].iloc[0].startswith("well A01, site 1, frame 1: ")
+    assert "image holds NaN or infinite pixels" in flagged["frame_problem"].iloc[0]
+    from plateloom.exclusions import site_frame_exclusions
+    ledger = site_frame_exclusions(qc.assign(well="A01"), ExclusionRules(), "P1")
+    assert ledger[["well", "frame", "rule"]].values.tolist() == [["A01", 1, "unusable_frame"]]
+
+
+def test_a_frame_of_the_wrong_shape_or_pixel_type_is_flagged(tmp_path):
+    for frame in range(4):
+        plane = _nuclei_stack(frames=1)[0]
+        if frame == 1:
+            plane = plane[:40, :40]                            # wrong shape
+        if frame == 2:
+            plane = plane.astype(np.complex64)                 # wrong pixel type
+        tifffile.imwrite(tmp_path / f"A01_s1_t{frame}_dna.tif", plane)
+    index = index_plate_images(str(tmp_path), "{well}_s{site}_t{frame}_{channel}.tif", 96, ["dna"])
+    cells, _, qc = analyse_well(index, "A01", _settings())
+    problem = qc.set_index("frame")["frame_problem"]
+    assert "plane shape (40, 40) differs" in problem[1]
+    assert "pixel type complex64 is not numeric" in problem[2]
+    assert sorted(cells["frame"].unique()) == [0, 3]
 
 
 def test_all_black_site_gives_an_empty_well_not_a_crash(tmp_path):

@@ -84,13 +84,15 @@ def test_truncated_tiff_is_named(tmp_path):
         list(stream_site(index, "A01", 1, ["dna"]))
 
 
-def test_missing_frame_in_a_per_frame_series_is_named(tmp_path):
-    for frame in (0, 1, 3):
+def test_missing_frame_in_a_per_frame_series_is_flagged_and_the_rest_read(tmp_path):
+    for frame in (0, 1, 3, 4):
         tifffile.imwrite(tmp_path / f"A01_s1_t{frame}_dna.tif", np.ones((16, 16), np.uint16))
-    tifffile.imwrite(tmp_path / "A01_s1_t4_dna.tif", np.ones((16, 16), np.uint16))
     index = index_plate_images(str(tmp_path), "{well}_s{site}_t{frame}_{channel}.tif", 96, ["dna"])
-    with pytest.raises(InputError, match=r"frames \[2\] are missing"):
-        list(stream_site(index, "A01", 1, ["dna"]))
+    frames = list(stream_site(index, "A01", 1, ["dna"]))
+    assert [f.frame for f in frames] == [0, 1, 2, 3, 4]
+    assert [f.planes is None for f in frames] == [False, False, True, False, False]
+    assert frames[2].problem == ("well A01, site 1, frame 2: well A01, site 1, channel dna: frame 2 is missing from the "
+                                 "series. Fix: re-export the missing frame; the other frames are analysed.")
 
 
 def test_unknown_config_key_stops_the_workflow_with_its_name(workflow_dir):

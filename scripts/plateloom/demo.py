@@ -137,7 +137,7 @@ def _step(rng: np.random.Generator, cells: _Cells, scenario: dict, speed_factor:
     cells.position[:] = np.where(below, 2 * low - cells.position, cells.position)
     cells.position[:] = np.where(above, 2 * high - cells.position, cells.position)
     cells.velocity[below | above] *= -1
-    _separate(cells, size, iterations=1)
+    _separate(cells, size, iterations=int(scenario["cell"].get("separation_iterations_per_frame", 1)))
 
 
 def _separate(cells: _Cells, size: int, iterations: int) -> None:
@@ -151,30 +151,59 @@ def _separate(cells: _Cells, size: int, iterations: int) -> None:
         cells.position[:] = np.clip(cells.position + push, low, high)
 
 
-def _render(cells: _Cells, levels: np.ndarray, size: int) -> np.ndarray:
-    """Sum of uniformly bright ellipses (one per cell) on a zero background."""
-    image = np.zeros((size, size), np.float32)
+def _ellipse_boxes(cells: _Cells, size: int):
+    """Per cell: the rows, columns and inside-mask of its ellipse, clipped to the field."""
     cos, sin = np.cos(cells.angle), np.sin(cells.angle)
-    for i in range(len(levels)):  # per object, each vectorised over its bounding box
+    for i in range(len(cells.position)):  # per object, each vectorised over its bounding box
         y0, x0 = cells.position[i]
         reach = int(np.ceil(cells.semi_major[i])) + 1
         ys = np.arange(max(0, int(y0) - reach), min(size, int(y0) + reach + 2))
         xs = np.arange(max(0, int(x0) - reach), min(size, int(x0) + reach + 2))
         dy, dx = ys[:, None] - y0, xs[None, :] - x0
         u, v = dx * cos[i] + dy * sin[i], -dx * sin[i] + dy * cos[i]
-        inside = (u / cells.semi_major[i]) ** 2 + (v / cells.semi_minor[i]) ** 2 <= 1.0
+        yield i, ys, xs, (u / cells.semi_major[i]) ** 2 + (v / cells.semi_minor[i]) ** 2 <= 1.0
+
+
+def _render(cells: _Cells, levels: np.ndarray, size: int) -> np.ndarray:
+    """Sum of uniformly bright ellipses (one per cell) on a zero background."""
+    image = np.zeros((size, size), np.float32)
+    for i, ys, xs, inside in _ellipse_boxes(cells, size):
         image[ys[0]:ys[-1] + 1, xs[0]:xs[-1] + 1] += levels[i] * inside
     return image
 
 
-def simulate_site(scenario: dict, factor: dict[str, float], rng: np.random.Generator) -> np.ndarray:
-    """Images of one site: array (frames, 2 channels, y, x) uint16, nuclei then reporter."""
+def _render_labels(cells: _Cells, size: int) -> np.ndarray:
+    """Ground-truth label image: cell i is label i + 1 (where ellipses overlap, the later cell's)."""
+    labels = np.zeros((size, size), np.int32)
+    for i, ys, xs, inside in _ellipse_boxes(cells, size):
+        box = labels[ys[0]:ys[-1] + 1, xs[0]:xs[-1] + 1]
+        box[inside] = i + 1
+    return labels
+
+
+@dataclass
+class SiteTruth:
+    """Planted truth of one simulated site: label images (frames, y, x) with cell i as label i + 1,
+    and one row per cell and frame (frame, cell, x_um, y_um)."""
+
+    labels: np.ndarray
+    positions: pd.DataFrame
+
+
+def simulate_site(scenario: dict, factor: dict[str, float], rng: np.random.Generator,
+                  with_truth: bool = False) -> np.ndarray | tuple[np.ndarray, SiteTruth]:
+    """Images of one site: array (frames, 2 channels, y, x) uint16, nuclei then reporter.
+
+    With ``with_truth`` also the planted truth (the images are the same either way).
+    """
     size, frames = scenario["image_size_px"], scenario["frames"]
     imaging, cell = scenario["imaging"], scenario["cell"]
     cells = _draw_cells(rng, scenario, factor, size)
     _separate(cells, size, iterations=20)
     illumination = vignetting(size, imaging["vignetting_corner"])
     stack = np.empty((frames, 2, size, size), np.uint16)
+    truth_labels = np.zeros((frames, size, size), np.int32) if with_truth else None
+    positions = []
     for frame in range(frames):
         time = frame * scenario["frame_interval_min"]
         oscillation = 1 + cell["reporter_oscillation_amplitude"] * np.sin(2 * np.pi * time / cell["reporter_period_min"] + cells.phase)
@@ -182,8 +211,16 @@ def simulate_site(scenario: dict, factor: dict[str, float], rng: np.random.Gener
             signal = ndimage.gaussian_filter(_render(cells, levels, size), imaging["blur_sigma_px"])
             image = (signal + imaging["background"]) * illumination + rng.normal(0, imaging["noise_sd"], (size, size))
             stack[frame, channel] = np.clip(np.rint(image), 0, 65535).astype(np.uint16)
+        if with_truth:
+            truth_labels[frame] = _render_labels(cells, size)
+            pixel = scenario["pixel_size_um"]
+            positions.append(pd.DataFrame({"frame": frame, "cell": np.arange(len(cells.position)),
+                                           "x_um": cells.position[:, 1] * pixel, "y_um": cells.position[:, 0] * pixel}))
         _step(rng, cells, scenario, factor["speed"], size)
-    return stack
+    if not with_truth:
+        return stack
+    table = pd.concat(positions, ignore_index=True) if positions else pd.DataFrame(columns=["frame", "cell", "x_um", "y_um"])
+    return stack, SiteTruth(truth_labels, table)
 
 
 def well_factors(scenario: dict, plate: str, batch: str, well: str, condition: str, dose: float) -> dict[str, float]:

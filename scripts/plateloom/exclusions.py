@@ -36,8 +36,13 @@ def empty_ledger() -> pd.DataFrame:
 
 
 def site_frame_exclusions(site_qc: pd.DataFrame, rules: ExclusionRules, plate: str) -> pd.DataFrame:
-    """Ledger rows for site-frames failing the focus floor or the saturation ceiling (any channel)."""
+    """Ledger rows for site-frames failing the focus floor or the saturation ceiling (any channel), and for
+    frames that could not be used at all (rule unusable_frame: missing, unreadable, wrong shape, NaN pixels)."""
     rows = []
+    if "frame_problem" in site_qc.columns:
+        bad = site_qc[site_qc["frame_problem"].fillna("") != ""]
+        rows += [("site_frame", plate, r.well, int(r.site), int(r.frame), "unusable_frame", float("nan"), float("nan"))
+                 for r in bad.itertuples()]
     if rules.min_focus_score is not None:
         bad = site_qc[site_qc["focus_score"] < rules.min_focus_score]
         rows += [("site_frame", plate, r.well, int(r.site), int(r.frame), "min_focus_score", float(r.focus_score),

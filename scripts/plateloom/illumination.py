@@ -81,10 +81,13 @@ def estimate_flat_field(index: ImageIndex, channel: str, channels: list[str], se
             wanted = set(np.linspace(0, n_frames - 1, min(settings.frames_per_site, n_frames)).round().astype(int).tolist())
             frames = stream_site(index, well, site, [channel])
             try:
-                for frame, stack, _ in frames:
-                    if frame in wanted:
-                        site_planes.append(stack[0])
-                    if frame >= max(wanted):
+                for position, item in enumerate(frames):
+                    if position in wanted:
+                        if item.problem:
+                            skipped.append(item.problem)
+                        else:
+                            site_planes.append(item.planes[0])
+                    if position >= max(wanted):
                         break
             finally:
                 frames.close()

@@ -104,7 +104,11 @@ def _check_plane(plane: np.ndarray, path: str, shape: tuple[int, ...] | None) ->
                          "all images of a site must have the same size.")
     if not (np.issubdtype(plane.dtype, np.integer) or np.issubdtype(plane.dtype, np.floating)):
         raise InputError(path, f"pixel type {plane.dtype} is not numeric.", "save grey-level images (uint8, uint16 or float).")
-    return plane.astype(np.float32, copy=False)
+    plane = plane.astype(np.float32, copy=False)
+    if not np.isfinite(plane).all():
+        raise InputError(path, "image holds NaN or infinite pixels.",
+                         "re-export the images; plateloom expects finite grey levels.")
+    return plane
 
 
 def _unreadable(path: str, error: Exception) -> InputError:
@@ -133,57 +137,84 @@ def _page_count(path: str) -> int:
         return len(tif.pages)
 
 
-def site_frame_count(index: ImageIndex, well: str, site: int, channels: list[str]) -> int:
-    """Number of frames of one site (the same for every channel, else an error)."""
+def site_frame_counts(index: ImageIndex, well: str, site: int, channels: list[str]) -> dict[str, tuple[int, str]]:
+    """Per channel: (number of frames, where they come from) of one site; an error if a channel has no image."""
     files = index.table[(index.table["well"] == well) & (index.table["site"] == site)]
-    counts, sources = {}, {}
+    counts = {}
     for channel in channels:
         paths = files.loc[files["channel"] == channel, "path"].tolist()
         if not paths:
             raise InputError(f"well {well}, site {site}", f"no image for channel {channel!r}.", "check the file names against images.filename_template.")
-        counts[channel] = _page_count(paths[0]) if index.stacks else len(paths)
-        sources[channel] = os.path.basename(paths[0]) if index.stacks else f"{len(paths)} files"
-    if len(set(counts.values())) != 1:
-        details = ", ".join(f"{c}: {n} in {sources[c]}" for c, n in counts.items())
-        raise InputError(f"well {well}, site {site}", f"channels have different frame counts ({details}).",
-                         "re-copy or re-export the file with fewer frames; a truncated copy is the usual cause.")
-    return next(iter(counts.values()))
+        if index.stacks:
+            counts[channel] = (_page_count(paths[0]), os.path.basename(paths[0]))
+        else:
+            frames = files.loc[files["channel"] == channel, "frame"]
+            counts[channel] = (int(frames.max()) - int(frames.min()) + 1, f"{len(paths)} files")
+    return counts
 
 
-def stream_site(index: ImageIndex, well: str, site: int, channels: list[str]) -> Iterator[tuple[int, np.ndarray, np.ndarray]]:
-    """Yield (frame, planes, saturated) for one site, one frame at a time.
+def site_frame_count(index: ImageIndex, well: str, site: int, channels: list[str]) -> int:
+    """Number of frames of one site: the longest channel (frames another channel lacks are flagged)."""
+    return max(n for n, _ in site_frame_counts(index, well, site, channels).values())
 
-    planes is (channels, y, x) float32; saturated the per-channel fraction of pixels at the
-    pixel type's maximum.
 
-    Only one frame of every channel is held in memory at once.
+@dataclass(frozen=True)
+class SiteFrame:
+    """One frame of a site: planes (channels, y, x) float32 and per-channel saturated fraction,
+    or ``problem`` (the message naming file and fix) when the frame cannot be used."""
+
+    frame: int
+    planes: np.ndarray | None
+    saturated: np.ndarray
+    problem: str = ""
+
+
+def stream_site(index: ImageIndex, well: str, site: int, channels: list[str]) -> Iterator[SiteFrame]:
+    """Yield the frames of one site in order, one at a time (only one frame of every channel is in memory).
+
+    A frame that cannot be used (its file missing from a per-frame series, a stack shorter
+    than the other channels', a page of another shape or pixel type, NaN pixels, an unreadable
+    page) comes with ``problem`` set and no planes, so the rest of the site is still analysed.
+    A file that cannot be opened at all, or a channel without any image, stops with an error.
     """
     files = index.table[(index.table["well"] == well) & (index.table["site"] == site)]
-    n_frames = site_frame_count(index, well, site, channels)
+    counts = site_frame_counts(index, well, site, channels)
+    n_frames = max(n for n, _ in counts.values())
     by_channel = {c: files[files["channel"] == c].sort_values("frame") for c in channels}
-    if not index.stacks:
-        for channel, table in by_channel.items():
-            expected = list(range(int(table["frame"].min()), int(table["frame"].min()) + n_frames))
-            if table["frame"].tolist() != expected:
-                missing = sorted(set(expected) - set(table["frame"]))
-                raise InputError(f"well {well}, site {site}, channel {channel}", f"frames {missing} are missing.", "re-export the missing frames.")
+    first_frame = {c: int(t["frame"].min()) for c, t in by_channel.items()}
+    start = min(first_frame.values()) if not index.stacks else 0
     shape: tuple[int, ...] | None = None
     with ExitStack() as stack:
         # a stack file is opened once per site, not once per frame
         opened = {c: stack.enter_context(_open_tiff(by_channel[c]["path"].iloc[0])) for c in channels} if index.stacks else {}
+        paths = {c: dict(zip(t["frame"], t["path"])) for c, t in by_channel.items()}
         for frame in range(n_frames):
-            planes, saturated = [], []
+            planes, saturated, problem = [], [], ""
             for channel in channels:
-                table = by_channel[channel]
-                if index.stacks:
-                    path = table["path"].iloc[0]
-                    plane = _page(opened[channel], path, frame)
-                else:
-                    path = table["path"].iloc[frame]
-                    with _open_tiff(path) as tif:
-                        plane = _page(tif, path, 0)
-                saturated.append(saturated_fraction(plane))
-                plane = _check_plane(plane, path, shape)
+                try:
+                    if index.stacks:
+                        path = by_channel[channel]["path"].iloc[0]
+                        if frame >= counts[channel][0]:
+                            raise InputError(path, f"has {counts[channel][0]} pages while another channel has {n_frames}; "
+                                             f"frame {frame} is missing.",
+                                             "re-copy or re-export the file; a truncated copy is the usual cause.")
+                        plane = _page(opened[channel], path, frame)
+                    else:
+                        path = paths[channel].get(start + frame)
+                        if path is None:
+                            raise InputError(f"well {well}, site {site}, channel {channel}",
+                                             f"frame {start + frame} is missing from the series.",
+                                             "re-export the missing frame; the other frames are analysed.")
+                        with _open_tiff(path) as tif:
+                            plane = _page(tif, path, 0)
+                    saturated.append(saturated_fraction(plane))
+                    plane = _check_plane(plane, path, shape)
+                except InputError as error:
+                    problem = f"well {well}, site {site}, frame {start + frame}: {error}"
+                    break
                 shape = plane.shape
                 planes.append(plane)
-            yield frame, np.stack(planes), np.array(saturated)
+            if problem:
+                yield SiteFrame(start + frame, None, np.full(len(channels), np.nan), problem)
+            else:
+                yield SiteFrame(start + frame, np.stack(planes), np.array(saturated))

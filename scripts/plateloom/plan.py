@@ -51,18 +51,24 @@ class ScreenPlan:
 
 
 def channel_names(config: dict) -> dict[str, str]:
-    """Role -> channel name for the nuclei and reporter channels (reporter falls back to nuclei)."""
+    """Role -> channel name; "nuclei" is the channel objects are segmented on (role nuclei, or
+    label_free for phase-contrast or bright-field images); reporter falls back to it."""
     roles = {}
     for channel in config["channels"]:
         roles.setdefault(channel["role"], channel["name"])
-    if "nuclei" not in roles:
-        raise InputError("config channels", "no channel has role nuclei.", "give the nuclear stain role: nuclei.")
-    nuclei_count = sum(c["role"] == "nuclei" for c in config["channels"])
-    if nuclei_count > 1:
-        raise InputError("config channels", "more than one channel has role nuclei.", "keep one nuclei channel.")
+    segmented = [c["name"] for c in config["channels"] if c["role"] in ("nuclei", "label_free")]
+    if not segmented:
+        raise InputError("config channels", "no channel has role nuclei (or label_free).",
+                         "give the nuclear stain role: nuclei (or an unlabelled phase-contrast channel role: label_free).")
+    if len(segmented) > 1:
+        raise InputError("config channels", f"more than one channel has role nuclei or label_free: {segmented}.",
+                         "keep one channel to segment.")
+    if sum(c["role"] == "cell_body" for c in config["channels"]) > 1:
+        raise InputError("config channels", "more than one channel has role cell_body.", "keep one cell_body channel.")
     names = [c["name"] for c in config["channels"]]
     if len(set(names)) != len(names):
         raise InputError("config channels", f"channel names repeat: {names}.", "give every channel its own name.")
+    roles["nuclei"] = segmented[0]
     roles.setdefault("reporter", roles["nuclei"])
     return roles
 

@@ -40,10 +40,25 @@ class PlateTables:
 def summarise_site_qc(site_qc: pd.DataFrame) -> dict[str, float]:
     """Plate-level image QC: site-frames, empty fields, focus score spread, worst saturation."""
     saturation = [c for c in site_qc.columns if c.startswith("saturated_fraction_")]
-    return {"site_frames": int(len(site_qc)), "empty_site_frames": int((site_qc["n_objects"] == 0).sum()),
+    unusable = int((site_qc["frame_problem"].fillna("") != "").sum()) if "frame_problem" in site_qc.columns else 0
+    return {"site_frames": int(len(site_qc)), "empty_site_frames": int((site_qc["n_objects"] == 0).sum()) - unusable,
+            "unusable_site_frames": unusable,
             "focus_score_median": float(site_qc["focus_score"].median()),
             "focus_score_min": float(site_qc["focus_score"].min()),
             "saturated_fraction_max": float(np.nanmax(site_qc[saturation].to_numpy())) if saturation and site_qc[saturation].notna().any().any() else float("nan")}
+
+
+def unusable_frame_notes(site_qc: pd.DataFrame, shown: int = 5) -> list[str]:
+    """Plate-report warnings for frames that could not be used (each with its message and fix)."""
+    if "frame_problem" not in site_qc.columns:
+        return []
+    problems = site_qc["frame_problem"].fillna("")
+    problems = problems[problems != ""].tolist()
+    if not problems:
+        return []
+    more = f" ({len(problems) - shown} more in the site QC table)" if len(problems) > shown else ""
+    return [f"{len(problems)} site-frame(s) could not be used and are in the exclusion ledger as unusable_frame; "
+            f"the rest of their wells was analysed{more}."] + problems[:shown]
 
 
 def _grid_values(profile: pd.DataFrame, values: np.ndarray, fmt) -> np.ndarray:
@@ -68,6 +83,7 @@ def build_plate_tables(cells: pd.DataFrame, tracks: pd.DataFrame, site_qc: pd.Da
     fmt = plate_format(wells)
     warnings: list[str] = []
     ledger = [site_frame_exclusions(site_qc, rules, plate)]
+    warnings += unusable_frame_notes(site_qc)
     kept_cells = drop_excluded_site_frames(cells, ledger[0])
     profile = summarise_wells(kept_cells, tracks, layout, plate, batch, wells, settings.well_summary)
     measured = cells.groupby("well").size()

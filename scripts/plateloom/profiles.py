@@ -10,8 +10,10 @@ import pandas as pd
 import pyarrow.dataset as ds
 
 from .plate_formats import is_edge_well, parse_well, plate_format
+from .trackstats import growth_rate_per_h
 
-TRACK_FEATURES = ("speed_um_per_min", "straightness")
+TRACK_FEATURES = ("speed_um_per_min", "straightness", "walk_speed_um_per_min", "persistence_time_min")
+REPORTER_TRACK_PREFIXES = ("track_mean_", "track_cv_", "period_min_", "peaks_per_h_", "max_rate_per_min_")
 NON_FEATURE_COLUMNS = ("plate", "well", "site", "frame", "time_min", "object", "track", "parent_track", "touches_border",
                        "centroid_x_um", "centroid_y_um", "chunk")
 
@@ -19,6 +21,21 @@ NON_FEATURE_COLUMNS = ("plate", "well", "site", "frame", "time_min", "object", "
 def observation_features(columns: list[str]) -> list[str]:
     """The measured per-observation features among a cells table's columns."""
     return [c for c in columns if c not in NON_FEATURE_COLUMNS]
+
+
+def track_feature_columns(columns: list[str]) -> list[str]:
+    """The per-track features summarised per well: motility, walk fit, reporter dynamics."""
+    return [c for c in columns if c in TRACK_FEATURES or c.startswith(REPORTER_TRACK_PREFIXES)]
+
+
+def well_growth_rates(cells: pd.DataFrame) -> pd.Series:
+    """Per well: exponential growth rate of the nucleus count (1/h), from counts summed over sites per frame."""
+    if "time_min" not in cells.columns or cells.empty:
+        return pd.Series(dtype=float, name="growth_rate_per_h")
+    counts = cells.groupby(["well", "time_min"]).size().reset_index(name="count")
+    rates = {well: growth_rate_per_h(group["time_min"].to_numpy(float), group["count"].to_numpy(float))
+             for well, group in counts.groupby("well")}
+    return pd.Series(rates, name="growth_rate_per_h", dtype=float)
 
 
 def read_plate_dataset(folders: list[str], columns: list[str] | None = None) -> pd.DataFrame:
@@ -50,7 +67,8 @@ def summarise_wells(cells: pd.DataFrame, tracks: pd.DataFrame, layout: pd.DataFr
                     wells: int, statistic: str = "median") -> pd.DataFrame:
     """One row per analysed well: keys, layout, counts and the median of every feature.
 
-    cell_count is the mean number of nuclei per site and frame; observation features are
+    cell_count is the mean number of nuclei per site and frame, growth_rate_per_h the slope of
+    log(nuclei per frame) against time; observation features are
     summarised over observations not touching the image border; speed and straightness over
     tracks with enough frames (see tracking.min_track_frames). ``statistic`` is "median" or
     "mean_log" (exp of the mean of natural logs, for skewed positive features; features
@@ -65,10 +83,11 @@ def summarise_wells(cells: pd.DataFrame, tracks: pd.DataFrame, layout: pd.DataFr
     sites = cells.groupby("well")["site"].nunique().rename("n_sites")
     frames = cells.groupby("well")["frame"].nunique().rename("n_frames")
     usable = tracks[tracks["speed_um_per_min"].notna() & ~tracks["touches_border"]]
-    motion = _summary(usable, list(TRACK_FEATURES), statistic)
+    motion = _summary(usable, track_feature_columns(list(tracks.columns)), statistic)
+    growth = well_growth_rates(cells)
     n_tracks = usable.groupby("well").size().rename("n_tracks")
     analysed = layout[layout["role"] != "empty"].set_index("well")
-    profile = analysed.join([per_frame, n_obs, sites, frames, n_tracks, medians, motion], how="left")
+    profile = analysed.join([per_frame, growth, n_obs, sites, frames, n_tracks, medians, motion], how="left")
     profile["cell_count"] = profile["cell_count"].fillna(0.0)
     for column in ("n_observations", "n_tracks"):
         profile[column] = profile[column].fillna(0).astype(np.int64)

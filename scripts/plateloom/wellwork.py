@@ -12,9 +12,11 @@ from .errors import InputError
 from .features import measure_objects, neighbourhood
 from .illumination import apply_flat_field
 from .images import ImageIndex, stream_site
-from .segment import background_levels, focus_score, segment_nuclei
+from .segment import (background_levels, focus_score, grow_cell_bodies, segment_label_free, segment_smoothed,
+                      smooth_image)
 from .tables import well_part_path, write_parquet
 from .track import close_gaps, find_divisions, link_frames, track_features
+from .trackstats import fit_persistent_walk, mean_squared_displacement, reporter_dynamics, track_matrix
 
 
 @dataclass(frozen=True)
@@ -33,55 +35,119 @@ class WellSettings:
     max_gap_frames: int = 0
     division_max_distance_um: float | None = None
     neighbour_radius_um: float = 25.0
+    threshold_method: str = "otsu"
+    label_free: bool = False
+    label_free_window_um: float = 5.0
+    cell_body_channel: str | None = None
+    cell_body_smoothing_sigma_um: float = 2.0
+    texture_channels: tuple[str, ...] | None = None   # None: the nuclei channel
+    texture_distance_um: float = 1.6
+    texture_levels: int = 8
+    reporter_channels: tuple[str, ...] = ()
+    msd_max_lag_frames: int = 20
 
     @classmethod
     def from_config(cls, config: dict) -> "WellSettings":
         channels = tuple(c["name"] for c in config["channels"])
-        nuclei = [c["name"] for c in config["channels"] if c["role"] == "nuclei"]
+        roles = [c["role"] for c in config["channels"]]
+        segmented = [c["name"] for c in config["channels"] if c["role"] in ("nuclei", "label_free")]
         seg, trk, img = config["segmentation"], config["tracking"], config["images"]
-        return cls(channels, nuclei[0], img["pixel_size_um"], img["frame_interval_min"], seg["smoothing_sigma_um"],
+        measure = config.get("measurement", {})
+        texture = measure.get("texture_channels")
+        return cls(channels, segmented[0], img["pixel_size_um"], img["frame_interval_min"], seg["smoothing_sigma_um"],
                    seg["min_nucleus_area_um2"], seg["split_min_distance_um"], trk["max_displacement_um"],
                    trk["min_track_frames"], int(trk.get("max_gap_frames", 2)), trk.get("division_max_distance_um"),
-                   float(config.get("measurement", {}).get("neighbour_radius_um", 25.0)))
+                   float(measure.get("neighbour_radius_um", 25.0)), seg.get("threshold_method", "otsu"),
+                   "label_free" in roles, float(seg.get("label_free_window_um", 5.0)),
+                   next((c for c, r in zip(channels, roles) if r == "cell_body"), None),
+                   float(seg.get("cell_body_smoothing_sigma_um", 2.0)), None if texture is None else tuple(texture),
+                   float(measure.get("texture_distance_um", 1.6)), int(measure.get("texture_levels", 8)),
+                   tuple(c for c, r in zip(channels, roles) if r == "reporter"), int(trk.get("msd_max_lag_frames", 20)))
+
+    @property
+    def measured_texture_channels(self) -> list[str]:
+        return [self.nuclei_channel] if self.texture_channels is None else list(self.texture_channels)
+
+
+def segment_frame(planes: np.ndarray, settings: WellSettings) -> tuple[np.ndarray, np.ndarray | None, float, np.ndarray]:
+    """Objects of one frame: (nuclei labels, cell-body labels or None, threshold, smoothed segmented channel)."""
+    channels = list(settings.channels)
+    image = planes[channels.index(settings.nuclei_channel)]
+    smooth = smooth_image(image, settings.smoothing_sigma_um / settings.pixel_size_um)
+    if settings.label_free:
+        labels, threshold = segment_label_free(image, settings.pixel_size_um, settings.label_free_window_um,
+                                               settings.min_nucleus_area_um2, settings.split_min_distance_um,
+                                               settings.threshold_method)
+    else:
+        labels, threshold = segment_smoothed(smooth, settings.pixel_size_um, settings.min_nucleus_area_um2,
+                                             settings.split_min_distance_um, settings.threshold_method)
+    bodies = None
+    if settings.cell_body_channel:
+        bodies = grow_cell_bodies(labels, planes[channels.index(settings.cell_body_channel)], settings.pixel_size_um,
+                                  settings.cell_body_smoothing_sigma_um, settings.threshold_method)
+    return labels, bodies, threshold, smooth
+
+
+def measure_frame(planes: np.ndarray, labels: np.ndarray, bodies: np.ndarray | None,
+                  settings: WellSettings) -> tuple[pd.DataFrame, np.ndarray]:
+    """Per-object table of one frame (shape, intensity, texture, cytoplasm, neighbours) and the channel backgrounds."""
+    channels = list(settings.channels)
+    background = background_levels(planes, labels if bodies is None else bodies)
+    distance_px = max(1, int(round(settings.texture_distance_um / settings.pixel_size_um)))
+    table = measure_objects(labels, planes, channels, background, settings.pixel_size_um, bodies,
+                            settings.measured_texture_channels, distance_px, settings.texture_levels)
+    xy = table[["centroid_x_um", "centroid_y_um"]].to_numpy()
+    table["neighbours"], table["nearest_neighbour_um"] = neighbourhood(xy, settings.neighbour_radius_um)
+    return table, background
 
 
 def analyse_site(index: ImageIndex, well: str, site: int, settings: WellSettings,
                  flat_field: np.ndarray | None = None) -> tuple[pd.DataFrame, pd.DataFrame]:
     """Observations (with track ids local to the site) and per-frame QC of one site.
 
-    ``flat_field`` (channels, y, x), if given, divides every frame before segmentation and measurement.
+    ``flat_field`` (channels, y, x), if given, divides every frame before segmentation and
+    measurement. A frame that cannot be used gets a QC row with ``frame_problem`` (the
+    message) and no observations; tracks bridge it by gap closing.
     """
     channels = list(settings.channels)
-    nuclei_index = channels.index(settings.nuclei_channel)
     observations, qc_rows = [], []
     previous_xy = np.empty((0, 2))
     previous_tracks = np.empty(0, dtype=np.int64)
     next_track = 0
-    for frame, planes, saturated in stream_site(index, well, site, channels):
-        if not np.isfinite(planes).all():
-            raise InputError(f"well {well}, site {site}, frame {frame}", "image holds NaN or infinite pixels.",
-                             "re-export the images; plateloom expects finite grey levels.")
-        planes = apply_flat_field(planes, flat_field)
-        labels, threshold = segment_nuclei(planes[nuclei_index], settings.pixel_size_um, settings.smoothing_sigma_um,
-                                           settings.min_nucleus_area_um2, settings.split_min_distance_um)
-        background = background_levels(planes, labels)
-        table = measure_objects(labels, planes, channels, background, settings.pixel_size_um)
+    usable_frames = 0
+    for item in stream_site(index, well, site, channels):
+        qc = {"site": site, "frame": item.frame}
+        if item.problem:
+            qc.update({"n_objects": 0, "foreground_fraction": np.nan, "threshold": np.nan, "focus_score": np.nan,
+                       "empty_field": False, "frame_problem": item.problem})
+            qc.update({f"background_{c}": np.nan for c in channels})
+            qc.update({f"saturated_fraction_{c}": np.nan for c in channels})
+            qc_rows.append(qc)
+            previous_xy, previous_tracks = np.empty((0, 2)), np.empty(0, dtype=np.int64)
+            continue
+        usable_frames += 1
+        planes = apply_flat_field(item.planes, flat_field)
+        labels, bodies, threshold, smooth = segment_frame(planes, settings)
+        table, background = measure_frame(planes, labels, bodies, settings)
         xy = table[["centroid_x_um", "centroid_y_um"]].to_numpy()
-        table["neighbours"], table["nearest_neighbour_um"] = neighbourhood(xy, settings.neighbour_radius_um)
         links = link_frames(previous_xy, xy, settings.max_displacement_um)
         tracks = np.where(links >= 0, previous_tracks[np.clip(links, 0, None)] if len(previous_tracks) else -1, -1)
         new = tracks < 0
         tracks[new] = next_track + np.arange(new.sum())
         next_track += int(new.sum())
-        table.insert(0, "frame", frame)
+        table.insert(0, "frame", item.frame)
         table.insert(1, "track", tracks.astype(np.int64))
         observations.append(table)
-        qc = {"site": site, "frame": frame, "n_objects": len(table), "foreground_fraction": float((labels > 0).mean()),
-              "threshold": threshold, "focus_score": focus_score(planes[nuclei_index])}
+        qc.update({"n_objects": len(table), "foreground_fraction": float((labels > 0).mean()), "threshold": threshold,
+                   "focus_score": focus_score(smooth), "empty_field": len(table) == 0, "frame_problem": ""})
         qc.update({f"background_{c}": float(b) for c, b in zip(channels, background)})
-        qc.update({f"saturated_fraction_{c}": float(f) for c, f in zip(channels, saturated)})
+        qc.update({f"saturated_fraction_{c}": float(f) for c, f in zip(channels, item.saturated)})
         qc_rows.append(qc)
         previous_xy, previous_tracks = xy, tracks.astype(np.int64)
+    if usable_frames == 0:
+        first = qc_rows[0]["frame_problem"] if qc_rows else f"well {well}, site {site}: no frames"
+        raise InputError(f"well {well}, site {site}", f"no frame of this site can be used; the first problem: {first}",
+                         "fix the files of this site (every frame is affected, so this is not a glitch of one frame).")
     cells = pd.concat(observations, ignore_index=True)
     cells.insert(0, "site", site)
     cells["parent_track"] = -1
@@ -93,6 +159,38 @@ def analyse_site(index: ImageIndex, well: str, site: int, settings: WellSettings
             cells["parent_track"] = pd.Series(parents.set_index("track")["parent_track"]).reindex(track).fillna(-1).to_numpy(np.int64)
         cells["track"] = track
     return cells, pd.DataFrame(qc_rows)
+
+
+def track_table(cells: pd.DataFrame, settings: WellSettings) -> pd.DataFrame:
+    """One row per track: motility, persistent-random-walk fit and reporter dynamics (see README outputs)."""
+    frame, track = cells["frame"].to_numpy(), cells["track"].to_numpy()
+    x, y = cells["centroid_x_um"].to_numpy(), cells["centroid_y_um"].to_numpy()
+    motion = track_features(frame, track, x, y, settings.frame_interval_min, settings.min_track_frames)
+    tracks = pd.DataFrame(motion)
+    if tracks.empty:
+        extra = ["walk_speed_um_per_min", "persistence_time_min"] + [
+            f"{column}_{c}" for c in settings.reporter_channels
+            for column in ("track_mean", "track_cv", "period_min", "peaks_per_h", "max_rate_per_min")]
+        return tracks.assign(**{column: pd.Series(dtype=float) for column in extra})
+    ids = tracks["track"].to_numpy()
+    long_enough = tracks["n_frames"].to_numpy() >= settings.min_track_frames
+    _, x_matrix = track_matrix(frame, track, x, ids)
+    _, y_matrix = track_matrix(frame, track, y, ids)
+    max_lag = max(1, min(settings.msd_max_lag_frames, x_matrix.shape[1] // 2))
+    msd, pairs = mean_squared_displacement(x_matrix, y_matrix, max_lag)
+    observed = np.isfinite(x_matrix)
+    span = x_matrix.shape[1] - observed[:, ::-1].argmax(axis=1) - observed.argmax(axis=1)
+    pairs[np.arange(1, max_lag + 1)[None, :] > (span // 2)[:, None]] = 0      # a track uses lags up to half its span
+    walk_speed, persistence = fit_persistent_walk(msd, pairs, settings.frame_interval_min)
+    tracks["walk_speed_um_per_min"] = np.where(long_enough, walk_speed, np.nan)
+    tracks["persistence_time_min"] = np.where(long_enough, persistence, np.nan)
+    for channel in settings.reporter_channels:
+        _, values = track_matrix(frame, track, cells[f"mean_intensity_{channel}"].to_numpy(), ids)
+        dynamics = reporter_dynamics(values, settings.frame_interval_min, settings.min_track_frames)
+        for name, column in (("mean", "track_mean"), ("cv", "track_cv"), ("period_min", "period_min"),
+                             ("peaks_per_h", "peaks_per_h"), ("max_rate_per_min", "max_rate_per_min")):
+            tracks[f"{column}_{channel}"] = np.where(long_enough, dynamics[name], np.nan)
+    return tracks
 
 
 def analyse_well(index: ImageIndex, well: str, settings: WellSettings,
@@ -115,9 +213,7 @@ def analyse_well(index: ImageIndex, well: str, settings: WellSettings,
         qc_parts.append(qc)
     cells = pd.concat(cell_parts, ignore_index=True)
     cells.insert(2, "time_min", cells["frame"] * settings.frame_interval_min)
-    motion = track_features(cells["frame"].to_numpy(), cells["track"].to_numpy(), cells["centroid_x_um"].to_numpy(),
-                            cells["centroid_y_um"].to_numpy(), settings.frame_interval_min, settings.min_track_frames)
-    tracks = pd.DataFrame(motion)
+    tracks = track_table(cells, settings)
     first = cells.sort_values(["track", "frame"]).drop_duplicates("track").set_index("track")
     tracks.insert(0, "site", first.loc[tracks["track"], "site"].to_numpy())
     border = cells.groupby("track")["touches_border"].any()
