@@ -10,10 +10,11 @@ configfile: "config/config.yaml"
 validate(config, "workflow/schemas/config.schema.yaml")
 
 from plateloom.errors import InputError
-from plateloom.plan import plan_screen
+from plateloom.plan import plan_screen, resolve_image_scale
 
 try:
     PLAN = plan_screen(config)
+    config["images"].update(resolve_image_scale(config, PLAN))
 except InputError as error:
     raise WorkflowError(f"plateloom could not start: {error}")
 

@@ -88,6 +88,70 @@ def unmatched_note(folder: str, template: str, wells: int, channels: list[str], 
             f"channel and were not analysed: {listed}. Fix: rename them, or adjust the template or channels.")
 
 
+LENGTH_TO_UM = {"µm": 1.0, "um": 1.0, "\u00b5m": 1.0, "nm": 1e-3, "mm": 1e3, "m": 1e6}
+TIME_TO_MIN = {"s": 1 / 60, "ms": 1 / 60000, "min": 1.0, "h": 60.0}
+
+
+@dataclass(frozen=True)
+class OmeMetadata:
+    """What an OME-TIFF says about its pixels: pixel size (um), frame interval (min), channel names."""
+
+    pixel_size_um: float | None
+    frame_interval_min: float | None
+    channel_names: tuple[str, ...]
+
+
+def read_ome_metadata(path: str) -> OmeMetadata | None:
+    """Pixel size, time increment and channel names from an OME-TIFF's OME-XML (None if it has none).
+
+    Units follow the OME schema's defaults when not given: micrometres for sizes, seconds for
+    the time increment.
+    """
+    import xml.etree.ElementTree as ElementTree
+
+    with _open_tiff(path) as tif:
+        xml = tif.ome_metadata
+    if not xml:
+        return None
+    try:
+        root = ElementTree.fromstring(xml)
+    except ElementTree.ParseError as error:
+        raise InputError(path, f"its OME-XML cannot be parsed ({error}).", "re-export the file, or set images.pixel_size_um "
+                         "and images.frame_interval_min in config.") from None
+    pixels = next((e for e in root.iter() if e.tag.endswith("}Pixels") or e.tag == "Pixels"), None)
+    if pixels is None:
+        return None
+    size = pixels.get("PhysicalSizeX")
+    size_unit = pixels.get("PhysicalSizeXUnit", "µm")
+    interval = pixels.get("TimeIncrement")
+    interval_unit = pixels.get("TimeIncrementUnit", "s")
+    names = tuple(c.get("Name", "") for c in pixels if c.tag.endswith("Channel"))
+    return OmeMetadata(float(size) * LENGTH_TO_UM[size_unit] if size and size_unit in LENGTH_TO_UM else None,
+                       float(interval) * TIME_TO_MIN[interval_unit] if interval and interval_unit in TIME_TO_MIN else None,
+                       names)
+
+
+def image_scale(config_images: dict, first_image: str | None) -> tuple[float, float, str]:
+    """(pixel size um, frame interval min, where they came from): config values win, else the OME metadata.
+
+    A value that neither config nor the first image's metadata gives stops with a message.
+    """
+    pixel, interval = config_images.get("pixel_size_um"), config_images.get("frame_interval_min")
+    if pixel is not None and interval is not None:
+        return float(pixel), float(interval), "config"
+    metadata = read_ome_metadata(first_image) if first_image else None
+    if pixel is None:
+        pixel = metadata.pixel_size_um if metadata else None
+    if interval is None:
+        interval = metadata.frame_interval_min if metadata else None
+    missing = [name for name, value in (("pixel_size_um", pixel), ("frame_interval_min", interval)) if value is None]
+    if missing:
+        raise InputError(f"config images ({first_image or 'no image found'})",
+                         f"{' and '.join(missing)} not set and not in the image's OME metadata.",
+                         f"set images.{' and images.'.join(missing)} in config/config.yaml.")
+    return float(pixel), float(interval), f"OME metadata of {first_image}"
+
+
 def saturated_fraction(plane: np.ndarray) -> float:
     """Fraction of pixels at the largest value of an integer pixel type (NaN for float images)."""
     if not np.issubdtype(plane.dtype, np.integer):

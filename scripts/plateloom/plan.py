@@ -9,6 +9,7 @@ import pandas as pd
 
 from .demo import demo_plates, load_scenario
 from .errors import InputError
+from .images import image_scale, template_regex
 from .screen import PlateEntry, analysed_wells, chunk_wells, load_layout, load_screen_sheet
 from .sizing import ImagingSize, JobSize, analyse_wells_size, screen_size
 
@@ -120,3 +121,21 @@ def plan_screen(config: dict) -> ScreenPlan:
     plan.features = resolve_features(config["screen"]["features"], config)
     plan.log_features = resolve_features(config["screen"]["log_scale_features"], config)
     return plan
+
+
+def resolve_image_scale(config: dict, plan: "ScreenPlan") -> dict[str, float]:
+    """images.pixel_size_um and frame_interval_min: from config, or else from the OME metadata of the
+    first image of the first plate whose folder exists (one TIFF header read at start-up)."""
+    images = config["images"]
+    first = None
+    if images.get("pixel_size_um") is None or images.get("frame_interval_min") is None:
+        regex = template_regex(images["filename_template"])
+        for plate in sorted(plan.plates):
+            folder = plan.plates[plate].image_folder
+            if os.path.isdir(folder):
+                names = sorted(n for n in os.listdir(folder) if regex.match(n))
+                if names:
+                    first = os.path.join(folder, names[0])
+                    break
+    pixel, interval, _ = image_scale(images, first)
+    return {"pixel_size_um": pixel, "frame_interval_min": interval}

@@ -35,7 +35,11 @@ def control_distributions(profile: pd.DataFrame, features: list[str]) -> plt.Fig
         axis.set_visible(False)
     data = profile[profile["excluded_by"] == ""]
     for axis, feature in zip(axes[0], features):
-        order = [r for r in ROLE_ORDER if (data["role"] == r).any()]
+        order = [r for r in ROLE_ORDER if data.loc[data["role"] == r, feature].notna().any()]
+        if not order:
+            axis.text(0.5, 0.5, "no values", ha="center", va="center", transform=axis.transAxes)
+            axis.set_title(feature, fontsize=9)
+            continue
         sns.stripplot(data=data, x="role", y=feature, order=order, ax=axis, size=4, jitter=0.25)
         sns.boxplot(data=data, x="role", y=feature, order=order, ax=axis, showfliers=False,
                     boxprops={"facecolor": "none"}, width=0.5)

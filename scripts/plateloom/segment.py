@@ -18,8 +18,8 @@ from skimage.filters import threshold_li, threshold_otsu, threshold_triangle
 from skimage.morphology import h_maxima
 from skimage.segmentation import watershed
 
-# A threshold closer to the background than this many robust noise SDs means the field holds
-# no objects (Otsu always finds a threshold, even in pure noise).
+# Objects brighter than the background by fewer than this many robust noise SDs mean the field
+# holds no objects (Otsu always finds a threshold, even in pure noise).
 MIN_CONTRAST_NOISE_SDS = 5.0
 SEED_DEPTH_PX = 1.0
 # A component is sent to the splitting step when its area is this many times the frame's
@@ -53,21 +53,23 @@ def smooth_image(image: np.ndarray, sigma_px: float) -> np.ndarray:
 def object_threshold(smooth: np.ndarray, method: str = "otsu") -> float:
     """Foreground threshold of a smoothed image (grey levels), or NaN when the field holds no objects.
 
-    A field whose threshold lies within MIN_CONTRAST_NOISE_SDS robust noise SDs of the median of
-    the pixels below it is empty: every automatic threshold finds a level even in pure noise.
+    A field whose pixels above the Otsu split lie (in median) within MIN_CONTRAST_NOISE_SDS robust
+    noise SDs of those below it is empty: every automatic threshold finds a level even in pure noise.
     """
     if method not in THRESHOLD_METHODS:
         raise ValueError(f"unknown threshold method {method!r}; use one of {sorted(THRESHOLD_METHODS)}")
     if not np.isfinite(smooth).all() or smooth.max() == smooth.min():
         return float("nan")
-    threshold = float(THRESHOLD_METHODS[method](smooth))
-    # contrast and noise are measured on the pixels below the threshold, so a dense field
-    # (a third or more of it cells) does not inflate the noise estimate
+    # Whether the field holds objects is judged on the Otsu split whatever the method: contrast
+    # and noise are measured on the pixels below it, so a dense field (a third or more of it
+    # cells) does not inflate the noise estimate.
     sample = smooth[::BACKGROUND_STRIDE, ::BACKGROUND_STRIDE]
-    below = sample[sample <= threshold]
-    if len(below) < 16 or threshold - np.median(below) < MIN_CONTRAST_NOISE_SDS * max(robust_sd(below), 1e-6):
+    split = float(threshold_otsu(sample)) if sample.max() > sample.min() else float(sample.max())
+    below, above = sample[sample <= split], sample[sample > split]
+    if len(below) < 16 or len(above) == 0 or (
+            np.median(above) - np.median(below) < MIN_CONTRAST_NOISE_SDS * max(robust_sd(below), 1e-6)):
         return float("nan")
-    return threshold
+    return float(THRESHOLD_METHODS[method](smooth))
 
 
 def fill_holes(mask: np.ndarray) -> np.ndarray:

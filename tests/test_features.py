@@ -1,0 +1,139 @@
+"""Vectorised per-object measures against scikit-image (regionprops, graycomatrix), cell bodies and
+the label-free path against planted truth."""
+
+import numpy as np
+import pytest
+from scipy import ndimage
+from skimage.draw import disk, ellipse
+from skimage.feature import graycomatrix, graycoprops
+from skimage.filters import threshold_li, threshold_otsu, threshold_triangle
+from skimage.measure import regionprops_table
+
+from plateloom.accuracy import pooled_average_precision
+from plateloom.demo import QUANTITIES, load_scenario, simulate_site
+from plateloom.features import GLCM_ANGLES, ObjectPixels, glcm_measures, measure_objects
+from plateloom.segment import grow_cell_bodies, segment_label_free, segment_nuclei
+
+from conftest import ROOT
+
+
+def _demo_frame(cells=60, size=256, seed=3):
+    scenario = load_scenario(str(ROOT / "resources/demo/scenario.yaml"), frames=1, image_size_px=size)
+    scenario["cells_per_site"] = cells
+    stack = simulate_site(scenario, {q: 1.0 for q in QUANTITIES}, np.random.default_rng(seed))
+    planes = stack[0].astype(np.float32)
+    labels, _ = segment_nuclei(planes[0], scenario["pixel_size_um"], 1.0, 30.0, 7.0)
+    return planes, labels
+
+
+def test_vectorised_measures_equal_regionprops():
+    # Reference: skimage.measure.regionprops_table, object by object.
+    planes, labels = _demo_frame()
+    assert labels.max() > 40
+    pixel = 0.8
+    table = measure_objects(labels, planes, ["nuc", "rep"], np.array([0.0, 0.0]), pixel)
+    reference = regionprops_table(labels, intensity_image=np.moveaxis(planes, 0, -1),
+                                  properties=("label", "area", "perimeter", "eccentricity", "solidity", "axis_major_length",
+                                              "axis_minor_length", "centroid", "intensity_mean", "intensity_std", "bbox"))
+    np.testing.assert_array_equal(table["object"], reference["label"])
+    pairs = [("area_um2", reference["area"] * pixel**2), ("perimeter_um", reference["perimeter"] * pixel),
+             ("eccentricity", reference["eccentricity"]), ("solidity", reference["solidity"]),
+             ("major_axis_um", reference["axis_major_length"] * pixel),
+             ("minor_axis_um", reference["axis_minor_length"] * pixel),
+             ("centroid_x_um", reference["centroid-1"] * pixel), ("centroid_y_um", reference["centroid-0"] * pixel),
+             ("mean_intensity_nuc", reference["intensity_mean-0"]), ("mean_intensity_rep", reference["intensity_mean-1"]),
+             ("std_intensity_nuc", reference["intensity_std-0"])]
+    for column, expected in pairs:
+        np.testing.assert_allclose(table[column].to_numpy(), expected, rtol=1e-6, atol=1e-6, err_msg=column)
+    border = ((reference["bbox-0"] == 0) | (reference["bbox-1"] == 0) | (reference["bbox-2"] == labels.shape[0])
+              | (reference["bbox-3"] == labels.shape[1]))
+    np.testing.assert_array_equal(table["touches_border"], border)
+
+
+def _reference_glcm(image, mask, distance, levels):
+    # Reference: skimage.feature.graycomatrix / graycoprops on one object; pixels outside it are put
+    # on an extra grey level whose row and column are dropped before normalising.
+    values = image[mask]
+    low, high = values.min(), values.max()
+    span = high - low if high > low else 1.0
+    quantised = np.full(image.shape, levels, np.uint8)
+    quantised[mask] = np.clip(((values - low) / span * levels).astype(int), 0, levels - 1)
+    counts = graycomatrix(quantised, [distance], list(GLCM_ANGLES), levels=levels + 1, symmetric=True)[:levels, :levels]
+    counts = counts.astype(float) / counts.sum(axis=(0, 1), keepdims=True)
+    return {prop: float(graycoprops(counts, "ASM" if prop == "asm" else prop).mean())
+            for prop in ("contrast", "homogeneity", "correlation", "asm")}
+
+
+@pytest.mark.parametrize("distance", [1, 2, 3])
+def test_glcm_texture_equals_scikit_image(distance):
+    rng = np.random.default_rng(distance)
+    image = rng.normal(100, 20, (120, 120)).astype(np.float32)
+    image = ndimage.gaussian_filter(image, 1.0)                    # some spatial correlation
+    labels = np.zeros((120, 120), np.int32)
+    labels[disk((30, 30), 14)] = 1
+    labels[ellipse(80, 70, 12, 25)] = 2
+    labels[disk((30, 95), 9)] = 3
+    pixels = ObjectPixels.of(labels)
+    ours = glcm_measures(image, labels, pixels, distance, levels=8)
+    for label in (1, 2, 3):
+        reference = _reference_glcm(image, labels == label, distance, 8)
+        for prop, value in reference.items():
+            assert ours[prop][label - 1] == pytest.approx(value, rel=1e-9, abs=1e-12), (label, prop)
+
+
+@pytest.mark.parametrize("method, reference", [("otsu", threshold_otsu), ("li", threshold_li), ("triangle", threshold_triangle)])
+def test_threshold_methods_are_the_published_ones(method, reference):
+    # Otsu 1979, Li & Tam 1998, Zack et al. 1977: scikit-image's implementations are the reference.
+    planes, _ = _demo_frame(cells=20, size=160)
+    _, threshold = segment_nuclei(planes[0], 0.8, 1.0, 30.0, 7.0, threshold_method=method)
+    assert threshold == pytest.approx(reference(ndimage.gaussian_filter(planes[0], 1.0 / 0.8)), rel=1e-6)
+
+
+def test_cell_bodies_grow_from_nuclei_and_give_cytoplasm_levels():
+    # Planted truth: two cells whose bodies touch; nucleus and cytoplasm carry known reporter levels.
+    size = 160
+    nuclei_truth = np.zeros((size, size), np.int32)
+    bodies_truth = np.zeros((size, size), np.int32)
+    centres = [(80, 50), (80, 108)]
+    for label, centre in enumerate(centres, start=1):
+        bodies_truth[disk(centre, 30, shape=(size, size))] = label
+    bodies_truth[:, 79] = 0          # a one-pixel cleft between the two touching bodies
+    for label, centre in enumerate(centres, start=1):
+        nuclei_truth[disk(centre, 12)] = label
+    rng = np.random.default_rng(0)
+    nuclear = 100 + 1000 * (nuclei_truth > 0) + rng.normal(0, 5, (size, size))
+    body = 100 + 400 * (bodies_truth > 0) + rng.normal(0, 5, (size, size))
+    reporter = 100 + np.where(nuclei_truth > 0, 600, np.where(bodies_truth > 0, 200, 0)) + rng.normal(0, 5, (size, size))
+    planes = np.stack([nuclear, body, reporter]).astype(np.float32)
+    nuclei, _ = segment_nuclei(planes[0], 1.0, 0.0, 50.0, 10.0)
+    cells = grow_cell_bodies(nuclei, planes[1], 1.0, 0.0)
+    assert nuclei.max() == 2
+    for label in (1, 2):
+        found = cells == nuclei[centres[label - 1]]
+        planted = bodies_truth == label
+        assert (found & planted).sum() / (found | planted).sum() > 0.95
+    table = measure_objects(nuclei, planes, ["nuclear", "body", "reporter"], np.array([100.0, 100.0, 100.0]), 1.0, cells)
+    np.testing.assert_allclose(table["cytoplasm_mean_intensity_reporter"], 200, rtol=0.03)
+    np.testing.assert_allclose(table["mean_intensity_reporter"], 600, rtol=0.03)
+    np.testing.assert_allclose(table["nuclear_cytoplasmic_ratio_reporter"], 3.0, rtol=0.05)
+    np.testing.assert_allclose(table["cell_area_um2"], [(bodies_truth == k).sum() for k in (1, 2)], rtol=0.05)
+    assert not table["touches_border"].any()
+
+
+def test_label_free_path_finds_textured_cells_on_a_smooth_dish():
+    # Planted truth: phase-contrast-like cells (bright/dark texture, mean equal to the dish) on a smooth,
+    # slightly noisy background; the mean grey level gives no contrast, only the texture does.
+    rng = np.random.default_rng(9)
+    size = 200
+    truth = np.zeros((size, size), np.int32)
+    for label, centre in enumerate([(40, 40), (40, 120), (110, 70), (150, 150), (120, 165)], start=1):
+        truth[disk(centre, 16, shape=(size, size))] = label
+    texture = ndimage.gaussian_filter(rng.normal(0, 1, (size, size)), 1.0)
+    image = 1000 + 300 * texture / texture.std() * (truth > 0) + rng.normal(0, 5, (size, size))
+    labels, threshold = segment_label_free(image.astype(np.float32), 1.0, 5.0, 100.0, 12.0)
+    ap = pooled_average_precision([(truth, labels)], (0.5, 0.75))
+    assert np.isfinite(threshold)
+    assert ap[0.5] == 1.0
+    flat, threshold = segment_label_free(np.full((size, size), 1000.0, np.float32) + rng.normal(0, 5, (size, size)).astype(np.float32),
+                                         1.0, 5.0, 100.0, 12.0)
+    assert flat.max() == 0 and np.isnan(threshold)
