@@ -62,8 +62,9 @@ def drop_excluded_site_frames(cells: pd.DataFrame, ledger: pd.DataFrame) -> pd.D
     excluded = ledger[ledger["level"] == "site_frame"][["well", "site", "frame"]].drop_duplicates()
     if excluded.empty:
         return cells
-    marked = cells.merge(excluded.assign(_excluded=True), on=["well", "site", "frame"], how="left")
-    return cells[marked["_excluded"].isna().to_numpy()]
+    keys = pd.MultiIndex.from_arrays([cells["well"].astype(str), cells["site"], cells["frame"]])
+    dropped = keys.isin(pd.MultiIndex.from_frame(excluded.astype({"well": str})))
+    return cells[~dropped]
 
 
 def well_exclusions(profile: pd.DataFrame, rules: ExclusionRules) -> tuple[pd.DataFrame, pd.DataFrame]:

@@ -32,10 +32,23 @@ def well_growth_rates(cells: pd.DataFrame) -> pd.Series:
     """Per well: exponential growth rate of the nucleus count (1/h), from counts summed over sites per frame."""
     if "time_min" not in cells.columns or cells.empty:
         return pd.Series(dtype=float, name="growth_rate_per_h")
-    counts = cells.groupby(["well", "time_min"]).size().reset_index(name="count")
-    rates = {well: growth_rate_per_h(group["time_min"].to_numpy(float), group["count"].to_numpy(float))
-             for well, group in counts.groupby("well")}
+    codes, uniques = pd.factorize(cells["well"], sort=True)
+    time_codes, times = pd.factorize(cells["time_min"].to_numpy(float), sort=True)
+    counts = np.bincount(codes * len(times) + time_codes, minlength=len(uniques) * len(times)).reshape(len(uniques), -1)
+    rates = {str(name): growth_rate_per_h(times, counts[i].astype(float)) for i, name in enumerate(np.asarray(uniques, dtype=object))}
     return pd.Series(rates, name="growth_rate_per_h", dtype=float)
+
+
+# Columns of the cells table that the plate stage never reads (positions, ids, constant keys).
+NOT_READ_FOR_PROFILES = ("plate", "object", "track", "parent_track", "centroid_x_um", "centroid_y_um", "chunk")
+
+
+def _well_files(folders: list[str]) -> list[str]:
+    files = sorted(glob.glob(os.path.join(folder, "well=*", "*.parquet")) for folder in folders)
+    paths = [path for group in files for path in sorted(group)]
+    if not paths:
+        raise FileNotFoundError(f"no per-well tables under {folders}")
+    return paths
 
 
 def read_plate_dataset(folders: list[str], columns: list[str] | None = None) -> pd.DataFrame:
@@ -43,15 +56,25 @@ def read_plate_dataset(folders: list[str], columns: list[str] | None = None) -> 
 
     Files are read in sorted path order, so the row order is the same on every run.
     """
-    files = sorted(glob.glob(os.path.join(folder, "well=*", "*.parquet")) for folder in folders)
-    paths = [path for group in files for path in sorted(group)]
-    if not paths:
-        raise FileNotFoundError(f"no per-well tables under {folders}")
-    return ds.dataset(paths, format="parquet").to_table(columns=columns).to_pandas()
+    return ds.dataset(_well_files(folders), format="parquet").to_table(columns=columns).to_pandas()
+
+
+def read_cells_for_profiles(folders: list[str]) -> pd.DataFrame:
+    """The cells tables of a plate with only the columns the plate stage needs (keys and features).
+
+    Positions and object/track ids are not read; the file schema tells which columns exist, so
+    nothing but the needed column chunks is decoded.
+    """
+    # the well column is read dictionary-encoded (a pandas Categorical): millions of repeated
+    # well names would otherwise cost a Python string each
+    file_format = ds.ParquetFileFormat(read_options=ds.ParquetReadOptions(dictionary_columns=["well"]))
+    dataset = ds.dataset(_well_files(folders), format=file_format)
+    columns = [name for name in dataset.schema.names if name not in NOT_READ_FOR_PROFILES]
+    return dataset.to_table(columns=columns).to_pandas(split_blocks=True, self_destruct=True)
 
 
 def _summary(table: pd.DataFrame, features: list[str], statistic: str) -> pd.DataFrame:
-    grouped = table.groupby("well")[features]
+    grouped = table.groupby("well", observed=True)[features]
     if statistic == "median":
         return grouped.median()
     if statistic != "mean_log":
@@ -59,8 +82,53 @@ def _summary(table: pd.DataFrame, features: list[str], statistic: str) -> pd.Dat
     positive = [f for f in features if (table[f].dropna() > 0).all()]
     summary = grouped.median()
     if positive:
-        summary[positive] = np.exp(np.log(table[positive]).groupby(table["well"]).mean())
+        summary[positive] = np.exp(np.log(table[positive]).groupby(table["well"], observed=True).mean())
     return summary
+
+
+def _well_blocks(codes: np.ndarray, n_wells: int) -> tuple[np.ndarray, np.ndarray | None]:
+    """Start of each well's rows (length n_wells + 1) and the row order that makes them contiguous
+    (None when the rows already come well by well, as the per-well files are read)."""
+    order = None
+    if len(codes) > 1 and np.any(np.diff(codes) < 0):
+        order = np.argsort(codes, kind="stable")
+        codes = codes[order]
+    return np.searchsorted(codes, np.arange(n_wells + 1)), order
+
+
+def _column_summaries(cells: pd.DataFrame, keep: np.ndarray, codes: np.ndarray, names: list[str],
+                      features: list[str], statistic: str) -> pd.DataFrame:
+    """Per-well summary of every feature over the kept rows, well by well on contiguous blocks of rows.
+
+    "median" is the median; "mean_log" is exp(mean(log)) for strictly positive features and the
+    median for the others. NaN values are ignored. Memory: one well's block at a time.
+    """
+    if statistic not in ("median", "mean_log"):
+        raise ValueError(f"unknown well summary {statistic!r}; use median or mean_log")
+    bounds, order = _well_blocks(codes, len(names))
+    columns = [cells[f].to_numpy(np.float64) for f in features]
+    if order is not None:
+        columns, keep = [c[order] for c in columns], keep[order]
+    positive = [statistic == "mean_log" and bool(np.all(c[np.isfinite(c)] > 0)) for c in columns]
+    result = np.full((len(names), len(features)), np.nan)
+    for well in range(len(names)):
+        rows = slice(bounds[well], bounds[well + 1])
+        kept = keep[rows]
+        if not kept.any():
+            continue
+        # one row per feature, so each median partitions contiguous memory
+        block = np.stack([c[rows][kept] for c in columns]) if features else np.empty((0, int(kept.sum())))
+        has_nan = np.isnan(block).any(axis=1)
+        with np.errstate(all="ignore"):
+            median = np.median(block, axis=1) if features else np.empty(0)
+            for j in np.flatnonzero(has_nan | np.asarray(positive, bool)):
+                finite = block[j][~np.isnan(block[j])]
+                if not len(finite):
+                    median[j] = np.nan
+                else:
+                    median[j] = np.exp(np.log(finite).mean()) if positive[j] else np.median(finite)
+        result[well] = median
+    return pd.DataFrame(result, columns=features, index=pd.Index(names, name="well"))
 
 
 def summarise_wells(cells: pd.DataFrame, tracks: pd.DataFrame, layout: pd.DataFrame, plate: str, batch: str,
@@ -68,26 +136,39 @@ def summarise_wells(cells: pd.DataFrame, tracks: pd.DataFrame, layout: pd.DataFr
     """One row per analysed well: keys, layout, counts and the median of every feature.
 
     cell_count is the mean number of nuclei per site and frame, growth_rate_per_h the slope of
-    log(nuclei per frame) against time; observation features are
-    summarised over observations not touching the image border; speed and straightness over
-    tracks with enough frames (see tracking.min_track_frames). ``statistic`` is "median" or
-    "mean_log" (exp of the mean of natural logs, for skewed positive features; features
-    with non-positive values fall back to the median).
+    log(nuclei per frame) against time; observation features are summarised over
+    observations not touching the image border; speed and straightness over tracks with
+    enough frames (see tracking.min_track_frames). ``statistic`` is "median" or "mean_log"
+    (exp of the mean of natural logs, for skewed positive features; features with
+    non-positive values fall back to the median). Works column by column on integer well
+    codes, so memory stays near the size of the table read.
     """
     fmt = plate_format(wells)
-    whole = cells[~cells["touches_border"]]
-    features = observation_features(list(cells.columns))
-    medians = _summary(whole, features, statistic)
-    per_frame = cells.groupby(["well", "site", "frame"]).size().groupby("well").mean().rename("cell_count")
-    n_obs = cells.groupby("well").size().rename("n_observations")
-    sites = cells.groupby("well")["site"].nunique().rename("n_sites")
-    frames = cells.groupby("well")["frame"].nunique().rename("n_frames")
+    codes, uniques = pd.factorize(cells["well"], sort=True)
+    names = [str(name) for name in np.asarray(uniques, dtype=object)]
+    n_wells = len(names)
+    whole = ~cells["touches_border"].to_numpy(bool)
+    medians = _column_summaries(cells, whole, codes, names, observation_features(list(cells.columns)), statistic)
+    site, frame = cells["site"].to_numpy(np.int64), cells["frame"].to_numpy(np.int64)
+    n_site, n_frame = int(site.max(initial=0)) + 1, int(frame.max(initial=0)) + 1
+    per_site_frame = np.bincount((codes.astype(np.int64) * n_site + site) * n_frame + frame,
+                                 minlength=n_wells * n_site * n_frame).reshape(n_wells, n_site, n_frame)
+    present = per_site_frame > 0
+    counts = pd.DataFrame({
+        "cell_count": per_site_frame.sum(axis=(1, 2)) / np.maximum(present.sum(axis=(1, 2)), 1),
+        "n_observations": np.bincount(codes, minlength=n_wells),
+        "n_sites": present.any(axis=2).sum(axis=1),
+        "n_frames": present.any(axis=1).sum(axis=1),
+    }, index=pd.Index(names, name="well"))
     usable = tracks[tracks["speed_um_per_min"].notna() & ~tracks["touches_border"]]
     motion = _summary(usable, track_feature_columns(list(tracks.columns)), statistic)
+    motion.index = motion.index.astype(str)
     growth = well_growth_rates(cells)
-    n_tracks = usable.groupby("well").size().rename("n_tracks")
+    n_tracks = usable.groupby("well", observed=True).size().rename("n_tracks")
+    n_tracks.index = n_tracks.index.astype(str)
     analysed = layout[layout["role"] != "empty"].set_index("well")
-    profile = analysed.join([per_frame, growth, n_obs, sites, frames, n_tracks, medians, motion], how="left")
+    profile = analysed.join([counts[["cell_count"]], growth, counts[["n_observations", "n_sites", "n_frames"]],
+                             n_tracks, medians, motion], how="left")
     profile["cell_count"] = profile["cell_count"].fillna(0.0)
     for column in ("n_observations", "n_tracks"):
         profile[column] = profile[column].fillna(0).astype(np.int64)

@@ -117,11 +117,16 @@ def _split_component(mask: np.ndarray, min_distance_px: int) -> np.ndarray:
 
 
 def split_touching(components: np.ndarray, count: int, min_distance_px: int) -> np.ndarray:
-    """Labels after splitting the components that may hold touching nuclei; the rest are kept whole."""
+    """Labels after splitting the components that may hold touching nuclei; the rest are kept whole.
+
+    ``components`` holds ids 1..count, some of which may be unused (area 0).
+    """
     area, fill = _component_shapes(components, count)
-    if count == 0:
+    present = area > 0
+    if not present.any():
         return components
-    candidates = np.flatnonzero((area > SPLIT_AREA_FACTOR * np.median(area)) | (fill < SPLIT_ELLIPSE_FILL)) + 1
+    candidates = np.flatnonzero(present & ((area > SPLIT_AREA_FACTOR * np.median(area[present]))
+                                           | (fill < SPLIT_ELLIPSE_FILL))) + 1
     labels = components.astype(np.int32, copy=True)
     next_label = count + 1
     boxes = ndimage.find_objects(components)
@@ -202,14 +207,16 @@ def segment_smoothed(smooth: np.ndarray, pixel_size_um: float, min_area_um2: flo
     min_area_px = max(1, int(round(min_area_um2 / pixel_size_um**2)))
     mask = fill_holes(smooth > threshold)
     components, count = ndimage.label(mask)
-    sizes = np.bincount(components.ravel())
+    index = np.flatnonzero(components)
+    sizes = np.bincount(components.ravel()[index], minlength=count + 1)
     small = sizes < min_area_px
     small[0] = False
-    if small.any():
-        mask &= ~small[components]
-        components, count = ndimage.label(mask)
-    if count == 0:
+    if small.all() or count == 0:
         return empty, threshold
+    if small.any():                       # debris removed; the other components keep their ids
+        drop = index[small[components.ravel()[index]]]
+        components.ravel()[drop] = 0
+        mask.ravel()[drop] = False
     min_distance_px = max(1, int(round(split_min_distance_um / pixel_size_um)))
     labels = split_touching(components, count, min_distance_px)
     outside = ~mask[::BACKGROUND_STRIDE, ::BACKGROUND_STRIDE]
