@@ -8,6 +8,7 @@ import os
 import numpy as np
 import pandas as pd
 import pyarrow.dataset as ds
+import pyarrow.parquet as pq
 
 from .plate_formats import is_edge_well, parse_well, plate_format
 from .trackstats import growth_rate_per_h
@@ -62,15 +63,37 @@ def read_plate_dataset(folders: list[str], columns: list[str] | None = None) -> 
 def read_cells_for_profiles(folders: list[str]) -> pd.DataFrame:
     """The cells tables of a plate with only the columns the plate stage needs (keys and features).
 
-    Positions and object/track ids are not read; the file schema tells which columns exist, so
-    nothing but the needed column chunks is decoded.
+    Positions and object/track ids are not read. The files are read one at a time into arrays
+    allocated once for the whole plate, so the peak memory stays near the size of the columns
+    read (no second copy in Arrow's memory pool); the well column becomes a pandas Categorical.
     """
-    # the well column is read dictionary-encoded (a pandas Categorical): millions of repeated
-    # well names would otherwise cost a Python string each
-    file_format = ds.ParquetFileFormat(read_options=ds.ParquetReadOptions(dictionary_columns=["well"]))
-    dataset = ds.dataset(_well_files(folders), format=file_format)
-    columns = [name for name in dataset.schema.names if name not in NOT_READ_FOR_PROFILES]
-    return dataset.to_table(columns=columns).to_pandas(split_blocks=True, self_destruct=True)
+    paths = _well_files(folders)
+    metadata = [pq.read_metadata(path) for path in paths]
+    schema = pq.read_schema(paths[0])
+    columns = [name for name in schema.names if name not in NOT_READ_FOR_PROFILES and name != "well"]
+    total = sum(m.num_rows for m in metadata)
+    arrays = {name: np.empty(total, dtype=schema.field(name).type.to_pandas_dtype()) for name in columns}
+    well_codes = np.empty(total, np.int32)
+    well_names: list[str] = []
+    start = 0
+    for path, meta in zip(paths, metadata):
+        table = pq.ParquetFile(path, read_dictionary=["well"]).read(columns=columns + ["well"], use_threads=True)
+        stop = start + meta.num_rows
+        for name in columns:
+            arrays[name][start:stop] = table.column(name).to_numpy()
+        well = table.column("well").combine_chunks()
+        lookup = np.array([_code_of(well_names, str(w)) for w in well.dictionary.to_pylist()], np.int32)
+        well_codes[start:stop] = lookup[well.indices.to_numpy()] if len(lookup) else 0
+        start = stop
+    cells = pd.DataFrame(arrays, copy=False)
+    cells.insert(0, "well", pd.Categorical.from_codes(well_codes, categories=well_names))
+    return cells
+
+
+def _code_of(names: list[str], name: str) -> int:
+    if name not in names:
+        names.append(name)
+    return names.index(name)
 
 
 def _summary(table: pd.DataFrame, features: list[str], statistic: str) -> pd.DataFrame:
