@@ -1,5 +1,7 @@
 # plateloom: multi-plate live-cell imaging screens, from images to condition effects.
 # Shape: demo images (optional) -> per-well chunks -> per-plate fan-in -> per-screen fan-in.
+import sys
+
 from snakemake.exceptions import WorkflowError
 from snakemake.utils import min_version, validate
 
@@ -17,6 +19,17 @@ try:
     config["images"].update(resolve_image_scale(config, PLAN))
 except InputError as error:
     raise WorkflowError(f"plateloom could not start: {error}")
+
+# The check before launch, on file names only (plateloom check also reads every image header).
+if config.get("check_images_on_start", True):
+    from plateloom.preflight import check_screen
+
+    CHECK = check_screen(config, read_headers=False)
+    for problem in CHECK.problems:
+        if problem.severity == "warning":
+            print(f"plateloom warning: {problem.message}", file=sys.stderr)
+    if CHECK.errors:
+        raise WorkflowError("plateloom could not start:\n" + "\n".join(f"  - {p.message}" for p in CHECK.errors))
 
 RESULTS = config["results_dir"]
 

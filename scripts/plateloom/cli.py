@@ -1,7 +1,10 @@
 """plateloom's command line: ``plateloom <command>`` or ``python -m plateloom <command>``.
 
 Commands:
+  scaffold       look at an image folder, infer the file naming, write config, screen sheet and layouts
+  check          check config, screen sheet and layouts against the images on disk, every problem at once
   design-check   simulate the screen's own design: coverage of its 95% intervals and power
+  config-reference  print every config key, type, default and description (Markdown)
 """
 
 from __future__ import annotations
@@ -36,6 +39,40 @@ def _design_check(arguments: argparse.Namespace) -> int:
     return 0
 
 
+def _scaffold(arguments: argparse.Namespace) -> int:
+    from .errors import InputError
+    from .scaffold import survey_folder, write_scaffold
+
+    try:
+        survey = survey_folder(arguments.folder, arguments.plate_format)
+        print(survey.text())
+        if arguments.dry_run:
+            return 0
+        written = write_scaffold(survey, arguments.out, arguments.force)
+    except InputError as error:
+        print(f"plateloom scaffold: {error}", file=sys.stderr)
+        return 2
+    print("written: " + ", ".join(written))
+    print(f"next: fill in the layout(s) (roles negative_control, positive_control, test, empty; condition, dose, "
+          f"dose_unit), then `plateloom check --config {written[0]}` and "
+          f"`snakemake --cores 2 --configfile {written[0]}` from this folder.")
+    return 0
+
+
+def _check(arguments: argparse.Namespace) -> int:
+    from .errors import InputError
+    from .preflight import check_screen, load_config
+
+    try:
+        config = load_config(arguments.config)
+    except (InputError, OSError) as error:
+        print(f"plateloom check: {error}", file=sys.stderr)
+        return 2
+    report = check_screen(config, read_headers=not arguments.names_only)
+    print(report.text())
+    return 1 if report.errors else 0
+
+
 def main(argv: list[str] | None = None) -> int:
     """Entry point; returns the exit status."""
     parser = argparse.ArgumentParser(prog="plateloom", description=__doc__.split("\n")[0])
@@ -49,9 +86,28 @@ def main(argv: list[str] | None = None) -> int:
     check.add_argument("--screens", type=int, default=200, help="simulated screens per design (default 200)")
     check.add_argument("--extra-batches", type=int, nargs="*", default=[2], help="also try this many more batches")
     check.add_argument("--seed", type=int, default=1)
+    scaffold = commands.add_parser("scaffold", help="infer a screen from an image folder and write its config files")
+    scaffold.add_argument("folder", help="image folder: one plate, or one sub-folder per plate")
+    scaffold.add_argument("--out", default="screen", help="folder for config.yaml, plates.csv, layouts/ (default: screen)")
+    scaffold.add_argument("--plate-format", type=int, choices=[96, 384, 1536], help="plate format (default: the smallest that fits)")
+    scaffold.add_argument("--force", action="store_true", help="replace files the scaffold wrote before")
+    scaffold.add_argument("--dry-run", action="store_true", help="only show what was found")
+    preflight = commands.add_parser("check", help="check config, sheet and layouts against the images, all problems at once")
+    preflight.add_argument("--config", default="config/config.yaml", help="config file (default: config/config.yaml)")
+    preflight.add_argument("--names-only", action="store_true", help="do not read image headers (faster)")
+    commands.add_parser("config-reference", help="every config key, type, default and description, as Markdown")
     arguments = parser.parse_args(argv)
+    if arguments.command == "config-reference":
+        from .config_reference import config_reference
+
+        print(config_reference(), end="")
+        return 0
     if arguments.command == "design-check":
         return _design_check(arguments)
+    if arguments.command == "scaffold":
+        return _scaffold(arguments)
+    if arguments.command == "check":
+        return _check(arguments)
     return 1
 
 

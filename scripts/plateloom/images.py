@@ -27,9 +27,11 @@ def template_regex(template: str) -> re.Pattern[str]:
     """Compile a filename template such as '{well}_s{site}_t{frame}_{channel}.tif' to a regex."""
     fields = re.findall(r"{(\w+)}", template)
     unknown = sorted(set(fields) - set(FIELD_PATTERNS))
-    if unknown or not {"well", "site", "channel"} <= set(fields):
+    # without {channel}, each file is a multi-channel OME-TIFF stack of one site (channels named in its metadata)
+    if unknown or not {"well", "site"} <= set(fields) or ("channel" not in fields and "frame" in fields):
         raise InputError("config images.filename_template", f"template {template!r} has fields {fields}.",
-                         "use {well}, {site}, {channel} and optionally {frame}, each once.")
+                         "use {well}, {site}, {channel} and optionally {frame}, each once (or {well} and {site} "
+                         "alone for one multi-channel OME-TIFF stack per site).")
     if len(fields) != len(set(fields)):
         raise InputError("config images.filename_template", f"template {template!r} repeats a field.", "use each field once.")
     pattern = ""
@@ -42,11 +44,16 @@ def template_regex(template: str) -> re.Pattern[str]:
 
 @dataclass(frozen=True)
 class ImageIndex:
-    """The images of one plate: a table with well, site, frame (-1 for stacks), channel, path."""
+    """The images of one plate: a table with well, site, frame (-1 for stacks), channel, path.
+
+    ``source`` is "tiff" (files named by the template) or "zarr" (an OME-Zarr plate; path is
+    '<plate.zarr>::<row>/<column>/<field>').
+    """
 
     table: pd.DataFrame
     stacks: bool
     unmatched: tuple[str, ...]
+    source: str = "tiff"
 
 
 def index_plate_images(folder: str, template: str, wells: int, channels: list[str]) -> ImageIndex:
@@ -57,8 +64,12 @@ def index_plate_images(folder: str, template: str, wells: int, channels: list[st
     """
     if not os.path.isdir(folder):
         raise InputError(folder, "the image folder does not exist.", "check image_folder in the screen sheet.")
+    if is_zarr_plate(folder):
+        return index_zarr_plate(folder, wells, channels)
     regex = template_regex(template)
     stacks = "{frame}" not in template
+    if "{channel}" not in template:
+        return _index_multichannel_stacks(folder, regex, wells, channels)
     fmt = plate_format(wells)
     rows, unmatched = [], []
     for name in sorted(os.listdir(folder)):
@@ -75,6 +86,77 @@ def index_plate_images(folder: str, template: str, wells: int, channels: list[st
         rows.append((well, int(match.group("site")), frame, match.group("channel"), os.path.join(folder, name)))
     table = pd.DataFrame(rows, columns=["well", "site", "frame", "channel", "path"])
     return ImageIndex(table, stacks, tuple(unmatched))
+
+
+def channel_key(name: str) -> str:
+    """A channel name from image metadata as a config channel name: lower case, [a-z0-9_] only."""
+    return re.sub(r"[^a-z0-9_]", "_", name.strip().lower())
+
+
+def _index_multichannel_stacks(folder: str, regex: re.Pattern[str], wells: int, channels: list[str]) -> ImageIndex:
+    """One OME-TIFF per site holding every channel and frame: channels matched to config by the
+    channel names of its OME metadata; path is '<file>::<channel position in the file>'."""
+    fmt = plate_format(wells)
+    rows, unmatched = [], []
+    for name in sorted(os.listdir(folder)):
+        match = regex.match(name)
+        try:
+            well = canonical_well(match.group("well"), fmt) if match else None
+        except ValueError:
+            well = None
+        if well is None:
+            unmatched.append(name)
+            continue
+        path = os.path.join(folder, name)
+        metadata = read_ome_metadata(path)
+        names = metadata.channel_names if metadata else ()
+        if not names:
+            raise InputError(path, "names no channels in OME metadata, and the template has no {channel} field.",
+                             "add {channel} to images.filename_template, or export OME-TIFF with channel names.")
+        for position, channel in enumerate(channel_key(n) for n in names):
+            if channel in channels:
+                rows.append((well, int(match.group("site")), -1, channel, f"{path}::{position}"))
+            else:
+                unmatched.append(f"{name} channel {channel!r}")
+    table = pd.DataFrame(rows, columns=["well", "site", "frame", "channel", "path"])
+    return ImageIndex(table, True, tuple(unmatched), "ome_tiff")
+
+
+def _stream_multichannel_site(index: ImageIndex, well: str, site: int, channels: list[str]) -> Iterator["SiteFrame"]:
+    files = index.table[(index.table["well"] == well) & (index.table["site"] == site)]
+    positions = dict(zip(files["channel"], (int(p.split("::")[1]) for p in files["path"])))
+    missing = [c for c in channels if c not in positions]
+    if missing:
+        raise InputError(f"well {well}, site {site}", f"no image for channel(s) {missing} in the OME-TIFF.",
+                         "check the channel names in config against the file's OME channel names.")
+    path = files["path"].iloc[0].split("::")[0]
+    with _open_tiff(path) as tif:
+        series = tif.series[0]
+        axes = series.axes.upper()
+        sizes = {a: n for a, n in zip(axes, series.shape) if a not in "YX"}
+        if sizes.get("Z", 1) > 1:
+            raise InputError(path, f"has {sizes['Z']} z planes.", "project the z stack before analysis.")
+        order = [a for a in axes if a not in "YX"]
+        pages = series.pages
+        for frame in range(sizes.get("T", 1)):
+            planes, saturated, problem = [], [], ""
+            for channel in channels:
+                coordinate = {"T": frame, "C": positions[channel]}
+                page = int(np.ravel_multi_index([coordinate.get(a, 0) for a in order], [sizes[a] for a in order])) if order else 0
+                try:
+                    plane = pages[page].asarray()
+                    saturated.append(saturated_fraction(plane))
+                    planes.append(_check_plane(plane, path, planes[0].shape if planes else None))
+                except InputError as error:
+                    problem = f"well {well}, site {site}, frame {frame}: {error}"
+                    break
+                except Exception as error:   # tifffile raises many kinds for a corrupt page
+                    problem = f"well {well}, site {site}, frame {frame}: {_unreadable(path, error)}"
+                    break
+            if problem:
+                yield SiteFrame(frame, None, np.full(len(channels), np.nan), problem)
+            else:
+                yield SiteFrame(frame, np.stack(planes), np.array(saturated))
 
 
 def unmatched_note(folder: str, template: str, wells: int, channels: list[str], shown: int = 5) -> str | None:
@@ -101,6 +183,107 @@ class OmeMetadata:
     channel_names: tuple[str, ...]
 
 
+ZARR_UNITS_TO_UM = {"micrometer": 1.0, "nanometer": 1e-3, "millimeter": 1e3, "meter": 1e6}
+ZARR_UNITS_TO_MIN = {"second": 1 / 60, "millisecond": 1 / 60000, "minute": 1.0, "hour": 60.0}
+
+
+def is_zarr_plate(folder: str) -> bool:
+    """An OME-Zarr (NGFF) store: a folder named *.zarr."""
+    return os.path.normpath(folder).endswith(".zarr") and os.path.isdir(folder)
+
+
+def _open_zarr(path: str):
+    try:
+        import zarr
+    except ImportError:
+        raise InputError(path, "is an OME-Zarr plate, but the zarr package is not installed.",
+                         'pip install -e ".[zarr]"') from None
+    try:
+        return zarr.open_group(path, mode="r")
+    except Exception as error:   # zarr raises several kinds for a store it cannot read
+        raise InputError(path, f"cannot be opened as a Zarr store ({type(error).__name__}: {error}).",
+                         "check that the folder is a complete OME-Zarr plate.") from None
+
+
+def _ome(group) -> dict:
+    attributes = dict(group.attrs)
+    return attributes.get("ome", attributes)       # OME-Zarr 0.5 nests under "ome"; 0.4 does not
+
+
+def _zarr_image(store: str, image_path: str):
+    """(array of the full-resolution level, axis names, channel labels, scale per axis, unit per axis)."""
+    group = _open_zarr(store)[image_path]
+    multiscale = _ome(group)["multiscales"][0]
+    axes = [a["name"] if isinstance(a, dict) else a for a in multiscale.get("axes", ["t", "c", "z", "y", "x"])]
+    units = {a["name"]: a.get("unit") for a in multiscale.get("axes", []) if isinstance(a, dict)}
+    dataset = multiscale["datasets"][0]
+    scale = next((t["scale"] for t in dataset.get("coordinateTransformations", []) if t.get("type") == "scale"),
+                 [1.0] * len(axes))
+    labels = [c.get("label", f"c{i}") for i, c in enumerate(_ome(group).get("omero", {}).get("channels", []))]
+    return group[dataset["path"]], axes, labels, dict(zip(axes, scale)), units
+
+
+def index_zarr_plate(folder: str, wells: int, channels: list[str]) -> ImageIndex:
+    """Index an OME-Zarr high-content plate (plate / well / field hierarchy) like a folder of stacks.
+
+    Wells come from the plate metadata (row and column names), sites are the fields in order
+    (1, 2, ...), channels are matched to config by the omero channel labels. Channels of the
+    store that config does not list are reported in ``unmatched``.
+    """
+    root = _open_zarr(folder)
+    plate = _ome(root).get("plate")
+    if not plate:
+        raise InputError(folder, "has no OME-Zarr plate metadata.", "give the plate's top-level .zarr folder.")
+    fmt = plate_format(wells)
+    rows, unmatched = [], set()
+    for entry in plate["wells"]:
+        row_name, column_name = entry["path"].split("/")
+        try:
+            well = canonical_well(f"{row_name}{int(column_name):02d}", fmt)
+        except ValueError:
+            unmatched.add(f"{entry['path']} (not a well of a {wells}-well plate)")
+            continue
+        images = _ome(root[entry["path"]])["well"]["images"]
+        for site, image in enumerate(images, start=1):
+            image_path = f"{entry['path']}/{image['path']}"
+            _, _, labels, _, _ = _zarr_image(folder, image_path)
+            for label in labels:
+                if label in channels:
+                    rows.append((well, site, -1, label, f"{folder}::{image_path}"))
+                else:
+                    unmatched.add(f"channel {label!r}")
+    table = pd.DataFrame(rows, columns=["well", "site", "frame", "channel", "path"])
+    return ImageIndex(table, True, tuple(sorted(unmatched)), "zarr")
+
+
+def _stream_zarr_site(index: ImageIndex, well: str, site: int, channels: list[str]) -> Iterator["SiteFrame"]:
+    files = index.table[(index.table["well"] == well) & (index.table["site"] == site)]
+    found = set(files["channel"])
+    for channel in channels:
+        if channel not in found:
+            raise InputError(f"well {well}, site {site}", f"no image for channel {channel!r} in the OME-Zarr plate.",
+                             "check the channel names in config against the store's omero channel labels.")
+    store, image_path = files["path"].iloc[0].split("::")
+    array, axes, labels, _, _ = _zarr_image(store, image_path)
+    shape = dict(zip(axes, array.shape))
+    if shape.get("z", 1) > 1:
+        raise InputError(f"{store}::{image_path}", f"has {shape['z']} z planes.",
+                         "project the z stack (e.g. maximum projection) before analysis.")
+    for frame in range(shape.get("t", 1)):
+        planes, saturated = [], []
+        for channel in channels:
+            position = {"t": frame, "c": labels.index(channel), "z": 0}
+            plane = np.asarray(array[tuple(position.get(a, slice(None)) for a in axes)])
+            saturated.append(saturated_fraction(plane))
+            try:
+                planes.append(_check_plane(plane, f"{store}::{image_path}", None))
+            except InputError as error:
+                yield SiteFrame(frame, None, np.full(len(channels), np.nan), f"well {well}, site {site}, frame {frame}: {error}")
+                break
+        else:
+            yield SiteFrame(frame, np.stack(planes), np.array(saturated))
+
+
 def read_ome_metadata(path: str) -> OmeMetadata | None:
     """Pixel size, time increment and channel names from an OME-TIFF's OME-XML (None if it has none).
 
@@ -109,6 +292,12 @@ def read_ome_metadata(path: str) -> OmeMetadata | None:
     """
     import xml.etree.ElementTree as ElementTree
 
+    if "::" in path:                                     # an image of an OME-Zarr plate
+        store, image_path = path.split("::")
+        _, axes, labels, scale, units = _zarr_image(store, image_path)
+        pixel = scale.get("x") * ZARR_UNITS_TO_UM[units["x"]] if units.get("x") in ZARR_UNITS_TO_UM else None
+        interval = scale.get("t") * ZARR_UNITS_TO_MIN[units["t"]] if units.get("t") in ZARR_UNITS_TO_MIN else None
+        return OmeMetadata(pixel, interval, tuple(labels))
     with _open_tiff(path) as tif:
         xml = tif.ome_metadata
     if not xml:
@@ -204,6 +393,17 @@ def _page_count(path: str) -> int:
 def site_frame_counts(index: ImageIndex, well: str, site: int, channels: list[str]) -> dict[str, tuple[int, str]]:
     """Per channel: (number of frames, where they come from) of one site; an error if a channel has no image."""
     files = index.table[(index.table["well"] == well) & (index.table["site"] == site)]
+    if index.source == "zarr" and len(files):
+        store, image_path = files["path"].iloc[0].split("::")
+        array, axes, _, _, _ = _zarr_image(store, image_path)
+        frames = dict(zip(axes, array.shape)).get("t", 1)
+        return {c: (frames, image_path) for c in channels}
+    if index.source == "ome_tiff" and len(files):
+        path = files["path"].iloc[0].split("::")[0]
+        with _open_tiff(path) as tif:
+            series = tif.series[0]
+            frames = dict(zip(series.axes.upper(), series.shape)).get("T", 1)
+        return {c: (frames, os.path.basename(path)) for c in channels}
     counts = {}
     for channel in channels:
         paths = files.loc[files["channel"] == channel, "path"].tolist()
@@ -241,6 +441,12 @@ def stream_site(index: ImageIndex, well: str, site: int, channels: list[str]) ->
     page) comes with ``problem`` set and no planes, so the rest of the site is still analysed.
     A file that cannot be opened at all, or a channel without any image, stops with an error.
     """
+    if index.source == "zarr":
+        yield from _stream_zarr_site(index, well, site, channels)
+        return
+    if index.source == "ome_tiff":
+        yield from _stream_multichannel_site(index, well, site, channels)
+        return
     files = index.table[(index.table["well"] == well) & (index.table["site"] == site)]
     counts = site_frame_counts(index, well, site, channels)
     n_frames = max(n for n, _ in counts.values())

@@ -9,7 +9,7 @@ import pandas as pd
 
 from .demo import demo_plates, load_scenario
 from .errors import InputError
-from .images import image_scale, template_regex
+from .images import image_scale, index_zarr_plate, is_zarr_plate, template_regex
 from .screen import PlateEntry, analysed_wells, chunk_wells, load_layout, load_screen_sheet
 from .sizing import ImagingSize, JobSize, analyse_wells_size, screen_size
 
@@ -132,7 +132,12 @@ def resolve_image_scale(config: dict, plan: "ScreenPlan") -> dict[str, float]:
         regex = template_regex(images["filename_template"])
         for plate in sorted(plan.plates):
             folder = plan.plates[plate].image_folder
-            if os.path.isdir(folder):
+            if is_zarr_plate(folder):
+                index = index_zarr_plate(folder, plan.plates[plate].plate_format, [c["name"] for c in config["channels"]])
+                if len(index.table):
+                    first = index.table["path"].iloc[0]
+                    break
+            elif os.path.isdir(folder):
                 names = sorted(n for n in os.listdir(folder) if regex.match(n))
                 if names:
                     first = os.path.join(folder, names[0])
