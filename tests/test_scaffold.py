@@ -96,11 +96,11 @@ def test_scaffold_then_run_to_effects_without_editing_the_config(tmp_path, style
                            cwd=workdir, capture_output=True, text=True)
     assert check.returncode == 0, check.stdout + check.stderr
     assert "0 error(s)." in check.stdout and "2 plates, 24 wells" in check.stdout
-    run_snakemake(workdir, "--configfile", "myscreen/config.yaml", "myscreen/results/effects.parquet")
+    run_snakemake(workdir, "myscreen/results/effects.parquet", "--configfile", "myscreen/config.yaml")
     effects = pd.read_parquet(workdir / "myscreen/results/effects.parquet")
     assert {"TW-101 1 uM", "TW-104 1 uM"} <= set(effects["treatment"])
     assert effects["estimate"].notna().all() and effects["ci_low"].notna().all()
-    cells = pd.read_parquet(workdir / "myscreen/results/cells/plate=plateA")
+    cells = pd.concat(pd.read_parquet(path) for path in (workdir / "myscreen/results/cells/plate=plateA").rglob("*.parquet"))
     assert "mean_intensity_ktr" in cells.columns and cells["frame"].nunique() == 4
 
 

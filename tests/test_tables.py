@@ -45,3 +45,19 @@ def test_provenance_is_stored_and_read_back(tmp_path):
     tables.write_parquet(pd.DataFrame({"a": [1]}), str(path), {"k": 1}, extra={"scales": {"a": "log"}})
     assert tables.read_provenance(str(path))["config_sha256"] == tables.config_digest({"k": 1})
     assert tables.read_extra(str(path)) == {"scales": {"a": "log"}}
+
+
+def test_a_results_tree_opens_as_one_arrow_dataset(tmp_path):
+    # The data contract: per-well files under Hive-style folders, keys also stored as columns, so any
+    # Arrow-aware reader opens the whole tree as one dataset (pyarrow.dataset is the reference reader).
+    import pyarrow.dataset as ds
+
+    from plateloom.tables import well_part_path, write_parquet
+
+    for plate, well, value in (("P1", "B02", 1.0), ("P1", "B03", 2.0), ("P2", "B02", 3.0)):
+        folder = tmp_path / "cells" / f"plate={plate}" / "chunk=000"
+        folder.mkdir(parents=True, exist_ok=True)
+        write_parquet(pd.DataFrame({"plate": [plate], "well": [well], "area_um2": [value]}),
+                      well_part_path(str(folder), well), {"k": 1})
+    table = ds.dataset(str(tmp_path / "cells")).to_table().to_pandas().sort_values("area_um2")
+    assert table[["plate", "well"]].values.tolist() == [["P1", "B02"], ["P1", "B03"], ["P2", "B02"]]
