@@ -1,7 +1,8 @@
 """Snakemake overhead for a 40-plate x 384-well screen (trivial inputs), as ratios within one run.
 
-Builds a screen sheet of 40 plates of 384 wells (all wells analysed) whose image folders are
-empty, then times (1) a dry run with every job still to do, (2) creating empty stand-ins for
+Builds a screen sheet of 40 plates of 384 wells (all wells analysed) whose image folder holds
+empty files named for 4 sites and 2 channels per well (the start-up check reads names only),
+then times (1) a dry run with every job still to do, (2) creating empty stand-ins for
 every output and `--touch` recording them complete, (3) a dry run of the complete screen, and
 (4) with --full, a full run of the same job graph in which every rule's script is replaced by a
 stand-in that only creates its outputs: its wall time is Snakemake's overhead for the screen
@@ -98,6 +99,12 @@ def main() -> None:
               for i, w in enumerate(wells)]
     (work / "config/layouts/bench_384.csv").write_text("\n".join(lines) + "\n")
     (work / "images").mkdir()
+    # empty files with the names of 4 sites x 2 channels per well: the check at start-up reads
+    # names only, so every plate's folder is indexed as for a real screen (40 x 3,072 names)
+    for well in wells:
+        for site in range(1, 5):
+            for channel in ("nuclear", "reporter"):
+                (work / "images" / f"{well}_s{site}_{channel}.tif").touch()
     sheet = ["plate,batch,plate_format,layout,image_folder"]
     sheet += [f"B{p:02d},day{p // 8},384,config/layouts/bench_384.csv,images" for p in range(PLATES)]
     (work / "config/plates.csv").write_text("\n".join(sheet) + "\n")

@@ -60,8 +60,9 @@ def _series_problems(index: ImageIndex, wells: list[str], channels: list[str]) -
     problems: list[InputError] = []
     if table.empty:
         return problems, 0
-    present = table.groupby(["well", "site"])["channel"].agg(set)
-    for (well, site), found in present.items():
+    distinct = table.groupby(["well", "site"])["channel"].nunique()
+    for well, site in distinct[distinct < len(channels)].index:       # only the few incomplete sites in Python
+        found = set(table.loc[(table["well"] == well) & (table["site"] == site), "channel"])
         for channel in channels:
             if channel not in found:
                 problems.append(InputError(f"well {well}, site {site}", f"no image for channel {channel!r}.",
@@ -137,8 +138,14 @@ def check_screen(config: dict, read_headers: bool = True, assumed_objects_per_fr
     template = config["images"]["filename_template"]
     totals = {"plates": 0, "wells": 0, "images": 0, "image_bytes": 0, "site_frames": 0, "jobs": 0}
     shapes: dict[tuple[int, ...], str] = {}
+    layouts: dict[tuple[str, int], tuple] = {}
+    indexes: dict[tuple[str, int], ImageIndex] = {}
+    series_cache: dict[tuple, tuple[list[InputError], int]] = {}
+    imaged_wells: dict[tuple[str, int], set[str]] = {}
     for entry in entries:
-        layout, problems = check_layout(entry.layout, entry.plate_format)
+        if (entry.layout, entry.plate_format) not in layouts:       # plates often share a layout
+            layouts[(entry.layout, entry.plate_format)] = check_layout(entry.layout, entry.plate_format)
+        layout, problems = layouts[(entry.layout, entry.plate_format)]
         for problem in problems:
             report.add("error", InputError(f"plate {entry.plate}: {problem.where}", problem.problem, problem.fix))
         demo_folder = os.path.normpath(entry.image_folder) == os.path.join(DEMO_IMAGE_ROOT, entry.plate)
@@ -149,7 +156,10 @@ def check_screen(config: dict, read_headers: bool = True, assumed_objects_per_fr
                                                "check the path (relative to the folder you run snakemake from)."))
             continue
         try:
-            index = index_plate_images(entry.image_folder, template, entry.plate_format, channels)
+            key = (entry.image_folder, entry.plate_format)
+            if key not in indexes:
+                indexes[key] = index_plate_images(entry.image_folder, template, entry.plate_format, channels)
+            index = indexes[key]
         except InputError as error:
             report.add("error", error)
             continue
@@ -161,7 +171,7 @@ def check_screen(config: dict, read_headers: bool = True, assumed_objects_per_fr
                                              f"images.filename_template {template!r} nor a configured channel: {shown}.",
                                              "rename them, or adjust the template or channels; they would not be analysed."))
         analysed = set(layout.loc[layout["role"] != "empty", "well"])
-        imaged = set(index.table["well"])
+        imaged = imaged_wells.setdefault(key, set(index.table["well"].to_numpy()))
         no_images = sorted(analysed - imaged)
         if no_images:
             report.add("error", InputError(f"{entry.layout} (plate {entry.plate})",
@@ -177,15 +187,19 @@ def check_screen(config: dict, read_headers: bool = True, assumed_objects_per_fr
         wells = sorted(analysed & imaged)
         totals["wells"] += len(wells)
         totals["jobs"] += -(-len(analysed) // int(config.get("chunk_wells", 24))) + 2 + len(channels)
-        series, site_frames = _series_problems(index, wells, channels)
+        series_key = (entry.image_folder, entry.plate_format, tuple(wells))
+        if series_key not in series_cache:         # plates sharing a folder and wells share the answer
+            series_cache[series_key] = _series_problems(index, wells, channels)
+        series, site_frames = series_cache[series_key]
         headers, stack_frames = _header_problems(index, wells, shapes) if read_headers and index.source == "tiff" else ([], 0)
         for problem in series + headers:
             severity = "warning" if "missing" in problem.problem or "frame counts" in problem.problem else "error"
             report.add(severity, InputError(f"plate {entry.plate}: {problem.where}", problem.problem, problem.fix))
         totals["site_frames"] += site_frames + stack_frames
-        files = index.table[index.table["well"].isin(wells)]["path"]
-        totals["images"] += len(files)
-        totals["image_bytes"] += int(sum(os.path.getsize(p) for p in files))
+        in_wells = index.table["well"].isin(wells).to_numpy()
+        totals["images"] += int(in_wells.sum())
+        if read_headers and index.source == "tiff":      # sizes for the run estimate; not needed at start-up
+            totals["image_bytes"] += sum(os.path.getsize(p) for p in index.table["path"].to_numpy()[in_wells])
     images = config["images"]
     if (images.get("pixel_size_um") is None or images.get("frame_interval_min") is None) and entries:
         first = next((p for e in entries if os.path.isdir(e.image_folder)
