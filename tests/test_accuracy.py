@@ -6,7 +6,6 @@ Segmentation: average precision over IoU thresholds 0.5-0.95 as in Caicedo et al
 """
 
 import numpy as np
-import pandas as pd
 import pytest
 import tifffile
 

@@ -19,7 +19,7 @@ import yaml
 
 from .errors import InputError
 from .images import channel_key, index_plate_images, read_ome_metadata, template_regex
-from .plate_formats import FORMATS as PLATE_FORMATS, all_wells, parse_well, plate_format
+from .plate_formats import FORMATS as PLATE_FORMATS, parse_well, plate_format
 
 IMAGE_EXTENSIONS = (".ome.tiff", ".ome.tif", ".tiff", ".tif")
 SEPARATORS = r"([_\-. ])"
@@ -257,7 +257,3 @@ def write_scaffold(survey: ScreenSurvey, out: str, force: bool = False) -> list[
         handle.write(header + yaml.safe_dump(config, sort_keys=False, allow_unicode=True))
     return targets
 
-
-def all_format_wells(size: int) -> list[str]:
-    """Every well of a plate format, in row-major order (for a layout written by hand)."""
-    return all_wells(plate_format(size))
