@@ -7,6 +7,7 @@ import os
 
 import yaml
 
+# The workflow's config schema (next to the package source: an editable install, as the README says).
 SCHEMA = os.path.normpath(os.path.join(os.path.dirname(__file__), "..", "..", "workflow", "schemas", "config.schema.yaml"))
 
 

@@ -202,8 +202,7 @@ def check_screen(config: dict, read_headers: bool = True, assumed_objects_per_fr
             totals["image_bytes"] += sum(os.path.getsize(p) for p in index.table["path"].to_numpy()[in_wells])
     images = config["images"]
     if (images.get("pixel_size_um") is None or images.get("frame_interval_min") is None) and entries:
-        first = next((p for e in entries if os.path.isdir(e.image_folder)
-                      for p in sorted(index_plate_images(e.image_folder, template, e.plate_format, channels).table["path"])), None)
+        first = next((sorted(index.table["path"])[0] for index in indexes.values() if len(index.table)), None)
         metadata = read_ome_metadata(first) if first else None
         missing = [k for k in ("pixel_size_um", "frame_interval_min")
                    if images.get(k) is None and (metadata is None or getattr(metadata, k) is None)]
@@ -225,8 +224,8 @@ def load_config(path: str) -> dict:
     import yaml
     from snakemake.utils import validate
 
-    schema_path = os.path.normpath(os.path.join(os.path.dirname(__file__), "..", "..", "workflow", "schemas",
-                                                "config.schema.yaml"))
+    from .config_reference import SCHEMA as schema_path
+
     with open(path, encoding="utf-8") as handle:
         config = yaml.safe_load(handle) or {}
     with open(schema_path, encoding="utf-8") as handle:

@@ -74,7 +74,7 @@ def read_cells_for_profiles(folders: list[str]) -> pd.DataFrame:
     total = sum(m.num_rows for m in metadata)
     arrays = {name: np.empty(total, dtype=schema.field(name).type.to_pandas_dtype()) for name in columns}
     well_codes = np.empty(total, np.int32)
-    well_names: list[str] = []
+    well_codes_by_name: dict[str, int] = {}
     start = 0
     for path, meta in zip(paths, metadata):
         table = pq.ParquetFile(path, read_dictionary=["well"]).read(columns=columns + ["well"], use_threads=True)
@@ -82,31 +82,13 @@ def read_cells_for_profiles(folders: list[str]) -> pd.DataFrame:
         for name in columns:
             arrays[name][start:stop] = table.column(name).to_numpy()
         well = table.column("well").combine_chunks()
-        lookup = np.array([_code_of(well_names, str(w)) for w in well.dictionary.to_pylist()], np.int32)
+        lookup = np.array([well_codes_by_name.setdefault(str(w), len(well_codes_by_name))
+                           for w in well.dictionary.to_pylist()], np.int32)
         well_codes[start:stop] = lookup[well.indices.to_numpy()] if len(lookup) else 0
         start = stop
     cells = pd.DataFrame(arrays, copy=False)
-    cells.insert(0, "well", pd.Categorical.from_codes(well_codes, categories=well_names))
+    cells.insert(0, "well", pd.Categorical.from_codes(well_codes, categories=list(well_codes_by_name)))
     return cells
-
-
-def _code_of(names: list[str], name: str) -> int:
-    if name not in names:
-        names.append(name)
-    return names.index(name)
-
-
-def _summary(table: pd.DataFrame, features: list[str], statistic: str) -> pd.DataFrame:
-    grouped = table.groupby("well", observed=True)[features]
-    if statistic == "median":
-        return grouped.median()
-    if statistic != "mean_log":
-        raise ValueError(f"unknown well summary {statistic!r}; use median or mean_log")
-    positive = [f for f in features if (table[f].dropna() > 0).all()]
-    summary = grouped.median()
-    if positive:
-        summary[positive] = np.exp(np.log(table[positive]).groupby(table["well"], observed=True).mean())
-    return summary
 
 
 def _well_blocks(codes: np.ndarray, n_wells: int) -> tuple[np.ndarray, np.ndarray | None]:
@@ -184,8 +166,10 @@ def summarise_wells(cells: pd.DataFrame, tracks: pd.DataFrame, layout: pd.DataFr
         "n_frames": present.any(axis=1).sum(axis=1),
     }, index=pd.Index(names, name="well"))
     usable = tracks[tracks["speed_um_per_min"].notna() & ~tracks["touches_border"]]
-    motion = _summary(usable, track_feature_columns(list(tracks.columns)), statistic)
-    motion.index = motion.index.astype(str)
+    track_codes, track_wells = pd.factorize(usable["well"], sort=True)
+    motion = _column_summaries(usable, np.ones(len(usable), bool), track_codes,
+                               [str(w) for w in np.asarray(track_wells, dtype=object)],
+                               track_feature_columns(list(tracks.columns)), statistic)
     growth = well_growth_rates(cells)
     n_tracks = usable.groupby("well", observed=True).size().rename("n_tracks")
     n_tracks.index = n_tracks.index.astype(str)

@@ -211,7 +211,7 @@ def survey_folder(folder: str, plate_format_wells: int | None = None) -> ScreenS
 def _default_config() -> dict:
     from snakemake.utils import validate
 
-    schema = os.path.normpath(os.path.join(os.path.dirname(__file__), "..", "..", "workflow", "schemas", "config.schema.yaml"))
+    from .config_reference import SCHEMA as schema
     config = {"screen_sheet": "", "images": {"filename_template": "{well}_s{site}_{channel}.tif"},
               "channels": [{"name": "x", "role": "nuclei"}]}
     validate(config, schema)
