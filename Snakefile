@@ -20,8 +20,9 @@ try:
 except InputError as error:
     raise WorkflowError(f"plateloom could not start: {error}")
 
-# The check before launch, on file names only (plateloom check also reads every image header).
-if config.get("check_images_on_start", True):
+# The check before launch, on file names only (plateloom check also reads every image header);
+# once per run: not again in each job that a cluster executor starts.
+if config.get("check_images_on_start", True) and workflow.is_main_process:
     from plateloom.preflight import check_screen
 
     CHECK = check_screen(config, read_headers=False)
