@@ -7,7 +7,7 @@ import statsmodels.api as sm
 from statsmodels.stats.multitest import multipletests
 from statsmodels.tsa.stattools import grangercausalitytests
 
-from plateloom.collective import (CollectiveSettings, analytic_phases, bh_adjust, choose_granger_lag, delaunay_edges,
+from plateloom.collective import (CollectiveSettings, analytic_phases, corrected_order_squared, bh_adjust, choose_granger_lag, delaunay_edges,
                                   detrend_rows, fill_interior_gaps, granger_f_test, granger_tests, knox_test,
                                   kuramoto_order, pair_correlations, pairs_at_distance_two, reporter_events,
                                   track_neighbour_pairs, well_collective_readouts)
@@ -85,6 +85,11 @@ def test_kuramoto_order_is_one_for_identical_and_about_one_over_sqrt_n_for_rando
     assert np.mean(n * r**2) == pytest.approx(1.0, abs=0.07)
     # N r^2 is close to Exp(1) (a 2-D Gaussian sum, Rayleigh 1880), so the median of r sqrt(N) is sqrt(ln 2).
     assert np.median(r) * np.sqrt(n) == pytest.approx(np.sqrt(np.log(2)), rel=0.06)
+    # The cell-number correction removes that floor: mean 0 for any N, 1 for identical phases.
+    for cells in (5, 40):
+        corrected = corrected_order_squared(rng.uniform(0, 2 * np.pi, (cells, 4000)), axis=0)
+        assert abs(np.mean(corrected)) < 4 * np.std(corrected) / np.sqrt(4000)
+    assert corrected_order_squared(np.full((7, 1), 0.4), axis=0)[0] == pytest.approx(1.0)
 
 
 def test_hilbert_phase_of_a_cosine_is_its_argument():

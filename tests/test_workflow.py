@@ -75,9 +75,9 @@ def test_planted_effects_recovered_within_their_intervals(finished_screen):
     # 99% intervals around the planted log ratios (the scenario states truth as ratios to control).
     half = stats.t.ppf(0.995, merged["df"]) * merged["std_error"]
     inside = (merged["estimate"] - half <= merged["log_truth"]) & (merged["log_truth"] <= merged["estimate"] + half)
-    # With calibrated 99% intervals, misses among n are Binomial(n, 0.01); more than 3 of 51 has probability
-    # about 0.2%, while a biased measure or model misses far more often.
-    assert len(merged) == 51
+    # With calibrated 99% intervals, misses among n are Binomial(n, 0.01); more than 3 of 63 has probability
+    # about 0.4%, while a biased measure or model misses far more often.
+    assert len(merged) == 63  # 21 treatments x 3 planted features
     assert (~inside).sum() <= 3, merged.loc[~inside, ["treatment", "feature", "true_ratio", "ratio"]]
     # The positive control's 95% CI on nuclear area excludes no effect (0 on the log scale).
     positive = effects[(effects["role"] == "positive_control") & (effects["feature"] == "area_um2")].iloc[0]

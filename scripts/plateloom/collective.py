@@ -163,10 +163,7 @@ def analytic_phases(detrended: np.ndarray) -> np.ndarray:
     Rows with the same span are transformed together (scipy.signal.hilbert).
     """
     phases = np.full(detrended.shape, np.nan)
-    finite = np.isfinite(detrended)
-    has = finite.any(axis=1)
-    start = np.where(has, finite.argmax(axis=1), 0)
-    stop = np.where(has, detrended.shape[1] - finite[:, ::-1].argmax(axis=1), 0)
+    has, start, stop = _spans(np.isfinite(detrended))
     for first, last in set(zip(start[has].tolist(), stop[has].tolist())):
         if last - first < 4:
             continue
@@ -175,12 +172,56 @@ def analytic_phases(detrended: np.ndarray) -> np.ndarray:
     return phases
 
 
+def _spans(finite: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Per row: has any finite entry, first finite column, one past the last finite column."""
+    has = finite.any(axis=1)
+    start = np.where(has, finite.argmax(axis=1), 0)
+    stop = np.where(has, finite.shape[1] - finite[:, ::-1].argmax(axis=1), 0)
+    return has, start, stop
+
+
+def remove_dominant_oscillation(detrended: np.ndarray, padding: int = 16) -> np.ndarray:
+    """Each row minus its least-squares sinusoid at the row's periodogram peak (over its finite span).
+
+    A periodic component shared by two traces makes each predict the other whatever their
+    coupling (Granger's test assumes stationary series without deterministic parts), so the
+    directed tests run on what is left. Rows with the same span are done together.
+    """
+    residual = np.array(detrended, dtype=float)
+    has, start, stop = _spans(np.isfinite(detrended))
+    for first, last in set(zip(start[has].tolist(), stop[has].tolist())):
+        n = last - first
+        if n < 6:
+            continue
+        rows = np.flatnonzero(has & (start == first) & (stop == last))
+        block = np.nan_to_num(detrended[rows, first:last])
+        power = np.abs(np.fft.rfft(block, n=padding * n, axis=1)) ** 2
+        frequency = np.fft.rfftfreq(padding * n)            # cycles per frame
+        allowed = (frequency >= 1.0 / n) & (frequency < 0.5)  # at least one cycle over the span, below Nyquist
+        peak = frequency[np.flatnonzero(allowed)[power[:, allowed].argmax(axis=1)]]
+        angle = 2 * np.pi * peak[:, None] * np.arange(n)[None, :]
+        design = np.stack([np.sin(angle), np.cos(angle)], axis=2)                    # (rows, n, 2)
+        coefficients = np.linalg.solve(np.einsum("rni,rnj->rij", design, design),
+                                       np.einsum("rni,rn->ri", design, block)[..., None])
+        residual[rows, first:last] = block - (design @ coefficients)[..., 0]
+    return residual
+
+
 def kuramoto_order(phases: np.ndarray, axis: int = 0) -> np.ndarray:
     """Kuramoto order parameter r = |mean exp(i theta)| along ``axis``, NaN phases ignored (1 = identical phases)."""
     unit = np.exp(1j * np.nan_to_num(phases))
     finite = np.isfinite(phases)
     with np.errstate(invalid="ignore", divide="ignore"):
         return np.abs(np.where(finite, unit, 0).sum(axis=axis)) / finite.sum(axis=axis)
+
+
+def corrected_order_squared(phases: np.ndarray, axis: int = 0) -> np.ndarray:
+    """(N r^2 - 1) / (N - 1) along ``axis``: an unbiased estimate of |E exp(i theta)|^2, 0 for independent
+    uniform phases whatever N (r alone is about 1/sqrt(N) then), 1 for identical phases; NaN for N < 2."""
+    n = np.isfinite(phases).sum(axis=axis)
+    r = kuramoto_order(phases, axis=axis)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(n >= 2, (n * r**2 - 1) / (n - 1), np.nan)
 
 
 def pair_correlations(traces: np.ndarray, pairs_rows: np.ndarray, min_overlap: int) -> np.ndarray:
@@ -360,11 +401,10 @@ def _directed_tests(traces: np.ndarray, rows: np.ndarray, settings: CollectiveSe
         return np.empty(0)
     a, b = traces[rows[:, 0]], traces[rows[:, 1]]
     both = np.isfinite(a) & np.isfinite(b)
-    has = both.any(axis=1)
-    start = np.where(has, both.argmax(axis=1), 0)
-    stop = np.where(has, both.shape[1] - both[:, ::-1].argmax(axis=1), 0)
+    has, start, stop = _spans(both)
     contiguous = both.sum(axis=1) == stop - start
-    usable = has & contiguous & (stop - start >= settings.min_overlap_frames)
+    shortest = max(settings.min_overlap_frames, 3 * settings.max_lag_frames + 2)  # leaves >= 1 residual df at the top lag
+    usable = has & contiguous & (stop - start >= shortest)
     p_values = np.full((len(rows), 2), np.nan)
     for first, last in set(zip(start[usable].tolist(), stop[usable].tolist())):
         group = np.flatnonzero(usable & (start == first) & (stop == last))
@@ -379,11 +419,13 @@ def well_collective_readouts(cells: pd.DataFrame, reporters: list[str], settings
     """One row of collective readouts for a well from its cells table (columns site, frame, track,
     centroid_x_um, centroid_y_um, touches_border, mean_intensity_<reporter>).
 
-    Per reporter: phase_order (Kuramoto r averaged over frames with >= 3 phases, then sites),
-    time_to_synchrony_min (first time r reaches ``synchrony_level``; censored at the end of
+    Per reporter: phase_order (the squared Kuramoto order parameter corrected for the number
+    of cells, (N r^2 - 1) / (N - 1), averaged over frames with >= 3 phases, then sites; 0 for
+    independent phases, 1 for identical ones), time_to_synchrony_min (first time r reaches ``synchrony_level``; censored at the end of
     imaging, one interval after the last frame), neighbour_correlation (mean over neighbour
     track pairs), coupled_link_fraction (share of directed neighbour links with a Granger
-    q-value <= ``coupling_q_value``; BH over all of the well's tests) and the same for pairs at
+    q-value <= ``coupling_q_value``; BH over all of the well's tests; each trace's dominant
+    oscillation removed first) and the same for pairs at
     graph distance 2. spreading_index = (observed + 1) / (expected + 1) Knox pairs of events of
     the first reporter (1: no clustering beyond chance).
     """
@@ -406,13 +448,14 @@ def well_collective_readouts(cells: pd.DataFrame, reporters: list[str], settings
             order = kuramoto_order(phases, axis=0)
             counted = np.isfinite(phases).sum(axis=0) >= 3
             if counted.any():
-                sums[channel]["order"].append(float(np.mean(order[counted])))
+                sums[channel]["order"].append(float(np.mean(corrected_order_squared(phases, axis=0)[counted])))
                 reached = np.flatnonzero(counted & (order >= settings.synchrony_level))
                 end = (traces.shape[1]) * frame_interval_min
                 sums[channel]["time"].append(float(reached[0] * frame_interval_min) if len(reached) else end)
             sums[channel]["corr"].append(pair_correlations(traces, np.searchsorted(ids, pairs), settings.min_overlap_frames))
-            sums[channel]["p1"].append(_directed_tests(traces, np.searchsorted(ids, pairs), settings))
-            sums[channel]["p2"].append(_directed_tests(traces, np.searchsorted(ids, second), settings))
+            residual = remove_dominant_oscillation(traces)
+            sums[channel]["p1"].append(_directed_tests(residual, np.searchsorted(ids, pairs), settings))
+            sums[channel]["p2"].append(_directed_tests(residual, np.searchsorted(ids, second), settings))
         if reporters:
             at_border = part["touches_border"].to_numpy(bool)
             values = part[f"mean_intensity_{reporters[0]}"].to_numpy(float)

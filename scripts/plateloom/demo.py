@@ -2,9 +2,14 @@
 
 Cells are ellipses that move as a persistent random walk (Ornstein-Uhlenbeck velocity,
 Fürth 1920), carry a nuclear stain and an oscillating nuclear reporter, and are imaged
-with background, vignetting, blur and noise. Treatments change nuclear area, reporter
-level and speed by Hill-equation ratios; days, plates, wells and edge wells add nuisance
-offsets. Everything is drawn from generators seeded by the scenario seed and the plate
+with background, vignetting, blur and noise. The reporter couples neighbours: oscillator
+phases pull towards the neighbours' (Kuramoto 1975) and a fluctuating component follows
+the neighbours' previous values (a first-order vector autoregression), so neighbours
+Granger-cause each other. Cells die at random and, when a neighbour died shortly before,
+with an added chance (events that spread); a dying cell's reporter jumps in its last frame.
+Treatments change nuclear area, reporter level, speed, neighbour coupling and death
+spreading by Hill-equation ratios; days, plates, wells and edge wells add nuisance offsets
+(not to coupling and spreading). Everything is drawn from generators seeded by the scenario seed and the plate
 and batch names, so a plate's images do not depend on which other plates exist.
 """
 
@@ -22,7 +27,8 @@ from scipy import ndimage
 
 from .plate_formats import is_edge_well, plate_format
 
-QUANTITIES = ("area", "reporter", "speed", "nuclear", "cell_count")
+QUANTITIES = ("area", "reporter", "speed", "nuclear", "cell_count", "coupling", "spreading")
+WITHOUT_NUISANCE = ("coupling", "spreading")
 
 
 def load_scenario(path: str, frames: int | None = None, image_size_px: int | None = None) -> dict:
@@ -82,12 +88,32 @@ def planted_ratios(scenario: dict, layout: pd.DataFrame) -> pd.DataFrame:
     return pd.DataFrame(rows)
 
 
+COLLECTIVE_READOUTS = {"coupling": ("phase_order_{r}", "neighbour_correlation_{r}", "coupled_link_fraction_{r}"),
+                       "spreading": ("spreading_index",)}
+
+
+def planted_collective(scenario: dict, layout: pd.DataFrame) -> pd.DataFrame:
+    """The planted truth of the collective quantities: one row per (treatment, quantity) with the ratio
+    to the negative control of neighbour coupling (1 coupled as the controls, 0 decoupled) and of the
+    chance that a death spreads, and the readouts (well features) that should move with it."""
+    reporter = scenario["channels"]["reporter"]
+    rows = []
+    treated = layout[layout["role"].isin(["test", "positive_control"])].drop_duplicates("treatment")
+    for _, well in treated.iterrows():
+        ratios = treatment_ratios(scenario, well["condition"], float(well["dose"]))
+        for quantity, readouts in COLLECTIVE_READOUTS.items():
+            rows.append({"treatment": well["treatment"], "condition": well["condition"], "dose": well["dose"],
+                         "quantity": quantity, "ratio": ratios[quantity],
+                         "readouts": [r.format(r=reporter) for r in readouts]})
+    return pd.DataFrame(rows)
+
+
 def _stable_rng(seed: int, *names: str) -> np.random.Generator:
     return np.random.default_rng([int(seed)] + [zlib.crc32(name.encode()) for name in names])
 
 
 def _log_offsets(rng: np.random.Generator, sd: float) -> dict[str, float]:
-    return {q: float(np.exp(rng.normal(0.0, sd))) for q in QUANTITIES}
+    return {q: float(np.exp(rng.normal(0.0, sd))) for q in QUANTITIES if q not in WITHOUT_NUISANCE}
 
 
 def vignetting(size: int, corner: float) -> np.ndarray:
@@ -107,6 +133,12 @@ class _Cells:
     nuclear: np.ndarray
     reporter: np.ndarray
     phase: np.ndarray
+    frequency: np.ndarray    # rad/min
+    fluctuation: np.ndarray  # relative reporter fluctuation
+    identity: np.ndarray     # index at the start (truth labels are identity + 1)
+
+    def keep(self, alive: np.ndarray) -> "_Cells":
+        return _Cells(*(getattr(self, f)[alive] for f in self.__dataclass_fields__))
 
 
 def _draw_cells(rng: np.random.Generator, scenario: dict, factor: dict[str, float], size: int) -> _Cells:
@@ -119,10 +151,49 @@ def _draw_cells(rng: np.random.Generator, scenario: dict, factor: dict[str, floa
     margin = semi_major + 3
     position = rng.uniform(margin[:, None], size - margin[:, None], (n, 2))
     sigma = cell["rms_speed_um_per_min"] * factor["speed"] / np.sqrt(2.0)
-    return _Cells(position, rng.normal(0, sigma, (n, 2)), semi_major, semi_minor, rng.uniform(0, np.pi, n),
-                  cell["nuclear_level"] * factor["nuclear"] * np.exp(rng.normal(0, cell["nuclear_level_log_sd"], n)),
-                  cell["reporter_level"] * factor["reporter"] * np.exp(rng.normal(0, cell["reporter_level_log_sd"], n)),
-                  rng.uniform(0, 2 * np.pi, n))
+    velocity, angle = rng.normal(0, sigma, (n, 2)), rng.uniform(0, np.pi, n)
+    nuclear = cell["nuclear_level"] * factor["nuclear"] * np.exp(rng.normal(0, cell["nuclear_level_log_sd"], n))
+    reporter = cell["reporter_level"] * factor["reporter"] * np.exp(rng.normal(0, cell["reporter_level_log_sd"], n))
+    phase = rng.uniform(0, 2 * np.pi, n)
+    frequency = 2 * np.pi / cell["reporter_period_min"] * np.exp(rng.normal(0, cell.get("reporter_period_log_sd", 0.0), n))
+    return _Cells(position, velocity, semi_major, semi_minor, angle, nuclear, reporter, phase, frequency,
+                  np.zeros(n), np.arange(n))
+
+
+def _neighbour_weights(cells: _Cells, radius_px: float) -> np.ndarray:
+    """Row-normalised weights of the neighbours within ``radius_px``, (1 - distance / radius)^2, so the
+    closest neighbours weigh most (a row of zeros for a cell without any)."""
+    distance = np.hypot(*(cells.position[:, None, :] - cells.position[None, :, :]).transpose(2, 0, 1))
+    weight = np.clip(1 - distance / radius_px, 0, None) ** 2 * ~np.eye(len(distance), dtype=bool)
+    return weight / np.maximum(weight.sum(axis=1, keepdims=True), 1e-12)
+
+
+def _advance_reporter(rng: np.random.Generator, cells: _Cells, scenario: dict, coupling: float) -> None:
+    """One frame of the coupled reporter: Kuramoto phase pull and the neighbours-driven fluctuation."""
+    cell, dt = scenario["cell"], scenario["frame_interval_min"]
+    weights = _neighbour_weights(cells, cell["coupling_radius_um"] / scenario["pixel_size_um"])
+    pull = (weights * np.sin(cells.phase[None, :] - cells.phase[:, None])).sum(axis=1)
+    cells.phase[:] = cells.phase + dt * (cells.frequency + coupling * cell["phase_coupling_per_min"] * pull)
+    memory, drive = cell["fluctuation_memory"], min(coupling * cell["fluctuation_coupling"], 0.95 - cell["fluctuation_memory"])
+    cells.fluctuation[:] = (memory * cells.fluctuation + drive * weights @ cells.fluctuation
+                            + rng.normal(0, cell["fluctuation_sd"], len(cells.fluctuation)))
+
+
+def _dying(rng: np.random.Generator, cells: _Cells, scenario: dict, spreading: float,
+           recent_deaths: np.ndarray) -> np.ndarray:
+    """Which cells die in this frame: a base hazard plus a chance per neighbour that died within the last frames."""
+    cell = scenario["cell"]
+    if len(cells.position) == 0:
+        return np.zeros(0, bool)
+    radius = cell["coupling_radius_um"] / scenario["pixel_size_um"]
+    if len(recent_deaths):
+        distance = np.hypot(*(cells.position[:, None, :] - recent_deaths[None, :, :]).transpose(2, 0, 1))
+        exposed = (distance <= radius).sum(axis=1)
+    else:
+        exposed = np.zeros(len(cells.position))
+    spread = min(1.0, cell["death_spread_probability"] * spreading)
+    hazard = 1 - (1 - cell["death_rate_per_frame"]) * (1 - spread) ** exposed
+    return rng.uniform(size=len(cells.position)) < hazard
 
 
 def _step(rng: np.random.Generator, cells: _Cells, scenario: dict, speed_factor: float, size: int) -> None:
@@ -173,11 +244,11 @@ def _render(cells: _Cells, levels: np.ndarray, size: int) -> np.ndarray:
 
 
 def _render_labels(cells: _Cells, size: int) -> np.ndarray:
-    """Ground-truth label image: cell i is label i + 1 (where ellipses overlap, the later cell's)."""
+    """Ground-truth label image: the cell drawn i-th at the start is label i + 1 (where ellipses overlap, the later cell's)."""
     labels = np.zeros((size, size), np.int32)
     for i, ys, xs, inside in _ellipse_boxes(cells, size):
         box = labels[ys[0]:ys[-1] + 1, xs[0]:xs[-1] + 1]
-        box[inside] = i + 1
+        box[inside] = cells.identity[i] + 1
     return labels
 
 
@@ -194,7 +265,8 @@ def simulate_site(scenario: dict, factor: dict[str, float], rng: np.random.Gener
                   with_truth: bool = False) -> np.ndarray | tuple[np.ndarray, SiteTruth]:
     """Images of one site: array (frames, 2 channels, y, x) uint16, nuclei then reporter.
 
-    With ``with_truth`` also the planted truth (the images are the same either way).
+    With ``with_truth`` also the planted truth (the images are the same either way); its
+    positions table has a ``dies`` column (True in a cell's last frame when it dies).
     """
     size, frames = scenario["image_size_px"], scenario["frames"]
     imaging, cell = scenario["imaging"], scenario["cell"]
@@ -204,22 +276,29 @@ def simulate_site(scenario: dict, factor: dict[str, float], rng: np.random.Gener
     stack = np.empty((frames, 2, size, size), np.uint16)
     truth_labels = np.zeros((frames, size, size), np.int32) if with_truth else None
     positions = []
+    recent_deaths: list[np.ndarray] = []
     for frame in range(frames):
-        time = frame * scenario["frame_interval_min"]
-        oscillation = 1 + cell["reporter_oscillation_amplitude"] * np.sin(2 * np.pi * time / cell["reporter_period_min"] + cells.phase)
-        for channel, levels in enumerate((cells.nuclear, cells.reporter * oscillation)):
+        dying = _dying(rng, cells, scenario, factor.get("spreading", 1.0),
+                       np.concatenate(recent_deaths[-cell["death_memory_frames"]:] or [np.empty((0, 2))]))
+        oscillation = 1 + cell["reporter_oscillation_amplitude"] * np.sin(cells.phase) + cells.fluctuation
+        reporter = cells.reporter * np.clip(oscillation, 0.05, None) * np.where(dying, cell["death_reporter_jump"], 1.0)
+        for channel, levels in enumerate((cells.nuclear, reporter)):
             signal = ndimage.gaussian_filter(_render(cells, levels, size), imaging["blur_sigma_px"])
             image = (signal + imaging["background"]) * illumination + rng.normal(0, imaging["noise_sd"], (size, size))
             stack[frame, channel] = np.clip(np.rint(image), 0, 65535).astype(np.uint16)
         if with_truth:
             truth_labels[frame] = _render_labels(cells, size)
             pixel = scenario["pixel_size_um"]
-            positions.append(pd.DataFrame({"frame": frame, "cell": np.arange(len(cells.position)),
-                                           "x_um": cells.position[:, 1] * pixel, "y_um": cells.position[:, 0] * pixel}))
+            positions.append(pd.DataFrame({"frame": frame, "cell": cells.identity, "x_um": cells.position[:, 1] * pixel,
+                                           "y_um": cells.position[:, 0] * pixel, "dies": dying}))
+        recent_deaths.append(cells.position[dying].copy())
+        cells = cells.keep(~dying)
+        _advance_reporter(rng, cells, scenario, factor.get("coupling", 1.0))
         _step(rng, cells, scenario, factor["speed"], size)
     if not with_truth:
         return stack
-    table = pd.concat(positions, ignore_index=True) if positions else pd.DataFrame(columns=["frame", "cell", "x_um", "y_um"])
+    table = (pd.concat(positions, ignore_index=True) if positions
+             else pd.DataFrame(columns=["frame", "cell", "x_um", "y_um", "dies"]))
     return stack, SiteTruth(truth_labels, table)
 
 
@@ -233,6 +312,9 @@ def well_factors(scenario: dict, plate: str, batch: str, well: str, condition: s
     edge = is_edge_well(well, plate_format(scenario["plate_format"]))
     factor = {}
     for q in QUANTITIES:
+        if q in WITHOUT_NUISANCE:
+            factor[q] = treatment[q]
+            continue
         edge_ratio = nuisance["edge_ratio"].get(q, 1.0) if edge else 1.0
         factor[q] = treatment[q] * batch_offset[q] * plate_offset[q] * well_offset[q] * edge_ratio
     return factor

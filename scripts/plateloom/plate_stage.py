@@ -78,14 +78,22 @@ def percent_of_control(values: np.ndarray, negative: np.ndarray, positive: np.nd
 
 
 def build_plate_tables(cells: pd.DataFrame, tracks: pd.DataFrame, site_qc: pd.DataFrame, layout: pd.DataFrame,
-                       plate: str, batch: str, wells: int, settings: PlateSettings, rules: ExclusionRules) -> PlateTables:
-    """Everything the plate stage writes, from the per-well tables of one plate."""
+                       plate: str, batch: str, wells: int, settings: PlateSettings, rules: ExclusionRules,
+                       collective: pd.DataFrame | None = None) -> PlateTables:
+    """Everything the plate stage writes, from the per-well tables of one plate.
+
+    ``collective`` (one row per well: plate, well and collective readouts), if given, adds its
+    readouts to the well profiles as features.
+    """
     fmt = plate_format(wells)
     warnings: list[str] = []
     ledger = [site_frame_exclusions(site_qc, rules, plate)]
     warnings += unusable_frame_notes(site_qc)
     kept_cells = drop_excluded_site_frames(cells, ledger[0])
     profile = summarise_wells(kept_cells, tracks, layout, plate, batch, wells, settings.well_summary)
+    if collective is not None and len(collective.columns.difference(["plate", "well"])):
+        readouts = collective.drop(columns=["plate"], errors="ignore").assign(well=lambda t: t["well"].astype(str))
+        profile = profile.merge(readouts, on="well", how="left", validate="one_to_one")
     measured = cells.groupby("well", observed=True).size()
     used = kept_cells[~kept_cells["touches_border"]].groupby("well", observed=True).size()
     measured.index, used.index = measured.index.astype(str), used.index.astype(str)

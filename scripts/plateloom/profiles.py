@@ -10,6 +10,7 @@ import pandas as pd
 import pyarrow.dataset as ds
 import pyarrow.parquet as pq
 
+from .collective import COUNT_COLUMNS
 from .plate_formats import is_edge_well, parse_well, plate_format
 from .trackstats import growth_rate_per_h
 
@@ -193,6 +194,6 @@ def well_features(profile: pd.DataFrame) -> list[str]:
     """The feature columns of a well-profile table (cell_count, medians, motility)."""
     fixed = {"plate", "batch", "well", "row", "column", "is_edge", "role", "condition", "dose", "dose_unit",
              "treatment", "n_observations", "n_sites", "n_frames", "n_tracks", "excluded_by", "plate_excluded_by",
-             "cell_count_outlier", "fraction_observations_used"}
+             "cell_count_outlier", "fraction_observations_used", *COUNT_COLUMNS}
     derived = ("_robust_z", "_percent_of_control", "_b_score", "_uncorrected")
     return [c for c in profile.columns if c not in fixed and not c.endswith(derived)]

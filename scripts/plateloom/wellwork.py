@@ -8,6 +8,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
+from .collective import CollectiveSettings, well_collective_readouts
 from .errors import InputError
 from .features import measure_objects, neighbourhood
 from .illumination import apply_flat_field
@@ -229,14 +230,31 @@ def _with_keys(frame: pd.DataFrame, plate: str, well: str) -> pd.DataFrame:
     return frame
 
 
+def collective_table(cells: pd.DataFrame, settings: WellSettings, collective: CollectiveSettings,
+                     well: str) -> pd.DataFrame:
+    """One row of collective readouts of a well (see plateloom.collective); no columns when switched off
+    or when no channel has the role reporter."""
+    if not collective.enabled or not settings.reporter_channels:
+        return pd.DataFrame(index=[0])
+    row = well_collective_readouts(cells, list(settings.reporter_channels), collective,
+                                   settings.frame_interval_min, well)
+    return pd.DataFrame([row])
+
+
 def analyse_chunk(index: ImageIndex, plate: str, wells: list[str], settings: WellSettings,
                   out_cells: str, out_tracks: str, out_site_qc: str, config_for_provenance: object,
-                  flat_field: np.ndarray | None = None) -> None:
-    """Analyse the wells of one chunk; one Parquet file per well in each of three Hive folders."""
-    for folder in (out_cells, out_tracks, out_site_qc):
+                  flat_field: np.ndarray | None = None, out_collective: str | None = None,
+                  collective: CollectiveSettings | None = None) -> None:
+    """Analyse the wells of one chunk; one Parquet file per well in each Hive folder (cells, tracks,
+    site QC and, with ``out_collective``, the well's collective readouts)."""
+    outputs = (out_cells, out_tracks, out_site_qc) + ((out_collective,) if out_collective else ())
+    for folder in outputs:
         os.makedirs(folder, exist_ok=True)
     for well in wells:
         cells, tracks, site_qc = analyse_well(index, well, settings, flat_field)
         write_parquet(_with_keys(cells, plate, well), well_part_path(out_cells, well), config_for_provenance)
         write_parquet(_with_keys(tracks, plate, well), well_part_path(out_tracks, well), config_for_provenance)
         write_parquet(_with_keys(site_qc, plate, well), well_part_path(out_site_qc, well), config_for_provenance)
+        if out_collective:
+            table = collective_table(cells, settings, collective or CollectiveSettings(), well)
+            write_parquet(_with_keys(table, plate, well), well_part_path(out_collective, well), config_for_provenance)

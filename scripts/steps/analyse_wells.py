@@ -2,6 +2,7 @@
 import numpy as np
 import tifffile
 
+from plateloom.collective import CollectiveSettings
 from plateloom.images import index_plate_images
 from plateloom.steps import run_step
 from plateloom.wellwork import WellSettings, analyse_chunk
@@ -15,7 +16,8 @@ def step() -> None:
     profiles = list(sm.input.flat_fields)
     flat_field = np.stack([tifffile.imread(path) for path in profiles]) if profiles else None
     analyse_chunk(index, sm.wildcards.plate, list(sm.params.wells), settings,
-                  sm.output.cells, sm.output.tracks, sm.output.site_qc, dict(sm.params.settings), flat_field)
+                  sm.output.cells, sm.output.tracks, sm.output.site_qc, dict(sm.params.settings), flat_field,
+                  sm.output.collective, CollectiveSettings(**sm.params.collective))
 
 
 run_step(sm.log[0], step, f"analyse_wells {sm.wildcards.plate} chunk {sm.wildcards.chunk}")

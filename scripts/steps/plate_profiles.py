@@ -18,7 +18,8 @@ def step() -> None:
     tables = build_plate_tables(read_cells_for_profiles(list(sm.input.cells)), read_plate_dataset(list(sm.input.tracks)),
                                 read_plate_dataset(list(sm.input.site_qc)), layout, sm.wildcards.plate, sm.params.batch,
                                 sm.params.plate_format, PlateSettings(**settings["plate"]),
-                                ExclusionRules.from_config(settings["exclusion_rules"]))
+                                ExclusionRules.from_config(settings["exclusion_rules"]),
+                                read_plate_dataset(list(sm.input.collective)))
     note = unmatched_note(sm.params.image_folder, sm.params.template, sm.params.plate_format, list(sm.params.channels))
     warnings = tables.warnings + ([note] if note else [])
     write_parquet(tables.profile, sm.output.wells, settings)

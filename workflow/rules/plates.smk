@@ -11,6 +11,7 @@ rule plate_profiles:
         cells=lambda w: chunk_folders("cells", w.plate),
         tracks=lambda w: chunk_folders("tracks", w.plate),
         site_qc=lambda w: chunk_folders("site_qc", w.plate),
+        collective=lambda w: chunk_folders("collective", w.plate),
         layout=lambda w: PLAN.plates[w.plate].layout,
     output:
         wells=f"{RESULTS}/wells/plate={{plate}}/part-0.parquet",

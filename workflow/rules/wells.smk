@@ -2,10 +2,12 @@
 
 from dataclasses import asdict
 
+from plateloom.collective import CollectiveSettings
 from plateloom.illumination import IlluminationSettings
 from plateloom.wellwork import WellSettings
 
 WELL_SETTINGS = asdict(WellSettings.from_config(config))
+COLLECTIVE = asdict(CollectiveSettings.from_config(config))
 ILLUMINATION = IlluminationSettings.from_config(config)
 CHANNELS = [c["name"] for c in config["channels"]]
 
@@ -54,11 +56,13 @@ rule analyse_wells:
         cells=directory(f"{RESULTS}/cells/plate={{plate}}/chunk={{chunk}}"),
         tracks=directory(f"{RESULTS}/tracks/plate={{plate}}/chunk={{chunk}}"),
         site_qc=directory(f"{RESULTS}/site_qc/plate={{plate}}/chunk={{chunk}}"),
+        collective=directory(f"{RESULTS}/collective/plate={{plate}}/chunk={{chunk}}"),
     params:
         wells=lambda w: PLAN.chunks[w.plate][int(w.chunk)],
         plate_format=lambda w: PLAN.plates[w.plate].plate_format,
         template=lambda w: config["images"]["filename_template"],
         settings=WELL_SETTINGS,
+        collective=COLLECTIVE,
     wildcard_constraints:
         chunk=r"\d{3}",
     log:
