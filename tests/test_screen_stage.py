@@ -56,6 +56,18 @@ def test_constant_feature_is_reported_not_fitted():
     assert effects[effects["feature"] == "value"]["q_value"].notna().all()
 
 
+def test_feature_without_any_value_is_reported_not_fitted():
+    # e.g. collective readouts of a screen whose tracks are shorter than collective.min_overlap_frames
+    wells = _wells()
+    wells["empty"] = np.nan
+    effects = _effects(wells, features=("value", "empty"))
+    empty = effects[effects["feature"] == "empty"]
+    assert len(empty) == 2 and empty["estimate"].isna().all() and not empty["hit"].any()
+    assert (empty["method"] == "not fitted").all()
+    assert empty["note"].str.contains("no well has a value of empty").all()
+    assert effects[effects["feature"] == "value"]["q_value"].notna().all()
+
+
 def test_condition_with_every_well_excluded_keeps_a_row_that_says_so():
     wells = _wells()
     wells.loc[wells["condition"] == "Y", "excluded_by"] = "min_cells_per_well (cell_count): 2 < 5"

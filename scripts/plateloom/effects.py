@@ -152,6 +152,10 @@ def fit_feature_effects(wells: pd.DataFrame, feature: str, scale: str, ci_level:
     data["y"] = data[feature].to_numpy(float)
     n_not_finite = int((~np.isfinite(data["y"])).sum())
     data = data[np.isfinite(data["y"])]
+    if data.empty:
+        note = (f"no well has a value of {feature}: not fitted (collective readouts need tracks of at least "
+                "collective.min_overlap_frames frames; see the README)")
+        return _unfitted_table(wells, treatments, feature, scale, note)
     if (data["treatment"] == REFERENCE).sum() == 0:
         raise ValueError(f"feature {feature}: no negative-control wells are left in the model; "
                          "check the layouts' role column and the exclusion ledger")
@@ -222,6 +226,23 @@ def fit_feature_effects(wells: pd.DataFrame, feature: str, scale: str, ci_level:
         log_scale = scale == "log"
         for column, source in (("ratio", "estimate"), ("ratio_ci_low", "ci_low"), ("ratio_ci_high", "ci_high")):
             table[column] = np.exp(table[source]) if log_scale else np.nan
+    return table
+
+
+def _unfitted_table(wells: pd.DataFrame, treatments: pd.DataFrame | None, feature: str, scale: str,
+                    note: str) -> pd.DataFrame:
+    """One row per treatment with no estimate and ``note`` saying why (same columns as a fitted table)."""
+    catalogue = _treatment_catalogue(wells, treatments)
+    nan = np.full(len(catalogue), np.nan)
+    table = pd.DataFrame({
+        "feature": feature, "treatment": catalogue.index, "condition": catalogue["condition"].to_numpy(),
+        "dose": catalogue["dose"].to_numpy(), "dose_unit": catalogue["dose_unit"].to_numpy(),
+        "role": catalogue["role"].to_numpy(), "scale": scale, "estimate": nan, "std_error": nan, "df": nan,
+        "ci_low": nan, "ci_high": nan, "t_value": nan, "p_value": nan, "n_wells": 0, "n_plates": 0, "n_batches": 0,
+        "batch_variance": nan, "plate_variance": nan, "residual_variance": nan, "icc_batch_plate": nan,
+        "converged": False, "method": "not fitted", "note": note})
+    for column in ("ratio", "ratio_ci_low", "ratio_ci_high"):
+        table[column] = nan
     return table
 
 
