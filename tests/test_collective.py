@@ -4,10 +4,9 @@ import numpy as np
 import pandas as pd
 import pytest
 import statsmodels.api as sm
-from statsmodels.stats.multitest import multipletests
 from statsmodels.tsa.stattools import grangercausalitytests
 
-from plateloom.collective import (CollectiveSettings, analytic_phases, corrected_order_squared, bh_adjust, choose_granger_lag, delaunay_edges,
+from plateloom.collective import (CollectiveSettings, analytic_phases, corrected_order_squared, choose_granger_lag, delaunay_edges,
                                   detrend_rows, fill_interior_gaps, granger_f_test, granger_tests, knox_test,
                                   kuramoto_order, pair_correlations, pairs_at_distance_two, reporter_events,
                                   track_neighbour_pairs, well_collective_readouts)
@@ -63,16 +62,6 @@ def test_planted_direction_is_found_and_the_reverse_is_not():
     assert (p_forward < 0.01).mean() > 0.95
     # Under the null the test's size is near nominal (common practice: F-test of nested OLS models).
     assert (p_reverse < 0.05).mean() < 0.10
-
-
-def test_bh_adjust_equals_statsmodels_fdr_bh():
-    # Reference: statsmodels.stats.multitest.multipletests(method="fdr_bh").
-    p = np.random.default_rng(2).uniform(size=300) ** 3
-    p[[5, 17]] = np.nan
-    q = bh_adjust(p)
-    reference = multipletests(p[np.isfinite(p)], method="fdr_bh")[1]
-    np.testing.assert_allclose(q[np.isfinite(p)], reference, rtol=1e-12)
-    assert np.isnan(q[[5, 17]]).all()
 
 
 def test_kuramoto_order_is_one_for_identical_and_about_one_over_sqrt_n_for_random_phases():

@@ -26,6 +26,7 @@ import pandas as pd
 from scipy import signal, sparse, stats
 from scipy.spatial import Delaunay, QhullError
 
+from .fdr import bh_qvalues
 from .trackstats import track_matrix
 
 
@@ -317,18 +318,6 @@ def granger_tests(effect: np.ndarray, cause: np.ndarray, max_lag: int, criterion
     return lag, f, p
 
 
-def bh_adjust(p_values: np.ndarray) -> np.ndarray:
-    """Benjamini-Hochberg (1995) adjusted p-values (q-values); NaN stays NaN."""
-    p = np.asarray(p_values, float)
-    q = np.full(p.shape, np.nan)
-    finite = np.flatnonzero(np.isfinite(p))
-    if len(finite):
-        order = finite[np.argsort(p[finite], kind="stable")]
-        ranked = p[order] * len(order) / np.arange(1, len(order) + 1)
-        q[order] = np.minimum(1.0, np.minimum.accumulate(ranked[::-1])[::-1])
-    return q
-
-
 # ---------------------------------------------------------------------------------------------
 # Events and their spreading
 
@@ -467,7 +456,7 @@ def well_collective_readouts(cells: pd.DataFrame, reporters: list[str], settings
         correlations = np.concatenate(s["corr"]) if s["corr"] else np.empty(0)
         p1 = np.concatenate(s["p1"]) if s["p1"] else np.empty(0)
         p2 = np.concatenate(s["p2"]) if s["p2"] else np.empty(0)
-        q = bh_adjust(np.concatenate([p1, p2]))
+        q = bh_qvalues(np.concatenate([p1, p2]))
         q1, q2 = q[:len(p1)], q[len(p1):]
         n_tests = max(n_tests, int(np.isfinite(q).sum()))
         row[f"phase_order_{channel}"] = float(np.mean(s["order"])) if s["order"] else np.nan

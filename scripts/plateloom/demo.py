@@ -78,14 +78,15 @@ def planted_ratios(scenario: dict, layout: pd.DataFrame) -> pd.DataFrame:
     (nuclear area, reporter mean intensity, track speed); a ratio of 1 means no effect.
     """
     features = feature_of_quantity(scenario)
-    rows = []
-    treated = layout[layout["role"].isin(["test", "positive_control"])].drop_duplicates("treatment")
-    for _, well in treated.iterrows():
-        ratios = treatment_ratios(scenario, well["condition"], float(well["dose"]))
-        for quantity, feature in features.items():
-            rows.append({"treatment": well["treatment"], "condition": well["condition"], "dose": well["dose"],
-                         "feature": feature, "ratio": ratios[quantity]})
-    return pd.DataFrame(rows)
+    return pd.DataFrame([keys | {"feature": feature, "ratio": ratios[quantity]}
+                         for keys, ratios in _treated(scenario, layout) for quantity, feature in features.items()])
+
+
+def _treated(scenario: dict, layout: pd.DataFrame):
+    """(treatment, condition, dose) and the planted ratios of every non-control treatment of ``layout``."""
+    for _, well in layout[layout["role"].isin(["test", "positive_control"])].drop_duplicates("treatment").iterrows():
+        keys = {"treatment": well["treatment"], "condition": well["condition"], "dose": well["dose"]}
+        yield keys, treatment_ratios(scenario, well["condition"], float(well["dose"]))
 
 
 COLLECTIVE_READOUTS = {"coupling": ("phase_order_{r}", "neighbour_correlation_{r}", "coupled_link_fraction_{r}"),
@@ -97,15 +98,9 @@ def planted_collective(scenario: dict, layout: pd.DataFrame) -> pd.DataFrame:
     to the negative control of neighbour coupling (1 coupled as the controls, 0 decoupled) and of the
     chance that a death spreads, and the readouts (well features) that should move with it."""
     reporter = scenario["channels"]["reporter"]
-    rows = []
-    treated = layout[layout["role"].isin(["test", "positive_control"])].drop_duplicates("treatment")
-    for _, well in treated.iterrows():
-        ratios = treatment_ratios(scenario, well["condition"], float(well["dose"]))
-        for quantity, readouts in COLLECTIVE_READOUTS.items():
-            rows.append({"treatment": well["treatment"], "condition": well["condition"], "dose": well["dose"],
-                         "quantity": quantity, "ratio": ratios[quantity],
-                         "readouts": [r.format(r=reporter) for r in readouts]})
-    return pd.DataFrame(rows)
+    return pd.DataFrame([keys | {"quantity": quantity, "ratio": ratios[quantity],
+                                 "readouts": [r.format(r=reporter) for r in readouts]}
+                         for keys, ratios in _treated(scenario, layout) for quantity, readouts in COLLECTIVE_READOUTS.items()])
 
 
 def _stable_rng(seed: int, *names: str) -> np.random.Generator:

@@ -21,6 +21,7 @@ import statsmodels.formula.api as smf
 from scipy import stats
 from statsmodels.tools.sm_exceptions import ConvergenceWarning
 
+from .fdr import bh_qvalues  # noqa: F401  (part of this module's interface)
 from .reml import fit_nested_exact
 
 REFERENCE = "negative_control"
@@ -252,24 +253,6 @@ def _treatment_catalogue(wells: pd.DataFrame, treatments: pd.DataFrame | None) -
     source = source[source["role"].isin(["positive_control", "test"])]
     return (source.drop_duplicates("treatment").set_index("treatment")[["condition", "dose", "dose_unit", "role"]]
             .sort_index())
-
-
-def bh_qvalues(p_values: np.ndarray) -> np.ndarray:
-    """Benjamini-Hochberg (1995) adjusted p-values (q-values); NaN p-values stay NaN and are not counted."""
-    p = np.asarray(p_values, float)
-    q = np.full(p.shape, np.nan)
-    finite = np.isfinite(p)
-    m = int(finite.sum())
-    if m == 0:
-        return q
-    values = p[finite]
-    order = np.argsort(values)
-    scaled = values[order] * m / np.arange(1, m + 1)
-    adjusted = np.minimum.accumulate(scaled[::-1])[::-1]
-    result = np.empty(m)
-    result[order] = np.minimum(adjusted, 1.0)
-    q[finite] = result
-    return q
 
 
 def in_model(wells: pd.DataFrame) -> pd.Series:
