@@ -181,3 +181,16 @@ def test_planted_neighbour_coupling_raises_coupled_fraction_and_correlation():
     assert independent["coupled_link_fraction_rep"] < 0.05
     assert coupled["neighbour_correlation_rep"] > independent["neighbour_correlation_rep"] + 0.1
     assert abs(independent["neighbour_correlation_rep"]) < 0.1
+
+
+def test_collective_table_has_no_readouts_without_a_reporter_or_when_switched_off():
+    from plateloom.wellwork import WellSettings, collective_table
+    cells = _lattice_well(0.5, np.random.default_rng(0))
+    plain = WellSettings(("dna", "rep"), "dna", 0.8, 5.0, 1.0, 30.0, 7.0, 8.0, 3)
+    assert collective_table(cells, plain, CollectiveSettings(), "A01").columns.empty
+    with_reporter = WellSettings(("dna", "rep"), "dna", 0.8, 5.0, 1.0, 30.0, 7.0, 8.0, 3, reporter_channels=("rep",))
+    assert collective_table(cells, with_reporter, CollectiveSettings(enabled=False), "A01").columns.empty
+    table = collective_table(cells, with_reporter, CollectiveSettings(max_edge_um=25.0), "A01")
+    assert len(table) == 1 and {"phase_order_rep", "coupled_link_fraction_d2_rep", "spreading_index"} <= set(table.columns)
+    # deterministic: the same inputs give the same row (permutations seeded by config seed and well)
+    pd.testing.assert_frame_equal(table, collective_table(cells, with_reporter, CollectiveSettings(max_edge_um=25.0), "A01"))

@@ -78,3 +78,21 @@ def test_single_well_treatment_and_image_qc_are_reported():
     assert "treatment 'lonely 1 uM' has a single kept well on this plate" in tables.warnings
     assert tables.site_summary["site_frames"] == 192 and tables.site_summary["saturated_fraction_max"] == pytest.approx(0.2)
     assert tables.profile["fraction_observations_used"].between(0, 1).all()
+
+
+def test_collective_readouts_join_the_profile_as_features_and_their_counts_do_not():
+    cells, tracks, qc, layout = _plate()
+    wells = layout["well"].to_numpy()
+    collective = pd.DataFrame({"plate": "P1", "well": wells, "phase_order_rep": np.linspace(0, 1, len(wells)),
+                               "spreading_index": 1.0, "n_events": 3, "spreading_p_value": 0.5,
+                               "n_neighbour_links": 10, "n_coupling_tests": 20})
+    tables = build_plate_tables(cells, tracks, qc, layout, "P1", "d1", 96, PlateSettings(), ExclusionRules(), collective)
+    profile = tables.profile.set_index("well")
+    np.testing.assert_allclose(profile.loc[wells, "phase_order_rep"], np.linspace(0, 1, len(wells)))
+    assert "phase_order_rep_robust_z" in profile and "spreading_index_robust_z" in profile
+    assert "n_events_robust_z" not in profile and "spreading_p_value_robust_z" not in profile
+    # no readout columns (collective readouts switched off): the profile is as without the table
+    keys_only = collective[["plate", "well"]]
+    plain = build_plate_tables(cells, tracks, qc, layout, "P1", "d1", 96, PlateSettings(), ExclusionRules(), keys_only)
+    assert list(plain.profile.columns) == list(
+        build_plate_tables(cells, tracks, qc, layout, "P1", "d1", 96, PlateSettings(), ExclusionRules()).profile.columns)

@@ -24,7 +24,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 from scipy import signal, sparse, stats
-from scipy.spatial import Delaunay, QhullError
+from scipy.spatial import Delaunay, QhullError, cKDTree
 
 from .fdr import bh_qvalues
 from .trackstats import track_matrix
@@ -330,9 +330,12 @@ def knox_test(x: np.ndarray, y: np.ndarray, frame: np.ndarray, group: np.ndarray
     Returns (observed count, mean permuted count, p-value (1 + #{permuted >= observed}) / (1 + n)).
     """
     group = np.asarray(group)
-    i, j = np.triu_indices(len(x), k=1)
-    close = (group[i] == group[j]) & (np.hypot(x[i] - x[j], y[i] - y[j]) <= radius_um)
-    i, j = i[close], j[close]
+    close_pairs = [np.empty((0, 2), np.int64)]
+    for g in np.unique(group):  # pairs close in space, from a KD-tree (memory grows with close pairs, not n^2)
+        members = np.flatnonzero(group == g)
+        pairs = cKDTree(np.column_stack([x[members], y[members]])).query_pairs(radius_um, output_type="ndarray")
+        close_pairs.append(members[pairs.reshape(-1, 2)])
+    i, j = np.concatenate(close_pairs).T
     observed = int((np.abs(frame[i] - frame[j]) <= window_frames).sum())
     if len(i) == 0:
         return observed, 0.0, 1.0
