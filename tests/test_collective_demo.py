@@ -1,7 +1,6 @@
 """The demo's collective conditions end to end: the decoupler's planted effect on the coupling readouts is
 found with an interval excluding 0, the no-effect compound's intervals cover 0, deaths spread under TW-106."""
 
-import numpy as np
 import pandas as pd
 import pytest
 import yaml

@@ -369,15 +369,6 @@ def reporter_events(frame: np.ndarray, track: np.ndarray, values: np.ndarray, at
 # ---------------------------------------------------------------------------------------------
 # Per well
 
-def readout_columns(reporters: list[str]) -> list[str]:
-    """Feature columns of the collective table (per reporter channel, then the spreading index)."""
-    columns = []
-    for c in reporters:
-        columns += [f"phase_order_{c}", f"time_to_synchrony_min_{c}", f"neighbour_correlation_{c}",
-                    f"coupled_link_fraction_{c}", f"coupled_link_fraction_d2_{c}"]
-    return columns + ["spreading_index"]
-
-
 COUNT_COLUMNS = ("n_neighbour_links", "n_coupling_tests", "n_events", "spreading_p_value")
 
 
@@ -413,8 +404,8 @@ def well_collective_readouts(cells: pd.DataFrame, reporters: list[str], settings
 
     Per reporter: phase_order (the squared Kuramoto order parameter corrected for the number
     of cells, (N r^2 - 1) / (N - 1), averaged over frames with >= 3 phases, then sites; 0 for
-    independent phases, 1 for identical ones), time_to_synchrony_min (first time r reaches ``synchrony_level``; censored at the end of
-    imaging, one interval after the last frame), neighbour_correlation (mean over neighbour
+    independent phases, 1 for identical ones), time_to_synchrony_min (first time r reaches
+    ``synchrony_level``; censored at the end of imaging, one interval after the last frame), neighbour_correlation (mean over neighbour
     track pairs), coupled_link_fraction (share of directed neighbour links with a Granger
     q-value <= ``coupling_q_value``; BH over all of the well's tests; each trace's dominant
     oscillation removed first) and the same for pairs at
