@@ -3,6 +3,7 @@
 The image folders are invented for these tests (cell line and compounds of the demo scenario).
 """
 
+import dataclasses
 import os
 import subprocess
 import sys
@@ -12,6 +13,7 @@ import numpy as np
 import pandas as pd
 import pytest
 import tifffile
+import yaml
 
 from plateloom.demo import QUANTITIES, load_scenario, simulate_site
 from plateloom.errors import InputError
@@ -192,6 +194,14 @@ def test_survey_describes_a_folder_without_writing(tmp_path):
     with pytest.raises(InputError, match="never overwrites"):
         write_scaffold(survey, str(tmp_path / "screen"))
     write_scaffold(survey, str(tmp_path / "screen"), force=True)
+    # 4 frames: too short for the neighbour readouts, which stay out of the modelled features
+    features = yaml.safe_load((tmp_path / "screen" / "config.yaml").read_text())["screen"]["features"]
+    assert "coupled_link_fraction_{reporter}" not in features and "area_um2" in features
+    # a reporter imaged for 36 frames: the collective readouts are modelled as well
+    write_scaffold(dataclasses.replace(survey, frames=36), str(tmp_path / "long"))
+    features = yaml.safe_load((tmp_path / "long" / "config.yaml").read_text())["screen"]["features"]
+    assert features[-5:] == ["phase_order_{reporter}", "neighbour_correlation_{reporter}",
+                             "coupled_link_fraction_{reporter}", "coupled_link_fraction_d2_{reporter}", "spreading_index"]
 
 
 def test_config_reference_is_current_and_lists_every_key():

@@ -370,6 +370,9 @@ def reporter_events(frame: np.ndarray, track: np.ndarray, values: np.ndarray, at
 # Per well
 
 COUNT_COLUMNS = ("n_neighbour_links", "n_coupling_tests", "n_events", "spreading_p_value")
+# The readouts worth modelling, as screen.features entries ({reporter}: the reporter channel's name).
+MODELLED_READOUTS = ("phase_order_{reporter}", "neighbour_correlation_{reporter}", "coupled_link_fraction_{reporter}",
+                     "coupled_link_fraction_d2_{reporter}", "spreading_index")
 
 
 def _site_traces(cells: pd.DataFrame, channel: str, ids: np.ndarray) -> np.ndarray:

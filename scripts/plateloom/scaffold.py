@@ -17,6 +17,7 @@ import pandas as pd
 import tifffile
 import yaml
 
+from .collective import MODELLED_READOUTS
 from .errors import InputError
 from .images import channel_key, index_plate_images, read_ome_metadata, template_regex
 from .plate_formats import FORMATS as PLATE_FORMATS, parse_well, plate_format
@@ -250,6 +251,9 @@ def write_scaffold(survey: ScreenSurvey, out: str, force: bool = False) -> list[
                         "frame_interval_min": survey.frame_interval_min}
     config["job_sizing"].update({"image_side_px": int(max(survey.image_shape)), "frames_per_site": survey.frames,
                                  "sites_per_well": survey.sites})
+    if others and survey.frames >= config["collective"]["min_overlap_frames"]:
+        # a reporter imaged long enough for the neighbour readouts: model them too
+        config["screen"]["features"] = list(config["screen"]["features"]) + list(MODELLED_READOUTS)
     header = ("# Written by `plateloom scaffold` from the images it found; every key is described in\n"
               "# workflow/schemas/config.schema.yaml. Check the channel roles (nuclei = the stain segmented),\n"
               "# fill in the layouts, then: plateloom check --config " + targets[0] + "\n")
