@@ -6,8 +6,9 @@ import pytest
 import statsmodels.api as sm
 from statsmodels.tsa.stattools import grangercausalitytests
 
+from plateloom.trackstats import fill_inner_gaps
 from plateloom.collective import (CollectiveSettings, analytic_phases, corrected_order_squared, choose_granger_lag, delaunay_edges,
-                                  detrend_rows, fill_interior_gaps, granger_f_test, granger_tests, knox_test,
+                                  detrend_rows, granger_f_test, granger_tests, knox_test,
                                   kuramoto_order, pair_correlations, pairs_at_distance_two, reporter_events,
                                   track_neighbour_pairs, well_collective_readouts)
 
@@ -113,7 +114,7 @@ def test_graph_distance_two_and_neighbours_kept_along_tracks():
 
 
 def test_gap_filling_and_detrending():
-    filled = fill_interior_gaps(np.array([[np.nan, 1.0, np.nan, 3.0, np.nan]]))
+    filled = fill_inner_gaps(np.array([[np.nan, 1.0, np.nan, 3.0, np.nan]]))
     np.testing.assert_allclose(filled, [[np.nan, 1.0, 2.0, 3.0, np.nan]])
     line = np.array([[2.0, 4.0, np.nan, 8.0, 10.0]])
     np.testing.assert_allclose(detrend_rows(line)[0, [0, 1, 3, 4]], 0, atol=1e-12)

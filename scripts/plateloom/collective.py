@@ -27,7 +27,7 @@ from scipy import signal, sparse, stats
 from scipy.spatial import Delaunay, QhullError, cKDTree
 
 from .fdr import bh_qvalues
-from .trackstats import track_matrix
+from .trackstats import dominant_frequency, fill_inner_gaps, row_spans, track_matrix
 
 
 @dataclass(frozen=True)
@@ -50,12 +50,8 @@ class CollectiveSettings:
 
     @classmethod
     def from_config(cls, config: dict) -> "CollectiveSettings":
-        section = dict(config.get("collective") or {})
-        known = {f for f in cls.__dataclass_fields__}
-        unknown = set(section) - known
-        if unknown:
-            raise ValueError(f"unknown keys in config collective: {sorted(unknown)}")
-        return cls(**section)
+        """From the validated config (the schema rejects unknown keys)."""
+        return cls(**(config.get("collective") or {}))
 
 
 # ---------------------------------------------------------------------------------------------
@@ -126,24 +122,6 @@ def pairs_at_distance_two(pairs: np.ndarray) -> np.ndarray:
 # ---------------------------------------------------------------------------------------------
 # Traces
 
-def fill_interior_gaps(matrix: np.ndarray) -> np.ndarray:
-    """Rows with NaNs between observed values linearly interpolated (NaN outside each row's span kept)."""
-    values = np.array(matrix, dtype=float)
-    n_rows, n_cols = values.shape
-    if n_cols == 0:
-        return values
-    observed = np.isfinite(values)
-    columns = np.broadcast_to(np.arange(n_cols), values.shape)
-    previous = np.maximum.accumulate(np.where(observed, columns, -1), axis=1)
-    following = np.minimum.accumulate(np.where(observed, columns, n_cols)[:, ::-1], axis=1)[:, ::-1]
-    gap = ~observed & (previous >= 0) & (following < n_cols)
-    rows = np.broadcast_to(np.arange(n_rows)[:, None], values.shape)
-    left, right = previous[gap], following[gap]
-    weight = (columns[gap] - left) / (right - left)
-    values[gap] = (1 - weight) * values[rows[gap], left] + weight * values[rows[gap], right]
-    return values
-
-
 def detrend_rows(matrix: np.ndarray) -> np.ndarray:
     """Each row minus its least-squares line over its finite entries (NaN kept)."""
     finite = np.isfinite(matrix)
@@ -164,21 +142,17 @@ def analytic_phases(detrended: np.ndarray) -> np.ndarray:
     Rows with the same span are transformed together (scipy.signal.hilbert).
     """
     phases = np.full(detrended.shape, np.nan)
-    has, start, stop = _spans(np.isfinite(detrended))
-    for first, last in set(zip(start[has].tolist(), stop[has].tolist())):
-        if last - first < 4:
-            continue
-        rows = np.flatnonzero(has & (start == first) & (stop == last))
+    for first, last, rows in _span_groups(np.isfinite(detrended), 4):
         phases[rows, first:last] = np.angle(signal.hilbert(detrended[rows, first:last], axis=1))
     return phases
 
 
-def _spans(finite: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Per row: has any finite entry, first finite column, one past the last finite column."""
-    has = finite.any(axis=1)
-    start = np.where(has, finite.argmax(axis=1), 0)
-    stop = np.where(has, finite.shape[1] - finite[:, ::-1].argmax(axis=1), 0)
-    return has, start, stop
+def _span_groups(finite: np.ndarray, shortest: int):
+    """(first, stop, rows) for each span of finite columns shared by rows, spans of at least ``shortest`` frames."""
+    has, start, stop = row_spans(finite)
+    keep = has & (stop - start >= shortest)
+    for first, last in sorted(set(zip(start[keep].tolist(), stop[keep].tolist()))):
+        yield first, last, np.flatnonzero(keep & (start == first) & (stop == last))
 
 
 def remove_dominant_oscillation(detrended: np.ndarray, padding: int = 16) -> np.ndarray:
@@ -189,17 +163,10 @@ def remove_dominant_oscillation(detrended: np.ndarray, padding: int = 16) -> np.
     directed tests run on what is left. Rows with the same span are done together.
     """
     residual = np.array(detrended, dtype=float)
-    has, start, stop = _spans(np.isfinite(detrended))
-    for first, last in set(zip(start[has].tolist(), stop[has].tolist())):
+    for first, last, rows in _span_groups(np.isfinite(detrended), 6):
         n = last - first
-        if n < 6:
-            continue
-        rows = np.flatnonzero(has & (start == first) & (stop == last))
         block = np.nan_to_num(detrended[rows, first:last])
-        power = np.abs(np.fft.rfft(block, n=padding * n, axis=1)) ** 2
-        frequency = np.fft.rfftfreq(padding * n)            # cycles per frame
-        allowed = (frequency >= 1.0 / n) & (frequency < 0.5)  # at least one cycle over the span, below Nyquist
-        peak = frequency[np.flatnonzero(allowed)[power[:, allowed].argmax(axis=1)]]
+        peak = dominant_frequency(block, padding, below_nyquist=True)  # at Nyquist the sine column is all 0
         angle = 2 * np.pi * peak[:, None] * np.arange(n)[None, :]
         design = np.stack([np.sin(angle), np.cos(angle)], axis=2)                    # (rows, n, 2)
         coefficients = np.linalg.solve(np.einsum("rni,rnj->rij", design, design),
@@ -219,10 +186,12 @@ def kuramoto_order(phases: np.ndarray, axis: int = 0) -> np.ndarray:
 def corrected_order_squared(phases: np.ndarray, axis: int = 0) -> np.ndarray:
     """(N r^2 - 1) / (N - 1) along ``axis``: an unbiased estimate of |E exp(i theta)|^2, 0 for independent
     uniform phases whatever N (r alone is about 1/sqrt(N) then), 1 for identical phases; NaN for N < 2."""
-    n = np.isfinite(phases).sum(axis=axis)
-    r = kuramoto_order(phases, axis=axis)
+    return _corrected(kuramoto_order(phases, axis=axis), np.isfinite(phases).sum(axis=axis))
+
+
+def _corrected(order: np.ndarray, n: np.ndarray) -> np.ndarray:
     with np.errstate(invalid="ignore", divide="ignore"):
-        return np.where(n >= 2, (n * r**2 - 1) / (n - 1), np.nan)
+        return np.where(n >= 2, (n * order**2 - 1) / (n - 1), np.nan)
 
 
 def pair_correlations(traces: np.ndarray, pairs_rows: np.ndarray, min_overlap: int) -> np.ndarray:
@@ -378,7 +347,7 @@ MODELLED_READOUTS = ("phase_order_{reporter}", "neighbour_correlation_{reporter}
 def _site_traces(cells: pd.DataFrame, channel: str, ids: np.ndarray) -> np.ndarray:
     _, values = track_matrix(cells["frame"].to_numpy(), cells["track"].to_numpy(),
                              cells[f"mean_intensity_{channel}"].to_numpy(float), ids)
-    return detrend_rows(fill_interior_gaps(values))
+    return detrend_rows(fill_inner_gaps(values))
 
 
 def _directed_tests(traces: np.ndarray, rows: np.ndarray, settings: CollectiveSettings) -> np.ndarray:
@@ -387,13 +356,11 @@ def _directed_tests(traces: np.ndarray, rows: np.ndarray, settings: CollectiveSe
         return np.empty(0)
     a, b = traces[rows[:, 0]], traces[rows[:, 1]]
     both = np.isfinite(a) & np.isfinite(b)
-    has, start, stop = _spans(both)
-    contiguous = both.sum(axis=1) == stop - start
+    _, start, stop = row_spans(both)
+    both &= (both.sum(axis=1) == stop - start)[:, None]  # pairs whose common frames have a gap are not tested
     shortest = max(settings.min_overlap_frames, 3 * settings.max_lag_frames + 2)  # leaves >= 1 residual df at the top lag
-    usable = has & contiguous & (stop - start >= shortest)
     p_values = np.full((len(rows), 2), np.nan)
-    for first, last in set(zip(start[usable].tolist(), stop[usable].tolist())):
-        group = np.flatnonzero(usable & (start == first) & (stop == last))
+    for first, last, group in _span_groups(both, shortest):
         x, y = a[group, first:last], b[group, first:last]
         _, _, p_values[group, 0] = granger_tests(y, x, settings.max_lag_frames, settings.lag_criterion)
         _, _, p_values[group, 1] = granger_tests(x, y, settings.max_lag_frames, settings.lag_criterion)
@@ -408,8 +375,8 @@ def well_collective_readouts(cells: pd.DataFrame, reporters: list[str], settings
     Per reporter: phase_order (the squared Kuramoto order parameter corrected for the number
     of cells, (N r^2 - 1) / (N - 1), averaged over frames with >= 3 phases, then sites; 0 for
     independent phases, 1 for identical ones), time_to_synchrony_min (first time r reaches
-    ``synchrony_level``; censored at the end of imaging, one interval after the last frame), neighbour_correlation (mean over neighbour
-    track pairs), coupled_link_fraction (share of directed neighbour links with a Granger
+    ``synchrony_level``; censored at the end of imaging, one interval after the last frame),
+    neighbour_correlation (mean over neighbour track pairs), coupled_link_fraction (share of directed neighbour links with a Granger
     q-value <= ``coupling_q_value``; BH over all of the well's tests; each trace's dominant
     oscillation removed first) and the same for pairs at
     graph distance 2. spreading_index = (observed + 1) / (expected + 1) Knox pairs of events of
@@ -422,26 +389,24 @@ def well_collective_readouts(cells: pd.DataFrame, reporters: list[str], settings
     for site, part in cells.groupby("site", sort=True):
         frame, track = part["frame"].to_numpy(np.int64), part["track"].to_numpy(np.int64)
         x, y = part["centroid_x_um"].to_numpy(float), part["centroid_y_um"].to_numpy(float)
-        if len(part) == 0:
-            continue
         pairs = track_neighbour_pairs(frame, track, x, y, settings.max_edge_um, settings.min_edge_fraction)
-        second = pairs_at_distance_two(pairs)
         n_links += len(pairs)
         ids = np.unique(track)
+        pair_rows, second_rows = np.searchsorted(ids, pairs), np.searchsorted(ids, pairs_at_distance_two(pairs))
         for channel in reporters:
             traces = _site_traces(part, channel, ids)
             phases = analytic_phases(traces)
-            order = kuramoto_order(phases, axis=0)
-            counted = np.isfinite(phases).sum(axis=0) >= 3
+            order, n_phases = kuramoto_order(phases, axis=0), np.isfinite(phases).sum(axis=0)
+            counted = n_phases >= 3
             if counted.any():
-                sums[channel]["order"].append(float(np.mean(corrected_order_squared(phases, axis=0)[counted])))
+                sums[channel]["order"].append(float(np.mean(_corrected(order, n_phases)[counted])))
                 reached = np.flatnonzero(counted & (order >= settings.synchrony_level))
                 end = (traces.shape[1]) * frame_interval_min
                 sums[channel]["time"].append(float(reached[0] * frame_interval_min) if len(reached) else end)
-            sums[channel]["corr"].append(pair_correlations(traces, np.searchsorted(ids, pairs), settings.min_overlap_frames))
+            sums[channel]["corr"].append(pair_correlations(traces, pair_rows, settings.min_overlap_frames))
             residual = remove_dominant_oscillation(traces)
-            sums[channel]["p1"].append(_directed_tests(residual, np.searchsorted(ids, pairs), settings))
-            sums[channel]["p2"].append(_directed_tests(residual, np.searchsorted(ids, second), settings))
+            sums[channel]["p1"].append(_directed_tests(residual, pair_rows, settings))
+            sums[channel]["p2"].append(_directed_tests(residual, second_rows, settings))
         if reporters:
             at_border = part["touches_border"].to_numpy(bool)
             values = part[f"mean_intensity_{reporters[0]}"].to_numpy(float)

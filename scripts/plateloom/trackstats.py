@@ -89,14 +89,34 @@ def fit_persistent_walk(msd: np.ndarray, pairs: np.ndarray, frame_interval_min: 
     return speed, persistence
 
 
+def row_spans(finite: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Per row of a (rows, frames) mask: has any True, first True column, one past the last True column."""
+    has = finite.any(axis=1)
+    start = np.where(has, finite.argmax(axis=1), 0)
+    stop = np.where(has, finite.shape[1] - finite[:, ::-1].argmax(axis=1), 0)
+    return has, start, stop
+
+
+def fill_inner_gaps(matrix: np.ndarray) -> np.ndarray:
+    """Each row with NaNs between observed values linearly interpolated (NaN outside its span kept)."""
+    return pd.DataFrame(np.asarray(matrix, dtype=float)).interpolate(axis=1, limit_area="inside").to_numpy()
+
+
+def dominant_frequency(detrended: np.ndarray, padding: int, below_nyquist: bool = False) -> np.ndarray:
+    """Per row (complete series of equal length n): frequency (cycles per frame) of the largest peak of the
+    periodogram zero-padded ``padding`` x, among frequencies of at least one cycle over the series (and
+    strictly below the Nyquist frequency if ``below_nyquist``)."""
+    n = detrended.shape[1]
+    power = np.abs(np.fft.rfft(detrended, n=padding * n, axis=1)) ** 2
+    frequency = np.fft.rfftfreq(padding * n)
+    allowed = (frequency >= 1.0 / n) & ((frequency < 0.5) if below_nyquist else True)
+    return frequency[np.flatnonzero(allowed)[power[:, allowed].argmax(axis=1)]]
+
+
 def _filled_segments(matrix: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Linear interpolation across inner gaps of every row; first and last observed frame per row."""
-    observed = np.isfinite(matrix)
-    has_any = observed.any(axis=1)
-    first = np.where(has_any, observed.argmax(axis=1), 0)
-    last = np.where(has_any, matrix.shape[1] - 1 - observed[:, ::-1].argmax(axis=1), -1)
-    filled = pd.DataFrame(matrix).interpolate(axis=1, limit_area="inside").to_numpy()
-    return filled, first, last
+    has_any, first, stop = row_spans(np.isfinite(matrix))
+    return fill_inner_gaps(matrix), first, np.where(has_any, stop - 1, -1)
 
 
 def reporter_dynamics(matrix: np.ndarray, frame_interval_min: float, min_frames: int,
@@ -135,12 +155,7 @@ def reporter_dynamics(matrix: np.ndarray, frame_interval_min: float, min_frames:
             out["peaks_per_h"][row] = len(peaks) / duration_h
         if length < max(min_frames, 6):
             continue
-        n_fft = padding * length
-        power = np.abs(np.fft.rfft(detrended, n=n_fft, axis=1)) ** 2
-        frequency = np.fft.rfftfreq(n_fft, d=frame_interval_min)
-        allowed = frequency >= 1.0 / (length * frame_interval_min)
-        power[:, ~allowed] = -np.inf
-        out["period_min"][rows] = 1.0 / frequency[np.argmax(power, axis=1)]
+        out["period_min"][rows] = frame_interval_min / dominant_frequency(detrended, padding)
     return out
 
 
