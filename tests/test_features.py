@@ -12,7 +12,7 @@ from skimage.measure import regionprops_table
 from plateloom.accuracy import pooled_average_precision
 from plateloom.demo import QUANTITIES, load_scenario, simulate_site
 from plateloom.features import GLCM_ANGLES, ObjectPixels, glcm_measures, measure_objects
-from plateloom.segment import grow_cell_bodies, segment_label_free, segment_nuclei
+from plateloom.segment import focus_score, grow_cell_bodies, object_threshold, segment_label_free, segment_nuclei
 
 from conftest import ROOT
 
@@ -138,3 +138,45 @@ def test_label_free_path_finds_textured_cells_on_a_smooth_dish():
     flat, threshold = segment_label_free(np.full((size, size), 1000.0, np.float32) + rng.normal(0, 5, (size, size)).astype(np.float32),
                                          1.0, 5.0, 100.0, 12.0)
     assert flat.max() == 0 and np.isnan(threshold)
+
+
+def test_focus_score_is_the_variance_of_the_laplacian_and_falls_with_defocus():
+    # Reference: scipy.ndimage.laplace (the 5-point discrete Laplacian); variance-of-Laplacian focus
+    # measure (Pech-Pacheco et al. 2000). The score uses every second interior row.
+    planes, _ = _demo_frame(cells=60, size=256)
+    sharp = ndimage.gaussian_filter(planes[0], 1.0)
+    reference = ndimage.laplace(sharp.astype(np.float64))[1:-1:2, 1:-1]
+    assert focus_score(sharp) == pytest.approx(reference.var() / sharp.astype(np.float64).mean() ** 2, rel=1e-5)
+    blurred = ndimage.gaussian_filter(planes[0], 4.0)
+    assert focus_score(blurred) < 0.2 * focus_score(sharp)
+    assert focus_score(1.7 * sharp) == pytest.approx(focus_score(sharp), rel=1e-5)   # exposure-independent
+
+
+def test_threshold_from_a_grid_sample_of_a_large_frame_matches_the_whole_frame():
+    # Reference: skimage.filters.threshold_otsu on every pixel of a 1024x1024 frame. The sampled
+    # threshold must fall within one histogram bin (1/256 of the grey range) of it.
+    planes, _ = _demo_frame(cells=250, size=1024)
+    smooth = ndimage.gaussian_filter(planes[0], 1.25)
+    bin_width = (float(smooth.max()) - float(smooth.min())) / 256
+    assert abs(object_threshold(smooth) - threshold_otsu(smooth)) <= bin_width
+
+
+@pytest.mark.parametrize("sigma_um", [1.0, 2.5])
+def test_cell_bodies_match_planted_bodies_on_full_and_binned_grids(sigma_um):
+    # Planted truth: 12 cells on a 256x256 field, bodies of radius 22 px, some touching, around
+    # nuclei of radius 8 px. sigma 1.0 px runs at full resolution, 2.5 px on the 2x2-binned grid.
+    size, rng = 256, np.random.default_rng(4)
+    centres = [(40 + 44 * i + 10 * (j % 2), 40 + 58 * j) for i in range(4) for j in range(3)]
+    nuclei_truth = np.zeros((size, size), np.int32)
+    for label, centre in enumerate(centres, start=1):
+        nuclei_truth[disk(centre, 8, shape=(size, size))] = label
+    distance, (iy, ix) = ndimage.distance_transform_edt(nuclei_truth == 0, return_indices=True)
+    bodies_truth = np.where(distance <= 14, nuclei_truth[iy, ix], 0)
+    body = 100 + 400 * (bodies_truth > 0) + rng.normal(0, 10, (size, size))
+    cells = grow_cell_bodies(nuclei_truth, body.astype(np.float32), 1.0, sigma_um)
+    assert set(np.unique(cells)) == set(range(13))
+    np.testing.assert_array_equal(cells[nuclei_truth > 0], nuclei_truth[nuclei_truth > 0])
+    for label in range(1, 13):
+        found, planted = cells == label, bodies_truth == label
+        assert (found & planted).sum() / (found | planted).sum() > 0.95
+        assert found.sum() == pytest.approx(planted.sum(), rel=0.04)

@@ -30,6 +30,14 @@ SPLIT_ELLIPSE_FILL = 0.96
 # Statistics of the background are taken on every BACKGROUND_STRIDE-th pixel in each direction:
 # the same answer to a fraction of a grey level, at 1/16 of the cost.
 BACKGROUND_STRIDE = 4
+# Automatic thresholds are computed from at most this many pixels (a regular grid sample of larger
+# images): a 256-bin histogram of a quarter of a 1024x1024 frame puts the threshold within a
+# fraction of a bin of the whole frame's, at a quarter of the cost.
+THRESHOLD_SAMPLE_PIXELS = 1 << 18
+# Cell bodies are found on the 2x2-binned body channel when its smoothing is at least this wide
+# (pixels) and the image at least twice BODY_BINNING_MIN_SIDE_PX on each side.
+BODY_BINNING_MIN_SIGMA_PX = 2.0
+BODY_BINNING_MIN_SIDE_PX = 32
 
 THRESHOLD_METHODS: dict[str, Callable[[np.ndarray], float]] = {
     "otsu": threshold_otsu,          # Otsu 1979, IEEE Trans. SMC 9:62
@@ -58,7 +66,8 @@ def object_threshold(smooth: np.ndarray, method: str = "otsu") -> float:
     """
     if method not in THRESHOLD_METHODS:
         raise ValueError(f"unknown threshold method {method!r}; use one of {sorted(THRESHOLD_METHODS)}")
-    if not np.isfinite(smooth).all() or smooth.max() == smooth.min():
+    low, high = float(smooth.min()), float(smooth.max())   # NaN anywhere makes both NaN
+    if not (np.isfinite(low) and np.isfinite(high)) or high == low:
         return float("nan")
     # Whether the field holds objects is judged on the Otsu split whatever the method: contrast
     # and noise are measured on the pixels below it, so a dense field (a third or more of it
@@ -69,7 +78,8 @@ def object_threshold(smooth: np.ndarray, method: str = "otsu") -> float:
     if len(below) < 16 or len(above) == 0 or (
             np.median(above) - np.median(below) < MIN_CONTRAST_NOISE_SDS * max(robust_sd(below), 1e-6)):
         return float("nan")
-    return float(THRESHOLD_METHODS[method](smooth))
+    stride = int(np.ceil(np.sqrt(smooth.size / THRESHOLD_SAMPLE_PIXELS)))
+    return float(THRESHOLD_METHODS[method](smooth[::stride, ::stride] if stride > 1 else smooth))
 
 
 def fill_holes(mask: np.ndarray) -> np.ndarray:
@@ -266,15 +276,71 @@ def grow_cell_bodies(nuclei: np.ndarray, body_image: np.ndarray, pixel_size_um: 
     inverted smoothed intensity, seeded by the nuclei and confined to that foreground plus the
     nuclei, gives each nucleus its cell (same label). Cytoplasm = cell body minus nucleus.
     Foreground not reached from any nucleus stays 0.
+
+    When the smoothing is at least BODY_BINNING_MIN_SIGMA_PX pixels the smoothed image holds no
+    detail finer than 2 pixels, so smoothing, threshold and watershed run on the 2x2-binned
+    image (a quarter of the pixels) and the bodies are brought back to full resolution; every
+    nucleus pixel keeps its own label.
     """
     if nuclei.max() == 0:
         return nuclei.copy()
-    smooth = smooth_image(body_image, smoothing_sigma_um / pixel_size_um)
+    sigma_px = smoothing_sigma_um / pixel_size_um
+    if sigma_px >= BODY_BINNING_MIN_SIGMA_PX and min(nuclei.shape) >= 2 * BODY_BINNING_MIN_SIDE_PX:
+        return _grow_cell_bodies_binned(nuclei, body_image, sigma_px, threshold_method)
+    return _seeded_bodies(nuclei, smooth_image(body_image, sigma_px), threshold_method)[0]
+
+
+def _seeded_bodies(seeds: np.ndarray, smooth: np.ndarray, threshold_method: str) -> tuple[np.ndarray, float]:
+    """Watershed of the inverted smoothed body image from the seeds, within its foreground plus the
+    seeds; and the foreground threshold (NaN when the channel shows no objects)."""
     threshold = object_threshold(smooth, threshold_method)
-    foreground = nuclei > 0
+    foreground = seeds > 0
     if not np.isnan(threshold):
         foreground |= smooth > threshold
-    return watershed(-smooth, nuclei, mask=foreground).astype(np.int32)
+    return watershed(-smooth, seeds, mask=foreground).astype(np.int32), threshold
+
+
+def _bin2(image: np.ndarray, reduce: Callable) -> np.ndarray:
+    """2x2 blocks of an image (odd edges repeated) combined by ``reduce`` (e.g. np.add, np.maximum)."""
+    height, width = image.shape
+    if height % 2 or width % 2:
+        image = np.pad(image, ((0, height % 2), (0, width % 2)), mode="edge")
+    return reduce(reduce(image[0::2, 0::2], image[1::2, 0::2]), reduce(image[0::2, 1::2], image[1::2, 1::2]))
+
+
+def _upsample2(image: np.ndarray, height: int, width: int) -> np.ndarray:
+    """Bilinear interpolation of a 2x2-binned image back onto the full (height, width) pixel grid."""
+    def along_rows(values: np.ndarray) -> np.ndarray:
+        padded = np.concatenate([values[:1], values, values[-1:]])
+        out = np.empty((2 * len(values),) + values.shape[1:], np.float32)
+        out[0::2] = 0.75 * padded[1:-1] + 0.25 * padded[:-2]    # full row 2i sits at binned row i - 1/4
+        out[1::2] = 0.75 * padded[1:-1] + 0.25 * padded[2:]     # full row 2i + 1 at i + 1/4
+        return out
+    return along_rows(along_rows(image).T).T[:height, :width]
+
+
+def _grow_cell_bodies_binned(nuclei: np.ndarray, body_image: np.ndarray, sigma_px: float,
+                             threshold_method: str) -> np.ndarray:
+    height, width = nuclei.shape
+    binned = _bin2(body_image.astype(np.float32, copy=False), np.add) * np.float32(0.25)
+    # a 2-pixel box already blurs by a variance of 1/3 px^2; the Gaussian adds the rest, in binned pixels
+    smooth = smooth_image(binned, np.sqrt(sigma_px**2 - 1 / 3) / 2)
+    bodies, threshold = _seeded_bodies(_bin2(nuclei, np.maximum), smooth, threshold_method)
+    full = np.broadcast_to(bodies[:, None, :, None], (bodies.shape[0], 2, bodies.shape[1], 2))
+    full = full.reshape(2 * bodies.shape[0], 2 * bodies.shape[1])[:height, :width]
+    if np.isnan(threshold):
+        return np.where(nuclei > 0, nuclei, full).astype(np.int32)
+    # the outer edge at full resolution: the interpolated smooth image against the same threshold
+    foreground = _upsample2(smooth, height, width) > threshold
+    out = np.where(nuclei > 0, nuclei, np.where(foreground, full, 0)).astype(np.int32)
+    # foreground pixels just outside the binned bodies take the largest label among their 8 neighbours
+    gaps = np.flatnonzero(foreground & (out == 0) & (nuclei == 0))
+    if len(gaps):
+        y, x = np.divmod(gaps, width)
+        neighbours = [full[np.clip(y + dy, 0, height - 1), np.clip(x + dx, 0, width - 1)]
+                      for dy in (-1, 0, 1) for dx in (-1, 0, 1) if dy or dx]
+        out.ravel()[gaps] = np.maximum.reduce(neighbours)
+    return out
 
 
 def background_levels(planes: np.ndarray, labels: np.ndarray, margin_px: int = 3) -> np.ndarray:
@@ -304,7 +370,15 @@ def focus_score(smooth: np.ndarray) -> float:
 
     ``smooth`` is the nuclear image after the segmentation's Gaussian smoothing. Unitless;
     sharp fields score high, defocused ones low. Dividing by the squared mean makes the score
-    independent of exposure.
+    independent of exposure. The 5-point Laplacian is taken on every second interior row
+    (about half a million pixels of a 1024x1024 frame): the variance is the same to well under
+    a percent at a sixth of the cost of filtering the whole frame.
     """
     mean = float(smooth.mean())
-    return float(ndimage.laplace(smooth).var() / mean**2) if mean > 0 else float("nan")
+    if not mean > 0 or min(smooth.shape) < 3:
+        return float("nan")
+    rows = np.arange(1, smooth.shape[0] - 1, 2)
+    centre = smooth[rows]
+    laplacian = (smooth[rows - 1, 1:-1] + smooth[rows + 1, 1:-1] + centre[:, :-2] + centre[:, 2:]
+                 - 4 * centre[:, 1:-1])
+    return float(laplacian.var(dtype=np.float64) / mean**2)
