@@ -180,3 +180,19 @@ def test_cell_bodies_match_planted_bodies_on_full_and_binned_grids(sigma_um):
         found, planted = cells == label, bodies_truth == label
         assert (found & planted).sum() / (found | planted).sum() > 0.95
         assert found.sum() == pytest.approx(planted.sum(), rel=0.04)
+
+
+def test_a_cell_body_reaching_the_image_edge_flags_its_nucleus_as_touching_the_border():
+    # Common practice: an object cut by the field edge is not a whole cell. Nucleus 1 lies inside the
+    # field but its body reaches the top-left edge; cell 2 lies wholly inside.
+    nuclei = np.zeros((100, 100), np.int32)
+    cells = np.zeros((100, 100), np.int32)
+    cells[disk((20, 20), 25, shape=(100, 100))] = 1
+    cells[disk((70, 70), 12)] = 2
+    nuclei[disk((20, 20), 6)] = 1
+    nuclei[disk((70, 70), 6)] = 2
+    planes = np.stack([100.0 + 50 * (nuclei > 0), 100.0 + 20 * (cells > 0)]).astype(np.float32)
+    table = measure_objects(nuclei, planes, ["nuc", "body"], np.array([100.0, 100.0]), 1.0, cells)
+    np.testing.assert_array_equal(table["touches_border"], [True, False])
+    np.testing.assert_allclose(table["cell_area_um2"], [(cells == 1).sum(), (cells == 2).sum()])
+    np.testing.assert_allclose(table["cytoplasm_mean_intensity_body"], [20.0, 20.0])

@@ -278,18 +278,20 @@ def _touches_border(pixels: ObjectPixels, height: int, width: int) -> np.ndarray
 
 def _cytoplasm_measures(nuclei: np.ndarray, cells: np.ndarray, planes: np.ndarray, channels: list[str],
                         background: np.ndarray, pixel_size_um: float, nucleus_table: dict, n: int) -> dict[str, np.ndarray]:
-    body = ObjectPixels.of(np.where(cells <= n, cells, 0))
-    cell_area = np.zeros(n)
-    cell_area[:body.count] = body.sums()
-    in_cytoplasm = nuclei.ravel()[body.index] == 0
-    cytoplasm_label = body.label[in_cytoplasm]
+    flat = cells.ravel()
+    index = np.flatnonzero(flat)
+    label = flat[index]
+    in_cytoplasm = (nuclei.ravel()[index] == 0) & (label <= n)
+    cytoplasm_index, cytoplasm_label = index[in_cytoplasm], label[in_cytoplasm]
+    cell_area = np.bincount(label[label <= n], minlength=n + 1)[1:n + 1].astype(float)
     cytoplasm_area = np.bincount(cytoplasm_label, minlength=n + 1)[1:n + 1].astype(float)
     out = {"cell_area_um2": cell_area * pixel_size_um**2, "cytoplasm_area_um2": cytoplasm_area * pixel_size_um**2}
-    touches = np.zeros(n, bool)
-    touches[:body.count] = _touches_border(body, *cells.shape)
-    out["touches_border"] = nucleus_table["touches_border"] | touches
+    edge = np.concatenate([cells[0], cells[-1], cells[:, 0], cells[:, -1]])
+    touches = np.zeros(n + 1, bool)
+    touches[edge[edge <= n]] = True
+    out["touches_border"] = nucleus_table["touches_border"] | touches[1:]
     for index, channel in enumerate(channels):
-        value = planes[index].ravel()[body.index[in_cytoplasm]].astype(np.float64)
+        value = planes[index].ravel()[cytoplasm_index].astype(np.float64)
         total = np.bincount(cytoplasm_label, value, minlength=n + 1)[1:n + 1]
         with np.errstate(invalid="ignore", divide="ignore"):
             mean = np.where(cytoplasm_area > 0, total / np.maximum(cytoplasm_area, 1) - background[index], np.nan)

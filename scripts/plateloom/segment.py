@@ -309,14 +309,21 @@ def _bin2(image: np.ndarray, reduce: Callable) -> np.ndarray:
 
 
 def _upsample2(image: np.ndarray, height: int, width: int) -> np.ndarray:
-    """Bilinear interpolation of a 2x2-binned image back onto the full (height, width) pixel grid."""
-    def along_rows(values: np.ndarray) -> np.ndarray:
-        padded = np.concatenate([values[:1], values, values[-1:]])
-        out = np.empty((2 * len(values),) + values.shape[1:], np.float32)
-        out[0::2] = 0.75 * padded[1:-1] + 0.25 * padded[:-2]    # full row 2i sits at binned row i - 1/4
-        out[1::2] = 0.75 * padded[1:-1] + 0.25 * padded[2:]     # full row 2i + 1 at i + 1/4
-        return out
-    return along_rows(along_rows(image).T).T[:height, :width]
+    """Bilinear interpolation of a 2x2-binned image back onto the full (height, width) pixel grid.
+
+    Full pixel 2i sits at binned coordinate i - 1/4 and 2i + 1 at i + 1/4 (edges repeated).
+    """
+    rows, cols = image.shape
+    padded = np.pad(image.astype(np.float32, copy=False), 1, mode="edge")
+    centre = 0.75 * padded[1:-1]
+    tall = np.empty((2 * rows, cols + 2), np.float32)
+    np.add(centre, 0.25 * padded[:-2], out=tall[0::2])
+    np.add(centre, 0.25 * padded[2:], out=tall[1::2])
+    centre = 0.75 * tall[:, 1:-1]
+    out = np.empty((2 * rows, 2 * cols), np.float32)
+    np.add(centre, 0.25 * tall[:, :-2], out=out[:, 0::2])
+    np.add(centre, 0.25 * tall[:, 2:], out=out[:, 1::2])
+    return out[:height, :width]
 
 
 def _grow_cell_bodies_binned(nuclei: np.ndarray, body_image: np.ndarray, sigma_px: float,
@@ -328,13 +335,17 @@ def _grow_cell_bodies_binned(nuclei: np.ndarray, body_image: np.ndarray, sigma_p
     bodies, threshold = _seeded_bodies(_bin2(nuclei, np.maximum), smooth, threshold_method)
     full = np.broadcast_to(bodies[:, None, :, None], (bodies.shape[0], 2, bodies.shape[1], 2))
     full = full.reshape(2 * bodies.shape[0], 2 * bodies.shape[1])[:height, :width]
+    nucleus = nuclei > 0
     if np.isnan(threshold):
-        return np.where(nuclei > 0, nuclei, full).astype(np.int32)
-    # the outer edge at full resolution: the interpolated smooth image against the same threshold
-    foreground = _upsample2(smooth, height, width) > threshold
-    out = np.where(nuclei > 0, nuclei, np.where(foreground, full, 0)).astype(np.int32)
+        foreground = nucleus | full.astype(bool)
+    else:
+        # the outer edge at full resolution: the interpolated smooth image against the same threshold
+        foreground = _upsample2(smooth, height, width) > threshold
+        foreground |= nucleus
+    out = np.where(foreground, full, 0).astype(np.int32, copy=False)
+    np.copyto(out, nuclei, where=nucleus)
     # foreground pixels just outside the binned bodies take the largest label among their 8 neighbours
-    gaps = np.flatnonzero(foreground & (out == 0) & (nuclei == 0))
+    gaps = np.flatnonzero(foreground & (out == 0))
     if len(gaps):
         y, x = np.divmod(gaps, width)
         neighbours = [full[np.clip(y + dy, 0, height - 1), np.clip(x + dx, 0, width - 1)]
