@@ -96,3 +96,68 @@ def test_collective_readouts_join_the_profile_as_features_and_their_counts_do_no
     plain = build_plate_tables(cells, tracks, qc, layout, "P1", "d1", 96, PlateSettings(), ExclusionRules(), keys_only)
     assert list(plain.profile.columns) == list(
         build_plate_tables(cells, tracks, qc, layout, "P1", "d1", 96, PlateSettings(), ExclusionRules()).profile.columns)
+
+
+def _write_cells_folders(tmp_path, cells: pd.DataFrame) -> list[str]:
+    """The cells table as the per-well stage writes it: one Parquet file per well folder."""
+    from plateloom.tables import write_parquet
+
+    folder = tmp_path / "cells" / "plate=P1" / "chunk=000"
+    for well, rows in cells.groupby("well"):
+        write_parquet(rows.reset_index(drop=True), str(folder / f"well={well}" / "part-0.parquet"), {})
+    return [str(folder)]
+
+
+@pytest.mark.parametrize("statistic", ["median", "mean_log"])
+def test_well_summaries_streamed_from_files_equal_pandas_and_the_in_memory_path(tmp_path, statistic):
+    # Reference: pandas groupby median (NaN skipped) / exp of the mean log, on the observations kept
+    # (not touching the border, not in an excluded site-frame); and the whole-table path.
+    from plateloom.plate_stage import build_plate_tables_from_files
+    from plateloom.profiles import observation_counts, read_cells_for_profiles, summarise_observation_files
+
+    rng = np.random.default_rng(5)
+    cells, tracks, qc, layout = _plate()
+    cells = cells.assign(time_min=cells["frame"] * 10.0, touches_border=rng.random(len(cells)) < 0.1,
+                         signed=rng.normal(0, 1, len(cells)), patchy=np.where(rng.random(len(cells)) < 0.2, np.nan,
+                                                                                rng.lognormal(0, 1, len(cells))))
+    cells.loc[cells["well"] == "C07", "patchy"] = np.nan                       # a well with no finite value
+    qc.loc[(qc["well"] == "E02") & (qc["frame"] == 0), "focus_score"] = 0.1     # an excluded site-frame
+    rules = ExclusionRules(min_focus_score=0.5)
+    folders = _write_cells_folders(tmp_path, cells)
+    excluded = pd.DataFrame({"well": ["E02"], "site": [1], "frame": [0]})
+    summaries, counts = summarise_observation_files(folders, excluded, statistic, threads=2)
+    kept = cells[~cells["touches_border"] & ~((cells["well"] == "E02") & (cells["frame"] == 0))]
+    features = ["area_um2", "signed", "patchy"]
+    if statistic == "median":
+        expected = kept.groupby("well")[features].median()
+    else:
+        expected = kept.groupby("well")[features].median()
+        logs = np.log(kept[["area_um2", "patchy"]]).groupby(kept["well"]).mean()
+        expected[["area_um2", "patchy"]] = np.exp(logs)             # "signed" has negative values: median
+    pd.testing.assert_frame_equal(summaries[features], expected.loc[summaries.index], check_names=False, rtol=1e-12)
+    assert summaries.loc["C07", "patchy"] != summaries.loc["C07", "patchy"]    # NaN, not dropped
+    expected_counts = cells.groupby(["well", "site", "frame"]).agg(observations=("object", "size"),
+                                                                   whole=("touches_border", lambda t: int((~t).sum())))
+    pd.testing.assert_frame_equal(counts.set_index(["well", "site", "frame"])[["observations", "whole"]],
+                                  expected_counts, check_dtype=False)
+    pd.testing.assert_frame_equal(observation_counts(cells), counts)
+    settings = PlateSettings(well_summary=statistic)
+    streamed = build_plate_tables_from_files(folders, tracks, qc, layout, "P1", "d1", 96, settings, rules, threads=2)
+    whole = build_plate_tables(read_cells_for_profiles(folders), tracks, qc, layout, "P1", "d1", 96, settings, rules)
+    pd.testing.assert_frame_equal(streamed.profile, whole.profile, rtol=1e-12)
+    pd.testing.assert_frame_equal(streamed.ledger, whole.ledger)
+
+
+@pytest.mark.parametrize("n", [1, 2, 7, 8, 1001])
+def test_block_medians_equal_numpy_median_with_and_without_nan(n):
+    # Reference: numpy.median / numpy.nanmedian, row by row (odd and even counts, NaN rows, all-NaN row).
+    from plateloom.profiles import _block_summaries
+
+    rng = np.random.default_rng(n)
+    block = rng.normal(size=(5, n))
+    block[1, rng.random(n) < 0.3] = np.nan
+    block[2, :] = np.nan
+    block[3, 0] = np.nan
+    expected = np.array([np.median(row) if not np.isnan(row).any() else
+                         (np.nanmedian(row) if np.isfinite(row).any() else np.nan) for row in block])
+    np.testing.assert_array_equal(_block_summaries(block.copy(), np.zeros(5, bool)), expected)

@@ -12,7 +12,8 @@ from .exclusions import (ExclusionRules, drop_excluded_site_frames, plate_exclus
 from .plate_formats import plate_format, well_grid
 from .plate_stats import MAD_TO_SD, mad, plate_qc, robust_z
 from .positional import b_scores, edge_effect, positional_correction
-from .profiles import summarise_wells, well_features
+from .profiles import (observation_counts, observation_summaries, summarise_observation_files, summarise_wells,
+                       well_features)
 
 NORMALIZATIONS = ("robust_z", "percent_of_control", "raw")
 
@@ -79,23 +80,50 @@ def percent_of_control(values: np.ndarray, negative: np.ndarray, positive: np.nd
 
 def build_plate_tables(cells: pd.DataFrame, tracks: pd.DataFrame, site_qc: pd.DataFrame, layout: pd.DataFrame,
                        plate: str, batch: str, wells: int, settings: PlateSettings, rules: ExclusionRules,
-                       collective: pd.DataFrame | None = None) -> PlateTables:
-    """Everything the plate stage writes, from the per-well tables of one plate.
+                       collective: pd.DataFrame | None = None, threads: int = 1) -> PlateTables:
+    """Everything the plate stage writes, from the per-well tables of one plate held in memory.
 
     ``collective`` (one row per well: plate, well and collective readouts), if given, adds its
-    readouts to the well profiles as features.
+    readouts to the well profiles as features. ``threads`` workers summarise the wells.
+    ``build_plate_tables_from_files`` gives the same tables without holding the cells table.
     """
+    excluded = site_frame_exclusions(site_qc, rules, plate)
+    summaries = observation_summaries(drop_excluded_site_frames(cells, excluded), settings.well_summary, threads)
+    return _plate_tables(observation_counts(cells), summaries, excluded, tracks, site_qc, layout, plate, batch, wells,
+                         settings, rules, collective, threads)
+
+
+def build_plate_tables_from_files(cell_folders: list[str], tracks: pd.DataFrame, site_qc: pd.DataFrame,
+                                  layout: pd.DataFrame, plate: str, batch: str, wells: int, settings: PlateSettings,
+                                  rules: ExclusionRules, collective: pd.DataFrame | None = None,
+                                  threads: int = 1) -> PlateTables:
+    """``build_plate_tables`` reading the cells tables well folder by well folder: the observation
+    features are summarised per well as each folder is read (``summarise_observation_files``) and
+    only the observation counts per site and frame are held for the whole plate. Same tables."""
+    excluded = site_frame_exclusions(site_qc, rules, plate)
+    site_frames = excluded.loc[excluded["level"] == "site_frame", ["well", "site", "frame"]]
+    summaries, counts = summarise_observation_files(cell_folders, site_frames, settings.well_summary, threads)
+    return _plate_tables(counts, summaries, excluded, tracks, site_qc, layout, plate, batch, wells, settings, rules,
+                         collective, threads)
+
+
+def _plate_tables(counts: pd.DataFrame, summaries: pd.DataFrame, site_frame_ledger: pd.DataFrame,
+                  tracks: pd.DataFrame, site_qc: pd.DataFrame, layout: pd.DataFrame, plate: str, batch: str,
+                  wells: int, settings: PlateSettings, rules: ExclusionRules, collective: pd.DataFrame | None,
+                  threads: int) -> PlateTables:
+    """The plate tables from the observation counts (all observations), the per-well feature
+    summaries of the observations kept, and the site-frame exclusions."""
     fmt = plate_format(wells)
     warnings: list[str] = []
-    ledger = [site_frame_exclusions(site_qc, rules, plate)]
+    ledger = [site_frame_ledger]
     warnings += unusable_frame_notes(site_qc)
-    kept_cells = drop_excluded_site_frames(cells, ledger[0])
-    profile = summarise_wells(kept_cells, tracks, layout, plate, batch, wells, settings.well_summary)
+    kept_counts = drop_excluded_site_frames(counts, ledger[0])
+    profile = summarise_wells(kept_counts, summaries, tracks, layout, plate, batch, wells, settings.well_summary, threads)
     if collective is not None and len(collective.columns.difference(["plate", "well"])):
         readouts = collective.drop(columns=["plate"], errors="ignore").assign(well=lambda t: t["well"].astype(str))
         profile = profile.merge(readouts, on="well", how="left", validate="one_to_one")
-    measured = cells.groupby("well", observed=True).size()
-    used = kept_cells[~kept_cells["touches_border"]].groupby("well", observed=True).size()
+    measured = counts.groupby("well", observed=True)["observations"].sum()
+    used = kept_counts.groupby("well", observed=True)["whole"].sum()
     measured.index, used.index = measured.index.astype(str), used.index.astype(str)
     profile["fraction_observations_used"] = (used.reindex(profile["well"]).fillna(0).to_numpy()
                                              / measured.reindex(profile["well"]).to_numpy(float))

@@ -44,7 +44,8 @@ def write_parquet(frame: pd.DataFrame, path: str, settings: object, extra: dict 
     """Write ``frame`` to ``path`` atomically (temporary file in the same folder, then rename).
 
     An interrupted write never leaves a readable partial file at ``path``. ``extra`` (JSON-able)
-    is stored in the file metadata and read back by ``read_extra``.
+    is stored in the file metadata and read back by ``read_extra``. Text and categorical
+    columns are dictionary-encoded, numbers are not; Snappy compression.
     """
     tmp = _temporary_path(path)
     table = pa.Table.from_pandas(frame, preserve_index=False)
@@ -53,7 +54,11 @@ def write_parquet(frame: pd.DataFrame, path: str, settings: object, extra: dict 
     if extra is not None:
         meta[EXTRA_KEY] = json.dumps(extra, sort_keys=True).encode()
     table = table.replace_schema_metadata(meta)
-    pq.write_table(table, tmp)
+    # dictionary encoding only for text and categorical columns: measurements are almost all
+    # distinct, and a dictionary of them makes files larger and slower to write and read
+    keys = [f.name for f in table.schema if pa.types.is_string(f.type) or pa.types.is_large_string(f.type)
+            or pa.types.is_dictionary(f.type)]
+    pq.write_table(table, tmp, use_dictionary=keys)
     os.replace(tmp, path)
 
 

@@ -3,8 +3,8 @@ import json
 
 from plateloom.exclusions import ExclusionRules
 from plateloom.images import unmatched_note
-from plateloom.plate_stage import PlateSettings, build_plate_tables
-from plateloom.profiles import read_cells_for_profiles, read_plate_dataset
+from plateloom.plate_stage import PlateSettings, build_plate_tables_from_files
+from plateloom.profiles import read_plate_dataset
 from plateloom.screen import load_layout
 from plateloom.steps import run_step
 from plateloom.tables import write_parquet, write_text
@@ -15,11 +15,11 @@ sm = snakemake  # noqa: F821  (injected by Snakemake's script directive)
 def step() -> None:
     layout = load_layout(sm.input.layout, sm.params.plate_format)
     settings = dict(sm.params.settings)
-    tables = build_plate_tables(read_cells_for_profiles(list(sm.input.cells)), read_plate_dataset(list(sm.input.tracks)),
-                                read_plate_dataset(list(sm.input.site_qc)), layout, sm.wildcards.plate, sm.params.batch,
-                                sm.params.plate_format, PlateSettings(**settings["plate"]),
-                                ExclusionRules.from_config(settings["exclusion_rules"]),
-                                read_plate_dataset(list(sm.input.collective)))
+    tables = build_plate_tables_from_files(list(sm.input.cells), read_plate_dataset(list(sm.input.tracks)),
+                                           read_plate_dataset(list(sm.input.site_qc)), layout, sm.wildcards.plate,
+                                           sm.params.batch, sm.params.plate_format, PlateSettings(**settings["plate"]),
+                                           ExclusionRules.from_config(settings["exclusion_rules"]),
+                                           read_plate_dataset(list(sm.input.collective)), sm.threads)
     note = unmatched_note(sm.params.image_folder, sm.params.template, sm.params.plate_format, list(sm.params.channels))
     warnings = tables.warnings + ([note] if note else [])
     write_parquet(tables.profile, sm.output.wells, settings)

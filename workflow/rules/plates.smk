@@ -30,7 +30,7 @@ rule plate_profiles:
         f"{RESULTS}/logs/plate_profiles/{{plate}}.log",
     benchmark:
         f"{RESULTS}/benchmarks/plate_profiles/{{plate}}.tsv"
-    threads: 1
+    threads: 2
     resources:
         mem_mb=2000,
         runtime=30,
