@@ -93,10 +93,21 @@ def fill_holes(mask: np.ndarray) -> np.ndarray:
     return mask | ~outside[background]
 
 
-def _component_shapes(components: np.ndarray, count: int) -> tuple[np.ndarray, np.ndarray]:
+def _object_pixels(labels: np.ndarray, index: np.ndarray | None) -> tuple[np.ndarray, np.ndarray]:
+    """Flat index and label of every object pixel; ``index`` (flat indices holding every object
+    pixel, maybe more) spares a pass over the whole image."""
+    if index is None:
+        index = np.flatnonzero(labels)
+        return index, labels.ravel()[index]
+    label = labels.ravel()[index]
+    inside = label > 0
+    return index[inside], label[inside]
+
+
+def _component_shapes(components: np.ndarray, count: int,
+                      index: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
     """Area (pixels) and fill of the moment ellipse (area / (4 pi sqrt(det covariance))) of labels 1..count."""
-    index = np.flatnonzero(components)
-    label = components.ravel()[index]
+    index, label = _object_pixels(components, index)
     y, x = np.divmod(index, components.shape[1])
     area = np.bincount(label, minlength=count + 1).astype(float)
     safe = np.maximum(area, 1)
@@ -126,12 +137,14 @@ def _split_component(mask: np.ndarray, min_distance_px: int) -> np.ndarray:
     return watershed(-distance, markers, mask=mask)
 
 
-def split_touching(components: np.ndarray, count: int, min_distance_px: int) -> np.ndarray:
+def split_touching(components: np.ndarray, count: int, min_distance_px: int,
+                   index: np.ndarray | None = None) -> np.ndarray:
     """Labels after splitting the components that may hold touching nuclei; the rest are kept whole.
 
-    ``components`` holds ids 1..count, some of which may be unused (area 0).
+    ``components`` holds ids 1..count, some of which may be unused (area 0); ``index``, if
+    given, holds the flat indices of every component pixel (maybe more).
     """
-    area, fill = _component_shapes(components, count)
+    area, fill = _component_shapes(components, count, index)
     present = area > 0
     if not present.any():
         return components
@@ -157,18 +170,18 @@ def split_touching(components: np.ndarray, count: int, min_distance_px: int) -> 
     return labels
 
 
-def half_maximum_masks(labels: np.ndarray, smooth: np.ndarray, background: float) -> np.ndarray:
+def half_maximum_masks(labels: np.ndarray, smooth: np.ndarray, background: float,
+                       index: np.ndarray | None = None) -> np.ndarray:
     """Trim each object to the pixels above half its own peak height over background.
 
     The global threshold places dim and bright nuclei's edges at different depths of their
     blurred profiles; the half-maximum contour (as in a full width at half maximum) measures
     every object's size the same way, whatever its brightness or the local illumination.
     """
-    count = int(labels.max())
-    if count == 0:
+    index, label = _object_pixels(labels, index)
+    if len(index) == 0:
         return labels
-    index = np.flatnonzero(labels)
-    label = labels.ravel()[index]
+    count = int(label.max())
     value = smooth.ravel()[index]
     peak = np.full(count + 1, -np.inf, dtype=np.float64)
     np.maximum.at(peak, label, value)
@@ -179,11 +192,10 @@ def half_maximum_masks(labels: np.ndarray, smooth: np.ndarray, background: float
     return out
 
 
-def _drop_small(labels: np.ndarray, min_area_px: int) -> np.ndarray:
+def _drop_small(labels: np.ndarray, min_area_px: int, index: np.ndarray | None = None) -> np.ndarray:
     """Objects of fewer than ``min_area_px`` pixels removed, the rest numbered 1..n in label order."""
-    index = np.flatnonzero(labels)
-    label = labels.ravel()[index]
-    sizes = np.bincount(label, minlength=int(labels.max()) + 1)
+    index, label = _object_pixels(labels, index)
+    sizes = np.bincount(label, minlength=int(label.max(initial=0)) + 1)
     keep = sizes >= min_area_px
     keep[0] = False
     new_ids = np.where(keep, np.cumsum(keep), 0).astype(np.int32)
@@ -224,15 +236,17 @@ def segment_smoothed(smooth: np.ndarray, pixel_size_um: float, min_area_um2: flo
     if small.all() or count == 0:
         return empty, threshold
     if small.any():                       # debris removed; the other components keep their ids
-        drop = index[small[components.ravel()[index]]]
-        components.ravel()[drop] = 0
-        mask.ravel()[drop] = False
+        debris = small[components.ravel()[index]]
+        components.ravel()[index[debris]] = 0
+        mask.ravel()[index[debris]] = False
+        index = index[~debris]
     min_distance_px = max(1, int(round(split_min_distance_um / pixel_size_um)))
-    labels = split_touching(components, count, min_distance_px)
+    # every later label image lies within ``index``: no further pass over the whole frame
+    labels = split_touching(components, count, min_distance_px, index)
     outside = ~mask[::BACKGROUND_STRIDE, ::BACKGROUND_STRIDE]
     background = float(np.median(smooth[::BACKGROUND_STRIDE, ::BACKGROUND_STRIDE][outside])) if outside.any() else 0.0
-    labels = half_maximum_masks(labels, smooth, background)
-    return _drop_small(labels, min_area_px), threshold
+    labels = half_maximum_masks(labels, smooth, background, index)
+    return _drop_small(labels, min_area_px, index), threshold
 
 
 def local_standard_deviation(image: np.ndarray, window_px: int) -> np.ndarray:
