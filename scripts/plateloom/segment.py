@@ -120,21 +120,46 @@ def _component_shapes(components: np.ndarray, count: int,
     return area[1:], area[1:] / ellipse_area[1:]
 
 
-def _split_component(mask: np.ndarray, min_distance_px: int) -> np.ndarray:
-    """Watershed split of one component (its padded bounding box) on the distance transform.
+def _split_components(masks: list[np.ndarray], min_distance_px: int) -> list[np.ndarray]:
+    """Watershed split of components on their distance transform, all in one pass.
 
-    Seeds are the distance maxima at least ``min_distance_px`` apart that rise SEED_DEPTH_PX
-    above the saddle to the next one, so the long ridge of an elongated nucleus gives one seed.
+    ``masks`` are the components' bounding-box masks; they are laid side by side, one
+    background pixel apart, in one strip image, so every whole-image step runs once. Seeds are
+    the distance maxima at least ``min_distance_px`` apart that rise SEED_DEPTH_PX above the
+    saddle to the next one, so the long ridge of an elongated nucleus gives one seed. Returns,
+    per mask, its parts numbered 1..k in raster order (all 1 when it is not split); the
+    image edge counts as background for the distance transform.
     """
-    distance = ndimage.distance_transform_edt(mask)
-    peaks = peak_local_max(distance, min_distance=min_distance_px, labels=mask.astype(np.int32), exclude_border=False)
-    regions, _ = ndimage.label(h_maxima(distance, SEED_DEPTH_PX))
-    seeded = np.unique(regions[tuple(peaks.T)])
-    seeded = seeded[seeded > 0]
-    if len(seeded) < 2:
-        return mask.astype(np.int32)
-    markers = np.where(np.isin(regions, seeded), regions, 0).astype(np.int32)
-    return watershed(-distance, markers, mask=mask)
+    height = max(m.shape[0] for m in masks) + 2
+    starts = np.cumsum([1] + [m.shape[1] + 1 for m in masks])
+    piece = np.zeros((height, int(starts[-1])), np.int32)
+    for number, (mask, start) in enumerate(zip(masks, starts), start=1):
+        piece[1:1 + mask.shape[0], start:start + mask.shape[1]][mask] = number
+    strip = piece > 0
+    distance = ndimage.distance_transform_edt(strip)
+    peaks = peak_local_max(distance, min_distance=min_distance_px, labels=piece, exclude_border=False)
+    regions, n_regions = ndimage.label(h_maxima(distance, SEED_DEPTH_PX))
+    region_piece = np.zeros(n_regions + 1, np.int64)
+    region_piece[regions[strip]] = piece[strip]
+    seeded = np.zeros(n_regions + 1, bool)
+    seeded[regions[tuple(peaks.T)]] = True
+    seeded[0] = False
+    split = np.bincount(region_piece[seeded], minlength=len(masks) + 1) >= 2
+    split[0] = False
+    parts = np.zeros_like(piece)
+    if split.any():
+        markers = np.where((seeded & split[region_piece])[regions], regions, 0).astype(np.int32)
+        parts = watershed(-distance, markers, mask=split[piece])
+    out = []
+    for number, (mask, start) in enumerate(zip(masks, starts), start=1):
+        if not split[number]:
+            out.append(mask.astype(np.int32))
+            continue
+        local = parts[1:1 + mask.shape[0], start:start + mask.shape[1]]
+        ids, renumbered = np.unique(local, return_inverse=True)     # 0 first, then the seeds in raster order
+        out.append(renumbered.reshape(local.shape).astype(np.int32) if ids[0] == 0
+                   else renumbered.reshape(local.shape).astype(np.int32) + 1)
+    return out
 
 
 def split_touching(components: np.ndarray, count: int, min_distance_px: int,
@@ -151,20 +176,17 @@ def split_touching(components: np.ndarray, count: int, min_distance_px: int,
     candidates = np.flatnonzero(present & ((area > SPLIT_AREA_FACTOR * np.median(area[present]))
                                            | (fill < SPLIT_ELLIPSE_FILL))) + 1
     labels = components.astype(np.int32, copy=True)
-    next_label = count + 1
+    if len(candidates) == 0:
+        return labels
     boxes = ndimage.find_objects(components)
-    height, width = components.shape
-    for label in candidates:
-        rows, cols = boxes[label - 1]
-        rows = slice(max(rows.start - 1, 0), min(rows.stop + 1, height))
-        cols = slice(max(cols.start - 1, 0), min(cols.stop + 1, width))
-        mask = components[rows, cols] == label
-        parts = _split_component(mask, min_distance_px)
+    masks = [components[boxes[label - 1]] == label for label in candidates]
+    next_label = count + 1
+    for label, mask, parts in zip(candidates, masks, _split_components(masks, min_distance_px)):
         n_parts = int(parts.max())
         if n_parts < 2:
             continue
         new_ids = np.concatenate([[0, label], next_label + np.arange(n_parts - 1)])
-        view = labels[rows, cols]
+        view = labels[boxes[label - 1]]
         view[mask] = new_ids[parts[mask]]
         next_label += n_parts - 1
     return labels
