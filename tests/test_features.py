@@ -196,3 +196,20 @@ def test_a_cell_body_reaching_the_image_edge_flags_its_nucleus_as_touching_the_b
     np.testing.assert_array_equal(table["touches_border"], [True, False])
     np.testing.assert_allclose(table["cell_area_um2"], [(cells == 1).sum(), (cells == 2).sum()])
     np.testing.assert_allclose(table["cytoplasm_mean_intensity_body"], [20.0, 20.0])
+
+
+def test_background_level_is_the_median_away_from_objects_on_odd_sized_fields():
+    # Reference: median of every pixel at least 3 px from any object (scipy distance transform),
+    # on a 101x99 field (not a multiple of the sampling stride); planted background 100.
+    from plateloom.segment import background_levels
+
+    rng = np.random.default_rng(8)
+    labels = np.zeros((101, 99), np.int32)
+    for label, centre in enumerate([(10, 10), (50, 60), (90, 95), (30, 80)], start=1):
+        labels[disk(centre, 8, shape=labels.shape)] = label
+    planes = np.stack([100 + 900 * (labels > 0) + rng.normal(0, 4, labels.shape),
+                       40 + 10 * (labels > 0) + rng.normal(0, 2, labels.shape)]).astype(np.float32)
+    far = ndimage.distance_transform_edt(labels == 0) >= 3
+    reference = np.median(planes[:, far], axis=1)
+    np.testing.assert_allclose(background_levels(planes, labels), reference, atol=0.6)
+    np.testing.assert_allclose(background_levels(planes, labels), [100, 40], atol=1.0)

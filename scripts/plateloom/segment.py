@@ -400,9 +400,12 @@ def background_levels(planes: np.ndarray, labels: np.ndarray, margin_px: int = 3
     stride = BACKGROUND_STRIDE
     height, width = labels.shape
     blocks_y, blocks_x = -(-height // stride), -(-width // stride)
-    occupied = np.zeros((blocks_y * stride, blocks_x * stride), bool)
-    occupied[:height, :width] = labels > 0
-    occupied = occupied.reshape(blocks_y, stride, blocks_x, stride).any(axis=(1, 3))
+    objects = labels > 0
+    occupied = np.zeros((blocks_y, blocks_x), bool)
+    for dy in range(stride):          # OR of the stride x stride strided views: one pass, no reshape copy
+        for dx in range(stride):
+            view = objects[dy::stride, dx::stride]
+            occupied[:view.shape[0], :view.shape[1]] |= view
     reach = -(-margin_px // stride)
     near = ndimage.maximum_filter(occupied, size=2 * reach + 1) if occupied.any() else occupied
     background = ~near
