@@ -174,7 +174,7 @@ def glcm_measures(image: np.ndarray, labels: np.ndarray, pixels: ObjectPixels, d
     span = np.concatenate([[1.0], np.where(high > low, high - low, 1.0)])
     low = np.concatenate([[0.0], low])
     level = np.clip(((value - low[pixels.label]) / span[pixels.label] * levels).astype(np.int64), 0, levels - 1)
-    quantised = np.full(np.add(labels.shape, 2 * distance_px), -1, np.int64)
+    quantised = np.full(np.add(labels.shape, 2 * distance_px), -1, np.int16)   # levels <= 64 (config schema)
     quantised[pixels.row + distance_px, pixels.col + distance_px] = level
     padded_labels = np.pad(labels, distance_px)
     i_index, j_index = np.meshgrid(np.arange(levels), np.arange(levels), indexing="ij")
@@ -184,7 +184,7 @@ def glcm_measures(image: np.ndarray, labels: np.ndarray, pixels: ObjectPixels, d
         neighbour = _neighbour_label(padded_labels, pixels, distance_px, dy, dx)
         same = neighbour == pixels.label
         lab, i = pixels.label[same], level[same]
-        j = quantised[pixels.row[same] + distance_px + dy, pixels.col[same] + distance_px + dx]
+        j = quantised[pixels.row[same] + distance_px + dy, pixels.col[same] + distance_px + dx].astype(np.int64)
         counts = np.bincount(lab * levels * levels + i * levels + j, minlength=(n + 1) * levels * levels)
         counts = counts.reshape(n + 1, levels, levels)[1:].astype(np.float64)
         counts = counts + counts.transpose(0, 2, 1)
