@@ -213,3 +213,19 @@ def test_background_level_is_the_median_away_from_objects_on_odd_sized_fields():
     reference = np.median(planes[:, far], axis=1)
     np.testing.assert_allclose(background_levels(planes, labels), reference, atol=0.6)
     np.testing.assert_allclose(background_levels(planes, labels), [100, 40], atol=1.0)
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2])
+def test_fill_holes_equals_scipy_binary_fill_holes(seed):
+    # Reference: scipy.ndimage.binary_fill_holes (default 4-connected background), on rings (holes)
+    # and on fields whose background all reaches the border (no hole).
+    from plateloom.segment import fill_holes
+
+    rng = np.random.default_rng(seed)
+    mask = ndimage.gaussian_filter(rng.random((120, 130)), 3) > 0.52
+    rings = np.zeros_like(mask)
+    rings[disk((60, 60), 15)] = True
+    rings[disk((60, 60), 6)] = False
+    for field in (mask, mask | rings, np.zeros_like(mask), np.ones_like(mask)):
+        np.testing.assert_array_equal(fill_holes(field), ndimage.binary_fill_holes(field))
+    assert fill_holes(mask | rings)[60, 60]

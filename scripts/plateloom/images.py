@@ -357,8 +357,9 @@ def _check_plane(plane: np.ndarray, path: str, shape: tuple[int, ...] | None) ->
                          "all images of a site must have the same size.")
     if not (np.issubdtype(plane.dtype, np.integer) or np.issubdtype(plane.dtype, np.floating)):
         raise InputError(path, f"pixel type {plane.dtype} is not numeric.", "save grey-level images (uint8, uint16 or float).")
+    is_float = np.issubdtype(plane.dtype, np.floating)
     plane = plane.astype(np.float32, copy=False)
-    if not np.isfinite(plane).all():
+    if is_float and not np.isfinite(plane).all():     # integer pixels are always finite
         raise InputError(path, "image holds NaN or infinite pixels.",
                          "re-export the images; plateloom expects finite grey levels.")
     return plane

@@ -88,6 +88,8 @@ def fill_holes(mask: np.ndarray) -> np.ndarray:
     if count == 0:
         return mask.copy()
     edge = np.unique(np.concatenate([background[0], background[-1], background[:, 0], background[:, -1]]))
+    if np.count_nonzero(edge) == count:       # every background region reaches the border: no hole
+        return mask.copy()
     outside = np.zeros(count + 1, bool)
     outside[edge] = True
     return mask | ~outside[background]
