@@ -53,9 +53,30 @@ def robust_sd(values: np.ndarray) -> float:
 
 
 def smooth_image(image: np.ndarray, sigma_px: float) -> np.ndarray:
-    """Gaussian smoothing in float32 (sigma in pixels; 0 returns a float32 copy)."""
+    """Gaussian smoothing in float32 (sigma in pixels; 0 returns a float32 copy).
+
+    The filter of ``scipy.ndimage.gaussian_filter`` (kernel truncated at 4 sigma, edges
+    reflected): along rows by scipy, along columns as a weighted sum of shifted copies of the
+    rows, which reads memory in order (scipy's column pass is several times slower than its row
+    pass). Equal to scipy's result within float32 rounding.
+    """
     image = image.astype(np.float32, copy=False)
-    return ndimage.gaussian_filter(image, sigma_px) if sigma_px > 0 else image.copy()
+    if sigma_px <= 0:
+        return image.copy()
+    radius = int(4.0 * sigma_px + 0.5)
+    offsets = np.arange(-radius, radius + 1)
+    kernel = np.exp(-0.5 * offsets**2 / sigma_px**2)
+    kernel /= kernel.sum()
+    rows = ndimage.correlate1d(image, kernel, axis=1, mode="reflect")
+    height = image.shape[0]
+    padded = np.pad(rows, ((radius, radius), (0, 0)), mode="symmetric")   # numpy's "symmetric" = scipy's "reflect"
+    out = padded[radius:radius + height] * np.float32(kernel[radius])
+    pair = np.empty_like(out)
+    for shift in range(1, radius + 1):
+        np.add(padded[radius - shift:radius - shift + height], padded[radius + shift:radius + shift + height], out=pair)
+        pair *= np.float32(kernel[radius + shift])
+        out += pair
+    return out
 
 
 def object_threshold(smooth: np.ndarray, method: str = "otsu") -> float:
