@@ -142,10 +142,12 @@ def test_label_free_path_finds_textured_cells_on_a_smooth_dish():
 
 def test_focus_score_is_the_variance_of_the_laplacian_and_falls_with_defocus():
     # Reference: scipy.ndimage.laplace (the 5-point discrete Laplacian); variance-of-Laplacian focus
-    # measure (Pech-Pacheco et al. 2000). The score uses every second interior row.
+    # measure (Pech-Pacheco et al. 2000). The score uses every FOCUS_ROW_STRIDE-th interior row.
+    from plateloom.segment import FOCUS_ROW_STRIDE
+
     planes, _ = _demo_frame(cells=60, size=256)
     sharp = ndimage.gaussian_filter(planes[0], 1.0)
-    reference = ndimage.laplace(sharp.astype(np.float64))[1:-1:2, 1:-1]
+    reference = ndimage.laplace(sharp.astype(np.float64))[1:-1:FOCUS_ROW_STRIDE, 1:-1]
     assert focus_score(sharp) == pytest.approx(reference.var() / sharp.astype(np.float64).mean() ** 2, rel=1e-5)
     blurred = ndimage.gaussian_filter(planes[0], 4.0)
     assert focus_score(blurred) < 0.2 * focus_score(sharp)

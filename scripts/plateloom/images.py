@@ -345,7 +345,10 @@ def saturated_fraction(plane: np.ndarray) -> float:
     """Fraction of pixels at the largest value of an integer pixel type (NaN for float images)."""
     if not np.issubdtype(plane.dtype, np.integer):
         return float("nan")
-    return float(np.count_nonzero(plane == np.iinfo(plane.dtype).max) / plane.size)
+    top = np.iinfo(plane.dtype).max
+    if plane.max() < top:             # the usual case, and one cheap pass
+        return 0.0
+    return float(np.count_nonzero(plane == top) / plane.size)
 
 
 def _check_plane(plane: np.ndarray, path: str, shape: tuple[int, ...] | None) -> np.ndarray:
