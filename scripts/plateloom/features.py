@@ -178,35 +178,35 @@ def glcm_measures(image: np.ndarray, labels: np.ndarray, pixels: ObjectPixels, d
     span = np.concatenate([[1.0], np.where(high > low, high - low, 1.0)])
     low = np.concatenate([[0.0], low])
     level = np.clip(((value - low[pixels.label]) / span[pixels.label] * levels).astype(np.int64), 0, levels - 1)
-    quantised = np.full(np.add(labels.shape, 2 * distance_px), -1, np.int16)   # levels <= 64 (config schema)
+    # levels <= 64 (config schema); only pixels of the same object are read back, so no fill is needed
+    quantised = np.empty(np.add(labels.shape, 2 * distance_px), np.int16)
     quantised[pixels.row + distance_px, pixels.col + distance_px] = level
     padded_labels = np.pad(labels, distance_px)
-    i_index, j_index = np.meshgrid(np.arange(levels), np.arange(levels), indexing="ij")
-    results = {p: np.zeros(n) for p in GLCM_PROPERTIES}
-    for angle in GLCM_ANGLES:
+    keys = []
+    for angle_index, angle in enumerate(GLCM_ANGLES):
         dy, dx = int(np.round(np.sin(angle) * distance_px)), int(np.round(np.cos(angle) * distance_px))
-        neighbour = _neighbour_label(padded_labels, pixels, distance_px, dy, dx)
-        same = neighbour == pixels.label
-        lab, i = pixels.label[same], level[same]
-        j = quantised[pixels.row[same] + distance_px + dy, pixels.col[same] + distance_px + dx].astype(np.int64)
-        counts = np.bincount(lab * levels * levels + i * levels + j, minlength=(n + 1) * levels * levels)
-        counts = counts.reshape(n + 1, levels, levels)[1:].astype(np.float64)
-        counts = counts + counts.transpose(0, 2, 1)
-        total = counts.sum(axis=(1, 2))
-        p = counts / np.where(total > 0, total, 1.0)[:, None, None]
-        results["contrast"] += (p * (i_index - j_index) ** 2).sum(axis=(1, 2))
-        results["homogeneity"] += (p / (1.0 + (i_index - j_index) ** 2)).sum(axis=(1, 2))
-        results["asm"] += (p**2).sum(axis=(1, 2))
-        mean_i = (p * i_index).sum(axis=(1, 2))
-        mean_j = (p * j_index).sum(axis=(1, 2))
-        sd_i = np.sqrt((p * (i_index - mean_i[:, None, None]) ** 2).sum(axis=(1, 2)))
-        sd_j = np.sqrt((p * (j_index - mean_j[:, None, None]) ** 2).sum(axis=(1, 2)))
-        covariance = (p * (i_index - mean_i[:, None, None]) * (j_index - mean_j[:, None, None])).sum(axis=(1, 2))
-        flat = (sd_i < 1e-15) | (sd_j < 1e-15)
-        results["correlation"] += np.where(flat, 1.0, covariance / np.where(flat, 1.0, sd_i * sd_j))
-        results_empty = total == 0
-        for prop in GLCM_PROPERTIES:
-            results[prop][results_empty] = np.nan
+        same = _neighbour_label(padded_labels, pixels, distance_px, dy, dx) == pixels.label
+        j = quantised[pixels.row[same] + distance_px + dy, pixels.col[same] + distance_px + dx]
+        keys.append(((angle_index * (n + 1) + pixels.label[same]) * levels + level[same]) * levels + j)
+    # the co-occurrence matrices of every angle and object at once: (angles, objects, levels, levels)
+    counts = np.bincount(np.concatenate(keys), minlength=len(GLCM_ANGLES) * (n + 1) * levels * levels)
+    counts = counts.reshape(len(GLCM_ANGLES), n + 1, levels, levels)[:, 1:].astype(np.float64)
+    counts += counts.transpose(0, 1, 3, 2)
+    total = counts.sum(axis=(2, 3))
+    p = counts / np.where(total > 0, total, 1.0)[..., None, None]
+    i_index, j_index = np.meshgrid(np.arange(levels), np.arange(levels), indexing="ij")
+    mean_i, mean_j = (p * i_index).sum(axis=(2, 3)), (p * j_index).sum(axis=(2, 3))
+    di, dj = i_index - mean_i[..., None, None], j_index - mean_j[..., None, None]
+    sd_i, sd_j = np.sqrt((p * di**2).sum(axis=(2, 3))), np.sqrt((p * dj**2).sum(axis=(2, 3)))
+    covariance = (p * di * dj).sum(axis=(2, 3))
+    flat = (sd_i < 1e-15) | (sd_j < 1e-15)
+    per_angle = {
+        "contrast": (p * (i_index - j_index) ** 2).sum(axis=(2, 3)),
+        "homogeneity": (p / (1.0 + (i_index - j_index) ** 2)).sum(axis=(2, 3)),
+        "asm": (p**2).sum(axis=(2, 3)),
+        "correlation": np.where(flat, 1.0, covariance / np.where(flat, 1.0, sd_i * sd_j)),
+    }
+    results = {prop: np.where(total == 0, np.nan, per_angle[prop]).sum(axis=0) for prop in GLCM_PROPERTIES}
     return {p: v / len(GLCM_ANGLES) for p, v in results.items()}
 
 
@@ -271,8 +271,8 @@ def measure_objects(labels: np.ndarray, planes: np.ndarray, channels: list[str],
             table[f"glcm_{prop}_{channel}"] = texture[prop]
     if cells is not None:
         table.update(_cytoplasm_measures(labels, cells, planes, channels, background, pixel_size_um, table, n))
-    frame = pd.DataFrame(table)[columns]
-    return frame[present].reset_index(drop=True)
+    frame = pd.DataFrame({c: table[c] for c in columns})
+    return frame if present.all() else frame[present].reset_index(drop=True)
 
 
 def _touches_border(pixels: ObjectPixels, height: int, width: int) -> np.ndarray:

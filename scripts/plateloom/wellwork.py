@@ -139,7 +139,7 @@ def analyse_site(index: ImageIndex, well: str, site: int, settings: WellSettings
         table.insert(0, "frame", item.frame)
         table.insert(1, "track", tracks.astype(np.int64))
         observations.append(table)
-        qc.update({"n_objects": len(table), "foreground_fraction": float((labels > 0).mean()), "threshold": threshold,
+        qc.update({"n_objects": len(table), "foreground_fraction": np.count_nonzero(labels) / labels.size, "threshold": threshold,
                    "focus_score": focus_score(smooth), "empty_field": len(table) == 0, "frame_problem": ""})
         qc.update({f"background_{c}": float(b) for c, b in zip(channels, background)})
         qc.update({f"saturated_fraction_{c}": float(f) for c, f in zip(channels, item.saturated)})
