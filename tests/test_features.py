@@ -243,3 +243,16 @@ def test_smoothing_equals_scipy_gaussian_filter(shape, sigma):
     smooth = smooth_image(image, sigma)
     assert smooth.dtype == np.float32 and smooth.flags["C_CONTIGUOUS"]
     np.testing.assert_allclose(smooth, reference, rtol=0, atol=2e-6 * float(np.abs(reference).max()))
+
+
+def test_bounding_boxes_from_pixels_equal_find_objects():
+    # Reference: scipy.ndimage.find_objects on a label image with gaps in its ids.
+    from plateloom.segment import _bounding_boxes
+
+    rng = np.random.default_rng(11)
+    labels, count = ndimage.label(ndimage.gaussian_filter(rng.random((90, 110)), 2) > 0.53)
+    labels[labels == 3] = 0
+    index = np.flatnonzero(labels)
+    wanted = np.array([k for k in range(1, count + 1) if k != 3][::2])
+    expected = ndimage.find_objects(labels)
+    assert _bounding_boxes(index, labels.ravel()[index], wanted, labels.shape[1]) == [expected[k - 1] for k in wanted]

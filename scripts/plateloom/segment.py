@@ -129,6 +129,24 @@ def _object_pixels(labels: np.ndarray, index: np.ndarray | None) -> tuple[np.nda
     return index[inside], label[inside]
 
 
+def _bounding_boxes(index: np.ndarray, label: np.ndarray, wanted: np.ndarray,
+                    width: int) -> list[tuple[slice, slice]]:
+    """Bounding boxes (as ``ndimage.find_objects``) of the ``wanted`` labels, from their pixels'
+    flat indices, without a pass over the whole image."""
+    is_wanted = np.zeros(int(max(label.max(initial=0), wanted.max(initial=0))) + 1, bool)
+    is_wanted[wanted] = True
+    chosen = is_wanted[label]
+    index, label = index[chosen], label[chosen]
+    order = np.argsort(label, kind="stable")
+    index, label = index[order], label[order]
+    starts = np.flatnonzero(np.diff(label, prepend=-1))
+    y, x = np.divmod(index, width)
+    boxes = np.stack([np.minimum.reduceat(y, starts), np.maximum.reduceat(y, starts) + 1,
+                      np.minimum.reduceat(x, starts), np.maximum.reduceat(x, starts) + 1], axis=1)
+    found = dict(zip(label[starts].tolist(), boxes.tolist()))
+    return [(slice(found[w][0], found[w][1]), slice(found[w][2], found[w][3])) for w in wanted.tolist()]
+
+
 def _component_shapes(components: np.ndarray, count: int,
                       index: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
     """Area (pixels) and fill of the moment ellipse (area / (4 pi sqrt(det covariance))) of labels 1..count."""
@@ -203,15 +221,16 @@ def split_touching(components: np.ndarray, count: int, min_distance_px: int,
     labels = components.astype(np.int32, copy=True)
     if len(candidates) == 0:
         return labels
-    boxes = ndimage.find_objects(components)
-    masks = [components[boxes[label - 1]] == label for label in candidates]
+    index, label_of_pixel = _object_pixels(components, index)
+    boxes = _bounding_boxes(index, label_of_pixel, candidates, components.shape[1])
+    masks = [components[box] == label for label, box in zip(candidates, boxes)]
     next_label = count + 1
-    for label, mask, parts in zip(candidates, masks, _split_components(masks, min_distance_px)):
+    for label, box, mask, parts in zip(candidates, boxes, masks, _split_components(masks, min_distance_px)):
         n_parts = int(parts.max())
         if n_parts < 2:
             continue
         new_ids = np.concatenate([[0, label], next_label + np.arange(n_parts - 1)])
-        view = labels[boxes[label - 1]]
+        view = labels[box]
         view[mask] = new_ids[parts[mask]]
         next_label += n_parts - 1
     return labels
@@ -408,10 +427,19 @@ def _grow_cell_bodies_binned(nuclei: np.ndarray, body_image: np.ndarray, sigma_p
         foreground |= nucleus
     out = np.where(foreground, full, 0).astype(np.int32, copy=False)
     np.copyto(out, nuclei, where=nucleus)
-    # foreground pixels just outside the binned bodies take the largest label among their 8 neighbours
-    gaps = np.flatnonzero(foreground & (out == 0))
+    # foreground pixels just outside the binned bodies take the largest label among their 8 neighbours;
+    # they lie in empty blocks next to a body block, so only those blocks' pixels are looked at
+    inside = bodies > 0
+    edge_blocks = np.flatnonzero(~inside & ndimage.maximum_filter(inside, size=3))
+    block_y, block_x = np.divmod(edge_blocks, bodies.shape[1])
+    y = (2 * block_y[:, None] + np.array([0, 0, 1, 1])).ravel()
+    x = (2 * block_x[:, None] + np.array([0, 1, 0, 1])).ravel()
+    on_image = (y < height) & (x < width)
+    y, x = y[on_image], x[on_image]
+    gaps = y * width + x
+    is_gap = foreground.ravel()[gaps] & (out.ravel()[gaps] == 0)
+    gaps, y, x = gaps[is_gap], y[is_gap], x[is_gap]
     if len(gaps):
-        y, x = np.divmod(gaps, width)
         neighbours = [full[np.clip(y + dy, 0, height - 1), np.clip(x + dx, 0, width - 1)]
                       for dy in (-1, 0, 1) for dx in (-1, 0, 1) if dy or dx]
         out.ravel()[gaps] = np.maximum.reduce(neighbours)
