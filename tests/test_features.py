@@ -256,3 +256,24 @@ def test_bounding_boxes_from_pixels_equal_find_objects():
     wanted = np.array([k for k in range(1, count + 1) if k != 3][::2])
     expected = ndimage.find_objects(labels)
     assert _bounding_boxes(index, labels.ravel()[index], wanted, labels.shape[1]) == [expected[k - 1] for k in wanted]
+
+
+def test_upsampling_of_binned_images_is_bilinear_interpolation():
+    # Reference: scipy.ndimage.map_coordinates (order 1, edges repeated) at the binned coordinates
+    # of the full pixel centres, (y - 1/2) / 2 and (x - 1/2) / 2.
+    from plateloom.segment import _upsample2
+
+    binned = np.random.default_rng(12).normal(size=(37, 52)).astype(np.float32)
+    yy, xx = np.mgrid[0:74, 0:104]
+    reference = ndimage.map_coordinates(binned.astype(np.float64), [(yy - 0.5) / 2, (xx - 0.5) / 2], order=1,
+                                        mode="nearest")
+    np.testing.assert_allclose(_upsample2(binned), reference, atol=1e-5)
+
+
+def test_cell_bodies_on_a_field_without_body_signal_are_the_nuclei():
+    # Common practice: with no contrast in the body channel, each cell is just its nucleus.
+    nuclei = np.zeros((128, 128), np.int32)
+    nuclei[disk((40, 40), 8)] = 1
+    nuclei[disk((90, 70), 8)] = 2
+    flat = (500 + np.random.default_rng(13).normal(0, 5, nuclei.shape)).astype(np.float32)
+    np.testing.assert_array_equal(grow_cell_bodies(nuclei, flat, 0.5, 1.25), nuclei)

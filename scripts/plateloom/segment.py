@@ -391,8 +391,8 @@ def _bin2(image: np.ndarray, reduce: Callable) -> np.ndarray:
     return reduce(reduce(image[0::2, 0::2], image[1::2, 0::2]), reduce(image[0::2, 1::2], image[1::2, 1::2]))
 
 
-def _upsample2(image: np.ndarray, height: int, width: int) -> np.ndarray:
-    """Bilinear interpolation of a 2x2-binned image back onto the full (height, width) pixel grid.
+def _upsample2(image: np.ndarray) -> np.ndarray:
+    """Bilinear interpolation of a 2x2-binned image onto the full pixel grid (twice its size).
 
     Full pixel 2i sits at binned coordinate i - 1/4 and 2i + 1 at i + 1/4 (edges repeated).
     """
@@ -406,7 +406,7 @@ def _upsample2(image: np.ndarray, height: int, width: int) -> np.ndarray:
     out = np.empty((2 * rows, 2 * cols), np.float32)
     np.add(centre, 0.25 * tall[:, :-2], out=out[:, 0::2])
     np.add(centre, 0.25 * tall[:, 2:], out=out[:, 1::2])
-    return out[:height, :width]
+    return out
 
 
 def _grow_cell_bodies_binned(nuclei: np.ndarray, body_image: np.ndarray, sigma_px: float,
@@ -416,33 +416,30 @@ def _grow_cell_bodies_binned(nuclei: np.ndarray, body_image: np.ndarray, sigma_p
     # a 2-pixel box already blurs by a variance of 1/3 px^2; the Gaussian adds the rest, in binned pixels
     smooth = smooth_image(binned, np.sqrt(sigma_px**2 - 1 / 3) / 2)
     bodies, threshold = _seeded_bodies(_bin2(nuclei, np.maximum), smooth, threshold_method)
-    full = np.broadcast_to(bodies[:, None, :, None], (bodies.shape[0], 2, bodies.shape[1], 2))
-    full = full.reshape(2 * bodies.shape[0], 2 * bodies.shape[1])[:height, :width]
-    nucleus = nuclei > 0
-    if np.isnan(threshold):
-        foreground = nucleus | full.astype(bool)
-    else:
-        # the outer edge at full resolution: the interpolated smooth image against the same threshold
-        foreground = _upsample2(smooth, height, width) > threshold
-        foreground |= nucleus
-    out = np.where(foreground, full, 0).astype(np.int32, copy=False)
-    np.copyto(out, nuclei, where=nucleus)
+    if np.isnan(threshold):            # no foreground in the body channel: each cell is its nucleus
+        return nuclei.astype(np.int32, copy=True)
+    rows, cols = bodies.shape
+    # the outer edge at full resolution: the interpolated smooth image against the same threshold
+    foreground = _upsample2(smooth) > threshold
+    # each binned body pixel covers its 2x2 block of foreground pixels (one pass, no upsampled copy)
+    out = np.where(foreground.reshape(rows, 2, cols, 2), bodies[:, None, :, None], 0).reshape(2 * rows, 2 * cols)
+    out = np.ascontiguousarray(out[:height, :width])
+    np.copyto(out, nuclei, where=nuclei > 0)                        # every nucleus pixel keeps its own label
     # foreground pixels just outside the binned bodies take the largest label among their 8 neighbours;
     # they lie in empty blocks next to a body block, so only those blocks' pixels are looked at
     inside = bodies > 0
     edge_blocks = np.flatnonzero(~inside & ndimage.maximum_filter(inside, size=3))
-    block_y, block_x = np.divmod(edge_blocks, bodies.shape[1])
+    block_y, block_x = np.divmod(edge_blocks, cols)
     y = (2 * block_y[:, None] + np.array([0, 0, 1, 1])).ravel()
     x = (2 * block_x[:, None] + np.array([0, 1, 0, 1])).ravel()
     on_image = (y < height) & (x < width)
     y, x = y[on_image], x[on_image]
-    gaps = y * width + x
-    is_gap = foreground.ravel()[gaps] & (out.ravel()[gaps] == 0)
-    gaps, y, x = gaps[is_gap], y[is_gap], x[is_gap]
-    if len(gaps):
-        neighbours = [full[np.clip(y + dy, 0, height - 1), np.clip(x + dx, 0, width - 1)]
+    is_gap = foreground[y, x] & (out[y, x] == 0)
+    y, x = y[is_gap], x[is_gap]
+    if len(y):
+        neighbours = [bodies[np.clip(y + dy, 0, height - 1) // 2, np.clip(x + dx, 0, width - 1) // 2]
                       for dy in (-1, 0, 1) for dx in (-1, 0, 1) if dy or dx]
-        out.ravel()[gaps] = np.maximum.reduce(neighbours)
+        out[y, x] = np.maximum.reduce(neighbours)
     return out
 
 
