@@ -95,14 +95,18 @@ def object_threshold(smooth: np.ndarray, method: str = "otsu") -> float:
     # Whether the field holds objects is judged on the Otsu split whatever the method: contrast
     # and noise are measured on the pixels below it, so a dense field (a third or more of it
     # cells) does not inflate the noise estimate.
+    stride = int(np.ceil(np.sqrt(smooth.size / THRESHOLD_SAMPLE_PIXELS)))
+    threshold = float(THRESHOLD_METHODS[method](smooth[::stride, ::stride] if stride > 1 else smooth))
     sample = smooth[::BACKGROUND_STRIDE, ::BACKGROUND_STRIDE]
-    split = float(threshold_otsu(sample)) if sample.max() > sample.min() else float(sample.max())
+    if method == "otsu":
+        split = threshold
+    else:
+        split = float(threshold_otsu(sample)) if sample.max() > sample.min() else float(sample.max())
     below, above = sample[sample <= split], sample[sample > split]
     if len(below) < 16 or len(above) == 0 or (
             np.median(above) - np.median(below) < MIN_CONTRAST_NOISE_SDS * max(robust_sd(below), 1e-6)):
         return float("nan")
-    stride = int(np.ceil(np.sqrt(smooth.size / THRESHOLD_SAMPLE_PIXELS)))
-    return float(THRESHOLD_METHODS[method](smooth[::stride, ::stride] if stride > 1 else smooth))
+    return threshold
 
 
 def fill_holes(mask: np.ndarray) -> np.ndarray:
@@ -428,7 +432,13 @@ def _grow_cell_bodies_binned(nuclei: np.ndarray, body_image: np.ndarray, sigma_p
     # foreground pixels just outside the binned bodies take the largest label among their 8 neighbours;
     # they lie in empty blocks next to a body block, so only those blocks' pixels are looked at
     inside = bodies > 0
-    edge_blocks = np.flatnonzero(~inside & ndimage.maximum_filter(inside, size=3))
+    near = inside.copy()                        # 3x3 dilation by shifted ORs, rows then columns
+    near[1:] |= inside[:-1]
+    near[:-1] |= inside[1:]
+    widened = near.copy()
+    widened[:, 1:] |= near[:, :-1]
+    widened[:, :-1] |= near[:, 1:]
+    edge_blocks = np.flatnonzero(widened & ~inside)
     block_y, block_x = np.divmod(edge_blocks, cols)
     y = (2 * block_y[:, None] + np.array([0, 0, 1, 1])).ravel()
     x = (2 * block_x[:, None] + np.array([0, 1, 0, 1])).ravel()
