@@ -48,12 +48,6 @@ THRESHOLD_METHODS: dict[str, Callable[[np.ndarray], float]] = {
 }
 
 
-def robust_sd(values: np.ndarray) -> float:
-    """1.4826 x median absolute deviation: the SD of a normal sample, robust to outliers."""
-    median = np.median(values)
-    return float(1.4826 * np.median(np.abs(values - median)))
-
-
 def smooth_image(image: np.ndarray, sigma_px: float) -> np.ndarray:
     """Gaussian smoothing in float32 (sigma in pixels; 0 returns a float32 copy).
 
@@ -103,8 +97,11 @@ def object_threshold(smooth: np.ndarray, method: str = "otsu") -> float:
     else:
         split = float(threshold_otsu(sample)) if sample.max() > sample.min() else float(sample.max())
     below, above = sample[sample <= split], sample[sample > split]
-    if len(below) < 16 or len(above) == 0 or (
-            np.median(above) - np.median(below) < MIN_CONTRAST_NOISE_SDS * max(robust_sd(below), 1e-6)):
+    if len(below) < 16 or len(above) == 0:
+        return float("nan")
+    below_median = float(np.median(below))
+    noise_sd = 1.4826 * float(np.median(np.abs(below - below_median)))     # robust SD: 1.4826 x MAD
+    if np.median(above) - below_median < MIN_CONTRAST_NOISE_SDS * max(noise_sd, 1e-6):
         return float("nan")
     return threshold
 
