@@ -41,7 +41,7 @@ class ObjectPixels:
     @classmethod
     def of(cls, labels: np.ndarray) -> "ObjectPixels":
         flat = labels.ravel()
-        index = np.flatnonzero(flat)
+        index = np.flatnonzero(flat != 0)      # on a bool image: several times faster than on int32
         order = np.argsort(flat[index], kind="stable")
         index = index[order]
         label = flat[index].astype(np.int64)
@@ -283,7 +283,7 @@ def _touches_border(pixels: ObjectPixels, height: int, width: int) -> np.ndarray
 def _cytoplasm_measures(nuclei: np.ndarray, cells: np.ndarray, planes: np.ndarray, channels: list[str],
                         background: np.ndarray, pixel_size_um: float, nucleus_table: dict, n: int) -> dict[str, np.ndarray]:
     flat = cells.ravel()
-    index = np.flatnonzero(flat)
+    index = np.flatnonzero(flat != 0)
     label = flat[index]
     in_cytoplasm = (nuclei.ravel()[index] == 0) & (label <= n)
     cytoplasm_index, cytoplasm_label = index[in_cytoplasm], label[in_cytoplasm]

@@ -123,7 +123,7 @@ def _object_pixels(labels: np.ndarray, index: np.ndarray | None) -> tuple[np.nda
     """Flat index and label of every object pixel; ``index`` (flat indices holding every object
     pixel, maybe more) spares a pass over the whole image."""
     if index is None:
-        index = np.flatnonzero(labels)
+        index = np.flatnonzero(labels > 0)     # on a bool image: several times faster than on int32
         return index, labels.ravel()[index]
     label = labels.ravel()[index]
     inside = label > 0
@@ -299,7 +299,7 @@ def segment_smoothed(smooth: np.ndarray, pixel_size_um: float, min_area_um2: flo
     min_area_px = max(1, int(round(min_area_um2 / pixel_size_um**2)))
     mask = fill_holes(smooth > threshold)
     components, count = ndimage.label(mask)
-    index = np.flatnonzero(components)
+    index = np.flatnonzero(mask)
     sizes = np.bincount(components.ravel()[index], minlength=count + 1)
     small = sizes < min_area_px
     small[0] = False
