@@ -161,3 +161,22 @@ def test_block_medians_equal_numpy_median_with_and_without_nan(n):
     expected = np.array([np.median(row) if not np.isnan(row).any() else
                          (np.nanmedian(row) if np.isfinite(row).any() else np.nan) for row in block])
     np.testing.assert_array_equal(_block_summaries(block.copy(), np.zeros(5, bool)), expected)
+
+
+@pytest.mark.parametrize("shuffle", [False, True])
+def test_site_frame_counts_equal_pandas_for_sorted_and_shuffled_rows(shuffle):
+    # Reference: pandas groupby size / sum over (site, frame).
+    from plateloom.profiles import _site_frame_counts
+
+    rng = np.random.default_rng(21)
+    table = pd.DataFrame({"site": np.repeat([1, 1, 2, 4], 50), "frame": np.tile(np.repeat(np.arange(5), 10), 4)})
+    table["time_min"] = table["frame"] * 7.5
+    table["whole"] = rng.random(len(table)) < 0.8
+    table = table.sample(frac=1.0, random_state=3) if shuffle else table.sort_values(["site", "frame"], kind="stable")
+    counts = _site_frame_counts(*(table[c].to_numpy() for c in ("site", "frame", "time_min", "whole")), "test")
+    expected = table.groupby(["site", "frame"]).agg(n=("whole", "size"), whole=("whole", "sum"), time=("time_min", "first"))
+    np.testing.assert_array_equal(counts["site"], expected.index.get_level_values(0))
+    np.testing.assert_array_equal(counts["frame"], expected.index.get_level_values(1))
+    np.testing.assert_array_equal(counts["observations"], expected["n"])
+    np.testing.assert_array_equal(counts["whole"], expected["whole"])
+    np.testing.assert_array_equal(counts["time_min"], expected["time"])

@@ -206,7 +206,12 @@ def _site_frame_counts(site: np.ndarray, frame: np.ndarray, time_min: np.ndarray
                        where: str) -> dict[str, np.ndarray]:
     """Observations (and whole ones) per site and frame of one well, sorted by site and frame."""
     key = site.astype(np.int64) * 2**32 + frame.astype(np.int64)
-    unique, first, inverse = np.unique(key, return_index=True, return_inverse=True)
+    if len(key) and np.all(key[1:] >= key[:-1]):     # rows written site by site, frame by frame: no sort
+        first = np.flatnonzero(np.concatenate([[True], key[1:] != key[:-1]]))
+        unique = key[first]
+        inverse = np.cumsum(np.concatenate([[False], key[1:] != key[:-1]]))
+    else:
+        unique, first, inverse = np.unique(key, return_index=True, return_inverse=True)
     times = time_min[first].astype(np.float64)
     if not np.array_equal(time_min.astype(np.float64), times[inverse], equal_nan=True):
         raise ValueError(f"{where}: a frame has observations with different time_min values; "
