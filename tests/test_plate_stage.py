@@ -180,3 +180,15 @@ def test_site_frame_counts_equal_pandas_for_sorted_and_shuffled_rows(shuffle):
     np.testing.assert_array_equal(counts["observations"], expected["n"])
     np.testing.assert_array_equal(counts["whole"], expected["whole"])
     np.testing.assert_array_equal(counts["time_min"], expected["time"])
+
+
+def test_streamed_fan_in_names_the_file_when_a_cells_table_lacks_a_key_column(tmp_path):
+    # Common practice: a bad input names the file and the fix, never a bare Arrow error.
+    from plateloom.errors import InputError
+    from plateloom.profiles import summarise_observation_files
+
+    cells, _, _, _ = _plate()
+    folders = _write_cells_folders(tmp_path, cells)          # this table has no time_min column
+    with pytest.raises(InputError, match="time_min") as error:
+        summarise_observation_files(folders, pd.DataFrame({"well": [], "site": [], "frame": []}))
+    assert "part-0.parquet" in str(error.value) and "re-run the per-well jobs" in str(error.value)

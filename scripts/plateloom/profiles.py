@@ -13,6 +13,7 @@ import pyarrow.dataset as ds
 import pyarrow.parquet as pq
 
 from .collective import COUNT_COLUMNS
+from .errors import InputError
 from .plate_formats import is_edge_well, parse_well, plate_format
 from .trackstats import growth_rate_per_h
 
@@ -214,8 +215,8 @@ def _site_frame_counts(site: np.ndarray, frame: np.ndarray, time_min: np.ndarray
         unique, first, inverse = np.unique(key, return_index=True, return_inverse=True)
     times = time_min[first].astype(np.float64)
     if not np.array_equal(time_min.astype(np.float64), times[inverse], equal_nan=True):
-        raise ValueError(f"{where}: a frame has observations with different time_min values; "
-                         "rewrite the well's cells table (every observation of a frame has the frame's time)")
+        raise InputError(where, "a frame has observations with different time_min values.",
+                         "re-run the per-well job of this well: every observation of a frame has the frame's time.")
     return {"site": unique >> 32, "frame": unique & (2**32 - 1), "time_min": times,
             "observations": np.bincount(inverse, minlength=len(unique)),
             "whole": np.bincount(inverse, whole, minlength=len(unique)).astype(np.int64)}
@@ -286,6 +287,10 @@ def summarise_observation_files(folders: list[str], excluded_site_frames: pd.Dat
     for path in paths:
         groups.setdefault(os.path.basename(os.path.dirname(path)), []).append(path)
     schema = pq.read_schema(paths[0])
+    missing = [c for c in ("well",) + KEY_COLUMNS_FOR_PROFILES if c not in schema.names]
+    if missing:
+        raise InputError(paths[0], f"the cells table has no column {', '.join(missing)}.",
+                         "re-run the per-well jobs of this plate (delete its results/cells folder, then snakemake).")
     features = observation_features([n for n in schema.names if n not in NOT_READ_FOR_PROFILES])
     excluded: dict[str, np.ndarray] = {}
     for well, rows in excluded_site_frames.groupby(excluded_site_frames["well"].astype(str)):
@@ -295,8 +300,8 @@ def summarise_observation_files(folders: list[str], excluded_site_frames: pd.Dat
                               [groups[name] for name in sorted(groups)]))
     names = [name for part in parts for name in part["names"]]
     if len(set(names)) != len(names):
-        raise ValueError(f"a well's observations are split over several well folders under {folders}; "
-                         "each well must have one folder (well=<name>)")
+        raise InputError(", ".join(folders), "a well's observations are split over several well folders.",
+                         "keep one folder per well (well=<name>): re-run the per-well jobs of this plate.")
     shape = (len(names), len(features))
     median = np.concatenate([part["median"] for part in parts]).reshape(shape)
     if statistic == "mean_log":
