@@ -113,7 +113,7 @@ def test_well_summaries_streamed_from_files_equal_pandas_and_the_in_memory_path(
     # Reference: pandas groupby median (NaN skipped) / exp of the mean log, on the observations kept
     # (not touching the border, not in an excluded site-frame); and the whole-table path.
     from plateloom.plate_stage import build_plate_tables_from_files
-    from plateloom.profiles import observation_counts, read_cells_for_profiles, summarise_observation_files
+    from plateloom.profiles import observation_counts, read_plate_dataset, summarise_observation_files
 
     rng = np.random.default_rng(5)
     cells, tracks, qc, layout = _plate()
@@ -143,7 +143,7 @@ def test_well_summaries_streamed_from_files_equal_pandas_and_the_in_memory_path(
     pd.testing.assert_frame_equal(observation_counts(cells), counts)
     settings = PlateSettings(well_summary=statistic)
     streamed = build_plate_tables_from_files(folders, tracks, qc, layout, "P1", "d1", 96, settings, rules, threads=2)
-    whole = build_plate_tables(read_cells_for_profiles(folders), tracks, qc, layout, "P1", "d1", 96, settings, rules)
+    whole = build_plate_tables(read_plate_dataset(folders), tracks, qc, layout, "P1", "d1", 96, settings, rules)
     pd.testing.assert_frame_equal(streamed.profile, whole.profile, rtol=1e-12)
     pd.testing.assert_frame_equal(streamed.ledger, whole.ledger)
 
@@ -166,14 +166,15 @@ def test_block_medians_equal_numpy_median_with_and_without_nan(n):
 @pytest.mark.parametrize("shuffle", [False, True])
 def test_site_frame_counts_equal_pandas_for_sorted_and_shuffled_rows(shuffle):
     # Reference: pandas groupby size / sum over (site, frame).
-    from plateloom.profiles import _site_frame_counts
+    from plateloom.profiles import _site_frame_counts, _site_frame_key
 
     rng = np.random.default_rng(21)
     table = pd.DataFrame({"site": np.repeat([1, 1, 2, 4], 50), "frame": np.tile(np.repeat(np.arange(5), 10), 4)})
     table["time_min"] = table["frame"] * 7.5
     table["whole"] = rng.random(len(table)) < 0.8
     table = table.sample(frac=1.0, random_state=3) if shuffle else table.sort_values(["site", "frame"], kind="stable")
-    counts = _site_frame_counts(*(table[c].to_numpy() for c in ("site", "frame", "time_min", "whole")), "test")
+    counts = _site_frame_counts(_site_frame_key(table["site"], table["frame"]), table["time_min"].to_numpy(),
+                                table["whole"].to_numpy(), "test")
     expected = table.groupby(["site", "frame"]).agg(n=("whole", "size"), whole=("whole", "sum"), time=("time_min", "first"))
     np.testing.assert_array_equal(counts["site"], expected.index.get_level_values(0))
     np.testing.assert_array_equal(counts["frame"], expected.index.get_level_values(1))

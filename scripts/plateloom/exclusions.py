@@ -57,9 +57,14 @@ def site_frame_exclusions(site_qc: pd.DataFrame, rules: ExclusionRules, plate: s
     return pd.DataFrame(rows, columns=LEDGER_COLUMNS) if rows else empty_ledger()
 
 
+def excluded_site_frames(ledger: pd.DataFrame) -> pd.DataFrame:
+    """The (well, site, frame) of every site-frame the ledger excludes, once each."""
+    return ledger[ledger["level"] == "site_frame"][["well", "site", "frame"]].drop_duplicates()
+
+
 def drop_excluded_site_frames(cells: pd.DataFrame, ledger: pd.DataFrame) -> pd.DataFrame:
     """Observations not in an excluded site-frame of the ledger."""
-    excluded = ledger[ledger["level"] == "site_frame"][["well", "site", "frame"]].drop_duplicates()
+    excluded = excluded_site_frames(ledger)
     if excluded.empty:
         return cells
     keys = pd.MultiIndex.from_arrays([cells["well"].astype(str), cells["site"], cells["frame"]])

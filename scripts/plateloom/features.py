@@ -244,7 +244,7 @@ def measure_objects(labels: np.ndarray, planes: np.ndarray, channels: list[str],
     perimeter, border = perimeters(labels, pixels)
     convex = convex_areas(pixels, border)
     height, width = labels.shape
-    touches = _touches_border(pixels, height, width)
+    touches = _touching_border(labels, n)
     table = {
         "object": np.arange(1, n + 1, dtype=np.int64),
         "area_um2": area * pixel_size_um**2,
@@ -275,9 +275,12 @@ def measure_objects(labels: np.ndarray, planes: np.ndarray, channels: list[str],
     return frame if present.all() else frame[present].reset_index(drop=True)
 
 
-def _touches_border(pixels: ObjectPixels, height: int, width: int) -> np.ndarray:
-    edge = (pixels.row == 0) | (pixels.col == 0) | (pixels.row == height - 1) | (pixels.col == width - 1)
-    return pixels.sums(edge.astype(float)) > 0
+def _touching_border(labels: np.ndarray, count: int) -> np.ndarray:
+    """Per label 1..count: whether any of its pixels lies on the image edge."""
+    edge = np.concatenate([labels[0], labels[-1], labels[:, 0], labels[:, -1]])
+    touches = np.zeros(count + 1, bool)
+    touches[edge[edge <= count]] = True
+    return touches[1:]
 
 
 def _cytoplasm_measures(nuclei: np.ndarray, cells: np.ndarray, planes: np.ndarray, channels: list[str],
@@ -290,10 +293,7 @@ def _cytoplasm_measures(nuclei: np.ndarray, cells: np.ndarray, planes: np.ndarra
     cell_area = np.bincount(label[label <= n], minlength=n + 1)[1:n + 1].astype(float)
     cytoplasm_area = np.bincount(cytoplasm_label, minlength=n + 1)[1:n + 1].astype(float)
     out = {"cell_area_um2": cell_area * pixel_size_um**2, "cytoplasm_area_um2": cytoplasm_area * pixel_size_um**2}
-    edge = np.concatenate([cells[0], cells[-1], cells[:, 0], cells[:, -1]])
-    touches = np.zeros(n + 1, bool)
-    touches[edge[edge <= n]] = True
-    out["touches_border"] = nucleus_table["touches_border"] | touches[1:]
+    out["touches_border"] = nucleus_table["touches_border"] | _touching_border(cells, n)
     for index, channel in enumerate(channels):
         value = planes[index].ravel()[cytoplasm_index].astype(np.float64)
         total = np.bincount(cytoplasm_label, value, minlength=n + 1)[1:n + 1]

@@ -7,8 +7,8 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
-from .exclusions import (ExclusionRules, drop_excluded_site_frames, plate_exclusion, site_frame_exclusions,
-                         well_exclusions)
+from .exclusions import (ExclusionRules, drop_excluded_site_frames, excluded_site_frames, plate_exclusion,
+                         site_frame_exclusions, well_exclusions)
 from .plate_formats import plate_format, well_grid
 from .plate_stats import MAD_TO_SD, mad, plate_qc, robust_z
 from .positional import b_scores, edge_effect, positional_correction
@@ -80,17 +80,17 @@ def percent_of_control(values: np.ndarray, negative: np.ndarray, positive: np.nd
 
 def build_plate_tables(cells: pd.DataFrame, tracks: pd.DataFrame, site_qc: pd.DataFrame, layout: pd.DataFrame,
                        plate: str, batch: str, wells: int, settings: PlateSettings, rules: ExclusionRules,
-                       collective: pd.DataFrame | None = None, threads: int = 1) -> PlateTables:
+                       collective: pd.DataFrame | None = None) -> PlateTables:
     """Everything the plate stage writes, from the per-well tables of one plate held in memory.
 
     ``collective`` (one row per well: plate, well and collective readouts), if given, adds its
-    readouts to the well profiles as features. ``threads`` workers summarise the wells.
-    ``build_plate_tables_from_files`` gives the same tables without holding the cells table.
+    readouts to the well profiles as features. ``build_plate_tables_from_files`` (what the rule
+    runs, on ``threads`` threads) gives the same tables without holding the cells table.
     """
     excluded = site_frame_exclusions(site_qc, rules, plate)
-    summaries = observation_summaries(drop_excluded_site_frames(cells, excluded), settings.well_summary, threads)
+    summaries = observation_summaries(drop_excluded_site_frames(cells, excluded), settings.well_summary)
     return _plate_tables(observation_counts(cells), summaries, excluded, tracks, site_qc, layout, plate, batch, wells,
-                         settings, rules, collective, threads)
+                         settings, rules, collective)
 
 
 def build_plate_tables_from_files(cell_folders: list[str], tracks: pd.DataFrame, site_qc: pd.DataFrame,
@@ -101,16 +101,16 @@ def build_plate_tables_from_files(cell_folders: list[str], tracks: pd.DataFrame,
     features are summarised per well as each folder is read (``summarise_observation_files``) and
     only the observation counts per site and frame are held for the whole plate. Same tables."""
     excluded = site_frame_exclusions(site_qc, rules, plate)
-    site_frames = excluded.loc[excluded["level"] == "site_frame", ["well", "site", "frame"]]
-    summaries, counts = summarise_observation_files(cell_folders, site_frames, settings.well_summary, threads)
+    summaries, counts = summarise_observation_files(cell_folders, excluded_site_frames(excluded), settings.well_summary,
+                                                    threads)
     return _plate_tables(counts, summaries, excluded, tracks, site_qc, layout, plate, batch, wells, settings, rules,
-                         collective, threads)
+                         collective)
 
 
 def _plate_tables(counts: pd.DataFrame, summaries: pd.DataFrame, site_frame_ledger: pd.DataFrame,
                   tracks: pd.DataFrame, site_qc: pd.DataFrame, layout: pd.DataFrame, plate: str, batch: str,
-                  wells: int, settings: PlateSettings, rules: ExclusionRules, collective: pd.DataFrame | None,
-                  threads: int) -> PlateTables:
+                  wells: int, settings: PlateSettings, rules: ExclusionRules,
+                  collective: pd.DataFrame | None) -> PlateTables:
     """The plate tables from the observation counts (all observations), the per-well feature
     summaries of the observations kept, and the site-frame exclusions."""
     fmt = plate_format(wells)
@@ -118,7 +118,7 @@ def _plate_tables(counts: pd.DataFrame, summaries: pd.DataFrame, site_frame_ledg
     ledger = [site_frame_ledger]
     warnings += unusable_frame_notes(site_qc)
     kept_counts = drop_excluded_site_frames(counts, ledger[0])
-    profile = summarise_wells(kept_counts, summaries, tracks, layout, plate, batch, wells, settings.well_summary, threads)
+    profile = summarise_wells(kept_counts, summaries, tracks, layout, plate, batch, wells, settings.well_summary)
     if collective is not None and len(collective.columns.difference(["plate", "well"])):
         readouts = collective.drop(columns=["plate"], errors="ignore").assign(well=lambda t: t["well"].astype(str))
         profile = profile.merge(readouts, on="well", how="left", validate="one_to_one")

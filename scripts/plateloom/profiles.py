@@ -85,43 +85,6 @@ def read_plate_dataset(folders: list[str], columns: list[str] | None = None) -> 
     return ds.dataset(_well_files(folders), format="parquet").to_table(columns=columns).to_pandas()
 
 
-def read_cells_for_profiles(folders: list[str], threads: int = 1) -> pd.DataFrame:
-    """The cells tables of a plate with only the columns the plate stage needs (keys and features).
-
-    Positions and object/track ids are not read. Each file is read whole by one of ``threads``
-    workers (one file per worker at a time: Arrow's own threads cost more than they give on
-    files of one well) straight into arrays allocated once for the whole plate, so the peak
-    memory stays near the size of the columns read; the well column becomes a pandas
-    Categorical. The row order is the sorted file order whatever the number of threads.
-    """
-    paths = _well_files(folders)
-    metadata = [pq.read_metadata(path) for path in paths]
-    schema = pq.read_schema(paths[0])
-    columns = [name for name in schema.names if name not in NOT_READ_FOR_PROFILES and name != "well"]
-    offsets = np.concatenate([[0], np.cumsum([m.num_rows for m in metadata])])
-    arrays = {name: np.empty(offsets[-1], dtype=schema.field(name).type.to_pandas_dtype()) for name in columns}
-
-    def read_into(position: int) -> tuple[list[str], np.ndarray]:
-        table = pq.ParquetFile(paths[position], read_dictionary=["well"]).read(columns=columns + ["well"],
-                                                                                use_threads=False)
-        rows = slice(offsets[position], offsets[position + 1])
-        for name in columns:
-            arrays[name][rows] = table.column(name).to_numpy()
-        well = table.column("well").combine_chunks()
-        return [str(w) for w in well.dictionary.to_pylist()], well.indices.to_numpy()
-
-    with ThreadPoolExecutor(max(1, threads)) as pool:
-        wells = list(pool.map(read_into, range(len(paths))))
-    well_codes = np.empty(offsets[-1], np.int32)
-    well_codes_by_name: dict[str, int] = {}
-    for position, (names, indices) in enumerate(wells):
-        lookup = np.array([well_codes_by_name.setdefault(name, len(well_codes_by_name)) for name in names], np.int32)
-        well_codes[offsets[position]:offsets[position + 1]] = lookup[indices] if len(lookup) else 0
-    cells = pd.DataFrame(arrays, copy=False)
-    cells.insert(0, "well", pd.Categorical.from_codes(well_codes, categories=list(well_codes_by_name)))
-    return cells
-
-
 def _well_blocks(codes: np.ndarray, n_wells: int) -> tuple[np.ndarray, np.ndarray | None]:
     """Start of each well's rows (length n_wells + 1) and the row order that makes them contiguous
     (None when the rows already come well by well, as the per-well files are read)."""
@@ -161,11 +124,11 @@ def _check_statistic(statistic: str) -> None:
 
 
 def _column_summaries(cells: pd.DataFrame, keep: np.ndarray, codes: np.ndarray, names: list[str],
-                      features: list[str], statistic: str, threads: int = 1) -> pd.DataFrame:
+                      features: list[str], statistic: str) -> pd.DataFrame:
     """Per-well summary of every feature over the kept rows, well by well on contiguous blocks of rows.
 
     "median" is the median; "mean_log" is exp(mean(log)) for strictly positive features and the
-    median for the others. NaN values are ignored. Memory: one well's block per thread at a time.
+    median for the others. NaN values are ignored. Memory: one well's block at a time.
     """
     _check_statistic(statistic)
     bounds, order = _well_blocks(codes, len(names))
@@ -183,30 +146,30 @@ def _column_summaries(cells: pd.DataFrame, keep: np.ndarray, codes: np.ndarray, 
         return _block_summaries(np.stack([c[rows][kept] for c in columns]) if features
                                 else np.empty((0, int(kept.sum()))), use_log)
 
-    # numpy's partition releases the GIL, so wells are summarised on ``threads`` threads
-    with ThreadPoolExecutor(max(1, threads)) as pool:
-        summaries = list(pool.map(summarise, range(len(names))))
-    result = np.array(summaries).reshape(len(names), len(features))
+    result = np.array([summarise(well) for well in range(len(names))]).reshape(len(names), len(features))
     return pd.DataFrame(result, columns=features, index=pd.Index(names, name="well"))
 
 
-def observation_summaries(cells: pd.DataFrame, statistic: str = "median", threads: int = 1) -> pd.DataFrame:
+def observation_summaries(cells: pd.DataFrame, statistic: str = "median") -> pd.DataFrame:
     """Per well (index ``well``): the summary of every observation feature of a cells table over the
     observations not touching the image border (see ``summarise_wells`` for ``statistic``)."""
     codes, uniques = pd.factorize(cells["well"], sort=True)
     names = [str(name) for name in np.asarray(uniques, dtype=object)]
     whole = ~cells["touches_border"].to_numpy(bool)
-    return _column_summaries(cells, whole, codes, names, observation_features(list(cells.columns)), statistic, threads)
+    return _column_summaries(cells, whole, codes, names, observation_features(list(cells.columns)), statistic)
+
+
+def _site_frame_key(site: np.ndarray, frame: np.ndarray) -> np.ndarray:
+    """One int64 per (site, frame): site in the high 32 bits, frame in the low ones."""
+    return np.asarray(site, np.int64) * 2**32 + np.asarray(frame, np.int64)
 
 
 # Columns of the cells table that the plate stage needs besides the features.
 KEY_COLUMNS_FOR_PROFILES = ("site", "frame", "time_min", "touches_border")
 
 
-def _site_frame_counts(site: np.ndarray, frame: np.ndarray, time_min: np.ndarray, whole: np.ndarray,
-                       where: str) -> dict[str, np.ndarray]:
-    """Observations (and whole ones) per site and frame of one well, sorted by site and frame."""
-    key = site.astype(np.int64) * 2**32 + frame.astype(np.int64)
+def _site_frame_counts(key: np.ndarray, time_min: np.ndarray, whole: np.ndarray, where: str) -> dict[str, np.ndarray]:
+    """Observations (and whole ones) per site and frame (``_site_frame_key``) of one well, sorted by site and frame."""
     if len(key) and np.all(key[1:] >= key[:-1]):     # rows written site by site, frame by frame: no sort
         first = np.flatnonzero(np.concatenate([[True], key[1:] != key[:-1]]))
         unique = key[first]
@@ -246,13 +209,14 @@ def _summarise_well_folder(paths: list[str], features: list[str], excluded: dict
     median, mean_log = np.full((len(names), len(features)), np.nan), np.full((len(names), len(features)), np.nan)
     lowest = np.full((len(names), len(features)), np.inf)
     whole = ~keys["touches_border"].astype(bool)
+    site_frame = _site_frame_key(keys["site"], keys["frame"])
     counts = []
     for code, name in enumerate(names):
         rows = codes == code
-        counts.append(_site_frame_counts(keys["site"][rows], keys["frame"][rows], keys["time_min"][rows], whole[rows],
+        counts.append(_site_frame_counts(site_frame[rows], keys["time_min"][rows], whole[rows],
                                          f"well {name} ({os.path.dirname(paths[0])})"))
         if name in excluded:
-            rows &= ~np.isin(keys["site"].astype(np.int64) * 2**32 + keys["frame"].astype(np.int64), excluded[name])
+            rows &= ~np.isin(site_frame, excluded[name])
         if with_log:   # which features are strictly positive is judged, as for a whole table, on the rows not excluded
             with np.errstate(all="ignore"):
                 lowest[code] = [np.where(np.isfinite(c[rows]), c[rows], np.inf).min(initial=np.inf) for c in columns]
@@ -294,7 +258,7 @@ def summarise_observation_files(folders: list[str], excluded_site_frames: pd.Dat
     features = observation_features([n for n in schema.names if n not in NOT_READ_FOR_PROFILES])
     excluded: dict[str, np.ndarray] = {}
     for well, rows in excluded_site_frames.groupby(excluded_site_frames["well"].astype(str)):
-        excluded[well] = rows["site"].to_numpy(np.int64) * 2**32 + rows["frame"].to_numpy(np.int64)
+        excluded[well] = _site_frame_key(rows["site"], rows["frame"])
     with ThreadPoolExecutor(max(1, threads)) as pool:
         parts = list(pool.map(lambda group: _summarise_well_folder(group, features, excluded, statistic == "mean_log"),
                               [groups[name] for name in sorted(groups)]))
@@ -303,11 +267,11 @@ def summarise_observation_files(folders: list[str], excluded_site_frames: pd.Dat
         raise InputError(", ".join(folders), "a well's observations are split over several well folders.",
                          "keep one folder per well (well=<name>): re-run the per-well jobs of this plate.")
     shape = (len(names), len(features))
-    median = np.concatenate([part["median"] for part in parts]).reshape(shape)
+    summary = np.concatenate([part["median"] for part in parts]).reshape(shape)
     if statistic == "mean_log":
         lowest = np.concatenate([part["lowest"] for part in parts]).reshape(shape).min(axis=0, initial=np.inf)
-        median = np.where(lowest > 0, np.concatenate([part["mean_log"] for part in parts]).reshape(shape), median)
-    summaries = pd.DataFrame(median, columns=features, index=pd.Index(names, name="well"))
+        summary = np.where(lowest > 0, np.concatenate([part["mean_log"] for part in parts]).reshape(shape), summary)
+    summaries = pd.DataFrame(summary, columns=features, index=pd.Index(names, name="well"))
     per_well = [(name, count) for part in parts for name, count in zip(part["names"], part["counts"])]
     counts = pd.DataFrame({c: np.concatenate([count[c] for _, count in per_well]) if per_well else np.zeros(0)
                            for c in COUNT_COLUMNS_OF_OBSERVATIONS[1:]})
@@ -316,7 +280,7 @@ def summarise_observation_files(folders: list[str], excluded_site_frames: pd.Dat
 
 
 def summarise_wells(counts: pd.DataFrame, summaries: pd.DataFrame, tracks: pd.DataFrame, layout: pd.DataFrame,
-                    plate: str, batch: str, wells: int, statistic: str = "median", threads: int = 1) -> pd.DataFrame:
+                    plate: str, batch: str, wells: int, statistic: str = "median") -> pd.DataFrame:
     """One row per analysed well: keys, layout, counts and the summary of every feature.
 
     ``counts`` is the ``observation_counts`` of the observations used and ``summaries`` their
@@ -326,8 +290,7 @@ def summarise_wells(counts: pd.DataFrame, summaries: pd.DataFrame, tracks: pd.Da
     observations not touching the image border; speed and straightness over tracks with
     enough frames (see tracking.min_track_frames). ``statistic`` is "median" or "mean_log"
     (exp of the mean of natural logs, for skewed positive features; features with
-    non-positive values fall back to the median); ``threads`` wells are summarised at a time
-    (the result does not depend on it).
+    non-positive values fall back to the median).
     """
     fmt = plate_format(wells)
     codes, uniques = pd.factorize(counts["well"], sort=True)

@@ -384,12 +384,19 @@ def _seeded_bodies(seeds: np.ndarray, smooth: np.ndarray, threshold_method: str)
     return watershed(-smooth, seeds, mask=foreground).astype(np.int32), threshold
 
 
-def _bin2(image: np.ndarray, reduce: Callable) -> np.ndarray:
-    """2x2 blocks of an image (odd edges repeated) combined by ``reduce`` (e.g. np.add, np.maximum)."""
+def _block_reduce(image: np.ndarray, size: int, reduce: Callable) -> np.ndarray:
+    """size x size blocks of an image (edges repeated to whole blocks) combined by the binary ufunc
+    ``reduce`` (np.add, np.maximum, np.logical_or): one pass over strided views, no reshaped copy."""
     height, width = image.shape
-    if height % 2 or width % 2:
-        image = np.pad(image, ((0, height % 2), (0, width % 2)), mode="edge")
-    return reduce(reduce(image[0::2, 0::2], image[1::2, 0::2]), reduce(image[0::2, 1::2], image[1::2, 1::2]))
+    if height % size or width % size:
+        image = np.pad(image, ((0, -height % size), (0, -width % size)), mode="edge")
+    out = image[0::size, 0::size].copy()
+    for dy in range(size):
+        for dx in range(size):
+            if dy or dx:
+                reduce(out, image[dy::size, dx::size], out=out)
+    return out
+
 
 
 def _upsample2(image: np.ndarray) -> np.ndarray:
@@ -413,10 +420,10 @@ def _upsample2(image: np.ndarray) -> np.ndarray:
 def _grow_cell_bodies_binned(nuclei: np.ndarray, body_image: np.ndarray, sigma_px: float,
                              threshold_method: str) -> np.ndarray:
     height, width = nuclei.shape
-    binned = _bin2(body_image.astype(np.float32, copy=False), np.add) * np.float32(0.25)
+    binned = _block_reduce(body_image.astype(np.float32, copy=False), 2, np.add) * np.float32(0.25)
     # a 2-pixel box already blurs by a variance of 1/3 px^2; the Gaussian adds the rest, in binned pixels
     smooth = smooth_image(binned, np.sqrt(sigma_px**2 - 1 / 3) / 2)
-    bodies, threshold = _seeded_bodies(_bin2(nuclei, np.maximum), smooth, threshold_method)
+    bodies, threshold = _seeded_bodies(_block_reduce(nuclei, 2, np.maximum), smooth, threshold_method)
     if np.isnan(threshold):            # no foreground in the body channel: each cell is its nucleus
         return nuclei.astype(np.int32, copy=True)
     rows, cols = bodies.shape
@@ -458,14 +465,7 @@ def background_levels(planes: np.ndarray, labels: np.ndarray, margin_px: int = 3
     almost full of cells falls back to the 5th percentile.
     """
     stride = BACKGROUND_STRIDE
-    height, width = labels.shape
-    blocks_y, blocks_x = -(-height // stride), -(-width // stride)
-    objects = labels > 0
-    occupied = np.zeros((blocks_y, blocks_x), bool)
-    for dy in range(stride):          # OR of the stride x stride strided views: one pass, no reshape copy
-        for dx in range(stride):
-            view = objects[dy::stride, dx::stride]
-            occupied[:view.shape[0], :view.shape[1]] |= view
+    occupied = _block_reduce(labels > 0, stride, np.logical_or)
     reach = -(-margin_px // stride)
     near = ndimage.maximum_filter(occupied, size=2 * reach + 1) if occupied.any() else occupied
     background = ~near
