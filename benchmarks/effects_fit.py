@@ -26,8 +26,7 @@ from concurrent.futures import ProcessPoolExecutor
 
 import numpy as np  # noqa: E402
 import pandas as pd  # noqa: E402
-
-from plateloom.effects import fit_feature_effects  # noqa: E402
+from plateloom.screen.effects import fit_feature_effects  # noqa: E402
 
 PLATES, WELLS, BATCHES, TREATMENTS = 40, 384, 5, 40
 

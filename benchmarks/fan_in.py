@@ -23,16 +23,15 @@ from pathlib import Path
 
 import numpy as np
 import pandas as pd
-
-from plateloom.plate_formats import plate_format, well_name
-from plateloom.tables import write_parquet
+from plateloom.io.tables import write_parquet
+from plateloom.setup.plate_formats import plate_format, well_name
 
 WELLS = 384
 
 PARQUET_CHILD = """
 import json, sys, time
 import numpy as np, pandas as pd
-from plateloom.profiles import summarise_observation_files, summarise_wells
+from plateloom.plate.summaries import summarise_observation_files, summarise_wells
 
 def rss(key):
     with open('/proc/self/status') as status:

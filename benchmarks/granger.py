@@ -16,9 +16,8 @@ import time
 import warnings
 
 import numpy as np
+from plateloom.well.collective import granger_f_test, granger_tests
 from statsmodels.tsa.stattools import grangercausalitytests
-
-from plateloom.collective import granger_f_test, granger_tests
 
 
 def main() -> None:

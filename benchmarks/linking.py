@@ -12,8 +12,7 @@ from __future__ import annotations
 import time
 
 import numpy as np
-
-from plateloom.track import link_frames
+from plateloom.well.tracking import link_frames
 
 
 def time_per_frame(n: int, repeats: int, rng: np.random.Generator) -> tuple[float, float]:

@@ -24,14 +24,24 @@ from pathlib import Path
 
 import numpy as np
 import tifffile
+from plateloom.demo.scenario import QUANTITIES, load_scenario
+from plateloom.demo.simulate import simulate_site
+from plateloom.io.images import index_plate_images
+from plateloom.well.features import (
+    ObjectPixels,
+    convex_areas,
+    glcm_measures,
+    perimeters,
+)
+from plateloom.well.segment import (
+    background_levels,
+    grow_cell_bodies,
+    segment_smoothed,
+    smooth_image,
+)
+from plateloom.well.stage import WellSettings, analyse_well, measure_frame
 from scipy import ndimage
 from skimage.filters import threshold_otsu
-
-from plateloom.demo import QUANTITIES, load_scenario, simulate_site
-from plateloom.features import ObjectPixels, convex_areas, glcm_measures, perimeters
-from plateloom.images import index_plate_images
-from plateloom.segment import background_levels, grow_cell_bodies, segment_smoothed, smooth_image
-from plateloom.wellwork import WellSettings, analyse_well, measure_frame
 
 ROOT = Path(__file__).resolve().parents[1]
 

@@ -18,17 +18,17 @@ from pathlib import Path
 
 import numpy as np
 import tifffile
+from plateloom.demo.scenario import QUANTITIES, load_scenario
+from plateloom.demo.simulate import simulate_site
 from scipy import ndimage
-
-from plateloom.demo import QUANTITIES, load_scenario, simulate_site
 
 ROOT = Path(__file__).resolve().parents[1]
 DISTINCT_FRAMES = 4
 
 CHILD = """
 import sys
-from plateloom.images import index_plate_images
-from plateloom.wellwork import WellSettings, analyse_well
+from plateloom.io.images import index_plate_images
+from plateloom.well.stage import WellSettings, analyse_well
 
 def rss(key):
     with open('/proc/self/status') as status:

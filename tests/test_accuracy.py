@@ -8,14 +8,17 @@ Segmentation: average precision over IoU thresholds 0.5-0.95 as in Caicedo et al
 import numpy as np
 import pytest
 import tifffile
-
-from plateloom.accuracy import average_precision, iou_matrix, pooled_average_precision
-from plateloom.demo import QUANTITIES, load_scenario, simulate_site, vignetting
-from plateloom.images import index_plate_images
-from plateloom.segment import segment_nuclei
-from plateloom.wellwork import WellSettings, analyse_well
-
 from conftest import ROOT
+from plateloom.demo.scenario import QUANTITIES, load_scenario
+from plateloom.demo.simulate import simulate_site, vignetting
+from plateloom.io.images import index_plate_images
+from plateloom.well.segment import segment_nuclei
+from plateloom.well.stage import WellSettings, analyse_well
+from segmentation_accuracy import (
+    average_precision,
+    iou_matrix,
+    pooled_average_precision,
+)
 
 SCENARIO = str(ROOT / "resources/demo/scenario.yaml")
 

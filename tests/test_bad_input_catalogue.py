@@ -11,15 +11,13 @@ import numpy as np
 import pandas as pd
 import pytest
 import tifffile
-
-from plateloom.errors import InputError
-from plateloom.exclusions import ExclusionRules
-from plateloom.images import index_plate_images, stream_site, unmatched_note
-from plateloom.plate_stage import PlateSettings, build_plate_tables
-from plateloom.screen_stage import build_model_wells
-from plateloom.wellwork import WellSettings, analyse_well
-
 from conftest import run_snakemake
+from plateloom.errors import InputError
+from plateloom.io.images import index_plate_images, stream_site, unmatched_note
+from plateloom.plate.exclusions import ExclusionRules
+from plateloom.plate.stage import PlateSettings, build_plate_tables
+from plateloom.screen.model_wells import build_model_wells
+from plateloom.well.stage import WellSettings, analyse_well
 from test_plate_stage import _plate
 
 TEMPLATE = "{well}_s{site}_{channel}.tif"
@@ -101,7 +99,7 @@ def test_nan_pixels_flag_their_frame_and_the_rest_of_the_well_is_analysed(tmp_pa
     assert flagged["frame"].tolist() == [1]
     assert flagged["frame_problem"].iloc[0].startswith("well A01, site 1, frame 1: ")
     assert "image holds NaN or infinite pixels" in flagged["frame_problem"].iloc[0]
-    from plateloom.exclusions import site_frame_exclusions
+    from plateloom.plate.exclusions import site_frame_exclusions
     ledger = site_frame_exclusions(qc.assign(well="A01"), ExclusionRules(), "P1")
     assert ledger[["well", "frame", "rule"]].values.tolist() == [["A01", 1, "unusable_frame"]]
 

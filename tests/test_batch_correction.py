@@ -3,8 +3,13 @@
 import numpy as np
 import pandas as pd
 import pytest
-
-from plateloom.batch_correction import align_to_controls, combat, correct_batches, principal_components, variance_shares
+from plateloom.screen.batch_correction import (
+    align_to_controls,
+    combat,
+    correct_batches,
+    principal_components,
+    variance_shares,
+)
 
 pycombat_module = pytest.importorskip("combat.pycombat")
 

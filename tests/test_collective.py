@@ -4,13 +4,25 @@ import numpy as np
 import pandas as pd
 import pytest
 import statsmodels.api as sm
+from plateloom.well.collective import (
+    CollectiveSettings,
+    analytic_phases,
+    choose_granger_lag,
+    corrected_order_squared,
+    delaunay_edges,
+    detrend_rows,
+    granger_f_test,
+    granger_tests,
+    knox_test,
+    kuramoto_order,
+    pair_correlations,
+    pairs_at_distance_two,
+    reporter_events,
+    track_neighbour_pairs,
+    well_collective_readouts,
+)
+from plateloom.well.track_stats import fill_inner_gaps
 from statsmodels.tsa.stattools import grangercausalitytests
-
-from plateloom.trackstats import fill_inner_gaps
-from plateloom.collective import (CollectiveSettings, analytic_phases, corrected_order_squared, choose_granger_lag, delaunay_edges,
-                                  detrend_rows, granger_f_test, granger_tests, knox_test,
-                                  kuramoto_order, pair_correlations, pairs_at_distance_two, reporter_events,
-                                  track_neighbour_pairs, well_collective_readouts)
 
 
 def _coupled_pairs(rng, n_pairs, n, strength):
@@ -185,7 +197,7 @@ def test_planted_neighbour_coupling_raises_coupled_fraction_and_correlation():
 
 
 def test_collective_table_has_no_readouts_without_a_reporter_or_when_switched_off():
-    from plateloom.wellwork import WellSettings, collective_table
+    from plateloom.well.stage import WellSettings, collective_table
     cells = _lattice_well(0.5, np.random.default_rng(0))
     plain = WellSettings(("dna", "rep"), "dna", 0.8, 5.0, 1.0, 30.0, 7.0, 8.0, 3)
     assert collective_table(cells, plain, CollectiveSettings(), "A01").columns.empty

@@ -4,12 +4,10 @@ found with an interval excluding 0, the no-effect compound's intervals cover 0, 
 import pandas as pd
 import pytest
 import yaml
-from scipy import stats
-
-from plateloom.demo import load_scenario, planted_collective
-from plateloom.screen import load_layout
-
 from conftest import copy_workflow, run_snakemake
+from plateloom.demo.scenario import load_scenario, planted_collective
+from plateloom.setup.screen_sheet import load_layout
+from scipy import stats
 
 KEPT = ("vehicle", "TW-104", "TW-105", "TW-106")
 

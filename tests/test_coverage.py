@@ -11,8 +11,11 @@ import numpy as np
 import pandas as pd
 import pytest
 import statsmodels.formula.api as smf
-
-from plateloom.design_check import VarianceComponents, simulate_design, simulate_values
+from plateloom.screen.design_check import (
+    VarianceComponents,
+    simulate_design,
+    simulate_values,
+)
 
 EFFECT = 0.2
 COMPONENTS = VarianceComponents(batch=0.04, plate=0.01, residual=0.01)

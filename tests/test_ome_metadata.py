@@ -4,9 +4,8 @@ increment and channel names are read when present; config overrides them."""
 import numpy as np
 import pytest
 import tifffile
-
 from plateloom.errors import InputError
-from plateloom.images import image_scale, read_ome_metadata
+from plateloom.io.images import image_scale, read_ome_metadata
 
 
 def _ome_file(path, **metadata):

@@ -6,12 +6,11 @@ import numpy as np
 import pandas as pd
 import pytest
 import tifffile
-
-from plateloom.demo import QUANTITIES, load_scenario, simulate_site
-from plateloom.images import index_plate_images, read_ome_metadata
-from plateloom.wellwork import WellSettings, analyse_well
-
 from conftest import ROOT
+from plateloom.demo.scenario import QUANTITIES, load_scenario
+from plateloom.demo.simulate import simulate_site
+from plateloom.io.images import index_plate_images, read_ome_metadata
+from plateloom.well.stage import WellSettings, analyse_well
 
 ome_writer = pytest.importorskip("ome_zarr.writer")
 zarr = pytest.importorskip("zarr")

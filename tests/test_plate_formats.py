@@ -1,8 +1,13 @@
 """Plate geometry against ANSI/SLAS 4-2004 and well naming."""
 
 import pytest
-
-from plateloom.plate_formats import all_wells, canonical_well, is_edge_well, parse_well, plate_format
+from plateloom.setup.plate_formats import (
+    all_wells,
+    canonical_well,
+    is_edge_well,
+    parse_well,
+    plate_format,
+)
 
 
 @pytest.mark.parametrize("wells, rows, columns, pitch", [(96, 8, 12, 9.0), (384, 16, 24, 4.5), (1536, 32, 48, 2.25)])

@@ -3,10 +3,9 @@
 import numpy as np
 import pandas as pd
 import pytest
-
-from plateloom.exclusions import ExclusionRules
-from plateloom.plate_formats import all_wells, is_edge_well, plate_format
-from plateloom.plate_stage import PlateSettings, build_plate_tables
+from plateloom.plate.exclusions import ExclusionRules
+from plateloom.plate.stage import PlateSettings, build_plate_tables
+from plateloom.setup.plate_formats import all_wells, is_edge_well, plate_format
 
 FMT = plate_format(96)
 
@@ -100,7 +99,7 @@ def test_collective_readouts_join_the_profile_as_features_and_their_counts_do_no
 
 def _write_cells_folders(tmp_path, cells: pd.DataFrame) -> list[str]:
     """The cells table as the per-well stage writes it: one Parquet file per well folder."""
-    from plateloom.tables import write_parquet
+    from plateloom.io.tables import write_parquet
 
     folder = tmp_path / "cells" / "plate=P1" / "chunk=000"
     for well, rows in cells.groupby("well"):
@@ -112,8 +111,12 @@ def _write_cells_folders(tmp_path, cells: pd.DataFrame) -> list[str]:
 def test_well_summaries_streamed_from_files_equal_pandas_and_the_in_memory_path(tmp_path, statistic):
     # Reference: pandas groupby median (NaN skipped) / exp of the mean log, on the observations kept
     # (not touching the border, not in an excluded site-frame); and the whole-table path.
-    from plateloom.plate_stage import build_plate_tables_from_files
-    from plateloom.profiles import observation_counts, read_plate_dataset, summarise_observation_files
+    from plateloom.plate.stage import build_plate_tables_from_files
+    from plateloom.plate.summaries import (
+        observation_counts,
+        read_plate_dataset,
+        summarise_observation_files,
+    )
 
     rng = np.random.default_rng(5)
     cells, tracks, qc, layout = _plate()
@@ -151,7 +154,7 @@ def test_well_summaries_streamed_from_files_equal_pandas_and_the_in_memory_path(
 @pytest.mark.parametrize("n", [1, 2, 7, 8, 1001])
 def test_block_medians_equal_numpy_median_with_and_without_nan(n):
     # Reference: numpy.median / numpy.nanmedian, row by row (odd and even counts, NaN rows, all-NaN row).
-    from plateloom.profiles import _block_summaries
+    from plateloom.plate.summaries import _block_summaries
 
     rng = np.random.default_rng(n)
     block = rng.normal(size=(5, n))
@@ -166,7 +169,7 @@ def test_block_medians_equal_numpy_median_with_and_without_nan(n):
 @pytest.mark.parametrize("shuffle", [False, True])
 def test_site_frame_counts_equal_pandas_for_sorted_and_shuffled_rows(shuffle):
     # Reference: pandas groupby size / sum over (site, frame).
-    from plateloom.profiles import _site_frame_counts, _site_frame_key
+    from plateloom.plate.summaries import _site_frame_counts, _site_frame_key
 
     rng = np.random.default_rng(21)
     table = pd.DataFrame({"site": np.repeat([1, 1, 2, 4], 50), "frame": np.tile(np.repeat(np.arange(5), 10), 4)})
@@ -186,7 +189,7 @@ def test_site_frame_counts_equal_pandas_for_sorted_and_shuffled_rows(shuffle):
 def test_streamed_fan_in_names_the_file_when_a_cells_table_lacks_a_key_column(tmp_path):
     # Common practice: a bad input names the file and the fix, never a bare Arrow error.
     from plateloom.errors import InputError
-    from plateloom.profiles import summarise_observation_files
+    from plateloom.plate.summaries import summarise_observation_files
 
     cells, _, _, _ = _plate()
     folders = _write_cells_folders(tmp_path, cells)          # this table has no time_min column

@@ -3,10 +3,17 @@
 import numpy as np
 import pandas as pd
 import pytest
-
-from plateloom.exclusions import ExclusionRules, well_exclusions
-from plateloom.plate_stats import (MAD_TO_SD, robust_ssmd, robust_z, robust_z_prime, signal_window, ssmd, z_prime,
-                                   z_prime_verdict)
+from plateloom.plate.exclusions import ExclusionRules, well_exclusions
+from plateloom.plate.qc import (
+    MAD_TO_SD,
+    robust_ssmd,
+    robust_z,
+    robust_z_prime,
+    signal_window,
+    ssmd,
+    z_prime,
+    z_prime_verdict,
+)
 
 
 def test_z_prime_worked_example():

@@ -3,8 +3,12 @@
 import numpy as np
 import pandas as pd
 import pytest
-
-from plateloom.positional import b_scores, edge_effect, median_polish, positional_correction
+from plateloom.plate.positional import (
+    b_scores,
+    edge_effect,
+    median_polish,
+    positional_correction,
+)
 
 
 def test_median_polish_recovers_planted_row_and_column_effects_exactly():

@@ -4,13 +4,11 @@ import numpy as np
 import pandas as pd
 from hypothesis import given, settings
 from hypothesis import strategies as st
-
-from plateloom.effects import bh_qvalues, screen_effects
-from plateloom.plate_stage import PlateSettings, build_plate_tables
-from plateloom.plate_stats import robust_z, z_prime
-from plateloom.exclusions import ExclusionRules
-from plateloom.screen_stage import build_model_wells, treatment_catalogue
-
+from plateloom.plate.exclusions import ExclusionRules
+from plateloom.plate.qc import robust_z, z_prime
+from plateloom.plate.stage import PlateSettings, build_plate_tables
+from plateloom.screen.effects import bh_qvalues, screen_effects
+from plateloom.screen.model_wells import build_model_wells, treatment_catalogue
 from test_plate_stage import _plate
 from test_screen_stage import _wells
 

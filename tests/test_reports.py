@@ -8,12 +8,10 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pytest
-
-from plateloom.exclusions import ExclusionRules
-from plateloom.plate_formats import plate_format
-from plateloom.plate_report import build_plate_report
-from plateloom.plate_stage import PlateSettings, build_plate_tables
-
+from plateloom.plate.exclusions import ExclusionRules
+from plateloom.plate.stage import PlateSettings, build_plate_tables
+from plateloom.report.plate_page import build_plate_report
+from plateloom.setup.plate_formats import plate_format
 from test_plate_stage import _plate
 
 HOSTILE = '<b>x</b> "quoted", comma & Ölsäure'
@@ -70,10 +68,9 @@ def test_plate_report_renders_offline_in_headless_chromium(tmp_path):
 
 
 def test_screen_report_escapes_hostile_treatment_names(tmp_path):
-    from plateloom.effects import screen_effects
-    from plateloom.screen_report import build_screen_report
-    from plateloom.screen_stage import build_model_wells
-
+    from plateloom.report.screen_page import build_screen_report
+    from plateloom.screen.effects import screen_effects
+    from plateloom.screen.model_wells import build_model_wells
     from test_screen_stage import _wells
 
     wells = _wells(seed=2)

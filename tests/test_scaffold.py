@@ -14,13 +14,12 @@ import pandas as pd
 import pytest
 import tifffile
 import yaml
-
-from plateloom.demo import QUANTITIES, load_scenario, simulate_site
-from plateloom.errors import InputError
-from plateloom.preflight import check_screen, load_config
-from plateloom.scaffold import infer_template, survey_folder, write_scaffold
-
 from conftest import ROOT, copy_workflow, run_snakemake
+from plateloom.demo.scenario import QUANTITIES, load_scenario
+from plateloom.demo.simulate import simulate_site
+from plateloom.errors import InputError
+from plateloom.setup.check import check_screen, load_config
+from plateloom.setup.scaffold import infer_template, survey_folder, write_scaffold
 
 WELLS = [f"{row}{col:02d}" for row in "BC" for col in range(2, 8)]       # 12 wells
 DAY = 86400.0
@@ -206,7 +205,7 @@ def test_survey_describes_a_folder_without_writing(tmp_path):
 
 def test_config_reference_is_current_and_lists_every_key():
     # config/REFERENCE.md is generated from the schema; regenerate with `plateloom config-reference`.
-    from plateloom.config_reference import config_reference
+    from plateloom.setup.config import config_reference
 
     text = config_reference()
     assert (ROOT / "config" / "REFERENCE.md").read_text(encoding="utf-8") == text

@@ -4,12 +4,19 @@ dose-response fits against a reference fitter and planted curves."""
 import numpy as np
 import pandas as pd
 import pytest
+from plateloom.screen.design_check import (
+    VarianceComponents,
+    extend_design,
+    simulate_design,
+)
+from plateloom.screen.dose_response import dose_response_table, fit_hill, hill_curve
+from plateloom.screen.effects import screen_effects
+from plateloom.screen.model_wells import (
+    build_model_wells,
+    feature_chunks,
+    treatment_catalogue,
+)
 from scipy import optimize
-
-from plateloom.design_check import VarianceComponents, extend_design, simulate_design
-from plateloom.dose_response import dose_response_table, fit_hill, hill_curve
-from plateloom.effects import screen_effects
-from plateloom.screen_stage import build_model_wells, feature_chunks, treatment_catalogue
 
 
 def _wells(seed=0, batches=3, plates=2, one_batch_condition=False):
@@ -201,7 +208,7 @@ def test_design_check_command_explains_a_missing_run(tmp_path, capsys):
 
 
 def test_a_fit_that_fails_to_converge_is_marked_and_falls_back(monkeypatch):
-    import plateloom.effects as effects
+    import plateloom.screen.effects as effects
 
     def refuse(*args, **kwargs):
         raise RuntimeError("mixed model did not converge: lbfgs: not converged")

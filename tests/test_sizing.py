@@ -1,6 +1,6 @@
 """Job sizes scale with the data: memory with the frame size, run time with the pixels read."""
 
-from plateloom.sizing import ImagingSize, analyse_wells_size, screen_size
+from plateloom.setup.sizing import ImagingSize, analyse_wells_size, screen_size
 
 
 def test_per_well_job_size_grows_with_pixels_and_wells():

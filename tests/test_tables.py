@@ -5,8 +5,7 @@ import os
 import pandas as pd
 import pyarrow.parquet as pq
 import pytest
-
-from plateloom import tables
+from plateloom.io import tables
 
 
 def test_interrupted_parquet_write_leaves_the_old_file_untouched(tmp_path, monkeypatch):
@@ -51,8 +50,7 @@ def test_a_results_tree_opens_as_one_arrow_dataset(tmp_path):
     # The data contract: per-well files under Hive-style folders, keys also stored as columns, so any
     # Arrow-aware reader opens the whole tree as one dataset (pyarrow.dataset is the reference reader).
     import pyarrow.dataset as ds
-
-    from plateloom.tables import well_part_path, write_parquet
+    from plateloom.io.tables import well_part_path, write_parquet
 
     for plate, well, value in (("P1", "B02", 1.0), ("P1", "B03", 2.0), ("P2", "B02", 3.0)):
         folder = tmp_path / "cells" / f"plate={plate}" / "chunk=000"

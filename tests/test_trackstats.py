@@ -2,9 +2,14 @@
 
 import numpy as np
 import pytest
-
-from plateloom.trackstats import (fit_persistent_walk, growth_rate_per_h, mean_squared_displacement,
-                                  persistent_walk_msd, reporter_dynamics, track_matrix)
+from plateloom.well.track_stats import (
+    fit_persistent_walk,
+    growth_rate_per_h,
+    mean_squared_displacement,
+    persistent_walk_msd,
+    reporter_dynamics,
+    track_matrix,
+)
 
 
 def test_msd_of_brownian_tracks_is_4_d_t():

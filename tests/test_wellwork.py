@@ -2,15 +2,14 @@
 
 import numpy as np
 import pytest
+from conftest import ROOT
+from plateloom.demo.scenario import QUANTITIES, load_scenario
+from plateloom.demo.simulate import simulate_site
+from plateloom.well.features import measure_objects
+from plateloom.well.segment import segment_nuclei
+from plateloom.well.tracking import link_frames, track_features
 from skimage.draw import disk, ellipse
 from skimage.filters import threshold_otsu
-
-from plateloom.demo import QUANTITIES, load_scenario, simulate_site
-from plateloom.features import measure_objects
-from plateloom.segment import segment_nuclei
-from plateloom.track import link_frames, track_features
-
-from conftest import ROOT
 
 PIXEL = 0.5  # um
 
@@ -106,9 +105,8 @@ def test_track_features_of_a_straight_constant_speed_walk():
 def test_stacks_and_one_file_per_frame_give_the_same_tables(tmp_path):
     # The two image layouts of the filename template must be read identically.
     import tifffile
-
-    from plateloom.images import index_plate_images
-    from plateloom.wellwork import WellSettings, analyse_well
+    from plateloom.io.images import index_plate_images
+    from plateloom.well.stage import WellSettings, analyse_well
 
     scenario = load_scenario(str(ROOT / "resources/demo/scenario.yaml"), frames=4)
     stack = simulate_site(scenario, {q: 1.0 for q in QUANTITIES}, np.random.default_rng(5))
@@ -177,7 +175,7 @@ def _frame_to_frame_tracks(frame, x, y, max_displacement):
 
 def test_gap_closing_rejoins_tracks_across_missed_frames():
     # Planted truth: 25 well-separated random walkers over 20 frames; each loses 1 or 2 consecutive frames.
-    from plateloom.track import close_gaps
+    from plateloom.well.tracking import close_gaps
 
     rng = np.random.default_rng(3)
     grid = np.array([(i, j) for i in range(5) for j in range(5)], float) * 40 + 20
@@ -199,7 +197,7 @@ def test_gap_closing_rejoins_tracks_across_missed_frames():
 
 def test_divisions_are_found_with_recall_of_at_least_0_8():
     # Planted truth: 20 mothers tracked for 8 frames, then each divides into two daughters 3 um either side.
-    from plateloom.track import find_divisions
+    from plateloom.well.tracking import find_divisions
 
     rng = np.random.default_rng(4)
     rows = []
@@ -231,9 +229,8 @@ def test_divisions_are_found_with_recall_of_at_least_0_8():
 
 def test_neighbourhood_matches_brute_force_distances():
     # Reference: scipy.spatial.distance.cdist over all pairs.
+    from plateloom.well.features import neighbourhood
     from scipy.spatial.distance import cdist
-
-    from plateloom.features import neighbourhood
 
     xy = np.random.default_rng(8).uniform(0, 200, (300, 2))
     counts, nearest = neighbourhood(xy, 25.0)

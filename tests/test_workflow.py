@@ -12,12 +12,10 @@ import numpy as np
 import pandas as pd
 import pytest
 import yaml
-from scipy import stats
-
-from plateloom.demo import load_scenario, planted_ratios
-from plateloom.screen import load_layout
-
 from conftest import copy_workflow, run_snakemake
+from plateloom.demo.scenario import load_scenario, planted_ratios
+from plateloom.setup.screen_sheet import load_layout
+from scipy import stats
 
 NEW_PLATE = "TW-D3-P3"
 

@@ -1,6 +1,6 @@
 """``python -m plateloom``: the command line."""
 import sys
 
-from .cli import main
+from plateloom.cli import main
 
 sys.exit(main())

@@ -15,7 +15,11 @@ import sys
 
 import pandas as pd
 
-from .design_check import VarianceComponents, components_from_effects, design_check
+from plateloom.screen.design_check import (
+    VarianceComponents,
+    components_from_effects,
+    design_check,
+)
 
 
 def _design_check(arguments: argparse.Namespace) -> int:
@@ -40,8 +44,8 @@ def _design_check(arguments: argparse.Namespace) -> int:
 
 
 def _scaffold(arguments: argparse.Namespace) -> int:
-    from .errors import InputError
-    from .scaffold import survey_folder, write_scaffold
+    from plateloom.errors import InputError
+    from plateloom.setup.scaffold import survey_folder, write_scaffold
 
     try:
         survey = survey_folder(arguments.folder, arguments.plate_format)
@@ -60,8 +64,8 @@ def _scaffold(arguments: argparse.Namespace) -> int:
 
 
 def _check(arguments: argparse.Namespace) -> int:
-    from .errors import InputError
-    from .preflight import check_screen, load_config
+    from plateloom.errors import InputError
+    from plateloom.setup.check import check_screen, load_config
 
     try:
         config = load_config(arguments.config)
@@ -98,7 +102,7 @@ def main(argv: list[str] | None = None) -> int:
     commands.add_parser("config-reference", help="every config key, type, default and description, as Markdown")
     arguments = parser.parse_args(argv)
     if arguments.command == "config-reference":
-        from .config_reference import config_reference
+        from plateloom.setup.config import config_reference
 
         print(config_reference(), end="")
         return 0

@@ -13,7 +13,6 @@ from pathlib import Path
 import pandas as pd
 import pytest
 import yaml
-
 from conftest import copy_workflow, run_snakemake
 
 HERE = Path(__file__).resolve().parent

@@ -1,19 +1,15 @@
-# The embedded demo screen: images are simulated from resources/demo/scenario.yaml.
-
-from plateloom.plan import DEMO_IMAGE_ROOT
-
-DEMO = config["demo"]
+# The embedded demo screen: images simulated from the packaged scenario (resources/demo/scenario.yaml).
 
 
 rule make_demo_plate:
     input:
-        scenario=DEMO["scenario"],
-        layout=lambda w: PLAN.plates[w.plate].layout,
+        scenario=DEMO_SCENARIO,
+        layout=get_layout,
     output:
         images=directory(f"{DEMO_IMAGE_ROOT}/{{plate}}"),
     params:
-        batch=lambda w: PLAN.plates[w.plate].batch,
-        plate_format=lambda w: PLAN.plates[w.plate].plate_format,
+        batch=get_batch,
+        plate_format=get_plate_format,
         frames=DEMO.get("frames"),
         image_size_px=DEMO.get("image_size_px"),
     wildcard_constraints:
@@ -26,5 +22,7 @@ rule make_demo_plate:
     resources:
         mem_mb=1000,
         runtime=30,
+    conda:
+        "../envs/plateloom.yaml"
     script:
-        "../../scripts/steps/make_demo_plate.py"
+        "../scripts/make_demo_plate.py"

@@ -1,0 +1,1 @@
+"""The per-plate stage (fan-in over wells): well summaries, exclusions, positional correction, normalization, plate QC."""

@@ -1,0 +1,281 @@
+"""Condition effects: a mixed-effects model per feature, random intercepts for batch and plate.
+
+well value ~ treatment (reference: the negative control)
+             + random intercept per batch (imaging day) + random intercept per plate within batch,
+fitted by REML with statsmodels. Strictly positive features are modelled as natural logs, so an
+effect reads as a ratio to the negative control.
+
+Degrees of freedom for the t-interval follow the between-within rule: treatments vary within
+plates, so their contrasts get the within-plate residual degrees of freedom
+N_wells - N_plates - (N_treatments - 1).
+"""
+
+from __future__ import annotations
+
+import warnings
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+import statsmodels.formula.api as smf
+from scipy import stats
+from statsmodels.tools.sm_exceptions import ConvergenceWarning
+
+from plateloom.screen.reml import fit_nested_exact
+from plateloom.stats import bh_qvalues  # noqa: F401  (part of this module's interface)
+
+REFERENCE = "negative_control"
+
+
+@dataclass(frozen=True)
+class NestedFit:
+    """Result of one nested random-intercept fit (natural units of the response)."""
+
+    params: pd.Series           # fixed effects, named by the design columns
+    std_errors: pd.Series
+    batch_variance: float
+    plate_variance: float
+    residual_variance: float
+    method: str
+    boundary: bool              # a variance component was estimated at zero (singular fit)
+
+
+# Warnings that only say a variance component sits at zero; the fixed effects are still valid.
+BOUNDARY_MESSAGES = ("boundary", "Hessian", "singular")
+BOUNDARY_SHARE = 1e-4  # a component below this share of the variance counts as estimated at zero
+
+
+def fit_nested_random_intercepts(data: pd.DataFrame, formula: str, batch: str, plate: str | None,
+                                 reml: bool = True) -> NestedFit:
+    """REML (or, with ``reml=False``, maximum-likelihood) fit of ``formula`` with a random intercept per ``batch`` and, if given, per ``plate`` within batch.
+
+    ``batch`` and ``plate`` are column names of ``data``. Tries L-BFGS, then Powell and
+    Nelder-Mead. A variance component at zero (the boundary) is a valid REML estimate and
+    is reported as such; any other convergence warning rejects the fit.
+    """
+    data = data.reset_index(drop=True)
+    vc = {"plate": f"0 + C({plate})"} if plate else None
+    model = smf.mixedlm(formula, data, groups=batch, re_formula="1", vc_formula=vc)
+    problems: list[str] = []
+    for method in ("lbfgs", "powell", "nm"):
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
+            try:
+                result = model.fit(reml=reml, method=method)
+            except (np.linalg.LinAlgError, ValueError) as error:
+                problems.append(f"{method}: {error}")
+                continue
+        messages = [str(w.message) for w in caught if issubclass(w.category, (ConvergenceWarning, RuntimeWarning))]
+        other = [m for m in messages if not any(key in m for key in BOUNDARY_MESSAGES)]
+        if not result.converged or other or not np.all(np.isfinite(result.bse_fe)):
+            problems.append(f"{method}: {'; '.join(other) or 'not converged'}")
+            continue
+        vcomp = np.atleast_1d(result.vcomp) if plate else np.array([np.inf])
+        batch_variance = float(result.cov_re.iloc[0, 0])
+        boundary = min(batch_variance, float(vcomp[0])) < BOUNDARY_SHARE * (batch_variance + float(result.scale))
+        return NestedFit(result.fe_params, result.bse_fe, batch_variance, float(vcomp[0]) if plate else 0.0,
+                         float(result.scale), method, boundary)
+    raise RuntimeError("mixed model did not converge: " + " | ".join(problems))
+
+
+class _ConstantFeature(Exception):
+    """A feature with no spread across wells: nothing to fit."""
+
+
+def _fixed_plate_fit(data: pd.DataFrame) -> tuple[pd.Series, pd.Series, float]:
+    """Fallback: ordinary least squares with a fixed effect per plate (absorbs batch too)."""
+    result = smf.ols("y ~ C(code) + C(plate_code)", data).fit()
+    return result.params, result.bse, float(result.scale)
+
+
+def _codes(treatments: pd.Series) -> tuple[pd.Series, dict[str, str]]:
+    """Formula-safe codes for treatment names; the reference sorts first (t0000)."""
+    names = sorted(set(pd.unique(treatments)) - {REFERENCE})
+    mapping = {REFERENCE: "t0000", **{name: f"t{i + 1:04d}" for i, name in enumerate(names)}}
+    return treatments.map(mapping), mapping
+
+
+FITTERS = ("statsmodels", "exact")
+
+
+def _design(codes: pd.Series) -> tuple[np.ndarray, list[str]]:
+    """Intercept plus one indicator per non-reference treatment present, named as statsmodels names them."""
+    index, levels = pd.factorize(codes, sort=True)
+    levels = np.asarray(levels, dtype=str)
+    indicators = np.zeros((len(codes), len(levels)))
+    indicators[np.arange(len(codes)), index] = 1.0
+    keep = levels != "t0000"
+    matrix = np.column_stack([np.ones(len(codes)), indicators[:, keep]])
+    return matrix, ["Intercept"] + [f"C(code)[T.{code}]" for code in levels[keep]]
+
+
+def _fit(data: pd.DataFrame, mapping: dict[str, str], fitter: str) -> NestedFit:
+    """The nested fit of y on treatment codes; one batch only: a random intercept per plate."""
+    n_batches, n_plates = data["batch"].nunique(), data["plate"].nunique()
+    groups, nested = ("batch_code", "plate_code" if n_plates > n_batches else None) if n_batches >= 2 else ("plate_code", None)
+    if fitter == "statsmodels":
+        fit = fit_nested_random_intercepts(data, "y ~ C(code)", groups, nested)
+    else:
+        design, names = _design(data["code"])
+        exact = fit_nested_exact(data["y"].to_numpy(), design, data[groups].to_numpy(int),
+                                 data[nested].to_numpy(int) if nested else None)
+        if not exact.converged:
+            raise RuntimeError("exact REML optimisation did not converge")
+        total = exact.batch_variance + exact.plate_variance + exact.residual_variance
+        boundary = min(exact.batch_variance, exact.plate_variance if nested else np.inf) < BOUNDARY_SHARE * total
+        fit = NestedFit(pd.Series(exact.params, index=names), pd.Series(exact.std_errors, index=names),
+                        exact.batch_variance, exact.plate_variance if nested else 0.0, exact.residual_variance,
+                        "exact", boundary)
+    if n_batches < 2:
+        fit = NestedFit(fit.params, fit.std_errors, 0.0, fit.batch_variance, fit.residual_variance, fit.method, fit.boundary)
+    return fit
+
+
+def _join(*notes: str) -> str:
+    return "; ".join(n for n in notes if n)
+
+
+def fit_feature_effects(wells: pd.DataFrame, feature: str, scale: str, ci_level: float, fitter: str = "statsmodels",
+                        treatments: pd.DataFrame | None = None) -> pd.DataFrame:
+    """Effects of every treatment on one feature against the pooled negative controls.
+
+    ``wells`` holds the wells in the model with columns batch, plate, role, treatment, condition,
+    dose, dose_unit and the feature already on its model scale (``scale`` is "log" for natural
+    logs, else "linear"). ``treatments`` (treatment, condition, dose, dose_unit, role), if given,
+    lists every treatment of the screen, so one whose wells were all excluded still gets a row
+    saying so. Returns one row per non-reference treatment; the effect is in model-scale units
+    (a natural-log ratio or a difference in the feature's unit).
+    """
+    if fitter not in FITTERS:
+        raise ValueError(f"unknown fitter {fitter!r}; choose one of {', '.join(FITTERS)}")
+    data = wells[["batch", "plate", "role", "treatment", "condition", "dose", "dose_unit", feature]].copy()
+    data["treatment"] = np.where(data["role"] == "negative_control", REFERENCE, data["treatment"])
+    data["y"] = data[feature].to_numpy(float)
+    n_not_finite = int((~np.isfinite(data["y"])).sum())
+    data = data[np.isfinite(data["y"])]
+    if data.empty:
+        note = (f"no well has a value of {feature}: not fitted (collective readouts need tracks of at least "
+                "collective.min_overlap_frames frames; see the README)")
+        return _unfitted_table(wells, treatments, feature, scale, note)
+    if (data["treatment"] == REFERENCE).sum() == 0:
+        raise ValueError(f"feature {feature}: no negative-control wells are left in the model; "
+                         "check the layouts' role column and the exclusion ledger")
+    data["code"], mapping = _codes(data["treatment"])
+    data["plate_code"] = pd.factorize(data["plate"], sort=True)[0]
+    data["batch_code"] = pd.factorize(data["batch"], sort=True)[0]
+    n_wells, n_plates = len(data), data["plate"].nunique()
+    n_treatments = len(mapping)
+    df = max(n_wells - n_plates - (n_treatments - 1), 1)
+    plates_per_batch = data.groupby("batch")["plate"].nunique()
+    feature_note = _join(f"{n_not_finite} wells with a missing value left out" if n_not_finite else "",
+                         f"batch {', '.join(plates_per_batch.index[plates_per_batch == 1])} has a single plate"
+                         if data["batch"].nunique() >= 2 and (plates_per_batch == 1).any() and n_plates > data["batch"].nunique() else "")
+    try:
+        if np.nanstd(data["y"]) == 0:
+            raise _ConstantFeature("feature is constant across wells: not fitted")
+        fit = _fit(data, mapping, fitter)
+        params, errors, converged = fit.params, fit.std_errors, True
+        components = (fit.batch_variance, fit.plate_variance, fit.residual_variance)
+        method = f"REML mixed model ({fit.method})"
+        if data["batch"].nunique() < 2:
+            feature_note = _join(feature_note, "one batch only: random intercept per plate")
+        if fit.boundary:
+            feature_note = _join(feature_note, "a variance component was estimated at zero (singular fit)")
+    except _ConstantFeature as error:
+        params, errors, converged, components, method = pd.Series(dtype=float), pd.Series(dtype=float), False, (np.nan,) * 3, "not fitted"
+        feature_note = _join(feature_note, str(error))
+    except RuntimeError as error:
+        params, errors, residual = _fixed_plate_fit(data)
+        converged, components, method = False, (np.nan, np.nan, residual), "fallback: OLS with plate fixed effects"
+        feature_note = _join(feature_note, f"mixed model failed ({error}); fallback used")
+    t_quantile = stats.t.ppf(0.5 + ci_level / 2, df)
+    total = np.nansum(components)
+    catalogue = _treatment_catalogue(wells, treatments)
+    groups = data.groupby("code")
+    counts = pd.DataFrame({"n_wells": groups.size(), "n_plates": groups["plate"].nunique(),
+                           "n_batches": groups["batch"].nunique(), "first_batch": groups["batch"].first()})
+    n_batches_all = data["batch"].nunique()
+    rows = []
+    for name, first in catalogue.iterrows():
+        code = mapping.get(name)
+        count = counts.loc[code] if code in counts.index else None
+        term = f"C(code)[T.{code}]"
+        estimate = float(params.get(term, np.nan)) if code else np.nan
+        error = float(errors.get(term, np.nan)) if code else np.nan
+        t_value = estimate / error if error > 0 else np.nan
+        row_note = feature_note
+        if count is None:
+            row_note = _join("all wells of this treatment were excluded or missing: no estimate", feature_note)
+        elif count["n_batches"] == 1 and n_batches_all > 1:
+            row_note = _join(f"present in one batch only ({count['first_batch']}): "
+                             "estimated against that batch's controls", feature_note)
+        rows.append({
+            "feature": feature, "treatment": name, "condition": first["condition"], "dose": first["dose"],
+            "dose_unit": first["dose_unit"], "role": first["role"], "scale": scale,
+            "estimate": estimate, "std_error": error, "df": float(df),
+            "ci_low": estimate - t_quantile * error, "ci_high": estimate + t_quantile * error,
+            "t_value": t_value, "p_value": float(2 * stats.t.sf(abs(t_value), df)) if np.isfinite(t_value) else np.nan,
+            "n_wells": int(count["n_wells"]) if count is not None else 0,
+            "n_plates": int(count["n_plates"]) if count is not None else 0,
+            "n_batches": int(count["n_batches"]) if count is not None else 0,
+            "batch_variance": components[0], "plate_variance": components[1], "residual_variance": components[2],
+            "icc_batch_plate": (components[0] + components[1]) / total if total > 0 else np.nan,
+            "converged": converged, "method": method, "note": row_note,
+        })
+    table = pd.DataFrame(rows)
+    if not table.empty:
+        log_scale = scale == "log"
+        for column, source in (("ratio", "estimate"), ("ratio_ci_low", "ci_low"), ("ratio_ci_high", "ci_high")):
+            table[column] = np.exp(table[source]) if log_scale else np.nan
+    return table
+
+
+def _unfitted_table(wells: pd.DataFrame, treatments: pd.DataFrame | None, feature: str, scale: str,
+                    note: str) -> pd.DataFrame:
+    """One row per treatment with no estimate and ``note`` saying why (same columns as a fitted table)."""
+    catalogue = _treatment_catalogue(wells, treatments)
+    nan = np.full(len(catalogue), np.nan)
+    table = pd.DataFrame({
+        "feature": feature, "treatment": catalogue.index, "condition": catalogue["condition"].to_numpy(),
+        "dose": catalogue["dose"].to_numpy(), "dose_unit": catalogue["dose_unit"].to_numpy(),
+        "role": catalogue["role"].to_numpy(), "scale": scale, "estimate": nan, "std_error": nan, "df": nan,
+        "ci_low": nan, "ci_high": nan, "t_value": nan, "p_value": nan, "n_wells": 0, "n_plates": 0, "n_batches": 0,
+        "batch_variance": nan, "plate_variance": nan, "residual_variance": nan, "icc_batch_plate": nan,
+        "converged": False, "method": "not fitted", "note": note})
+    for column in ("ratio", "ratio_ci_low", "ratio_ci_high"):
+        table[column] = nan
+    return table
+
+
+def _treatment_catalogue(wells: pd.DataFrame, treatments: pd.DataFrame | None) -> pd.DataFrame:
+    """One row per non-reference treatment (index: treatment), from ``treatments`` or from the wells."""
+    source = treatments if treatments is not None else wells
+    source = source[source["role"].isin(["positive_control", "test"])]
+    return (source.drop_duplicates("treatment").set_index("treatment")[["condition", "dose", "dose_unit", "role"]]
+            .sort_index())
+
+
+def in_model(wells: pd.DataFrame) -> pd.Series:
+    """Wells that enter the screen model: kept, on a kept plate, with a role the model uses."""
+    plate_kept = wells["plate_excluded_by"] == "" if "plate_excluded_by" in wells else True
+    return (wells["excluded_by"] == "") & plate_kept & wells["role"].isin(["negative_control", "positive_control", "test"])
+
+
+def add_hit_calls(table: pd.DataFrame, hit_q_value: float, hit_min_effect: float) -> pd.DataFrame:
+    """BH q-values over all (feature, treatment) pairs with a p-value, and the hit call."""
+    table = table.copy()
+    table["q_value"] = bh_qvalues(table["p_value"].to_numpy())
+    table["hit"] = (table["q_value"] < hit_q_value) & (table["estimate"].abs() >= hit_min_effect)
+    return table
+
+
+def screen_effects(model_wells: pd.DataFrame, features: list[str], scales: dict[str, str], ci_level: float,
+                   hit_q_value: float, hit_min_effect: float, fitter: str = "statsmodels",
+                   treatments: pd.DataFrame | None = None) -> pd.DataFrame:
+    """Effects of every treatment on every feature (model-scale values), BH q-values across all pairs, hit calls."""
+    missing = [f for f in features if f not in model_wells.columns]
+    if missing:
+        raise ValueError(f"features {missing} are not columns of the well profiles; check screen.features in config")
+    parts = [fit_feature_effects(model_wells, feature, scales[feature], ci_level, fitter, treatments) for feature in features]
+    table = pd.concat([p for p in parts if not p.empty], ignore_index=True)
+    return add_hit_calls(table, hit_q_value, hit_min_effect)

@@ -1,0 +1,459 @@
+"""Collective dynamics of one well: neighbour graph, phase synchrony, directed coupling, event spreading.
+
+Every readout is a property of the well (not of single cells), so it flows through plate
+normalization, batch correction and the effects model like any other well feature.
+
+- Neighbour graph: Delaunay triangulation of the nuclear centroids of each frame, edges
+  longer than a maximum removed; two tracks are neighbours when they are joined in at least a
+  set fraction of the frames both are present.
+- Synchrony: Kuramoto (1975) order parameter r = |mean_k exp(i theta_k)| of the reporter phases,
+  the phase taken from the analytic signal (Hilbert transform) of each linearly detrended
+  trace; and the mean Pearson correlation of neighbours' detrended traces at lag 0.
+- Directed coupling: Granger (1969) F-test in both directions for every neighbour pair and
+  every pair at graph distance 2, lag order chosen by an information criterion, all pairs at
+  once; Benjamini-Hochberg over the well's tests.
+- Event spreading: Knox (1964) space-time test of per-cell events (a track that ends with a
+  sharp reporter change), Monte Carlo permutation of the event times within each site.
+"""
+
+from __future__ import annotations
+
+import zlib
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+from scipy import signal, sparse, stats
+from scipy.spatial import Delaunay, QhullError, cKDTree
+
+from plateloom.stats import bh_qvalues
+from plateloom.well.track_stats import (
+    dominant_frequency,
+    fill_inner_gaps,
+    row_spans,
+    track_matrix,
+)
+
+
+@dataclass(frozen=True)
+class CollectiveSettings:
+    """Settings of the collective readouts (config section ``collective``; physical units)."""
+
+    enabled: bool = True
+    max_edge_um: float = 30.0
+    min_edge_fraction: float = 0.5
+    min_overlap_frames: int = 12
+    max_lag_frames: int = 3
+    lag_criterion: str = "bic"
+    coupling_q_value: float = 0.05
+    synchrony_level: float = 0.6
+    event_jump_ratio: float = 2.0
+    event_radius_um: float = 30.0
+    event_window_frames: int = 2
+    n_permutations: int = 199
+    seed: int = 1
+
+    @classmethod
+    def from_config(cls, config: dict) -> "CollectiveSettings":
+        """From the validated config (the schema rejects unknown keys)."""
+        return cls(**(config.get("collective") or {}))
+
+
+# ---------------------------------------------------------------------------------------------
+# Neighbour graph
+
+def delaunay_edges(xy: np.ndarray, max_edge_um: float) -> np.ndarray:
+    """Edges (i, j), i < j, of the Delaunay triangulation of points ``xy`` (n, 2; um) no longer than ``max_edge_um``."""
+    n = len(xy)
+    if n < 2:
+        return np.empty((0, 2), np.int64)
+    if n == 2:
+        edges = np.array([[0, 1]])
+    else:
+        try:
+            simplices = Delaunay(xy).simplices
+            edges = np.concatenate([simplices[:, [0, 1]], simplices[:, [1, 2]], simplices[:, [0, 2]]])
+        except QhullError:  # all points on a line: the triangulation degenerates to the chain along it
+            centred = xy - xy.mean(axis=0)
+            direction = np.linalg.svd(centred, full_matrices=False)[2][0]
+            order = np.argsort(centred @ direction, kind="stable")
+            edges = np.column_stack([order[:-1], order[1:]])
+        edges = np.unique(np.sort(edges, axis=1), axis=0)
+    length = np.hypot(*(xy[edges[:, 0]] - xy[edges[:, 1]]).T)
+    return edges[length <= max_edge_um].astype(np.int64)
+
+
+def track_neighbour_pairs(frame: np.ndarray, track: np.ndarray, x: np.ndarray, y: np.ndarray,
+                          max_edge_um: float, min_fraction: float) -> np.ndarray:
+    """Pairs of track ids (a < b) joined by a Delaunay edge in >= ``min_fraction`` of the frames both are present."""
+    ids = np.unique(track)
+    if len(ids) < 2:
+        return np.empty((0, 2), np.int64)
+    rows = np.searchsorted(ids, track)
+    n_frames = int(frame.max()) + 1
+    present = np.zeros((len(ids), n_frames), bool)
+    present[rows, frame] = True
+    keys = []
+    order = np.argsort(frame, kind="stable")
+    bounds = np.searchsorted(frame[order], np.arange(n_frames + 1))
+    for f in range(n_frames):
+        members = order[bounds[f]:bounds[f + 1]]
+        edges = delaunay_edges(np.column_stack([x[members], y[members]]), max_edge_um)
+        a, b = rows[members[edges[:, 0]]], rows[members[edges[:, 1]]]
+        keys.append(np.minimum(a, b) * len(ids) + np.maximum(a, b))
+    joined_keys, joined = np.unique(np.concatenate(keys), return_counts=True) if keys else (np.empty(0, int), np.empty(0, int))
+    a, b = joined_keys // len(ids), joined_keys % len(ids)
+    together = (present[a] & present[b]).sum(axis=1)
+    keep = joined >= min_fraction * together
+    return np.column_stack([ids[a[keep]], ids[b[keep]]]).astype(np.int64)
+
+
+def pairs_at_distance_two(pairs: np.ndarray) -> np.ndarray:
+    """Pairs (a < b) of nodes two edges apart in the graph of ``pairs`` and not joined directly."""
+    if len(pairs) == 0:
+        return np.empty((0, 2), np.int64)
+    nodes, index = np.unique(pairs, return_inverse=True)
+    index = index.reshape(-1, 2)
+    n = len(nodes)
+    adjacency = sparse.coo_matrix((np.ones(len(index)), (index[:, 0], index[:, 1])), shape=(n, n)).tocsr()
+    adjacency = ((adjacency + adjacency.T) > 0).astype(np.int64)
+    two = sparse.triu(adjacency @ adjacency, k=1).tocsr()
+    two = two - two.multiply(adjacency)
+    two.eliminate_zeros()
+    a, b = two.nonzero()
+    return np.column_stack([nodes[a], nodes[b]]).astype(np.int64)
+
+
+# ---------------------------------------------------------------------------------------------
+# Traces
+
+def detrend_rows(matrix: np.ndarray) -> np.ndarray:
+    """Each row minus its least-squares line over its finite entries (NaN kept)."""
+    finite = np.isfinite(matrix)
+    t = np.broadcast_to(np.arange(matrix.shape[1], dtype=float), matrix.shape)
+    n = finite.sum(axis=1, keepdims=True)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        t_mean = np.where(finite, t, 0).sum(axis=1, keepdims=True) / n
+        v_mean = np.where(finite, matrix, 0).sum(axis=1, keepdims=True) / n
+        dt = np.where(finite, t - t_mean, 0)
+        slope = (dt * np.where(finite, matrix - v_mean, 0)).sum(axis=1, keepdims=True) / (dt**2).sum(axis=1, keepdims=True)
+    slope = np.nan_to_num(slope)
+    return np.where(finite, matrix - v_mean - slope * (t - t_mean), np.nan)
+
+
+def analytic_phases(detrended: np.ndarray) -> np.ndarray:
+    """Phase (radians) of the analytic signal of each row over its contiguous finite span (NaN elsewhere).
+
+    Rows with the same span are transformed together (scipy.signal.hilbert).
+    """
+    phases = np.full(detrended.shape, np.nan)
+    for first, last, rows in _span_groups(np.isfinite(detrended), 4):
+        phases[rows, first:last] = np.angle(signal.hilbert(detrended[rows, first:last], axis=1))
+    return phases
+
+
+def _span_groups(finite: np.ndarray, shortest: int):
+    """(first, stop, rows) for each span of finite columns shared by rows, spans of at least ``shortest`` frames."""
+    has, start, stop = row_spans(finite)
+    keep = has & (stop - start >= shortest)
+    for first, last in sorted(set(zip(start[keep].tolist(), stop[keep].tolist()))):
+        yield first, last, np.flatnonzero(keep & (start == first) & (stop == last))
+
+
+def remove_dominant_oscillation(detrended: np.ndarray, padding: int = 16) -> np.ndarray:
+    """Each row minus its least-squares sinusoid at the row's periodogram peak (over its finite span).
+
+    A periodic component shared by two traces makes each predict the other whatever their
+    coupling (Granger's test assumes stationary series without deterministic parts), so the
+    directed tests run on what is left. Rows with the same span are done together.
+    """
+    residual = np.array(detrended, dtype=float)
+    for first, last, rows in _span_groups(np.isfinite(detrended), 6):
+        n = last - first
+        block = np.nan_to_num(detrended[rows, first:last])
+        peak = dominant_frequency(block, padding, below_nyquist=True)  # at Nyquist the sine column is all 0
+        angle = 2 * np.pi * peak[:, None] * np.arange(n)[None, :]
+        design = np.stack([np.sin(angle), np.cos(angle)], axis=2)                    # (rows, n, 2)
+        coefficients = np.linalg.solve(np.einsum("rni,rnj->rij", design, design),
+                                       np.einsum("rni,rn->ri", design, block)[..., None])
+        residual[rows, first:last] = block - (design @ coefficients)[..., 0]
+    return residual
+
+
+def kuramoto_order(phases: np.ndarray, axis: int = 0) -> np.ndarray:
+    """Kuramoto order parameter r = |mean exp(i theta)| along ``axis``, NaN phases ignored (1 = identical phases)."""
+    unit = np.exp(1j * np.nan_to_num(phases))
+    finite = np.isfinite(phases)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.abs(np.where(finite, unit, 0).sum(axis=axis)) / finite.sum(axis=axis)
+
+
+def corrected_order_squared(phases: np.ndarray, axis: int = 0) -> np.ndarray:
+    """(N r^2 - 1) / (N - 1) along ``axis``: an unbiased estimate of |E exp(i theta)|^2, 0 for independent
+    uniform phases whatever N (r alone is about 1/sqrt(N) then), 1 for identical phases; NaN for N < 2."""
+    return _corrected(kuramoto_order(phases, axis=axis), np.isfinite(phases).sum(axis=axis))
+
+
+def _corrected(order: np.ndarray, n: np.ndarray) -> np.ndarray:
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(n >= 2, (n * order**2 - 1) / (n - 1), np.nan)
+
+
+def pair_correlations(traces: np.ndarray, pairs_rows: np.ndarray, min_overlap: int) -> np.ndarray:
+    """Pearson correlation at lag 0 of rows a and b of ``traces`` over frames both have (NaN if < ``min_overlap``)."""
+    a, b = traces[pairs_rows[:, 0]], traces[pairs_rows[:, 1]]
+    both = np.isfinite(a) & np.isfinite(b)
+    n = both.sum(axis=1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        a_c = np.where(both, a - np.where(both, a, 0).sum(1, keepdims=True) / n[:, None], 0)
+        b_c = np.where(both, b - np.where(both, b, 0).sum(1, keepdims=True) / n[:, None], 0)
+        r = (a_c * b_c).sum(1) / np.sqrt((a_c**2).sum(1) * (b_c**2).sum(1))
+    return np.where(n >= min_overlap, r, np.nan)
+
+
+# ---------------------------------------------------------------------------------------------
+# Granger causality, vectorised over pairs
+
+def _lag_design(series: np.ndarray, lag: int, start: int) -> np.ndarray:
+    """(pairs, n - start, lag) matrix of series values at t-1 .. t-lag for t = start .. n-1."""
+    n = series.shape[1]
+    return np.stack([series[:, start - k:n - k] for k in range(1, lag + 1)], axis=2)
+
+
+def _residual_ss(design: np.ndarray, response: np.ndarray) -> np.ndarray:
+    """Residual sum of squares of the least-squares fit of ``response`` (pairs, m) on ``design`` (pairs, m, k).
+
+    From the QR factorisation of [design | response]: the last diagonal element of R is the
+    residual norm (stable, batched over pairs).
+    """
+    augmented = np.concatenate([design, response[:, :, None]], axis=2)
+    r = np.linalg.qr(augmented, mode="r")
+    return r[:, -1, -1] ** 2
+
+
+def _ssr_pair(effect: np.ndarray, cause: np.ndarray, lag: int, start: int) -> tuple[np.ndarray, np.ndarray]:
+    """Residual sums of squares (own lags only, own and cause lags), constant included, for t >= start."""
+    response = effect[:, start:]
+    const = np.ones(response.shape + (1,))
+    own = np.concatenate([_lag_design(effect, lag, start), const], axis=2)
+    joint = np.concatenate([_lag_design(effect, lag, start), _lag_design(cause, lag, start), const], axis=2)
+    return _residual_ss(own, response), _residual_ss(joint, response)
+
+
+def granger_f_test(effect: np.ndarray, cause: np.ndarray, lag: int) -> tuple[np.ndarray, np.ndarray, int]:
+    """Granger F-test that ``cause`` helps predict ``effect`` at lag order ``lag``, for each row pair.
+
+    ``effect``, ``cause``: (pairs, n) complete series. As in the SSR F-test of Granger (1969)
+    with a constant: the sample is t = lag .. n-1, F = ((SSR_own - SSR_joint) / lag) /
+    (SSR_joint / (n - lag - 2 lag - 1)). Returns (F, p-value, denominator degrees of freedom);
+    NaN where the joint model fits perfectly.
+    """
+    effect, cause = np.atleast_2d(np.asarray(effect, float)), np.atleast_2d(np.asarray(cause, float))
+    n = effect.shape[1]
+    df_denom = n - lag - (2 * lag + 1)
+    if df_denom < 1:
+        raise ValueError(f"series of {n} points are too short for a Granger test at lag {lag}")
+    ssr_own, ssr_joint = _ssr_pair(effect, cause, lag, lag)
+    centred = effect[:, lag:] - effect[:, lag:].mean(axis=1, keepdims=True)
+    tss = (centred**2).sum(axis=1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        f = (ssr_own - ssr_joint) / ssr_joint / lag * df_denom
+    f = np.where((ssr_joint > np.finfo(float).eps * tss) & (tss > 0), f, np.nan)
+    return f, stats.f.sf(f, lag, df_denom), df_denom
+
+
+def choose_granger_lag(effect: np.ndarray, cause: np.ndarray, max_lag: int, criterion: str = "bic") -> np.ndarray:
+    """Lag order 1..max_lag minimising the information criterion of the joint regression, per row pair.
+
+    All orders are compared on the same sample (t = max_lag .. n-1), as in VAR order
+    selection: AIC = m ln(SSR/m) + 2k (Akaike 1974), BIC = m ln(SSR/m) + k ln m (Schwarz 1978),
+    k = 2 lag + 1 coefficients, m sample size.
+    """
+    if criterion not in ("aic", "bic"):
+        raise ValueError(f"unknown lag criterion {criterion!r}; use aic or bic")
+    effect, cause = np.atleast_2d(np.asarray(effect, float)), np.atleast_2d(np.asarray(cause, float))
+    m = effect.shape[1] - max_lag
+    scores = []
+    for lag in range(1, max_lag + 1):
+        _, ssr = _ssr_pair(effect, cause, lag, max_lag)
+        k = 2 * lag + 1
+        with np.errstate(divide="ignore"):
+            scores.append(m * np.log(ssr / m) + (2 * k if criterion == "aic" else k * np.log(m)))
+    return np.nanargmin(np.where(np.isfinite(scores), scores, np.inf), axis=0) + 1
+
+
+def granger_tests(effect: np.ndarray, cause: np.ndarray, max_lag: int, criterion: str = "bic") -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Per row pair: (chosen lag, F, p-value) of the Granger test that ``cause`` helps predict ``effect``."""
+    lag = choose_granger_lag(effect, cause, max_lag, criterion)
+    f, p = np.full(len(lag), np.nan), np.full(len(lag), np.nan)
+    for order in np.unique(lag):
+        rows = lag == order
+        f[rows], p[rows], _ = granger_f_test(effect[rows], cause[rows], int(order))
+    return lag, f, p
+
+
+# ---------------------------------------------------------------------------------------------
+# Events and their spreading
+
+def knox_test(x: np.ndarray, y: np.ndarray, frame: np.ndarray, group: np.ndarray, radius_um: float,
+              window_frames: int, n_permutations: int, rng: np.random.Generator) -> tuple[int, float, float]:
+    """Knox (1964) test of space-time clustering of events, Monte Carlo over permuted event times.
+
+    Counts pairs of events of the same ``group`` (site) within ``radius_um`` and
+    ``window_frames``; the times are permuted within each group ``n_permutations`` times.
+    Returns (observed count, mean permuted count, p-value (1 + #{permuted >= observed}) / (1 + n)).
+    """
+    group = np.asarray(group)
+    close_pairs = [np.empty((0, 2), np.int64)]
+    for g in np.unique(group):  # pairs close in space, from a KD-tree (memory grows with close pairs, not n^2)
+        members = np.flatnonzero(group == g)
+        pairs = cKDTree(np.column_stack([x[members], y[members]])).query_pairs(radius_um, output_type="ndarray")
+        close_pairs.append(members[pairs.reshape(-1, 2)])
+    i, j = np.concatenate(close_pairs).T
+    observed = int((np.abs(frame[i] - frame[j]) <= window_frames).sum())
+    if len(i) == 0:
+        return observed, 0.0, 1.0
+    times = np.broadcast_to(np.asarray(frame, float), (n_permutations, len(frame))).copy()
+    for g in np.unique(group):
+        members = np.flatnonzero(group == g)
+        times[:, members] = rng.permuted(times[:, members], axis=1)
+    permuted = (np.abs(times[:, i] - times[:, j]) <= window_frames).sum(axis=1)
+    return observed, float(permuted.mean()), float((1 + (permuted >= observed).sum()) / (1 + n_permutations))
+
+
+def reporter_events(frame: np.ndarray, track: np.ndarray, values: np.ndarray, at_border: np.ndarray,
+                    last_frame: int, jump_ratio: float) -> np.ndarray:
+    """Row indices of events: the last observation of a track that ends before ``last_frame``, away
+    from the border, with the reporter at >= ``jump_ratio`` times the track's median before it."""
+    order = np.lexsort((frame, track))
+    track_sorted = track[order]
+    ends = np.flatnonzero(np.r_[track_sorted[1:] != track_sorted[:-1], True])
+    starts = np.r_[0, ends[:-1] + 1]
+    lengths = ends - starts + 1
+    last_rows = order[ends]
+    candidate = (lengths >= 3) & (frame[last_rows] < last_frame) & ~at_border[last_rows]
+    events = []
+    for start, end, row in zip(starts[candidate], ends[candidate], last_rows[candidate]):
+        before = np.median(values[order[start:end]])
+        if before > 0 and values[row] >= jump_ratio * before:
+            events.append(row)
+    return np.asarray(events, np.int64)
+
+
+# ---------------------------------------------------------------------------------------------
+# Per well
+
+COUNT_COLUMNS = ("n_neighbour_links", "n_coupling_tests", "n_events", "spreading_p_value")
+# The readouts worth modelling, as screen.features entries ({reporter}: the reporter channel's name).
+MODELLED_READOUTS = ("phase_order_{reporter}", "neighbour_correlation_{reporter}", "coupled_link_fraction_{reporter}",
+                     "coupled_link_fraction_d2_{reporter}", "spreading_index")
+
+
+def _site_traces(cells: pd.DataFrame, channel: str, ids: np.ndarray) -> np.ndarray:
+    _, values = track_matrix(cells["frame"].to_numpy(), cells["track"].to_numpy(),
+                             cells[f"mean_intensity_{channel}"].to_numpy(float), ids)
+    return detrend_rows(fill_inner_gaps(values))
+
+
+def _directed_tests(traces: np.ndarray, rows: np.ndarray, settings: CollectiveSettings) -> np.ndarray:
+    """p-values of both directions of every pair (rows into ``traces``), over each pair's common span."""
+    if len(rows) == 0:
+        return np.empty(0)
+    a, b = traces[rows[:, 0]], traces[rows[:, 1]]
+    both = np.isfinite(a) & np.isfinite(b)
+    _, start, stop = row_spans(both)
+    both &= (both.sum(axis=1) == stop - start)[:, None]  # pairs whose common frames have a gap are not tested
+    shortest = max(settings.min_overlap_frames, 3 * settings.max_lag_frames + 2)  # leaves >= 1 residual df at the top lag
+    p_values = np.full((len(rows), 2), np.nan)
+    for first, last, group in _span_groups(both, shortest):
+        x, y = a[group, first:last], b[group, first:last]
+        _, _, p_values[group, 0] = granger_tests(y, x, settings.max_lag_frames, settings.lag_criterion)
+        _, _, p_values[group, 1] = granger_tests(x, y, settings.max_lag_frames, settings.lag_criterion)
+    return p_values.ravel()
+
+
+def well_collective_readouts(cells: pd.DataFrame, reporters: list[str], settings: CollectiveSettings,
+                             frame_interval_min: float, well: str) -> dict[str, float]:
+    """One row of collective readouts for a well from its cells table (columns site, frame, track,
+    centroid_x_um, centroid_y_um, touches_border, mean_intensity_<reporter>).
+
+    Per reporter: phase_order (the squared Kuramoto order parameter corrected for the number
+    of cells, (N r^2 - 1) / (N - 1), averaged over frames with >= 3 phases, then sites; 0 for
+    independent phases, 1 for identical ones), time_to_synchrony_min (first time r reaches
+    ``synchrony_level``; censored at the end of imaging, one interval after the last frame),
+    neighbour_correlation (mean over neighbour track pairs), coupled_link_fraction (share of directed neighbour links with a Granger
+    q-value <= ``coupling_q_value``; BH over all of the well's tests; each trace's dominant
+    oscillation removed first) and the same for pairs at
+    graph distance 2. spreading_index = (observed + 1) / (expected + 1) Knox pairs of events of
+    the first reporter (1: no clustering beyond chance).
+    """
+    row: dict[str, float] = {}
+    sums = {c: {"order": [], "time": [], "corr": [], "p1": [], "p2": []} for c in reporters}
+    n_links = 0
+    event_parts = []
+    for site, part in cells.groupby("site", sort=True):
+        frame, track = part["frame"].to_numpy(np.int64), part["track"].to_numpy(np.int64)
+        x, y = part["centroid_x_um"].to_numpy(float), part["centroid_y_um"].to_numpy(float)
+        pairs = track_neighbour_pairs(frame, track, x, y, settings.max_edge_um, settings.min_edge_fraction)
+        n_links += len(pairs)
+        ids = np.unique(track)
+        pair_rows, second_rows = np.searchsorted(ids, pairs), np.searchsorted(ids, pairs_at_distance_two(pairs))
+        for channel in reporters:
+            traces = _site_traces(part, channel, ids)
+            phases = analytic_phases(traces)
+            order, n_phases = kuramoto_order(phases, axis=0), np.isfinite(phases).sum(axis=0)
+            counted = n_phases >= 3
+            if counted.any():
+                sums[channel]["order"].append(float(np.mean(_corrected(order, n_phases)[counted])))
+                reached = np.flatnonzero(counted & (order >= settings.synchrony_level))
+                end = (traces.shape[1]) * frame_interval_min
+                sums[channel]["time"].append(float(reached[0] * frame_interval_min) if len(reached) else end)
+            sums[channel]["corr"].append(pair_correlations(traces, pair_rows, settings.min_overlap_frames))
+            residual = remove_dominant_oscillation(traces)
+            sums[channel]["p1"].append(_directed_tests(residual, pair_rows, settings))
+            sums[channel]["p2"].append(_directed_tests(residual, second_rows, settings))
+        if reporters:
+            at_border = part["touches_border"].to_numpy(bool)
+            values = part[f"mean_intensity_{reporters[0]}"].to_numpy(float)
+            rows = reporter_events(frame, track, values, at_border, int(frame.max()), settings.event_jump_ratio)
+            event_parts.append(pd.DataFrame({"site": site, "frame": frame[rows], "x": x[rows], "y": y[rows]}))
+    n_tests = 0
+    for channel in reporters:
+        s = sums[channel]
+        correlations = np.concatenate(s["corr"]) if s["corr"] else np.empty(0)
+        p1 = np.concatenate(s["p1"]) if s["p1"] else np.empty(0)
+        p2 = np.concatenate(s["p2"]) if s["p2"] else np.empty(0)
+        q = bh_qvalues(np.concatenate([p1, p2]))
+        q1, q2 = q[:len(p1)], q[len(p1):]
+        n_tests = max(n_tests, int(np.isfinite(q).sum()))
+        row[f"phase_order_{channel}"] = float(np.mean(s["order"])) if s["order"] else np.nan
+        row[f"time_to_synchrony_min_{channel}"] = float(np.mean(s["time"])) if s["time"] else np.nan
+        row[f"neighbour_correlation_{channel}"] = _nanmean(correlations)
+        row[f"coupled_link_fraction_{channel}"] = _fraction_below(q1, settings.coupling_q_value)
+        row[f"coupled_link_fraction_d2_{channel}"] = _fraction_below(q2, settings.coupling_q_value)
+    events = pd.concat(event_parts, ignore_index=True) if event_parts else pd.DataFrame(columns=["site", "frame", "x", "y"])
+    rng = np.random.default_rng([settings.seed, zlib.crc32(str(well).encode())])
+    if reporters and len(events) >= 2:
+        observed, expected, p_value = knox_test(events["x"].to_numpy(float), events["y"].to_numpy(float),
+                                                events["frame"].to_numpy(float), events["site"].to_numpy(),
+                                                settings.event_radius_um, settings.event_window_frames,
+                                                settings.n_permutations, rng)
+        row["spreading_index"] = (observed + 1.0) / (expected + 1.0)
+        row["spreading_p_value"] = p_value
+    else:
+        row["spreading_index"] = 1.0 if reporters else np.nan
+        row["spreading_p_value"] = np.nan
+    row["n_neighbour_links"] = n_links
+    row["n_coupling_tests"] = n_tests
+    row["n_events"] = len(events)
+    return row
+
+
+def _nanmean(values: np.ndarray) -> float:
+    finite = values[np.isfinite(values)]
+    return float(finite.mean()) if len(finite) else np.nan
+
+
+def _fraction_below(q: np.ndarray, level: float) -> float:
+    finite = q[np.isfinite(q)]
+    return float((finite <= level).mean()) if len(finite) else np.nan
