@@ -28,15 +28,24 @@ def main() -> None:
         source = ROOT / part
         (shutil.copytree if source.is_dir() else shutil.copy2)(source, work / part)
     start = time.perf_counter()
-    subprocess.run([sys.executable, "-m", "snakemake", "--cores", str(CORES), "--scheduler", "greedy", "--quiet"],
-                   cwd=work, check=True, capture_output=True)
+    subprocess.run(
+        [sys.executable, "-m", "snakemake", "--cores", str(CORES), "--scheduler", "greedy", "--quiet"],
+        cwd=work,
+        check=True,
+        capture_output=True,
+    )
     wall = time.perf_counter() - start
-    tables = [pd.read_csv(path, sep="\t").assign(rule=path.parent.name if path.parent.name != "benchmarks" else path.stem)
-              for path in (work / "results" / "benchmarks").rglob("*.tsv")]
+    tables = [
+        pd.read_csv(path, sep="\t").assign(rule=path.parent.name if path.parent.name != "benchmarks" else path.stem)
+        for path in (work / "results" / "benchmarks").rglob("*.tsv")
+    ]
     jobs = pd.concat(tables, ignore_index=True)
     by_rule = jobs.groupby("rule")["s"].agg(["count", "sum", "max"])
     print(by_rule.to_string())
-    print(f"jobs {len(jobs)}, wall {wall:.1f} s, job seconds {jobs['s'].sum():.1f}, peak job RSS {jobs['max_rss'].max():.0f} MB")
+    print(
+        f"jobs {len(jobs)}, wall {wall:.1f} s, job seconds {jobs['s'].sum():.1f}, "
+        f"peak job RSS {jobs['max_rss'].max():.0f} MB"
+    )
     print(f"overhead ratio 1 - job_s / (wall x {CORES} cores): {1 - jobs['s'].sum() / (wall * CORES):.3f}")
     shutil.rmtree(work)
 

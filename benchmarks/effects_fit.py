@@ -19,13 +19,14 @@ import os
 for variable in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
     os.environ.setdefault(variable, "1")
 
-import sys
-import time
-import warnings
-from concurrent.futures import ProcessPoolExecutor
+import sys  # noqa: E402
+import time  # noqa: E402
+import warnings  # noqa: E402
+from concurrent.futures import ProcessPoolExecutor  # noqa: E402
 
 import numpy as np  # noqa: E402
 import pandas as pd  # noqa: E402
+
 from plateloom.screen.effects import fit_feature_effects  # noqa: E402
 
 PLATES, WELLS, BATCHES, TREATMENTS = 40, 384, 5, 40
@@ -39,17 +40,26 @@ def simulate_screen(n_features: int, seed: int = 1) -> pd.DataFrame:
     slot = np.tile(np.arange(WELLS), PLATES)
     control = slot % 8 == 0
     treatment_index = slot % TREATMENTS
-    frame = pd.DataFrame({
-        "batch": [f"day{b}" for b in batch], "plate": [f"P{p:02d}" for p in plate],
-        "role": np.where(control, "negative_control", "test"),
-        "treatment": np.where(control, "vehicle", [f"X{t:02d} 1 uM" for t in treatment_index]),
-        "condition": np.where(control, "vehicle", [f"X{t:02d}" for t in treatment_index]),
-        "dose": np.where(control, np.nan, 1.0), "dose_unit": "uM"})
+    frame = pd.DataFrame(
+        {
+            "batch": [f"day{b}" for b in batch],
+            "plate": [f"P{p:02d}" for p in plate],
+            "role": np.where(control, "negative_control", "test"),
+            "treatment": np.where(control, "vehicle", [f"X{t:02d} 1 uM" for t in treatment_index]),
+            "condition": np.where(control, "vehicle", [f"X{t:02d}" for t in treatment_index]),
+            "dose": np.where(control, np.nan, 1.0),
+            "dose_unit": "uM",
+        }
+    )
     effects = rng.normal(0, 0.1, TREATMENTS)
     columns = {}
     for f in range(n_features):
-        columns[f"f{f:03d}"] = (np.where(control, 0.0, effects[treatment_index]) + rng.normal(0, 0.1, BATCHES)[batch]
-                                + rng.normal(0, 0.05, PLATES)[plate] + rng.normal(0, 0.1, len(plate)))
+        columns[f"f{f:03d}"] = (
+            np.where(control, 0.0, effects[treatment_index])
+            + rng.normal(0, 0.1, BATCHES)[batch]
+            + rng.normal(0, 0.05, PLATES)[plate]
+            + rng.normal(0, 0.1, len(plate))
+        )
     return pd.concat([frame, pd.DataFrame(columns)], axis=1)
 
 
@@ -83,9 +93,14 @@ def main() -> None:
     r_se = np.max(np.abs(exact_part["std_error"].to_numpy() / reference["std_error"].to_numpy() - 1))
     per_exact = t_serial / n_features
     per_reference = t_reference / n_reference
-    print(f"screen: {len(wells)} wells, {PLATES} plates in {BATCHES} batches, {TREATMENTS} treatments, {n_features} features")
-    print(f"exact REML: {t_serial:.1f} s on 1 process ({per_exact * 1000:.0f} ms per feature), "
-          f"{t_parallel:.1f} s on 2 processes (parallel speed-up {t_serial / t_parallel:.2f}x)")
+    print(
+        f"screen: {len(wells)} wells, {PLATES} plates in {BATCHES} batches, {TREATMENTS} treatments, "
+        f"{n_features} features"
+    )
+    print(
+        f"exact REML: {t_serial:.1f} s on 1 process ({per_exact * 1000:.0f} ms per feature), "
+        f"{t_parallel:.1f} s on 2 processes (parallel speed-up {t_serial / t_parallel:.2f}x)"
+    )
     print(f"statsmodels MixedLM: {per_reference:.1f} s per feature ({n_reference} features)")
     print(f"exact vs statsmodels (default tolerance): max |estimate diff| {d_est:.2e}, max relative SE diff {r_se:.2e}")
     print(f"ratio statsmodels / exact time per feature: {per_reference / per_exact:.1f}")

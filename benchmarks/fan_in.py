@@ -23,6 +23,7 @@ from pathlib import Path
 
 import numpy as np
 import pandas as pd
+
 from plateloom.io.tables import write_parquet
 from plateloom.setup.plate_formats import plate_format, well_name
 
@@ -68,11 +69,28 @@ def synthetic_well(rng: np.random.Generator, well: str, rows: int) -> pd.DataFra
     per_frame = max(1, rows // frames)
     frame = np.repeat(np.arange(frames), per_frame)[:rows]
     n = len(frame)
-    data = {"plate": "P1", "well": well, "site": 1, "frame": frame, "time_min": frame * 5.0,
-            "object": np.tile(np.arange(1, per_frame + 1), frames)[:n], "track": np.tile(np.arange(per_frame), frames)[:n],
-            "parent_track": -1, "touches_border": rng.random(n) < 0.05,
-            "centroid_x_um": rng.uniform(0, 800, n), "centroid_y_um": rng.uniform(0, 800, n)}
-    for name in ("area_um2", "perimeter_um", "eccentricity", "solidity", "major_axis_um", "minor_axis_um", "form_factor"):
+    data = {
+        "plate": "P1",
+        "well": well,
+        "site": 1,
+        "frame": frame,
+        "time_min": frame * 5.0,
+        "object": np.tile(np.arange(1, per_frame + 1), frames)[:n],
+        "track": np.tile(np.arange(per_frame), frames)[:n],
+        "parent_track": -1,
+        "touches_border": rng.random(n) < 0.05,
+        "centroid_x_um": rng.uniform(0, 800, n),
+        "centroid_y_um": rng.uniform(0, 800, n),
+    }
+    for name in (
+        "area_um2",
+        "perimeter_um",
+        "eccentricity",
+        "solidity",
+        "major_axis_um",
+        "minor_axis_um",
+        "form_factor",
+    ):
         data[name] = rng.lognormal(3, 0.2, n)
     for channel in ("nuclear", "reporter"):
         for kind in ("mean", "integrated", "std"):
@@ -103,13 +121,20 @@ def main() -> None:
             (parquet / f"well={well}").mkdir(parents=True)
             write_parquet(table, str(parquet / f"well={well}" / "part-0.parquet"), {})
             table.to_csv(csv / f"{well}.csv", index=False)
-        layout = pd.DataFrame({"well": wells, "role": ["negative_control"] * 32 + ["test"] * (WELLS - 32),
-                               "condition": ["vehicle"] * 32 + [f"c{i % 20}" for i in range(WELLS - 32)],
-                               "dose": 0.0, "dose_unit": "uM"})
+        layout = pd.DataFrame(
+            {
+                "well": wells,
+                "role": ["negative_control"] * 32 + ["test"] * (WELLS - 32),
+                "condition": ["vehicle"] * 32 + [f"c{i % 20}" for i in range(WELLS - 32)],
+                "dose": 0.0,
+                "dose_unit": "uM",
+            }
+        )
         layout["treatment"] = layout["condition"]
         layout.to_csv(root / "layout.csv", index=False)
-        pd.DataFrame({"well": wells, "track": 0, "speed_um_per_min": 0.5, "straightness": 0.5,
-                      "touches_border": False}).to_parquet(root / "tracks.parquet")
+        pd.DataFrame(
+            {"well": wells, "track": 0, "speed_um_per_min": 0.5, "straightness": 0.5, "touches_border": False}
+        ).to_parquet(root / "tracks.parquet")
         parquet_disk = sum(p.stat().st_size for p in parquet.rglob("*.parquet")) / 2**20
         csv_disk = sum(p.stat().st_size for p in csv.glob("*.csv")) / 2**20
         fan_in = child(PARQUET_CHILD, str(parquet), str(root / "layout.csv"), str(root / "tracks.parquet"))
@@ -117,12 +142,18 @@ def main() -> None:
     working = fan_in["peak_mb"] - fan_in["baseline_mb"]
     fan_in_rate, csv_rate = fan_in["rows"] / fan_in["seconds"], reading["rows"] / reading["seconds"]
     print(f"rows: {fan_in['rows']:,} in {WELLS} wells; Parquet {parquet_disk:.0f} MB, CSV {csv_disk:.0f} MB on disk")
-    print(f"fan-in (Parquet, {fan_in['columns']} columns read, well profiles): {fan_in['seconds']:.1f} s, "
-          f"{fan_in_rate / 1e6:.2f} M rows/s")
-    print(f"pandas.read_csv of the same rows (all columns, reading only): {reading['seconds']:.1f} s, "
-          f"{csv_rate / 1e6:.2f} M rows/s")
-    print(f"memory: columns read {fan_in['read_mb']:.0f} MB as one table; working peak {working:.0f} MB "
-          f"= {working / fan_in['read_mb']:.2f} x (goal <= 2)")
+    print(
+        f"fan-in (Parquet, {fan_in['columns']} columns read, well profiles): {fan_in['seconds']:.1f} s, "
+        f"{fan_in_rate / 1e6:.2f} M rows/s"
+    )
+    print(
+        f"pandas.read_csv of the same rows (all columns, reading only): {reading['seconds']:.1f} s, "
+        f"{csv_rate / 1e6:.2f} M rows/s"
+    )
+    print(
+        f"memory: columns read {fan_in['read_mb']:.0f} MB as one table; working peak {working:.0f} MB "
+        f"= {working / fan_in['read_mb']:.2f} x (goal <= 2)"
+    )
     print(f"fan-in / CSV throughput: {fan_in_rate / csv_rate:.1f} (goal >= 5)")
 
 

@@ -16,8 +16,9 @@ import time
 import warnings
 
 import numpy as np
-from plateloom.well.collective import granger_f_test, granger_tests
 from statsmodels.tsa.stattools import grangercausalitytests
+
+from plateloom.well.collective import granger_f_test, granger_tests
 
 
 def main() -> None:
@@ -48,10 +49,14 @@ def main() -> None:
 
     print(f"{n_pairs} pairs of {n} frames, lags 1..{max_lag}")
     print(f"statsmodels, one call per pair: {t_reference:.2f} s")
-    print(f"vectorised F-tests, lags 1..{max_lag}: {t_vectorised * 1000:.1f} ms "
-          f"(largest relative difference in F {np.max(np.abs(vectorised / reference - 1)):.1e})")
-    print(f"vectorised readout path (BIC lag choice + test): {t_readout * 1000:.1f} ms "
-          f"(statsmodels / readout path {t_reference / t_readout:.0f}x)")
+    print(
+        f"vectorised F-tests, lags 1..{max_lag}: {t_vectorised * 1000:.1f} ms "
+        f"(largest relative difference in F {np.max(np.abs(vectorised / reference - 1)):.1e})"
+    )
+    print(
+        f"vectorised readout path (BIC lag choice + test): {t_readout * 1000:.1f} ms "
+        f"(statsmodels / readout path {t_reference / t_readout:.0f}x)"
+    )
     print(f"statsmodels / vectorised: {t_reference / t_vectorised:.0f}")
 
 

@@ -12,6 +12,7 @@ from __future__ import annotations
 import time
 
 import numpy as np
+
 from plateloom.well.tracking import link_frames
 
 

@@ -24,6 +24,9 @@ from pathlib import Path
 
 import numpy as np
 import tifffile
+from scipy import ndimage
+from skimage.filters import threshold_otsu
+
 from plateloom.demo.scenario import QUANTITIES, load_scenario
 from plateloom.demo.simulate import simulate_site
 from plateloom.io.images import index_plate_images
@@ -40,8 +43,6 @@ from plateloom.well.segment import (
     smooth_image,
 )
 from plateloom.well.stage import WellSettings, analyse_well, measure_frame
-from scipy import ndimage
-from skimage.filters import threshold_otsu
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -59,9 +60,20 @@ def make_site(folder: Path, frames: int) -> WellSettings:
         body[frame] = np.clip(150 + cytoplasm + rng.normal(0, 15, cytoplasm.shape), 0, 65535).astype(np.uint16)
     tifffile.imwrite(folder / "B02_s1_nuclear.tif", stack[:, 0], photometric="minisblack")
     tifffile.imwrite(folder / "B02_s1_body.tif", body, photometric="minisblack")
-    return WellSettings(("nuclear", "body"), "nuclear", scenario["pixel_size_um"], scenario["frame_interval_min"],
-                        1.0, 30.0, 7.0, 8.0, 3, max_gap_frames=2, cell_body_channel="body",
-                        reporter_channels=("nuclear",))
+    return WellSettings(
+        ("nuclear", "body"),
+        "nuclear",
+        scenario["pixel_size_um"],
+        scenario["frame_interval_min"],
+        1.0,
+        30.0,
+        7.0,
+        8.0,
+        3,
+        max_gap_frames=2,
+        cell_body_channel="body",
+        reporter_channels=("nuclear",),
+    )
 
 
 def floor_seconds(folder: Path, frames: int, sigma_px: float) -> float:
@@ -76,7 +88,9 @@ def floor_seconds(folder: Path, frames: int, sigma_px: float) -> float:
 
 def breakdown(folder: Path, settings: WellSettings) -> dict[str, float]:
     """Seconds per frame of the main steps, on the first frame (repeated 3 times, best)."""
-    planes = np.stack([tifffile.imread(folder / f"B02_s1_{c}.tif", key=0) for c in settings.channels]).astype(np.float32)
+    planes = np.stack([tifffile.imread(folder / f"B02_s1_{c}.tif", key=0) for c in settings.channels]).astype(
+        np.float32
+    )
     sigma = settings.smoothing_sigma_um / settings.pixel_size_um
     steps = {}
 
@@ -90,7 +104,9 @@ def breakdown(folder: Path, settings: WellSettings) -> dict[str, float]:
         return result
 
     smooth = best("smoothing", lambda: smooth_image(planes[0], sigma))
-    labels, _ = best("nuclei (threshold, split, half maximum)", lambda: segment_smoothed(smooth, settings.pixel_size_um, 30.0, 7.0))
+    labels, _ = best(
+        "nuclei (threshold, split, half maximum)", lambda: segment_smoothed(smooth, settings.pixel_size_um, 30.0, 7.0)
+    )
     bodies = best("cell bodies", lambda: grow_cell_bodies(labels, planes[1], settings.pixel_size_um, 2.0))
     best("background", lambda: background_levels(planes, bodies))
     pixels = ObjectPixels.of(labels)
@@ -108,10 +124,14 @@ def main() -> None:
         folder = Path(tmp)
         settings = make_site(folder, frames)
         index = index_plate_images(str(folder), "{well}_s{site}_{channel}.tif", 96, list(settings.channels))
-        floor = min(floor_seconds(folder, frames, settings.smoothing_sigma_um / settings.pixel_size_um) for _ in range(2))
+        floor = min(
+            floor_seconds(folder, frames, settings.smoothing_sigma_um / settings.pixel_size_um) for _ in range(2)
+        )
         full = {}
-        for variant, variant_settings in (("nuclei only", replace(settings, cell_body_channel=None)),
-                                          ("with cell bodies", settings)):
+        for variant, variant_settings in (
+            ("nuclei only", replace(settings, cell_body_channel=None)),
+            ("with cell bodies", settings),
+        ):
             times = []
             for _ in range(2):
                 start = time.perf_counter()
@@ -125,8 +145,10 @@ def main() -> None:
             print(f"  {name:42s} {1000 * seconds:8.1f} ms per frame")
     print(f"floor (read + Gaussian + Otsu + label): {1000 * floor / frames:.1f} ms per frame")
     for variant, seconds in full.items():
-        print(f"full per-well work, {variant + ':':18s} {1000 * seconds / frames:.1f} ms per frame "
-              f"= {seconds / floor:.2f} x floor")
+        print(
+            f"full per-well work, {variant + ':':18s} {1000 * seconds / frames:.1f} ms per frame "
+            f"= {seconds / floor:.2f} x floor"
+        )
     print(f"full (with cell bodies) / floor per frame: {full['with cell bodies'] / floor:.2f} (goal <= 3)")
 
 

@@ -18,9 +18,10 @@ from pathlib import Path
 
 import numpy as np
 import tifffile
+from scipy import ndimage
+
 from plateloom.demo.scenario import QUANTITIES, load_scenario
 from plateloom.demo.simulate import simulate_site
-from scipy import ndimage
 
 ROOT = Path(__file__).resolve().parents[1]
 DISTINCT_FRAMES = 4
@@ -58,8 +59,13 @@ def write_site(folder: Path, frames: int) -> None:
             yield np.roll(source[frame % DISTINCT_FRAMES], 2 * (frame // DISTINCT_FRAMES), axis=1)
 
     for name, source in (("nuclear", stack[:, 0]), ("body", body)):
-        tifffile.imwrite(folder / f"B02_s1_{name}.tif", pages(source), shape=(frames, 1024, 1024), dtype=np.uint16,
-                         photometric="minisblack")
+        tifffile.imwrite(
+            folder / f"B02_s1_{name}.tif",
+            pages(source),
+            shape=(frames, 1024, 1024),
+            dtype=np.uint16,
+            photometric="minisblack",
+        )
 
 
 def main() -> None:

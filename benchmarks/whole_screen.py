@@ -33,18 +33,29 @@ CORES = 2
 def prepare(work: Path, frames: int, side: int) -> None:
     for part in ("Snakefile", "workflow", "config", "resources", "scripts"):
         source = ROOT / part
-        (shutil.copytree if source.is_dir() else shutil.copy2)(source, work / part,
-                                                               **({"ignore": shutil.ignore_patterns("__pycache__")} if source.is_dir() else {}))
+        (shutil.copytree if source.is_dir() else shutil.copy2)(
+            source, work / part, **({"ignore": shutil.ignore_patterns("__pycache__")} if source.is_dir() else {})
+        )
     scenario_path = work / "resources/demo/scenario.yaml"
     scenario = yaml.safe_load(scenario_path.read_text())
     scale = (side / scenario["image_size_px"]) ** 2
-    scenario.update({"image_size_px": side, "frames": frames, "sites_per_well": 2,
-                     "cells_per_site": int(round(scenario["cells_per_site"] * scale)),
-                     "batches": [{"batch": "day1", "plates": ["TW-D1-P1", "TW-D1-P2"]},
-                                 {"batch": "day2", "plates": ["TW-D2-P1", "TW-D2-P2"]}]})
+    scenario.update(
+        {
+            "image_size_px": side,
+            "frames": frames,
+            "sites_per_well": 2,
+            "cells_per_site": int(round(scenario["cells_per_site"] * scale)),
+            "batches": [
+                {"batch": "day1", "plates": ["TW-D1-P1", "TW-D1-P2"]},
+                {"batch": "day2", "plates": ["TW-D2-P1", "TW-D2-P2"]},
+            ],
+        }
+    )
     scenario_path.write_text(yaml.safe_dump(scenario, sort_keys=False))
     sheet = pd.read_csv(work / "config/plates.csv")
-    sheet[sheet["plate"].isin([p for b in scenario["batches"] for p in b["plates"]])].to_csv(work / "config/plates.csv", index=False)
+    sheet[sheet["plate"].isin([p for b in scenario["batches"] for p in b["plates"]])].to_csv(
+        work / "config/plates.csv", index=False
+    )
     config_path = work / "config/config.yaml"
     config = yaml.safe_load(config_path.read_text())
     config["screen"]["design_check"]["n_screens"] = 20
@@ -58,8 +69,12 @@ def main() -> None:
     prepare(work, frames, side)
     start = time.perf_counter()
     before = resource.getrusage(resource.RUSAGE_CHILDREN)
-    subprocess.run([sys.executable, "-m", "snakemake", "--cores", str(CORES), "--scheduler", "greedy", "--quiet"],
-                   cwd=work, check=True, capture_output=True)
+    subprocess.run(
+        [sys.executable, "-m", "snakemake", "--cores", str(CORES), "--scheduler", "greedy", "--quiet"],
+        cwd=work,
+        check=True,
+        capture_output=True,
+    )
     wall = time.perf_counter() - start
     after = resource.getrusage(resource.RUSAGE_CHILDREN)
     run_cpu = (after.ru_utime - before.ru_utime) + (after.ru_stime - before.ru_stime)
@@ -69,8 +84,13 @@ def main() -> None:
         rule = path.parent.name if path.parent.name != "benchmarks" else path.stem
         rows.append(table.assign(rule=rule, finished=path.stat().st_mtime))
     jobs = pd.concat(rows, ignore_index=True)
-    by_rule = jobs.groupby("rule").agg(jobs=("s", "size"), seconds=("s", "sum"), cpu_seconds=("cpu_time", "sum"),
-                                       longest=("s", "max"), peak_rss_mb=("max_rss", "max"))
+    by_rule = jobs.groupby("rule").agg(
+        jobs=("s", "size"),
+        seconds=("s", "sum"),
+        cpu_seconds=("cpu_time", "sum"),
+        longest=("s", "max"),
+        peak_rss_mb=("max_rss", "max"),
+    )
     by_rule["share_of_job_time"] = by_rule["seconds"] / by_rule["seconds"].sum()
     print(f"screen: 4 plates x 96 wells x 2 sites x {frames} frames of {side}x{side}; {len(jobs)} jobs")
     print(by_rule.sort_values("seconds", ascending=False).round(3).to_string())
@@ -82,13 +102,19 @@ def main() -> None:
     starts = jobs["finished"] - jobs["s"]
     inside = (np.minimum(jobs["finished"], last) - np.maximum(starts, first)).clip(lower=0)
     span_cpu = float((jobs["cpu_time"] * inside / jobs["s"].where(jobs["s"] > 0)).sum())
-    print(f"wall {wall:.0f} s; CPU of the whole run (all processes, getrusage) {run_cpu:.0f} s "
-          f"= {run_cpu / (wall * CORES):.2f} of {CORES} cores")
-    print(f"per-well stage span {span:.0f} s: CPU of its own jobs {wells['cpu_time'].sum():.0f} s "
-          f"({wells['cpu_time'].sum() / (span * CORES):.2f} of {CORES} cores), of all jobs in the span {span_cpu:.0f} s")
+    print(
+        f"wall {wall:.0f} s; CPU of the whole run (all processes, getrusage) {run_cpu:.0f} s "
+        f"= {run_cpu / (wall * CORES):.2f} of {CORES} cores"
+    )
+    print(
+        f"per-well stage span {span:.0f} s: CPU of its own jobs {wells['cpu_time'].sum():.0f} s "
+        f"({wells['cpu_time'].sum() / (span * CORES):.2f} of {CORES} cores), of all jobs in the span {span_cpu:.0f} s"
+    )
     print("(Snakemake's benchmark cpu_time is sampled while a job runs, so short jobs are under-counted)")
-    print(f"CPU utilisation of {CORES} cores during the per-well stage, all jobs: "
-          f"{span_cpu / (span * CORES):.2f} (goal >= 0.85)")
+    print(
+        f"CPU utilisation of {CORES} cores during the per-well stage, all jobs: "
+        f"{span_cpu / (span * CORES):.2f} (goal >= 0.85)"
+    )
     shutil.rmtree(work)
 
 

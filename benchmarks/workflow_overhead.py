@@ -52,11 +52,20 @@ def _create_outputs(results: Path) -> None:
     for p in range(PLATES):
         (results / "reports" / "plates" / f"B{p:02d}.html").touch()
     screen_stages = [
-        ["screen/model_wells.parquet", "screen/treatments.parquet", "screen/batch_variance_shares.parquet",
-         "screen/batch_principal_components.parquet"],
+        [
+            "screen/model_wells.parquet",
+            "screen/treatments.parquet",
+            "screen/batch_variance_shares.parquet",
+            "screen/batch_principal_components.parquet",
+        ],
         [f"screen/effects_parts/chunk={c:03d}.parquet" for c in range(2)],
-        ["effects.parquet", "effects.csv", "dose_response.parquet", "dose_response.csv",
-         "screen/dose_response_points.parquet"],
+        [
+            "effects.parquet",
+            "effects.csv",
+            "dose_response.parquet",
+            "dose_response.csv",
+            "screen/dose_response_points.parquet",
+        ],
         ["design_check.parquet", "design_check.csv"],
         ["reports/screen.html"],
     ]
@@ -95,8 +104,10 @@ def main() -> None:
         (shutil.copytree if source.is_dir() else shutil.copy2)(source, work / part)
     wells = [f"{chr(65 + r)}{c + 1:02d}" for r in range(ROWS) for c in range(COLUMNS)]
     lines = ["well,role,condition,dose,dose_unit"]
-    lines += [f"{w},{'negative_control' if i % 16 == 0 else 'test'},{'vehicle' if i % 16 == 0 else f'X{i % 40}'},,"
-              for i, w in enumerate(wells)]
+    lines += [
+        f"{w},{'negative_control' if i % 16 == 0 else 'test'},{'vehicle' if i % 16 == 0 else f'X{i % 40}'},,"
+        for i, w in enumerate(wells)
+    ]
     (work / "config/layouts/bench_384.csv").write_text("\n".join(lines) + "\n")
     (work / "images").mkdir()
     # empty files with the names of 4 sites x 2 channels per well: the check at start-up reads
@@ -134,8 +145,10 @@ def main() -> None:
     done, output_done = timed("-n")
     print(f"plates {PLATES}, wells {PLATES * ROWS * COLUMNS}, jobs {jobs}")
     print(f"dry run, all to do: {todo:.1f} s; touch all outputs: {touch:.1f} s; dry run, complete: {done:.1f} s")
-    print(f"start-up of Snakemake on a one-rule workflow, same machine: {startup:.1f} s "
-          f"(complete-screen dry run net of it: {done - startup:.1f} s)")
+    print(
+        f"start-up of Snakemake on a one-rule workflow, same machine: {startup:.1f} s "
+        f"(complete-screen dry run net of it: {done - startup:.1f} s)"
+    )
     print("complete screen up to date:", "Nothing to be done" in output_done)
     if full:
         shutil.rmtree(work / "results")
@@ -143,8 +156,10 @@ def main() -> None:
         _use_stand_ins(work)
         run, _ = timed("--quiet")
         n_jobs = jobs["total"]
-        print(f"full run with stand-in jobs: {run:.1f} s for {n_jobs} jobs on 2 cores "
-              f"({2 * run / n_jobs:.2f} core-seconds of overhead per job)")
+        print(
+            f"full run with stand-in jobs: {run:.1f} s for {n_jobs} jobs on 2 cores "
+            f"({2 * run / n_jobs:.2f} core-seconds of overhead per job)"
+        )
     print(f"ratio dry-run(complete) / 10 s goal: {done / 10.0:.2f}")
     shutil.rmtree(work)
 

@@ -33,7 +33,9 @@ def run_snakemake(workdir: Path, *args: str, check: bool = True) -> subprocess.C
     env = {**os.environ, "PYTHONHASHSEED": "0"}
     result = subprocess.run(command, cwd=workdir, capture_output=True, text=True, env=env)
     if check and result.returncode != 0:
-        raise AssertionError(f"snakemake failed ({result.returncode}):\n{result.stdout[-4000:]}\n{result.stderr[-6000:]}")
+        raise AssertionError(
+            f"snakemake failed ({result.returncode}):\n{result.stdout[-4000:]}\n{result.stderr[-6000:]}"
+        )
     return result
 
 

@@ -15,16 +15,18 @@ IOU_THRESHOLDS = tuple(np.round(np.arange(0.5, 1.0, 0.05), 2))
 def iou_matrix(truth: np.ndarray, predicted: np.ndarray) -> np.ndarray:
     """Intersection over union of every (true label, predicted label) pair; rows 1..n_true, columns 1..n_pred."""
     n_true, n_pred = int(truth.max()), int(predicted.max())
-    overlap = np.bincount(truth.ravel().astype(np.int64) * (n_pred + 1) + predicted.ravel(),
-                          minlength=(n_true + 1) * (n_pred + 1)).reshape(n_true + 1, n_pred + 1)
+    overlap = np.bincount(
+        truth.ravel().astype(np.int64) * (n_pred + 1) + predicted.ravel(), minlength=(n_true + 1) * (n_pred + 1)
+    ).reshape(n_true + 1, n_pred + 1)
     true_area, pred_area = overlap.sum(axis=1), overlap.sum(axis=0)
     intersection = overlap[1:, 1:].astype(float)
     union = true_area[1:, None] + pred_area[None, 1:] - intersection
     return np.divide(intersection, union, out=np.zeros_like(intersection), where=union > 0)
 
 
-def average_precision(truth: np.ndarray, predicted: np.ndarray,
-                      thresholds: tuple[float, ...] = IOU_THRESHOLDS) -> dict[float, float]:
+def average_precision(
+    truth: np.ndarray, predicted: np.ndarray, thresholds: tuple[float, ...] = IOU_THRESHOLDS
+) -> dict[float, float]:
     """AP = TP / (TP + FP + FN) at each IoU threshold (>= 0.5) for one label image pair.
 
     Objects present in neither image give AP 1 (nothing to find, nothing found).
@@ -41,8 +43,9 @@ def average_precision(truth: np.ndarray, predicted: np.ndarray,
     return result
 
 
-def pooled_average_precision(pairs: list[tuple[np.ndarray, np.ndarray]],
-                             thresholds: tuple[float, ...] = IOU_THRESHOLDS) -> dict[float, float]:
+def pooled_average_precision(
+    pairs: list[tuple[np.ndarray, np.ndarray]], thresholds: tuple[float, ...] = IOU_THRESHOLDS
+) -> dict[float, float]:
     """AP over many images: true positives, false positives and false negatives summed first."""
     totals = {float(t): [0, 0] for t in thresholds}
     for truth, predicted in pairs:

@@ -9,16 +9,17 @@ import numpy as np
 import pytest
 import tifffile
 from conftest import ROOT
-from plateloom.demo.scenario import QUANTITIES, load_scenario
-from plateloom.demo.simulate import simulate_site, vignetting
-from plateloom.io.images import index_plate_images
-from plateloom.well.segment import segment_nuclei
-from plateloom.well.stage import WellSettings, analyse_well
 from segmentation_accuracy import (
     average_precision,
     iou_matrix,
     pooled_average_precision,
 )
+
+from plateloom.demo.scenario import QUANTITIES, load_scenario
+from plateloom.demo.simulate import simulate_site, vignetting
+from plateloom.io.images import index_plate_images
+from plateloom.well.segment import segment_nuclei
+from plateloom.well.stage import WellSettings, analyse_well
 
 SCENARIO = str(ROOT / "resources/demo/scenario.yaml")
 
@@ -38,8 +39,18 @@ def test_average_precision_on_a_worked_example():
 
 def _settings(scenario):
     # the demo run's settings (config/config.yaml)
-    return WellSettings(("nuclear", "reporter"), "nuclear", scenario["pixel_size_um"], scenario["frame_interval_min"],
-                        1.0, 30.0, 7.0, 8.0, 3, max_gap_frames=2)
+    return WellSettings(
+        ("nuclear", "reporter"),
+        "nuclear",
+        scenario["pixel_size_um"],
+        scenario["frame_interval_min"],
+        1.0,
+        30.0,
+        7.0,
+        8.0,
+        3,
+        max_gap_frames=2,
+    )
 
 
 def _simulated_sites(density, sites, frames, seed):
@@ -49,8 +60,9 @@ def _simulated_sites(density, sites, frames, seed):
     # than the demo's one push-apart step per frame to keep them from sliding over each other
     scenario["cell"]["separation_iterations_per_frame"] = 1 if density == 1 else 10
     factor = {q: 1.0 for q in QUANTITIES}
-    return scenario, [simulate_site(scenario, factor, np.random.default_rng([seed, site]), with_truth=True)
-                      for site in range(sites)]
+    return scenario, [
+        simulate_site(scenario, factor, np.random.default_rng([seed, site]), with_truth=True) for site in range(sites)
+    ]
 
 
 @pytest.mark.parametrize("density", [1, 2])
@@ -75,7 +87,7 @@ def test_tracking_mota_and_idf1_with_motmetrics(tmp_path, density):
     scenario, sites = _simulated_sites(density, sites=3, frames=16, seed=47)
     flat = vignetting(scenario["image_size_px"], scenario["imaging"]["vignetting_corner"])
     accumulator = motmetrics.MOTAccumulator(auto_id=True)
-    for site, (stack, truth) in enumerate(sites, start=1):
+    for site, (stack, _truth) in enumerate(sites, start=1):
         for channel, name in enumerate(("nuclear", "reporter")):
             corrected = np.clip(stack[:, channel] / flat, 0, 65535).astype(np.uint16)
             tifffile.imwrite(tmp_path / f"B02_s{site}_{name}.tif", corrected, photometric="minisblack")
@@ -87,10 +99,16 @@ def test_tracking_mota_and_idf1_with_motmetrics(tmp_path, density):
             expected = truth.positions[truth.positions["frame"] == frame]
             hypothesis = found[found["frame"] == frame]
             distances = motmetrics.distances.norm2squared_matrix(
-                expected[["x_um", "y_um"]].to_numpy(), hypothesis[["centroid_x_um", "centroid_y_um"]].to_numpy(),
-                max_d2=4.0 ** 2)
+                expected[["x_um", "y_um"]].to_numpy(),
+                hypothesis[["centroid_x_um", "centroid_y_um"]].to_numpy(),
+                max_d2=4.0**2,
+            )
             accumulator.update((site * 10000 + expected["cell"]).tolist(), hypothesis["track"].tolist(), distances)
-    summary = motmetrics.metrics.create().compute(accumulator, metrics=["mota", "idf1", "num_switches", "num_misses", "num_false_positives", "num_objects"], name="x")
+    summary = motmetrics.metrics.create().compute(
+        accumulator,
+        metrics=["mota", "idf1", "num_switches", "num_misses", "num_false_positives", "num_objects"],
+        name="x",
+    )
     mota, idf1 = float(summary["mota"].iloc[0]), float(summary["idf1"].iloc[0])
     print(f"density x{density}:", summary.to_dict("records"))
     assert mota >= 0.95

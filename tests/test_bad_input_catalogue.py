@@ -12,13 +12,14 @@ import pandas as pd
 import pytest
 import tifffile
 from conftest import run_snakemake
+from test_plate_stage import _plate
+
 from plateloom.errors import InputError
 from plateloom.io.images import index_plate_images, stream_site, unmatched_note
 from plateloom.plate.exclusions import ExclusionRules
 from plateloom.plate.stage import PlateSettings, build_plate_tables
 from plateloom.screen.model_wells import build_model_wells
 from plateloom.well.stage import WellSettings, analyse_well
-from test_plate_stage import _plate
 
 TEMPLATE = "{well}_s{site}_{channel}.tif"
 
@@ -42,13 +43,13 @@ def test_files_that_fit_no_template_field_are_listed_in_a_plate_note(tmp_path):
     tifffile.imwrite(tmp_path / "A01_s1_dna.tif", _nuclei_stack(), photometric="minisblack")
     (tmp_path / "A01_s1_dna_copy.tif").write_bytes(b"x")
     (tmp_path / "notes.txt").write_text("from the microscope")
-    (tmp_path / "A01_s1_brightfield.tif").write_bytes(b"x")       # a channel not in config
+    (tmp_path / "A01_s1_brightfield.tif").write_bytes(b"x")  # a channel not in config
     note = unmatched_note(str(tmp_path), TEMPLATE, 96, ["dna"])
     assert note.startswith("3 file(s) in ")
     for name in ("A01_s1_dna_copy.tif", "notes.txt", "A01_s1_brightfield.tif"):
         assert repr(name) in note
     assert "Fix: rename them" in note
-    assert len(_index(tmp_path).table) == 1                          # the good file is still analysed
+    assert len(_index(tmp_path).table) == 1  # the good file is still analysed
 
 
 def _problems(folder, channels=("dna",)):
@@ -59,9 +60,12 @@ def test_rgb_page_is_named_with_its_shape(tmp_path):
     tifffile.imwrite(tmp_path / "A01_s1_dna.tif", np.zeros((32, 32, 3), np.uint8), photometric="rgb")
     assert _problems(tmp_path)[0].endswith(
         "A01_s1_dna.tif: expected one 2-D plane per page, found shape (32, 32, 3). Fix: save one channel per file "
-        "(and one page per frame for stacks).")
+        "(and one page per frame for stacks)."
+    )
     # every frame of the site is unusable: that is no glitch of one frame, so the well job stops and says so
-    with pytest.raises(InputError, match=r"well A01, site 1: no frame of this site can be used.*found shape \(32, 32, 3\)"):
+    with pytest.raises(
+        InputError, match=r"well A01, site 1: no frame of this site can be used.*found shape \(32, 32, 3\)"
+    ):
         analyse_well(_index(tmp_path), "A01", _settings())
 
 
@@ -100,6 +104,7 @@ def test_nan_pixels_flag_their_frame_and_the_rest_of_the_well_is_analysed(tmp_pa
     assert flagged["frame_problem"].iloc[0].startswith("well A01, site 1, frame 1: ")
     assert "image holds NaN or infinite pixels" in flagged["frame_problem"].iloc[0]
     from plateloom.plate.exclusions import site_frame_exclusions
+
     ledger = site_frame_exclusions(qc.assign(well="A01"), ExclusionRules(), "P1")
     assert ledger[["well", "frame", "rule"]].values.tolist() == [["A01", 1, "unusable_frame"]]
 
@@ -108,9 +113,9 @@ def test_a_frame_of_the_wrong_shape_or_pixel_type_is_flagged(tmp_path):
     for frame in range(4):
         plane = _nuclei_stack(frames=1)[0]
         if frame == 1:
-            plane = plane[:40, :40]                            # wrong shape
+            plane = plane[:40, :40]  # wrong shape
         if frame == 2:
-            plane = plane.astype(np.complex64)                 # wrong pixel type
+            plane = plane.astype(np.complex64)  # wrong pixel type
         tifffile.imwrite(tmp_path / f"A01_s1_t{frame}_dna.tif", plane)
     index = index_plate_images(str(tmp_path), "{well}_s{site}_t{frame}_{channel}.tif", 96, ["dna"])
     cells, _, qc = analyse_well(index, "A01", _settings())
@@ -151,17 +156,28 @@ def test_well_with_no_cells_is_excluded_with_a_ledger_entry():
     row = tables.profile.set_index("well").loc["C03"]
     assert row["cell_count"] == 0 and row["excluded_by"].startswith("min_cells_per_well")
     assert ((tables.ledger["well"] == "C03") & (tables.ledger["rule"] == "min_cells_per_well")).any()
-    assert len(tables.profile) == 96                                  # no row dropped
+    assert len(tables.profile) == 96  # no row dropped
 
 
 def test_plate_whose_every_well_fails_qc_leaves_the_model_and_the_rest_continues():
     cells, tracks, qc, layout = _plate(seed=1)
-    failing = build_plate_tables(cells.iloc[0:0], tracks.iloc[0:0], qc.assign(n_objects=0), layout, "P1", "d1", 96,
-                                 PlateSettings(), ExclusionRules())
+    failing = build_plate_tables(
+        cells.iloc[0:0],
+        tracks.iloc[0:0],
+        qc.assign(n_objects=0),
+        layout,
+        "P1",
+        "d1",
+        96,
+        PlateSettings(),
+        ExclusionRules(),
+    )
     assert (failing.profile["excluded_by"] != "").all()
     assert (failing.ledger["rule"] == "min_cells_per_well").sum() == 96
-    good = [build_plate_tables(*_plate(seed=s)[:3], layout, f"P{s}", f"d{s}", 96, PlateSettings(), ExclusionRules()).profile
-            for s in (2, 3)]
+    good = [
+        build_plate_tables(*_plate(seed=s)[:3], layout, f"P{s}", f"d{s}", 96, PlateSettings(), ExclusionRules()).profile
+        for s in (2, 3)
+    ]
     wells = pd.concat([failing.profile, *good], ignore_index=True)
     model = build_model_wells(wells, ["area_um2"], {"area_um2"}, "control_location")
     assert set(model.wells["plate"]) == {"P2", "P3"}

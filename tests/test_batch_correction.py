@@ -3,6 +3,7 @@
 import numpy as np
 import pandas as pd
 import pytest
+
 from plateloom.screen.batch_correction import (
     align_to_controls,
     combat,
@@ -20,8 +21,11 @@ def _screen_matrix(seed=0):
     rng = np.random.default_rng(seed)
     batch = np.repeat([0, 1, 2], 12)
     treatment = np.tile(np.arange(3), 12)
-    x = (rng.normal(size=(36, 12)) + np.array([0, 1.0, -0.5])[batch][:, None] * rng.uniform(0.5, 1.5, 12)
-         + 0.8 * (treatment == 1)[:, None])
+    x = (
+        rng.normal(size=(36, 12))
+        + np.array([0, 1.0, -0.5])[batch][:, None] * rng.uniform(0.5, 1.5, 12)
+        + 0.8 * (treatment == 1)[:, None]
+    )
     x[batch == 2] *= 1.7
     covariates = np.column_stack([treatment == 1, treatment == 2]).astype(float)
     return x, batch, treatment, covariates
@@ -36,8 +40,9 @@ def _reference(x, batch, treatment=None, **options):
 def test_combat_location_only_equals_pycombat():
     # Reference: pycombat 0.3.3 (PyPI package "combat"), mean_only=True; Johnson, Li & Rabinovic 2007.
     x, batch, _, _ = _screen_matrix()
-    np.testing.assert_allclose(combat(x, batch, None, mean_only=True, ddof=0), _reference(x, batch, mean_only=True),
-                               rtol=0, atol=1e-10)
+    np.testing.assert_allclose(
+        combat(x, batch, None, mean_only=True, ddof=0), _reference(x, batch, mean_only=True), rtol=0, atol=1e-10
+    )
 
 
 def test_combat_location_scale_equals_pycombat_with_published_scale_update(monkeypatch):
@@ -96,8 +101,10 @@ def test_control_location_scale_equalises_control_mad():
     control = np.tile([True, True, False, False], 20)
     values = pd.DataFrame({"f": rng.normal(size=80) * np.repeat([1.0, 3.0], 40)})
     aligned = correct_batches(values, batch, control, np.where(control, "ctrl", "x"), "control_location_scale")
-    mads = [(aligned["f"][(batch == b) & control] - aligned["f"][(batch == b) & control].median()).abs().median()
-            for b in ("d1", "d2")]
+    mads = [
+        (aligned["f"][(batch == b) & control] - aligned["f"][(batch == b) & control].median()).abs().median()
+        for b in ("d1", "d2")
+    ]
     assert mads[0] == pytest.approx(mads[1], rel=1e-9)
 
 
@@ -106,8 +113,9 @@ def test_variance_shares_sum_to_one_and_find_a_planted_batch_effect():
     batch = np.repeat(["d1", "d2", "d3"], 40)
     plate = np.repeat([f"p{i}" for i in range(6)], 20)
     treatment = np.tile(["a", "b"], 60)
-    values = pd.DataFrame({"batchy": np.repeat([0.0, 3.0, -3.0], 40) + rng.normal(size=120),
-                           "noise": rng.normal(size=120)})
+    values = pd.DataFrame(
+        {"batchy": np.repeat([0.0, 3.0, -3.0], 40) + rng.normal(size=120), "noise": rng.normal(size=120)}
+    )
     shares = variance_shares(values, batch, plate, treatment).set_index("feature")
     np.testing.assert_allclose(shares.sum(axis=1), 1.0)
     assert shares.loc["batchy", "batch_share"] > 0.8

@@ -4,6 +4,8 @@ import numpy as np
 import pandas as pd
 import pytest
 import statsmodels.api as sm
+from statsmodels.tsa.stattools import grangercausalitytests
+
 from plateloom.well.collective import (
     CollectiveSettings,
     analytic_phases,
@@ -22,7 +24,6 @@ from plateloom.well.collective import (
     well_collective_readouts,
 )
 from plateloom.well.track_stats import fill_inner_gaps
-from statsmodels.tsa.stattools import grangercausalitytests
 
 
 def _coupled_pairs(rng, n_pairs, n, strength):
@@ -60,8 +61,9 @@ def test_lag_choice_minimises_statsmodels_bic_on_a_common_sample():
     for k in range(len(x)):
         bics = []
         for lag in range(1, 5):
-            design = np.column_stack([y[k, 4 - j:60 - j] for j in range(1, lag + 1)] +
-                                     [x[k, 4 - j:60 - j] for j in range(1, lag + 1)])
+            design = np.column_stack(
+                [y[k, 4 - j : 60 - j] for j in range(1, lag + 1)] + [x[k, 4 - j : 60 - j] for j in range(1, lag + 1)]
+            )
             bics.append(sm.OLS(y[k, 4:], sm.add_constant(design)).fit().bic)
         assert chosen[k] == int(np.argmin(bics)) + 1
     assert (chosen >= 3).all()  # the planted lag 3 is needed
@@ -179,9 +181,17 @@ def _lattice_well(coupling, rng, side=5, frames=30, spacing=20.0):
     u = np.zeros((frames, n))
     for t in range(1, frames):
         u[t] = 0.3 * u[t - 1] + coupling * weights @ u[t - 1] + rng.normal(size=n)
-    return pd.DataFrame({"site": 1, "frame": np.repeat(np.arange(frames), n), "track": np.tile(np.arange(n), frames),
-                         "centroid_x_um": np.tile(x, frames), "centroid_y_um": np.tile(y, frames),
-                         "touches_border": False, "mean_intensity_rep": (100 + 10 * u).ravel()})
+    return pd.DataFrame(
+        {
+            "site": 1,
+            "frame": np.repeat(np.arange(frames), n),
+            "track": np.tile(np.arange(n), frames),
+            "centroid_x_um": np.tile(x, frames),
+            "centroid_y_um": np.tile(y, frames),
+            "touches_border": False,
+            "mean_intensity_rep": (100 + 10 * u).ravel(),
+        }
+    )
 
 
 def test_planted_neighbour_coupling_raises_coupled_fraction_and_correlation():
@@ -198,12 +208,17 @@ def test_planted_neighbour_coupling_raises_coupled_fraction_and_correlation():
 
 def test_collective_table_has_no_readouts_without_a_reporter_or_when_switched_off():
     from plateloom.well.stage import WellSettings, collective_table
+
     cells = _lattice_well(0.5, np.random.default_rng(0))
     plain = WellSettings(("dna", "rep"), "dna", 0.8, 5.0, 1.0, 30.0, 7.0, 8.0, 3)
     assert collective_table(cells, plain, CollectiveSettings(), "A01").columns.empty
     with_reporter = WellSettings(("dna", "rep"), "dna", 0.8, 5.0, 1.0, 30.0, 7.0, 8.0, 3, reporter_channels=("rep",))
     assert collective_table(cells, with_reporter, CollectiveSettings(enabled=False), "A01").columns.empty
     table = collective_table(cells, with_reporter, CollectiveSettings(max_edge_um=25.0), "A01")
-    assert len(table) == 1 and {"phase_order_rep", "coupled_link_fraction_d2_rep", "spreading_index"} <= set(table.columns)
+    assert len(table) == 1 and {"phase_order_rep", "coupled_link_fraction_d2_rep", "spreading_index"} <= set(
+        table.columns
+    )
     # deterministic: the same inputs give the same row (permutations seeded by config seed and well)
-    pd.testing.assert_frame_equal(table, collective_table(cells, with_reporter, CollectiveSettings(max_edge_um=25.0), "A01"))
+    pd.testing.assert_frame_equal(
+        table, collective_table(cells, with_reporter, CollectiveSettings(max_edge_um=25.0), "A01")
+    )

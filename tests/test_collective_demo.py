@@ -5,9 +5,10 @@ import pandas as pd
 import pytest
 import yaml
 from conftest import copy_workflow, run_snakemake
+from scipy import stats
+
 from plateloom.demo.scenario import load_scenario, planted_collective
 from plateloom.setup.screen_sheet import load_layout
-from scipy import stats
 
 KEPT = ("vehicle", "TW-104", "TW-105", "TW-106")
 
@@ -50,12 +51,16 @@ def test_decoupler_moves_the_coupling_readouts_and_the_null_compound_does_not(co
     null = effects[(effects["condition"] == "TW-104") & effects["feature"].isin(readouts)]
     assert len(null) == 4 * len(set(readouts))
     wide = stats.t.ppf(1 - 0.025 / len(null), null["df"]) * null["std_error"]
-    assert ((null["estimate"] - wide <= 0) & (0 <= null["estimate"] + wide)).all(), null[["treatment", "feature", "estimate"]]
+    assert ((null["estimate"] - wide <= 0) & (0 <= null["estimate"] + wide)).all(), null[
+        ["treatment", "feature", "estimate"]
+    ]
 
 
 @pytest.mark.slow
 def test_deaths_spread_under_the_spreading_compound(collective_screen):
-    wells = pd.concat([pd.read_parquet(p) for p in sorted((collective_screen / "results/wells").glob("plate=*/*.parquet"))])
+    wells = pd.concat(
+        [pd.read_parquet(p) for p in sorted((collective_screen / "results/wells").glob("plate=*/*.parquet"))]
+    )
     kept = wells[wells["excluded_by"] == ""]
     spreading = kept[(kept["condition"] == "TW-106") & (kept["dose"] == 10)]
     control = kept[kept["role"] == "negative_control"]

@@ -11,6 +11,7 @@ import numpy as np
 import pandas as pd
 import pytest
 import statsmodels.formula.api as smf
+
 from plateloom.screen.design_check import (
     VarianceComponents,
     simulate_design,
@@ -36,8 +37,10 @@ def _naive_coverage(design: pd.DataFrame, n_screens: int, seed: int) -> float:
     rng = np.random.default_rng(seed)
     covered = []
     for _ in range(n_screens):
-        data = design.assign(y=simulate_values(design, COMPONENTS, EFFECT, rng),
-                             code=np.where(design["role"] == "negative_control", "a_control", design["condition"]))
+        data = design.assign(
+            y=simulate_values(design, COMPONENTS, EFFECT, rng),
+            code=np.where(design["role"] == "negative_control", "a_control", design["condition"]),
+        )
         fit = smf.ols("y ~ C(code)", data).fit()
         intervals = fit.conf_int(0.05).drop(index="Intercept")
         covered += list((intervals[0] <= EFFECT) & (EFFECT <= intervals[1]))
@@ -61,7 +64,11 @@ def test_simulated_components_have_the_planted_variances():
     # Planted-truth check of the simulator itself: sample variances of batch, plate and residual parts.
     design = pd.concat([_design()] * 1, ignore_index=True)
     rng = np.random.default_rng(1)
-    residual = np.concatenate([simulate_values(design, VarianceComponents(0.0, 0.0, 0.01), 0.0, rng) for _ in range(200)])
+    residual = np.concatenate(
+        [simulate_values(design, VarianceComponents(0.0, 0.0, 0.01), 0.0, rng) for _ in range(200)]
+    )
     assert residual.var() == pytest.approx(0.01, rel=0.05)
-    batch_only = np.array([simulate_values(design, VarianceComponents(0.04, 0.0, 0.0), 0.0, rng)[0] for _ in range(4000)])
+    batch_only = np.array(
+        [simulate_values(design, VarianceComponents(0.04, 0.0, 0.0), 0.0, rng)[0] for _ in range(4000)]
+    )
     assert batch_only.var() == pytest.approx(0.04, rel=0.08)

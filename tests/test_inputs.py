@@ -6,6 +6,7 @@ import numpy as np
 import pytest
 import tifffile
 from conftest import run_snakemake
+
 from plateloom.errors import InputError
 from plateloom.io.images import index_plate_images, stream_site, template_regex
 from plateloom.setup.screen_sheet import load_layout, load_screen_sheet
@@ -20,13 +21,22 @@ def _layout(tmp_path: Path, body: str) -> str:
     return str(path)
 
 
-@pytest.mark.parametrize("body, needle", [
-    ("M13,test,X,1,uM\nA01,negative_control,vehicle,,\n", "row 2, column well: well 'M13' is not on a 96-well plate"),
-    ("A01,negative_control,vehicle,,\nA1,test,X,1,uM\n", "row 3, column well: well A01 is listed twice (also row 2)"),
-    ("A01,negative_control,vehicle,,\nA02,treated,X,1,uM\n", "row 3, column role: unknown role 'treated'"),
-    ("A01,negative_control,vehicle,,\nA02,test,X,1,\n", "row 3, column dose_unit: well A02 has a dose but no unit"),
-    ("A01,test,X,1,uM\n", "the layout has no negative_control wells"),
-])
+@pytest.mark.parametrize(
+    "body, needle",
+    [
+        (
+            "M13,test,X,1,uM\nA01,negative_control,vehicle,,\n",
+            "row 2, column well: well 'M13' is not on a 96-well plate",
+        ),
+        (
+            "A01,negative_control,vehicle,,\nA1,test,X,1,uM\n",
+            "row 3, column well: well A01 is listed twice (also row 2)",
+        ),
+        ("A01,negative_control,vehicle,,\nA02,treated,X,1,uM\n", "row 3, column role: unknown role 'treated'"),
+        ("A01,negative_control,vehicle,,\nA02,test,X,1,\n", "row 3, column dose_unit: well A02 has a dose but no unit"),
+        ("A01,test,X,1,uM\n", "the layout has no negative_control wells"),
+    ],
+)
 def test_bad_layouts_are_named(tmp_path, body, needle):
     path = _layout(tmp_path, body)
     with pytest.raises(InputError) as caught:
@@ -59,7 +69,9 @@ def test_bad_screen_sheets_are_named(tmp_path):
 def test_template_needs_its_fields():
     with pytest.raises(InputError, match="filename_template"):
         template_regex("{well}_{colour}.tif")
-    assert template_regex("{well}_s{site}_t{frame}_{channel}.tif").match("B03_s2_t0007_dapi.tif").group("frame") == "0007"
+    assert (
+        template_regex("{well}_s{site}_t{frame}_{channel}.tif").match("B03_s2_t0007_dapi.tif").group("frame") == "0007"
+    )
 
 
 def _settings() -> WellSettings:
@@ -89,8 +101,10 @@ def test_missing_frame_in_a_per_frame_series_is_flagged_and_the_rest_read(tmp_pa
     frames = list(stream_site(index, "A01", 1, ["dna"]))
     assert [f.frame for f in frames] == [0, 1, 2, 3, 4]
     assert [f.planes is None for f in frames] == [False, False, True, False, False]
-    assert frames[2].problem == ("well A01, site 1, frame 2: well A01, site 1, channel dna: frame 2 is missing from the "
-                                 "series. Fix: re-export the missing frame; the other frames are analysed.")
+    assert frames[2].problem == (
+        "well A01, site 1, frame 2: well A01, site 1, channel dna: frame 2 is missing from the "
+        "series. Fix: re-export the missing frame; the other frames are analysed."
+    )
 
 
 def test_unknown_config_key_stops_the_workflow_with_its_name(workflow_dir):

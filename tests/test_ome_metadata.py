@@ -4,6 +4,7 @@ increment and channel names are read when present; config overrides them."""
 import numpy as np
 import pytest
 import tifffile
+
 from plateloom.errors import InputError
 from plateloom.io.images import image_scale, read_ome_metadata
 
@@ -14,8 +15,14 @@ def _ome_file(path, **metadata):
 
 
 def test_pixel_size_time_increment_and_channel_names_are_read_with_units(tmp_path):
-    path = _ome_file(tmp_path / "A01_s1_dapi.ome.tif", PhysicalSizeX=650, PhysicalSizeXUnit="nm", TimeIncrement=300,
-                     TimeIncrementUnit="s", Channel={"Name": ["dapi"]})
+    path = _ome_file(
+        tmp_path / "A01_s1_dapi.ome.tif",
+        PhysicalSizeX=650,
+        PhysicalSizeXUnit="nm",
+        TimeIncrement=300,
+        TimeIncrementUnit="s",
+        Channel={"Name": ["dapi"]},
+    )
     metadata = read_ome_metadata(path)
     assert metadata.pixel_size_um == pytest.approx(0.65)
     assert metadata.frame_interval_min == pytest.approx(5.0)
@@ -33,6 +40,9 @@ def test_plain_tiff_without_scale_in_config_is_an_error_naming_the_keys(tmp_path
     path = tmp_path / "plain.tif"
     tifffile.imwrite(path, np.zeros((16, 16), np.uint16))
     assert read_ome_metadata(str(path)) is None
-    with pytest.raises(InputError, match=r"plain.tif.*pixel_size_um not set and not in the image's OME metadata.*"
-                                         r"Fix: set images.pixel_size_um"):
+    with pytest.raises(
+        InputError,
+        match=r"plain.tif.*pixel_size_um not set and not in the image's OME metadata.*"
+        r"Fix: set images.pixel_size_um",
+    ):
         image_scale({"pixel_size_um": None, "frame_interval_min": 1.0}, str(path))

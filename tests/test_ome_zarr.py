@@ -7,6 +7,7 @@ import pandas as pd
 import pytest
 import tifffile
 from conftest import ROOT
+
 from plateloom.demo.scenario import QUANTITIES, load_scenario
 from plateloom.demo.simulate import simulate_site
 from plateloom.io.images import index_plate_images, read_ome_metadata
@@ -23,8 +24,11 @@ def _stacks():
     scenario = load_scenario(str(ROOT / "resources/demo/scenario.yaml"), frames=3, image_size_px=96)
     scenario["cells_per_site"] = 8
     factor = {q: 1.0 for q in QUANTITIES}
-    return {(well, site): simulate_site(scenario, factor, np.random.default_rng([i, site]))
-            for i, well in enumerate(WELLS) for site in (1, 2)}
+    return {
+        (well, site): simulate_site(scenario, factor, np.random.default_rng([i, site]))
+        for i, well in enumerate(WELLS)
+        for site in (1, 2)
+    }
 
 
 def _write_zarr_plate(path, stacks):
@@ -34,13 +38,25 @@ def _write_zarr_plate(path, stacks):
         group = root.require_group(row).require_group(column)
         ome_writer.write_well_metadata(group, ["0", "1"])
         for field in ("0", "1"):
-            channels = [{"label": name, "color": "FFFFFF", "active": True,
-                         "window": {"start": 0, "end": 65535, "min": 0, "max": 65535}} for name in CHANNELS]
-            ome_writer.write_image(image=stacks[(well, int(field) + 1)], group=group.require_group(field), axes="tcyx",
-                                   scale_factors=[], scale={"t": 300.0, "c": 1.0, "y": 0.8, "x": 0.8},
-                                   axes_units={"t": "second", "y": "micrometer", "x": "micrometer"},
-                                   omero={"channels": channels, "rdefs": {"model": "greyscale"}},
-                                   storage_options={"chunks": (1, 1, 96, 96)})
+            channels = [
+                {
+                    "label": name,
+                    "color": "FFFFFF",
+                    "active": True,
+                    "window": {"start": 0, "end": 65535, "min": 0, "max": 65535},
+                }
+                for name in CHANNELS
+            ]
+            ome_writer.write_image(
+                image=stacks[(well, int(field) + 1)],
+                group=group.require_group(field),
+                axes="tcyx",
+                scale_factors=[],
+                scale={"t": 300.0, "c": 1.0, "y": 0.8, "x": 0.8},
+                axes_units={"t": "second", "y": "micrometer", "x": "micrometer"},
+                omero={"channels": channels, "rdefs": {"model": "greyscale"}},
+                storage_options={"chunks": (1, 1, 96, 96)},
+            )
 
 
 def test_ome_zarr_plate_gives_the_same_tables_as_tiff_files(tmp_path):
@@ -52,8 +68,9 @@ def test_ome_zarr_plate_gives_the_same_tables_as_tiff_files(tmp_path):
             tifffile.imwrite(tiff_folder / f"{well}_s{site}_{name}.tif", stack[:, channel], photometric="minisblack")
     store = tmp_path / "plate.zarr"
     _write_zarr_plate(store, stacks)
-    settings = WellSettings(CHANNELS, "nuclear", 0.8, 5.0, 1.0, 30.0, 7.0, 8.0, 3, max_gap_frames=2,
-                            reporter_channels=("reporter",))
+    settings = WellSettings(
+        CHANNELS, "nuclear", 0.8, 5.0, 1.0, 30.0, 7.0, 8.0, 3, max_gap_frames=2, reporter_channels=("reporter",)
+    )
     from_tiff = index_plate_images(str(tiff_folder), "{well}_s{site}_{channel}.tif", 96, list(CHANNELS))
     from_zarr = index_plate_images(str(store), "{well}_s{site}_{channel}.tif", 96, list(CHANNELS))
     assert from_zarr.source == "zarr" and sorted(from_zarr.table["well"].unique()) == ["B02", "C03"]
@@ -86,8 +103,12 @@ def test_multichannel_ome_tiff_per_site_gives_the_same_tables_as_one_file_per_ch
     for (well, site), stack in stacks.items():
         for channel, name in enumerate(CHANNELS):
             tifffile.imwrite(per_channel / f"{well}_s{site}_{name}.tif", stack[:, channel], photometric="minisblack")
-        tifffile.imwrite(per_site / f"{well}_s{site}.ome.tif", stack, ome=True,
-                         metadata={"axes": "TCYX", "Channel": {"Name": list(CHANNELS)}, "PhysicalSizeX": 0.8})
+        tifffile.imwrite(
+            per_site / f"{well}_s{site}.ome.tif",
+            stack,
+            ome=True,
+            metadata={"axes": "TCYX", "Channel": {"Name": list(CHANNELS)}, "PhysicalSizeX": 0.8},
+        )
     settings = WellSettings(CHANNELS, "nuclear", 0.8, 5.0, 1.0, 30.0, 7.0, 8.0, 3, max_gap_frames=2)
     one = index_plate_images(str(per_channel), "{well}_s{site}_{channel}.tif", 96, list(CHANNELS))
     multi = index_plate_images(str(per_site), "{well}_s{site}.ome.tif", 96, list(CHANNELS))

@@ -1,6 +1,7 @@
 """Plate geometry against ANSI/SLAS 4-2004 and well naming."""
 
 import pytest
+
 from plateloom.setup.plate_formats import (
     all_wells,
     canonical_well,
@@ -12,7 +13,8 @@ from plateloom.setup.plate_formats import (
 
 @pytest.mark.parametrize("wells, rows, columns, pitch", [(96, 8, 12, 9.0), (384, 16, 24, 4.5), (1536, 32, 48, 2.25)])
 def test_formats_follow_ansi_slas_4_2004(wells, rows, columns, pitch):
-    # ANSI/SLAS 4-2004 well positions (values recalled from memory): 8 x 12 at 9 mm, 16 x 24 at 4.5 mm, 32 x 48 at 2.25 mm.
+    # ANSI/SLAS 4-2004 well positions (values recalled from memory): 8 x 12 at 9 mm, 16 x 24 at
+    # 4.5 mm, 32 x 48 at 2.25 mm.
     fmt = plate_format(wells)
     assert (fmt.rows, fmt.columns, fmt.well_pitch_mm) == (rows, columns, pitch)
     assert len(all_wells(fmt)) == wells == rows * columns

@@ -3,6 +3,7 @@
 import numpy as np
 import pandas as pd
 import pytest
+
 from plateloom.plate.exclusions import ExclusionRules
 from plateloom.plate.stage import PlateSettings, build_plate_tables
 from plateloom.setup.plate_formats import all_wells, is_edge_well, plate_format
@@ -15,20 +16,57 @@ def _plate(edge_ratio=1.2, seed=0):
     rng = np.random.default_rng(seed)
     wells = all_wells(FMT)
     roles = ["negative_control" if i % 8 == 0 else "positive_control" if i % 8 == 4 else "test" for i in range(96)]
-    layout = pd.DataFrame({"well": wells, "role": roles, "condition": [f"c{i % 6}" if r == "test" else r for i, r in enumerate(roles)],
-                           "dose": np.nan, "dose_unit": ""})
+    layout = pd.DataFrame(
+        {
+            "well": wells,
+            "role": roles,
+            "condition": [f"c{i % 6}" if r == "test" else r for i, r in enumerate(roles)],
+            "dose": np.nan,
+            "dose_unit": "",
+        }
+    )
     layout["treatment"] = layout["condition"]
     cells, tracks, qc = [], [], []
     for well, role in zip(wells, roles):
         level = 100.0 * (edge_ratio if is_edge_well(well, FMT) else 1.0) * (2.0 if role == "positive_control" else 1.0)
         n = 3 if well == "D05" else 20  # D05 has too few cells
         for frame in range(2):
-            cells.append(pd.DataFrame({"well": well, "site": 1, "frame": frame, "object": np.arange(n), "track": np.arange(n),
-                                       "touches_border": False, "centroid_x_um": 0.0, "centroid_y_um": 0.0,
-                                       "area_um2": level * np.exp(rng.normal(0, 0.02, n))}))
-            qc.append({"well": well, "site": 1, "frame": frame, "n_objects": n, "focus_score": 1.0, "saturated_fraction_dna": 0.2 if (well, frame) == ("B03", 1) else 0.0})
-        tracks.append(pd.DataFrame({"well": well, "track": np.arange(n), "speed_um_per_min": 1.0, "straightness": 0.5,
-                                    "touches_border": False}))
+            cells.append(
+                pd.DataFrame(
+                    {
+                        "well": well,
+                        "site": 1,
+                        "frame": frame,
+                        "object": np.arange(n),
+                        "track": np.arange(n),
+                        "touches_border": False,
+                        "centroid_x_um": 0.0,
+                        "centroid_y_um": 0.0,
+                        "area_um2": level * np.exp(rng.normal(0, 0.02, n)),
+                    }
+                )
+            )
+            qc.append(
+                {
+                    "well": well,
+                    "site": 1,
+                    "frame": frame,
+                    "n_objects": n,
+                    "focus_score": 1.0,
+                    "saturated_fraction_dna": 0.2 if (well, frame) == ("B03", 1) else 0.0,
+                }
+            )
+        tracks.append(
+            pd.DataFrame(
+                {
+                    "well": well,
+                    "track": np.arange(n),
+                    "speed_um_per_min": 1.0,
+                    "straightness": 0.5,
+                    "touches_border": False,
+                }
+            )
+        )
     return pd.concat(cells, ignore_index=True), pd.concat(tracks, ignore_index=True), pd.DataFrame(qc), layout
 
 
@@ -37,8 +75,17 @@ def test_edge_effect_detected_and_removed_by_median_polish():
     plain = build_plate_tables(cells, tracks, qc, layout, "P1", "d1", 96, PlateSettings(), ExclusionRules())
     row = plain.edge.set_index("feature").loc["area_um2"]
     assert row["edge_shift"] == pytest.approx(np.log(1.2), abs=0.02) and row["p_value"] < 1e-6
-    corrected = build_plate_tables(cells, tracks, qc, layout, "P1", "d1", 96,
-                                   PlateSettings(positional_correction="median_polish"), ExclusionRules())
+    corrected = build_plate_tables(
+        cells,
+        tracks,
+        qc,
+        layout,
+        "P1",
+        "d1",
+        96,
+        PlateSettings(positional_correction="median_polish"),
+        ExclusionRules(),
+    )
     row = corrected.edge.set_index("feature").loc["area_um2"]
     assert abs(row["edge_shift_corrected"]) < 0.25 * np.log(1.2)
     assert "area_um2_b_score" in corrected.profile and "area_um2_uncorrected" in corrected.profile
@@ -50,8 +97,10 @@ def test_every_exclusion_is_in_the_ledger_with_value_and_threshold():
     tables = build_plate_tables(cells, tracks, qc, layout, "P1", "d1", 96, PlateSettings(), rules)
     ledger = tables.ledger.sort_values("level").reset_index(drop=True)
     assert ledger[["level", "well", "rule"]].values.tolist() == [
-        ["plate", "", "min_plate_z_prime (area_um2)"], ["site_frame", "B03", "max_saturated_fraction"],
-        ["well", "D05", "min_cells_per_well"]]
+        ["plate", "", "min_plate_z_prime (area_um2)"],
+        ["site_frame", "B03", "max_saturated_fraction"],
+        ["well", "D05", "min_cells_per_well"],
+    ]
     assert ledger.loc[2, "value"] == 3 and ledger.loc[2, "threshold"] == 5
     profile = tables.profile.set_index("well")
     assert profile.loc["D05", "excluded_by"].startswith("min_cells_per_well")
@@ -62,8 +111,9 @@ def test_every_exclusion_is_in_the_ledger_with_value_and_threshold():
 
 def test_percent_of_control_puts_controls_at_0_and_100():
     cells, tracks, qc, layout = _plate(edge_ratio=1.0)
-    tables = build_plate_tables(cells, tracks, qc, layout, "P1", "d1", 96, PlateSettings(normalization="percent_of_control"),
-                                ExclusionRules())
+    tables = build_plate_tables(
+        cells, tracks, qc, layout, "P1", "d1", 96, PlateSettings(normalization="percent_of_control"), ExclusionRules()
+    )
     profile = tables.profile[tables.profile["excluded_by"] == ""]
     neg = profile.loc[profile["role"] == "negative_control", "area_um2_percent_of_control"]
     pos = profile.loc[profile["role"] == "positive_control", "area_um2_percent_of_control"]
@@ -75,17 +125,30 @@ def test_single_well_treatment_and_image_qc_are_reported():
     layout.loc[layout["well"] == "A02", "treatment"] = "lonely 1 uM"
     tables = build_plate_tables(cells, tracks, qc, layout, "P1", "d1", 96, PlateSettings(), ExclusionRules())
     assert "treatment 'lonely 1 uM' has a single kept well on this plate" in tables.warnings
-    assert tables.site_summary["site_frames"] == 192 and tables.site_summary["saturated_fraction_max"] == pytest.approx(0.2)
+    assert tables.site_summary["site_frames"] == 192 and tables.site_summary["saturated_fraction_max"] == pytest.approx(
+        0.2
+    )
     assert tables.profile["fraction_observations_used"].between(0, 1).all()
 
 
 def test_collective_readouts_join_the_profile_as_features_and_their_counts_do_not():
     cells, tracks, qc, layout = _plate()
     wells = layout["well"].to_numpy()
-    collective = pd.DataFrame({"plate": "P1", "well": wells, "phase_order_rep": np.linspace(0, 1, len(wells)),
-                               "spreading_index": 1.0, "n_events": 3, "spreading_p_value": 0.5,
-                               "n_neighbour_links": 10, "n_coupling_tests": 20})
-    tables = build_plate_tables(cells, tracks, qc, layout, "P1", "d1", 96, PlateSettings(), ExclusionRules(), collective)
+    collective = pd.DataFrame(
+        {
+            "plate": "P1",
+            "well": wells,
+            "phase_order_rep": np.linspace(0, 1, len(wells)),
+            "spreading_index": 1.0,
+            "n_events": 3,
+            "spreading_p_value": 0.5,
+            "n_neighbour_links": 10,
+            "n_coupling_tests": 20,
+        }
+    )
+    tables = build_plate_tables(
+        cells, tracks, qc, layout, "P1", "d1", 96, PlateSettings(), ExclusionRules(), collective
+    )
     profile = tables.profile.set_index("well")
     np.testing.assert_allclose(profile.loc[wells, "phase_order_rep"], np.linspace(0, 1, len(wells)))
     assert "phase_order_rep_robust_z" in profile and "spreading_index_robust_z" in profile
@@ -94,7 +157,8 @@ def test_collective_readouts_join_the_profile_as_features_and_their_counts_do_no
     keys_only = collective[["plate", "well"]]
     plain = build_plate_tables(cells, tracks, qc, layout, "P1", "d1", 96, PlateSettings(), ExclusionRules(), keys_only)
     assert list(plain.profile.columns) == list(
-        build_plate_tables(cells, tracks, qc, layout, "P1", "d1", 96, PlateSettings(), ExclusionRules()).profile.columns)
+        build_plate_tables(cells, tracks, qc, layout, "P1", "d1", 96, PlateSettings(), ExclusionRules()).profile.columns
+    )
 
 
 def _write_cells_folders(tmp_path, cells: pd.DataFrame) -> list[str]:
@@ -120,11 +184,14 @@ def test_well_summaries_streamed_from_files_equal_pandas_and_the_in_memory_path(
 
     rng = np.random.default_rng(5)
     cells, tracks, qc, layout = _plate()
-    cells = cells.assign(time_min=cells["frame"] * 10.0, touches_border=rng.random(len(cells)) < 0.1,
-                         signed=rng.normal(0, 1, len(cells)), patchy=np.where(rng.random(len(cells)) < 0.2, np.nan,
-                                                                                rng.lognormal(0, 1, len(cells))))
-    cells.loc[cells["well"] == "C07", "patchy"] = np.nan                       # a well with no finite value
-    qc.loc[(qc["well"] == "E02") & (qc["frame"] == 0), "focus_score"] = 0.1     # an excluded site-frame
+    cells = cells.assign(
+        time_min=cells["frame"] * 10.0,
+        touches_border=rng.random(len(cells)) < 0.1,
+        signed=rng.normal(0, 1, len(cells)),
+        patchy=np.where(rng.random(len(cells)) < 0.2, np.nan, rng.lognormal(0, 1, len(cells))),
+    )
+    cells.loc[cells["well"] == "C07", "patchy"] = np.nan  # a well with no finite value
+    qc.loc[(qc["well"] == "E02") & (qc["frame"] == 0), "focus_score"] = 0.1  # an excluded site-frame
     rules = ExclusionRules(min_focus_score=0.5)
     folders = _write_cells_folders(tmp_path, cells)
     excluded = pd.DataFrame({"well": ["E02"], "site": [1], "frame": [0]})
@@ -136,13 +203,15 @@ def test_well_summaries_streamed_from_files_equal_pandas_and_the_in_memory_path(
     else:
         expected = kept.groupby("well")[features].median()
         logs = np.log(kept[["area_um2", "patchy"]]).groupby(kept["well"]).mean()
-        expected[["area_um2", "patchy"]] = np.exp(logs)             # "signed" has negative values: median
+        expected[["area_um2", "patchy"]] = np.exp(logs)  # "signed" has negative values: median
     pd.testing.assert_frame_equal(summaries[features], expected.loc[summaries.index], check_names=False, rtol=1e-12)
-    assert summaries.loc["C07", "patchy"] != summaries.loc["C07", "patchy"]    # NaN, not dropped
-    expected_counts = cells.groupby(["well", "site", "frame"]).agg(observations=("object", "size"),
-                                                                   whole=("touches_border", lambda t: int((~t).sum())))
-    pd.testing.assert_frame_equal(counts.set_index(["well", "site", "frame"])[["observations", "whole"]],
-                                  expected_counts, check_dtype=False)
+    assert summaries.loc["C07", "patchy"] != summaries.loc["C07", "patchy"]  # NaN, not dropped
+    expected_counts = cells.groupby(["well", "site", "frame"]).agg(
+        observations=("object", "size"), whole=("touches_border", lambda t: int((~t).sum()))
+    )
+    pd.testing.assert_frame_equal(
+        counts.set_index(["well", "site", "frame"])[["observations", "whole"]], expected_counts, check_dtype=False
+    )
     pd.testing.assert_frame_equal(observation_counts(cells), counts)
     settings = PlateSettings(well_summary=statistic)
     streamed = build_plate_tables_from_files(folders, tracks, qc, layout, "P1", "d1", 96, settings, rules, threads=2)
@@ -161,8 +230,12 @@ def test_block_medians_equal_numpy_median_with_and_without_nan(n):
     block[1, rng.random(n) < 0.3] = np.nan
     block[2, :] = np.nan
     block[3, 0] = np.nan
-    expected = np.array([np.median(row) if not np.isnan(row).any() else
-                         (np.nanmedian(row) if np.isfinite(row).any() else np.nan) for row in block])
+    expected = np.array(
+        [
+            np.median(row) if not np.isnan(row).any() else (np.nanmedian(row) if np.isfinite(row).any() else np.nan)
+            for row in block
+        ]
+    )
     np.testing.assert_array_equal(_block_summaries(block.copy(), np.zeros(5, bool)), expected)
 
 
@@ -176,9 +249,12 @@ def test_site_frame_counts_equal_pandas_for_sorted_and_shuffled_rows(shuffle):
     table["time_min"] = table["frame"] * 7.5
     table["whole"] = rng.random(len(table)) < 0.8
     table = table.sample(frac=1.0, random_state=3) if shuffle else table.sort_values(["site", "frame"], kind="stable")
-    counts = _site_frame_counts(_site_frame_key(table["site"], table["frame"]), table["time_min"].to_numpy(),
-                                table["whole"].to_numpy(), "test")
-    expected = table.groupby(["site", "frame"]).agg(n=("whole", "size"), whole=("whole", "sum"), time=("time_min", "first"))
+    counts = _site_frame_counts(
+        _site_frame_key(table["site"], table["frame"]), table["time_min"].to_numpy(), table["whole"].to_numpy(), "test"
+    )
+    expected = table.groupby(["site", "frame"]).agg(
+        n=("whole", "size"), whole=("whole", "sum"), time=("time_min", "first")
+    )
     np.testing.assert_array_equal(counts["site"], expected.index.get_level_values(0))
     np.testing.assert_array_equal(counts["frame"], expected.index.get_level_values(1))
     np.testing.assert_array_equal(counts["observations"], expected["n"])
@@ -192,7 +268,7 @@ def test_streamed_fan_in_names_the_file_when_a_cells_table_lacks_a_key_column(tm
     from plateloom.plate.summaries import summarise_observation_files
 
     cells, _, _, _ = _plate()
-    folders = _write_cells_folders(tmp_path, cells)          # this table has no time_min column
+    folders = _write_cells_folders(tmp_path, cells)  # this table has no time_min column
     with pytest.raises(InputError, match="time_min") as error:
         summarise_observation_files(folders, pd.DataFrame({"well": [], "site": [], "frame": []}))
     assert "part-0.parquet" in str(error.value) and "re-run the per-well jobs" in str(error.value)

@@ -3,6 +3,7 @@
 import numpy as np
 import pandas as pd
 import pytest
+
 from plateloom.plate.exclusions import ExclusionRules, well_exclusions
 from plateloom.plate.qc import (
     MAD_TO_SD,
@@ -33,7 +34,8 @@ def test_z_prime_verdict_bands_follow_zhang_1999():
 
 
 def test_robust_z_prime_equals_z_prime_for_normal_controls():
-    # 1.4826 x MAD is consistent with the SD for normal data (Rousseeuw & Croux 1993), so the two agree on large samples.
+    # 1.4826 x MAD is consistent with the SD for normal data (Rousseeuw & Croux 1993), so the two
+    # agree on large samples.
     rng = np.random.default_rng(0)
     pos, neg = rng.normal(10, 1, 20000), rng.normal(0, 1, 20000)
     assert robust_z_prime(pos, neg) == pytest.approx(z_prime(pos, neg), abs=0.01)
@@ -54,13 +56,20 @@ def test_robust_z_is_nan_when_controls_have_no_spread():
 
 
 def test_exclusion_rule_marks_low_count_wells_in_table_and_ledger():
-    profile = pd.DataFrame({"plate": "P1", "well": ["A01", "A02", "A03", "A04"], "role": ["negative_control"] * 4,
-                            "cell_count": [20.0, 22.0, 2.0, 21.0]})
+    profile = pd.DataFrame(
+        {
+            "plate": "P1",
+            "well": ["A01", "A02", "A03", "A04"],
+            "role": ["negative_control"] * 4,
+            "cell_count": [20.0, 22.0, 2.0, 21.0],
+        }
+    )
     marked, ledger = well_exclusions(profile, ExclusionRules(min_cells_per_well=5))
     assert list(marked["excluded_by"] != "") == [False, False, True, False]
     assert "min_cells_per_well" in marked.loc[2, "excluded_by"]
     assert ledger[["level", "well", "rule", "value", "threshold"]].values.tolist() == [
-        ["well", "A03", "min_cells_per_well", 2.0, 5.0]]
+        ["well", "A03", "min_cells_per_well", 2.0, 5.0]
+    ]
 
 
 def test_ssmd_worked_example():

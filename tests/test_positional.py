@@ -3,6 +3,7 @@
 import numpy as np
 import pandas as pd
 import pytest
+
 from plateloom.plate.positional import (
     b_scores,
     edge_effect,
@@ -54,8 +55,15 @@ def test_edge_effect_found_when_planted_and_absent_otherwise():
     is_edge = np.array([r in (0, 7) or c in (0, 11) for r, c in wells])
     treatment = np.array([f"t{i % 12}" for i in range(96)])
     base = np.exp(rng.normal(0, 0.05, 96)) * 100
-    profile = pd.DataFrame({"is_edge": is_edge, "treatment": treatment, "excluded_by": "", "flat": base,
-                            "drift": base * np.where(is_edge, 1.15, 1.0)})
+    profile = pd.DataFrame(
+        {
+            "is_edge": is_edge,
+            "treatment": treatment,
+            "excluded_by": "",
+            "flat": base,
+            "drift": base * np.where(is_edge, 1.15, 1.0),
+        }
+    )
     planted = edge_effect(profile, "drift", log_scale=True)
     assert planted["p_value"] < 1e-6
     assert planted["edge_shift"] == pytest.approx(np.log(1.15), abs=0.04)

@@ -4,20 +4,23 @@ import numpy as np
 import pandas as pd
 from hypothesis import given, settings
 from hypothesis import strategies as st
+from test_plate_stage import _plate
+from test_screen_stage import _wells
+
 from plateloom.plate.exclusions import ExclusionRules
 from plateloom.plate.qc import robust_z, z_prime
 from plateloom.plate.stage import PlateSettings, build_plate_tables
 from plateloom.screen.effects import bh_qvalues, screen_effects
 from plateloom.screen.model_wells import build_model_wells, treatment_catalogue
-from test_plate_stage import _plate
-from test_screen_stage import _wells
 
 FAST = settings(max_examples=15, deadline=None)
 
 
 def _effects(wells):
     model = build_model_wells(wells, ["value", "other"], {"value", "other"}, "control_location")
-    table = screen_effects(model.wells, ["value", "other"], model.scales, 0.95, 0.05, 0.1, "exact", treatment_catalogue(wells))
+    table = screen_effects(
+        model.wells, ["value", "other"], model.scales, 0.95, 0.05, 0.1, "exact", treatment_catalogue(wells)
+    )
     return table.sort_values(["feature", "treatment"]).reset_index(drop=True)
 
 
@@ -30,7 +33,7 @@ BASE_EFFECTS = _effects(BASE)
 def test_a_constant_added_to_one_batch_leaves_corrected_effects_unchanged(shift, batch):
     shifted = BASE.copy()
     rows = shifted["batch"] == batch
-    shifted.loc[rows, ["value", "other"]] *= np.exp(shift)          # a constant on the log (model) scale
+    shifted.loc[rows, ["value", "other"]] *= np.exp(shift)  # a constant on the log (model) scale
     table = _effects(shifted)
     np.testing.assert_allclose(table["estimate"], BASE_EFFECTS["estimate"], atol=1e-8)
     np.testing.assert_allclose(table["std_error"], BASE_EFFECTS["std_error"], rtol=1e-5)
@@ -71,8 +74,17 @@ def test_plate_tables_do_not_depend_on_the_order_of_cells(seed):
     cells, tracks, qc, layout = _plate(seed=3)
     reference = build_plate_tables(cells, tracks, qc, layout, "P1", "d1", 96, PlateSettings(), ExclusionRules())
     shuffled = cells.sample(frac=1.0, random_state=seed).reset_index(drop=True)
-    tables = build_plate_tables(shuffled, tracks.sample(frac=1.0, random_state=seed), qc, layout, "P1", "d1", 96,
-                                PlateSettings(), ExclusionRules())
+    tables = build_plate_tables(
+        shuffled,
+        tracks.sample(frac=1.0, random_state=seed),
+        qc,
+        layout,
+        "P1",
+        "d1",
+        96,
+        PlateSettings(),
+        ExclusionRules(),
+    )
     pd.testing.assert_frame_equal(tables.profile, reference.profile, check_exact=False, rtol=1e-9)
     pd.testing.assert_frame_equal(tables.qc, reference.qc, check_exact=False, rtol=1e-9)
 

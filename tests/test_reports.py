@@ -8,22 +8,35 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pytest
+from test_plate_stage import _plate
+
 from plateloom.plate.exclusions import ExclusionRules
 from plateloom.plate.stage import PlateSettings, build_plate_tables
 from plateloom.report.plate_page import build_plate_report
 from plateloom.setup.plate_formats import plate_format
-from test_plate_stage import _plate
 
 HOSTILE = '<b>x</b> "quoted", comma & Ölsäure'
 
 
-def _report(tmp_path: Path, rules=ExclusionRules()) -> Path:
+def _report(tmp_path: Path, rules: ExclusionRules | None = None) -> Path:
+    rules = rules or ExclusionRules()
     cells, tracks, qc, layout = _plate()
     layout.loc[layout["role"] == "test", "treatment"] = HOSTILE
     tables = build_plate_tables(cells, tracks, qc, layout, "P1", "d1", 96, PlateSettings(), rules)
     tables.profile.loc[tables.profile["well"] == "D05", "treatment"] = HOSTILE
-    html = build_plate_report(tables.profile, tables.qc, tables.ledger, tables.edge, tables.warnings + [HOSTILE], tables.site_summary, "P1", "d1",
-                              plate_format(96), "area_um2", {"config_sha256": "abc"})
+    html = build_plate_report(
+        tables.profile,
+        tables.qc,
+        tables.ledger,
+        tables.edge,
+        tables.warnings + [HOSTILE],
+        tables.site_summary,
+        "P1",
+        "d1",
+        plate_format(96),
+        "area_um2",
+        {"config_sha256": "abc"},
+    )
     path = tmp_path / "plate.html"
     path.write_text(html, encoding="utf-8")
     return path
@@ -55,10 +68,21 @@ def test_plate_report_renders_offline_in_headless_chromium(tmp_path):
 
     page = _report(tmp_path)
     shot = tmp_path / "shot.png"
-    command = [_chromium(), "--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
-               "--disable-background-networking", "--disable-component-update", "--disable-sync",
-               f"--user-data-dir={tmp_path / 'profile'}", "--window-size=1200,2400", f"--screenshot={shot}",
-               page.as_uri()]
+    command = [
+        _chromium(),
+        "--headless",
+        "--no-sandbox",
+        "--disable-gpu",
+        "--disable-quic",
+        "--no-first-run",
+        "--disable-background-networking",
+        "--disable-component-update",
+        "--disable-sync",
+        f"--user-data-dir={tmp_path / 'profile'}",
+        "--window-size=1200,2400",
+        f"--screenshot={shot}",
+        page.as_uri(),
+    ]
     subprocess.run(command, check=True, capture_output=True, timeout=120)
     image = imread(shot)
     assert image.shape[0] >= 1000
@@ -68,19 +92,33 @@ def test_plate_report_renders_offline_in_headless_chromium(tmp_path):
 
 
 def test_screen_report_escapes_hostile_treatment_names(tmp_path):
+    from test_screen_stage import _wells
+
     from plateloom.report.screen_page import build_screen_report
     from plateloom.screen.effects import screen_effects
     from plateloom.screen.model_wells import build_model_wells
-    from test_screen_stage import _wells
 
     wells = _wells(seed=2)
     wells.loc[wells["condition"] == "X", "treatment"] = HOSTILE
     model = build_model_wells(wells, ["value"], {"value"}, "control_location")
     effects = screen_effects(model.wells, ["value"], model.scales, 0.95, 0.05, 0.1, "exact")
     ledger = pd.DataFrame(columns=["level", "plate", "well", "site", "frame", "rule", "value", "threshold"])
-    settings = {"ci_level": 0.95, "hit_q_value": 0.05, "hit_min_log_ratio": 0.1, "batch_correction": "control_location",
-                "fitter": "exact"}
-    html = build_screen_report(effects, wells, ledger, settings, {"packages": {}}, variance=model.variance,
-                               components=model.components, correction_notes=[HOSTILE])
+    settings = {
+        "ci_level": 0.95,
+        "hit_q_value": 0.05,
+        "hit_min_log_ratio": 0.1,
+        "batch_correction": "control_location",
+        "fitter": "exact",
+    }
+    html = build_screen_report(
+        effects,
+        wells,
+        ledger,
+        settings,
+        {"packages": {}},
+        variance=model.variance,
+        components=model.components,
+        correction_notes=[HOSTILE],
+    )
     assert "<b>x</b>" not in html
     assert "&lt;b&gt;x&lt;/b&gt; &quot;quoted&quot;, comma &amp; Ölsäure" in html

@@ -15,24 +15,36 @@ import pytest
 import tifffile
 import yaml
 from conftest import ROOT, copy_workflow, run_snakemake
+
 from plateloom.demo.scenario import QUANTITIES, load_scenario
 from plateloom.demo.simulate import simulate_site
 from plateloom.errors import InputError
 from plateloom.setup.check import check_screen, load_config
 from plateloom.setup.scaffold import infer_template, survey_folder, write_scaffold
 
-WELLS = [f"{row}{col:02d}" for row in "BC" for col in range(2, 8)]       # 12 wells
+WELLS = [f"{row}{col:02d}" for row in "BC" for col in range(2, 8)]  # 12 wells
 DAY = 86400.0
 OME = {"PhysicalSizeX": 0.8, "PhysicalSizeXUnit": "µm", "TimeIncrement": 300.0, "TimeIncrementUnit": "s"}
 
 
-@pytest.mark.parametrize("names, template", [
-    (["B03_s1_t000_dapi.tif", "B03_s1_t001_dapi.tif", "B03_s2_t000_gfp.tif", "C11_s2_t001_gfp.tif"],
-     "{well}_s{site}_t{frame}_{channel}.tif"),
-    (["B03-fld1-hoechst.tiff", "B03-fld2-ktr.tiff", "H12-fld1-ktr.tiff"], "{well}-fld{site}-{channel}.tiff"),
-    (["exp7_A01_site3_T0007_cy5.ome.tif", "exp7_A01_site3_T0008_cy5.ome.tif", "exp7_B02_site1_T0007_dapi.ome.tif"],
-     "exp7_{well}_site{site}_T{frame}_{channel}.ome.tif"),
-])
+@pytest.mark.parametrize(
+    "names, template",
+    [
+        (
+            ["B03_s1_t000_dapi.tif", "B03_s1_t001_dapi.tif", "B03_s2_t000_gfp.tif", "C11_s2_t001_gfp.tif"],
+            "{well}_s{site}_t{frame}_{channel}.tif",
+        ),
+        (["B03-fld1-hoechst.tiff", "B03-fld2-ktr.tiff", "H12-fld1-ktr.tiff"], "{well}-fld{site}-{channel}.tiff"),
+        (
+            [
+                "exp7_A01_site3_T0007_cy5.ome.tif",
+                "exp7_A01_site3_T0008_cy5.ome.tif",
+                "exp7_B02_site1_T0007_dapi.ome.tif",
+            ],
+            "exp7_{well}_site{site}_T{frame}_{channel}.ome.tif",
+        ),
+    ],
+)
 def test_filename_templates_are_inferred(names, template):
     assert infer_template(names) == template
 
@@ -52,11 +64,16 @@ def _write_plate(folder, style, seed, day):
         for channel, name in enumerate(("hoechst", "ktr")):
             if style == "per_frame":
                 for frame in range(stack.shape[0]):
-                    tifffile.imwrite(folder / f"{well}_s1_t{frame:03d}_{name}.tif", stack[frame, channel],
-                                     ome=True, metadata={"axes": "YX", **OME})
+                    tifffile.imwrite(
+                        folder / f"{well}_s1_t{frame:03d}_{name}.tif",
+                        stack[frame, channel],
+                        ome=True,
+                        metadata={"axes": "YX", **OME},
+                    )
             else:
-                tifffile.imwrite(folder / f"{well}-fld1-{name}.tiff", stack[:, channel], ome=True,
-                                 metadata={"axes": "TYX", **OME})
+                tifffile.imwrite(
+                    folder / f"{well}-fld1-{name}.tiff", stack[:, channel], ome=True, metadata={"axes": "TYX", **OME}
+                )
     for path in folder.iterdir():
         os.utime(path, (day, day))
 
@@ -78,8 +95,12 @@ def test_scaffold_then_run_to_effects_without_editing_the_config(tmp_path, style
     now = time.time()
     _write_plate(workdir / "microscope" / "plateA", style, 1, now - 2 * DAY)
     _write_plate(workdir / "microscope" / "plateB", style, 2, now - DAY)
-    scaffold = subprocess.run([sys.executable, "-m", "plateloom", "scaffold", "microscope", "--out", "myscreen"],
-                              cwd=workdir, capture_output=True, text=True)
+    scaffold = subprocess.run(
+        [sys.executable, "-m", "plateloom", "scaffold", "microscope", "--out", "myscreen"],
+        cwd=workdir,
+        capture_output=True,
+        text=True,
+    )
     assert scaffold.returncode == 0, scaffold.stderr
     expected = "{well}_s{site}_t{frame}_{channel}.tif" if style == "per_frame" else "{well}-fld{site}-{channel}.tiff"
     assert f"filename template: {expected}" in scaffold.stdout
@@ -87,21 +108,31 @@ def test_scaffold_then_run_to_effects_without_editing_the_config(tmp_path, style
     assert "channels: hoechst, ktr" in scaffold.stdout and "pixel size: 0.8 um (OME metadata)" in scaffold.stdout
     sheet = pd.read_csv(workdir / "myscreen/plates.csv")
     assert sheet["plate"].tolist() == ["plateA", "plateB"]
-    assert sheet["batch"].nunique() == 2                      # imaging dates of the files
+    assert sheet["batch"].nunique() == 2  # imaging dates of the files
     assert sheet["plate_format"].tolist() == [96, 96]
-    again = subprocess.run([sys.executable, "-m", "plateloom", "scaffold", "microscope", "--out", "myscreen"],
-                           cwd=workdir, capture_output=True, text=True)
+    again = subprocess.run(
+        [sys.executable, "-m", "plateloom", "scaffold", "microscope", "--out", "myscreen"],
+        cwd=workdir,
+        capture_output=True,
+        text=True,
+    )
     assert again.returncode == 2 and "never overwrites" in again.stderr
     _fill_layout(workdir / "myscreen/layouts/plate_96.csv")
-    check = subprocess.run([sys.executable, "-m", "plateloom", "check", "--config", "myscreen/config.yaml"],
-                           cwd=workdir, capture_output=True, text=True)
+    check = subprocess.run(
+        [sys.executable, "-m", "plateloom", "check", "--config", "myscreen/config.yaml"],
+        cwd=workdir,
+        capture_output=True,
+        text=True,
+    )
     assert check.returncode == 0, check.stdout + check.stderr
     assert "0 error(s)." in check.stdout and "2 plates, 24 wells" in check.stdout
     run_snakemake(workdir, "myscreen/results/effects.parquet", "--configfile", "myscreen/config.yaml")
     effects = pd.read_parquet(workdir / "myscreen/results/effects.parquet")
     assert {"TW-101 1 uM", "TW-104 1 uM"} <= set(effects["treatment"])
     assert effects["estimate"].notna().all() and effects["ci_low"].notna().all()
-    cells = pd.concat(pd.read_parquet(path) for path in (workdir / "myscreen/results/cells/plate=plateA").rglob("*.parquet"))
+    cells = pd.concat(
+        pd.read_parquet(path) for path in (workdir / "myscreen/results/cells/plate=plateA").rglob("*.parquet")
+    )
     assert "mean_intensity_ktr" in cells.columns and cells["frame"].nunique() == 4
 
 
@@ -118,31 +149,40 @@ def _planted_problem_screen(root):
             for frame in range(3):
                 for channel, name in enumerate(("dapi", "gfp")):
                     tifffile.imwrite(folder / f"{well}_s1_t{frame}_{name}.tif", stack[frame, channel])
-    (folders["P1"] / "B03_s1_t1_gfp.tif").unlink()                         # 1: a missing frame
+    (folders["P1"] / "B03_s1_t1_gfp.tif").unlink()  # 1: a missing frame
     for frame in range(3):
-        (folders["P1"] / f"B04_s1_t{frame}_gfp.tif").unlink()               # 2: a missing channel
-    tifffile.imwrite(folders["P2"] / "B02_s1_t0_dapi.tif", np.zeros((48, 48), np.uint16))   # 3: another image size
+        (folders["P1"] / f"B04_s1_t{frame}_gfp.tif").unlink()  # 2: a missing channel
+    tifffile.imwrite(folders["P2"] / "B02_s1_t0_dapi.tif", np.zeros((48, 48), np.uint16))  # 3: another image size
     for frame in range(3):
-        tifffile.imwrite(folders["P2"] / f"C09_s1_t{frame}_dapi.tif", stack[frame, 0])     # 4: imaged, not in the layout
+        tifffile.imwrite(folders["P2"] / f"C09_s1_t{frame}_dapi.tif", stack[frame, 0])  # 4: imaged, not in the layout
         tifffile.imwrite(folders["P2"] / f"C09_s1_t{frame}_gfp.tif", stack[frame, 1])
-    (folders["P3"] / "B02_s1_t0_dapi copy.tif").write_bytes(b"")              # 5: a file matching no template
+    (folders["P3"] / "B02_s1_t0_dapi copy.tif").write_bytes(b"")  # 5: a file matching no template
     layouts = root / "layouts"
     layouts.mkdir()
-    good = "well,role,condition,dose,dose_unit\nB02,negative_control,vehicle,,\nB03,test,TW-101,1,uM\nB04,test,TW-102,1,uM\n"
-    (layouts / "good.csv").write_text(good + "D05,test,TW-103,1,uM\n")        # 6: a layout well without images
-    (layouts / "no_controls.csv").write_text(                                 # 7: no negative controls
-        "well,role,condition,dose,dose_unit\nB02,test,vehicle,,\nB03,test,TW-101,1,uM\nB04,test,TW-102,1,uM\n")
-    (layouts / "no_unit.csv").write_text(                                     # 8: a dose without unit
-        "well,role,condition,dose,dose_unit\nB02,negative_control,vehicle,,\nB03,test,TW-101,1,\nB04,test,TW-102,1,uM\n")
+    good = (
+        "well,role,condition,dose,dose_unit\nB02,negative_control,vehicle,,\n"
+        "B03,test,TW-101,1,uM\nB04,test,TW-102,1,uM\n"
+    )
+    (layouts / "good.csv").write_text(good + "D05,test,TW-103,1,uM\n")  # 6: a layout well without images
+    (layouts / "no_controls.csv").write_text(  # 7: no negative controls
+        "well,role,condition,dose,dose_unit\nB02,test,vehicle,,\nB03,test,TW-101,1,uM\nB04,test,TW-102,1,uM\n"
+    )
+    (layouts / "no_unit.csv").write_text(  # 8: a dose without unit
+        "well,role,condition,dose,dose_unit\nB02,negative_control,vehicle,,\nB03,test,TW-101,1,\nB04,test,TW-102,1,uM\n"
+    )
     sheet = root / "plates.csv"
-    sheet.write_text("plate,batch,plate_format,layout,image_folder\n"
-                     f"P1,d1,96,{layouts / 'good.csv'},{folders['P1']}\n"
-                     f"P2,d1,96,{layouts / 'no_controls.csv'},{folders['P2']}\n"
-                     f"P3,d2,96,{layouts / 'no_unit.csv'},{folders['P3']}\n"
-                     f"P4,d2,96,{layouts / 'good.csv'},{images / 'P4'}\n")       # 9: a missing image folder
+    sheet.write_text(
+        "plate,batch,plate_format,layout,image_folder\n"
+        f"P1,d1,96,{layouts / 'good.csv'},{folders['P1']}\n"
+        f"P2,d1,96,{layouts / 'no_controls.csv'},{folders['P2']}\n"
+        f"P3,d2,96,{layouts / 'no_unit.csv'},{folders['P3']}\n"
+        f"P4,d2,96,{layouts / 'good.csv'},{images / 'P4'}\n"
+    )  # 9: a missing image folder
     config = root / "config.yaml"
-    config.write_text(f"screen_sheet: {sheet}\nimages:\n  filename_template: '{{well}}_s{{site}}_t{{frame}}_{{channel}}.tif'\n"
-                      "channels:\n  - {name: dapi, role: nuclei}\n  - {name: gfp, role: reporter}\n")  # 10: no pixel size
+    config.write_text(
+        f"screen_sheet: {sheet}\nimages:\n  filename_template: '{{well}}_s{{site}}_t{{frame}}_{{channel}}.tif'\n"
+        "channels:\n  - {name: dapi, role: nuclei}\n  - {name: gfp, role: reporter}\n"
+    )  # 10: no pixel size
     return config
 
 
@@ -172,8 +212,9 @@ def test_check_reports_every_planted_problem_at_once_with_file_and_fix(tmp_path)
 
 def test_check_command_exits_non_zero_on_errors_and_names_a_bad_config_key(tmp_path):
     config = _planted_problem_screen(tmp_path)
-    result = subprocess.run([sys.executable, "-m", "plateloom", "check", "--config", str(config)],
-                            capture_output=True, text=True)
+    result = subprocess.run(
+        [sys.executable, "-m", "plateloom", "check", "--config", str(config)], capture_output=True, text=True
+    )
     assert result.returncode == 1 and "error(s):" in result.stdout
     config.write_text(config.read_text() + "chunk_well: 3\n")
     with pytest.raises(InputError, match=r"chunk_well"):
@@ -199,8 +240,13 @@ def test_survey_describes_a_folder_without_writing(tmp_path):
     # a reporter imaged for 36 frames: the collective readouts are modelled as well
     write_scaffold(dataclasses.replace(survey, frames=36), str(tmp_path / "long"))
     features = yaml.safe_load((tmp_path / "long" / "config.yaml").read_text())["screen"]["features"]
-    assert features[-5:] == ["phase_order_{reporter}", "neighbour_correlation_{reporter}",
-                             "coupled_link_fraction_{reporter}", "coupled_link_fraction_d2_{reporter}", "spreading_index"]
+    assert features[-5:] == [
+        "phase_order_{reporter}",
+        "neighbour_correlation_{reporter}",
+        "coupled_link_fraction_{reporter}",
+        "coupled_link_fraction_d2_{reporter}",
+        "spreading_index",
+    ]
 
 
 def test_config_reference_is_current_and_lists_every_key():
@@ -209,6 +255,12 @@ def test_config_reference_is_current_and_lists_every_key():
 
     text = config_reference()
     assert (ROOT / "config" / "REFERENCE.md").read_text(encoding="utf-8") == text
-    for key in ("`images.pixel_size_um`", "`segmentation.threshold_method`", "`measurement.texture_distance_um`",
-                "`channels[].role`", "`screen.fitter`", "`exclusion_rules.min_cells_per_well`"):
+    for key in (
+        "`images.pixel_size_um`",
+        "`segmentation.threshold_method`",
+        "`measurement.texture_distance_um`",
+        "`channels[].role`",
+        "`screen.fitter`",
+        "`exclusion_rules.min_cells_per_well`",
+    ):
         assert key in text

@@ -4,6 +4,8 @@ dose-response fits against a reference fitter and planted curves."""
 import numpy as np
 import pandas as pd
 import pytest
+from scipy import optimize
+
 from plateloom.screen.design_check import (
     VarianceComponents,
     extend_design,
@@ -16,7 +18,6 @@ from plateloom.screen.model_wells import (
     feature_chunks,
     treatment_catalogue,
 )
-from scipy import optimize
 
 
 def _wells(seed=0, batches=3, plates=2, one_batch_condition=False):
@@ -32,17 +33,38 @@ def _wells(seed=0, batches=3, plates=2, one_batch_condition=False):
                     kind = "vehicle"
                 role = "negative_control" if kind == "vehicle" else "test"
                 y = 5 + offset + (0.3 if kind == "X" else 0) + rng.normal(0, 0.05)
-                rows.append({"batch": f"d{b}", "plate": f"d{b}p{p}", "well": f"W{w:02d}", "role": role,
-                             "treatment": kind if role == "negative_control" else f"{kind} 1 uM", "condition": kind,
-                             "dose": np.nan if role == "negative_control" else 1.0, "dose_unit": "uM",
-                             "value": np.exp(y), "other": np.exp(rng.normal(2, 0.1)), "constant": 7.0, "excluded_by": "", "plate_excluded_by": ""})
+                rows.append(
+                    {
+                        "batch": f"d{b}",
+                        "plate": f"d{b}p{p}",
+                        "well": f"W{w:02d}",
+                        "role": role,
+                        "treatment": kind if role == "negative_control" else f"{kind} 1 uM",
+                        "condition": kind,
+                        "dose": np.nan if role == "negative_control" else 1.0,
+                        "dose_unit": "uM",
+                        "value": np.exp(y),
+                        "other": np.exp(rng.normal(2, 0.1)),
+                        "constant": 7.0,
+                        "excluded_by": "",
+                        "plate_excluded_by": "",
+                    }
+                )
     return pd.DataFrame(rows)
 
 
 def _effects(wells, features=("value",), **options):
     model = build_model_wells(wells, list(features), set(features), options.get("method", "control_location"))
-    return screen_effects(model.wells, list(features), model.scales, 0.95, 0.05, 0.1, options.get("fitter", "exact"),
-                          treatment_catalogue(wells))
+    return screen_effects(
+        model.wells,
+        list(features),
+        model.scales,
+        0.95,
+        0.05,
+        0.1,
+        options.get("fitter", "exact"),
+        treatment_catalogue(wells),
+    )
 
 
 def test_condition_in_one_batch_only_is_estimated_and_flagged():
@@ -50,7 +72,7 @@ def test_condition_in_one_batch_only_is_estimated_and_flagged():
     row = effects.loc["Y 1 uM"]
     assert row["n_batches"] == 1 and np.isfinite(row["estimate"])
     assert "present in one batch only (d0)" in row["note"]
-    assert row["ci_low"] < 0 < row["ci_high"]          # Y has no planted effect
+    assert row["ci_low"] < 0 < row["ci_high"]  # Y has no planted effect
 
 
 def test_constant_feature_is_reported_not_fitted():
@@ -142,8 +164,9 @@ def test_hill_fit_agrees_with_scipy_curve_fit():
     # Reference: scipy.optimize.curve_fit (Levenberg-Marquardt) on the same data and parametrisation.
     doses, response = _planted_series(np.random.default_rng(1), doses=(0.03, 0.1, 0.3, 1.0, 3.0, 10.0, 30.0))
     fit = fit_hill(doses, response)
-    reference, covariance = optimize.curve_fit(hill_curve, doses, response, p0=[1.0, 1.5, 0.0, 1.0],
-                                               ftol=1e-14, xtol=1e-14, gtol=1e-14)
+    reference, covariance = optimize.curve_fit(
+        hill_curve, doses, response, p0=[1.0, 1.5, 0.0, 1.0], ftol=1e-14, xtol=1e-14, gtol=1e-14
+    )
     np.testing.assert_allclose([fit["bottom"], fit["top"], fit["log10_ec50"], fit["hill"]], reference, rtol=1e-6)
     np.testing.assert_allclose(fit["log10_ec50_se"], np.sqrt(covariance[2, 2]), rtol=1e-4)
     assert fit["identifiable"]
@@ -152,7 +175,9 @@ def test_hill_fit_agrees_with_scipy_curve_fit():
 def test_hill_ec50_intervals_cover_a_planted_ec50():
     # Planted truth: EC50 0.5, 200 simulated series; 95% intervals should cover in about 95% of them.
     rng = np.random.default_rng(2)
-    covered = [(f["ec50_ci_low"] <= 0.5 <= f["ec50_ci_high"]) for f in (fit_hill(*_planted_series(rng)) for _ in range(200))]
+    covered = [
+        (f["ec50_ci_low"] <= 0.5 <= f["ec50_ci_high"]) for f in (fit_hill(*_planted_series(rng)) for _ in range(200))
+    ]
     assert 0.90 <= np.mean(covered) <= 0.99
 
 
@@ -169,7 +194,7 @@ def test_dose_response_table_uses_plate_controls_and_skips_single_dose_compounds
     wells = _wells(seed=8)
     model = build_model_wells(wells, ["value"], {"value"}, "control_location")
     fits, points = dose_response_table(model.wells, ["value"], model.scales, 4, 0.95)
-    assert fits.empty                                   # X and Y have one dose each
+    assert fits.empty  # X and Y have one dose each
     assert set(points["role"]) == {"negative_control"}
     # log-scale responses: the plate's control median sits at ratio 1 (up to the mean of the two middle wells)
     assert points["response"].groupby(points["plate"]).median().to_numpy() == pytest.approx(1.0, abs=1e-3)
@@ -194,8 +219,21 @@ def test_design_check_command_prints_coverage_and_power(tmp_path, capsys):
 
     (tmp_path / "screen").mkdir()
     _wells().to_parquet(tmp_path / "screen" / "model_wells.parquet")
-    status = main(["design-check", "--results", str(tmp_path), "--components", "0.04", "0.01", "0.0025",
-                   "--screens", "10", "--extra-batches", "1"])
+    status = main(
+        [
+            "design-check",
+            "--results",
+            str(tmp_path),
+            "--components",
+            "0.04",
+            "0.01",
+            "0.0025",
+            "--screens",
+            "10",
+            "--extra-batches",
+            "1",
+        ]
+    )
     out = capsys.readouterr().out
     assert status == 0 and "as imaged" in out and "+1 batch" in out and "coverage" in out
 
@@ -225,9 +263,11 @@ def test_a_fit_that_fails_to_converge_is_marked_and_falls_back(monkeypatch):
 
 def test_batch_whose_controls_were_all_excluded_is_left_unaligned_and_named():
     wells = _wells(seed=10)
-    wells.loc[(wells["batch"] == "d1") & (wells["role"] == "negative_control"), "excluded_by"] = "min_cells_per_well: 0 < 5"
+    wells.loc[(wells["batch"] == "d1") & (wells["role"] == "negative_control"), "excluded_by"] = (
+        "min_cells_per_well: 0 < 5"
+    )
     model = build_model_wells(wells, ["value", "other"], {"value", "other"}, "control_location")
     assert model.notes and "batch d1 has no negative-control well left" in model.notes[0]
-    assert model.wells[["value", "other"]].notna().all().all()        # no silent NaN
+    assert model.wells[["value", "other"]].notna().all().all()  # no silent NaN
     effects = screen_effects(model.wells, ["value"], model.scales, 0.95, 0.05, 0.1, "exact")
     assert effects["estimate"].notna().all()

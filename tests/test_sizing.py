@@ -8,8 +8,8 @@ def test_per_well_job_size_grows_with_pixels_and_wells():
     large = analyse_wells_size(ImagingSize(1024, 100, 4, 2), 48, 1.5, 2.0)
     # 48 wells x 4 sites x 100 frames x 2 channels x 1.048576 MP x 1.5 s = 60,398 s; x 2 (safety) / 60 = 2013.3
     assert large.runtime_min == 2014
-    assert small.runtime_min == 5                      # floor of 5 minutes
-    assert small.mem_mb == 1500                        # (700 MB base + 5 MB of frames) x safety 2, up to 100 MB
+    assert small.runtime_min == 5  # floor of 5 minutes
+    assert small.mem_mb == 1500  # (700 MB base + 5 MB of frames) x safety 2, up to 100 MB
     # memory follows one frame and one well, not the chunk: 48 wells cost what 1 well costs
     assert analyse_wells_size(ImagingSize(1024, 100, 4, 2), 1, 1.5, 2.0).mem_mb == large.mem_mb
     assert large.mem_mb > small.mem_mb

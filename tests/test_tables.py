@@ -5,6 +5,7 @@ import os
 import pandas as pd
 import pyarrow.parquet as pq
 import pytest
+
 from plateloom.io import tables
 
 
@@ -14,7 +15,7 @@ def test_interrupted_parquet_write_leaves_the_old_file_untouched(tmp_path, monke
     before = path.read_bytes()
 
     def killed(table, where, **kwargs):
-        with open(where, "wb") as handle:           # half a file, then the process dies
+        with open(where, "wb") as handle:  # half a file, then the process dies
             handle.write(b"PAR1 partial")
         raise KeyboardInterrupt
 
@@ -50,12 +51,16 @@ def test_a_results_tree_opens_as_one_arrow_dataset(tmp_path):
     # The data contract: per-well files under Hive-style folders, keys also stored as columns, so any
     # Arrow-aware reader opens the whole tree as one dataset (pyarrow.dataset is the reference reader).
     import pyarrow.dataset as ds
+
     from plateloom.io.tables import well_part_path, write_parquet
 
     for plate, well, value in (("P1", "B02", 1.0), ("P1", "B03", 2.0), ("P2", "B02", 3.0)):
         folder = tmp_path / "cells" / f"plate={plate}" / "chunk=000"
         folder.mkdir(parents=True, exist_ok=True)
-        write_parquet(pd.DataFrame({"plate": [plate], "well": [well], "area_um2": [value]}),
-                      well_part_path(str(folder), well), {"k": 1})
+        write_parquet(
+            pd.DataFrame({"plate": [plate], "well": [well], "area_um2": [value]}),
+            well_part_path(str(folder), well),
+            {"k": 1},
+        )
     table = ds.dataset(str(tmp_path / "cells")).to_table().to_pandas().sort_values("area_um2")
     assert table[["plate", "well"]].values.tolist() == [["P1", "B02"], ["P1", "B03"], ["P2", "B02"]]

@@ -2,6 +2,7 @@
 
 import numpy as np
 import pytest
+
 from plateloom.well.track_stats import (
     fit_persistent_walk,
     growth_rate_per_h,
@@ -15,7 +16,7 @@ from plateloom.well.track_stats import (
 def test_msd_of_brownian_tracks_is_4_d_t():
     # Einstein 1905 (Berg 1983, Random Walks in Biology): 2-D Brownian motion has MSD(t) = 4 D t.
     rng = np.random.default_rng(11)
-    d, dt, frames, tracks = 0.3, 2.0, 60, 400          # um^2/min, min
+    d, dt, frames, tracks = 0.3, 2.0, 60, 400  # um^2/min, min
     steps = rng.normal(0, np.sqrt(2 * d * dt), (2, tracks, frames - 1))
     x, y = (np.concatenate([np.zeros((tracks, 1)), np.cumsum(s, axis=1)], axis=1) for s in steps)
     msd, pairs = mean_squared_displacement(x, y, max_lag=15)
@@ -57,7 +58,7 @@ def test_walk_fit_recovers_noise_free_curves_exactly_and_flags_pure_diffusion():
     msd = np.vstack([persistent_walk_msd(lags, 0.8, 40.0), 4 * 0.2 * lags])
     speed, persistence = fit_persistent_walk(msd, np.full(msd.shape, 10), 5.0)
     assert speed[0] == pytest.approx(0.8, rel=0.01) and persistence[0] == pytest.approx(40.0, rel=0.02)
-    assert np.isnan(persistence[1])                      # best fit at the grid edge: not identifiable
+    assert np.isnan(persistence[1])  # best fit at the grid edge: not identifiable
 
 
 def test_periodogram_recovers_a_planted_period_within_one_frame_interval():
@@ -65,10 +66,14 @@ def test_periodogram_recovers_a_planted_period_within_one_frame_interval():
     dt, frames = 5.0, 40
     time = np.arange(frames) * dt
     for period in (35.0, 60.0, 90.0):
-        traces = 500 + 100 * np.sin(2 * np.pi * time / period + rng.uniform(0, 2 * np.pi, (20, 1))) + rng.normal(0, 10, (20, frames))
+        traces = (
+            500
+            + 100 * np.sin(2 * np.pi * time / period + rng.uniform(0, 2 * np.pi, (20, 1)))
+            + rng.normal(0, 10, (20, frames))
+        )
         result = reporter_dynamics(traces, dt, min_frames=3)
         assert np.all(np.abs(result["period_min"] - period) <= dt), (period, result["period_min"])
-        expected_peaks = (frames - 1) * dt / period * 60 / ((frames - 1) * dt)      # one peak per period, per hour
+        expected_peaks = (frames - 1) * dt / period * 60 / ((frames - 1) * dt)  # one peak per period, per hour
         assert np.median(result["peaks_per_h"]) == pytest.approx(expected_peaks, rel=0.35)
     assert result["mean"] == pytest.approx(np.full(20, 500.0), abs=25)
     # max rate of a sine A sin(2 pi t / T) sampled every dt is about A 2 pi / T (per min) at most
@@ -82,7 +87,7 @@ def test_track_matrix_and_gaps():
     np.testing.assert_array_equal(ids, [7, 9])
     np.testing.assert_array_equal(matrix[0], [1.0, 2.0, np.nan, 4.0])
     result = reporter_dynamics(matrix, 1.0, min_frames=2)
-    assert result["mean"][0] == pytest.approx(2.5)      # 1, 2, 3 (interpolated), 4
+    assert result["mean"][0] == pytest.approx(2.5)  # 1, 2, 3 (interpolated), 4
     assert result["mean"][1] == pytest.approx(5.5)
 
 

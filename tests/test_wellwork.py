@@ -3,13 +3,14 @@
 import numpy as np
 import pytest
 from conftest import ROOT
+from skimage.draw import disk, ellipse
+from skimage.filters import threshold_otsu
+
 from plateloom.demo.scenario import QUANTITIES, load_scenario
 from plateloom.demo.simulate import simulate_site
 from plateloom.well.features import measure_objects
 from plateloom.well.segment import segment_nuclei
 from plateloom.well.tracking import link_frames, track_features
-from skimage.draw import disk, ellipse
-from skimage.filters import threshold_otsu
 
 PIXEL = 0.5  # um
 
@@ -48,6 +49,7 @@ def test_ellipse_eccentricity_matches_geometry():
 def test_threshold_is_otsu_of_the_smoothed_image():
     # Otsu 1979; scikit-image's threshold_otsu is the reference implementation.
     from scipy import ndimage
+
     mask = np.zeros((200, 200), bool)
     mask[disk((60, 60), 20)] = True
     mask[disk((140, 130), 25)] = True
@@ -105,6 +107,7 @@ def test_track_features_of_a_straight_constant_speed_walk():
 def test_stacks_and_one_file_per_frame_give_the_same_tables(tmp_path):
     # The two image layouts of the filename template must be read identically.
     import tifffile
+
     from plateloom.io.images import index_plate_images
     from plateloom.well.stage import WellSettings, analyse_well
 
@@ -118,8 +121,12 @@ def test_stacks_and_one_file_per_frame_give_the_same_tables(tmp_path):
         for frame in range(4):
             tifffile.imwrite(frames / f"C03_s1_t{frame:03d}_{name}.tif", stack[frame, channel])
     settings = WellSettings(("nuc", "rep"), "nuc", scenario["pixel_size_um"], 5.0, 1.0, 30.0, 7.0, 8.0, 3)
-    from_stacks = analyse_well(index_plate_images(str(stacks), "{well}_s{site}_{channel}.tif", 96, ["nuc", "rep"]), "C03", settings)
-    from_frames = analyse_well(index_plate_images(str(frames), "{well}_s{site}_t{frame}_{channel}.tif", 96, ["nuc", "rep"]), "C03", settings)
+    from_stacks = analyse_well(
+        index_plate_images(str(stacks), "{well}_s{site}_{channel}.tif", 96, ["nuc", "rep"]), "C03", settings
+    )
+    from_frames = analyse_well(
+        index_plate_images(str(frames), "{well}_s{site}_t{frame}_{channel}.tif", 96, ["nuc", "rep"]), "C03", settings
+    )
     for a, b in zip(from_stacks, from_frames):
         assert len(a) > 0
         assert a.equals(b)
@@ -147,7 +154,7 @@ def _dense_reference_links(previous, current, max_displacement):
 
 def test_sparse_linking_equals_the_dense_assignment():
     rng = np.random.default_rng(7)
-    for trial in range(20):
+    for _ in range(20):
         previous = rng.uniform(0, 60, (40, 2))
         current = np.vstack([previous[5:] + rng.normal(0, 1.5, (35, 2)), rng.uniform(0, 60, (4, 2))])
         links = link_frames(previous, current, 4.0)
@@ -162,8 +169,9 @@ def _frame_to_frame_tracks(frame, x, y, max_displacement):
     previous_rows = np.array([], int)
     for t in np.unique(frame):
         rows = np.nonzero(frame == t)[0]
-        links = link_frames(np.column_stack([x[previous_rows], y[previous_rows]]), np.column_stack([x[rows], y[rows]]),
-                            max_displacement)
+        links = link_frames(
+            np.column_stack([x[previous_rows], y[previous_rows]]), np.column_stack([x[rows], y[rows]]), max_displacement
+        )
         for row, link in zip(rows, links):
             if link >= 0:
                 track[row] = track[previous_rows[link]]
@@ -188,7 +196,7 @@ def test_gap_closing_rejoins_tracks_across_missed_frames():
                 rows.append((t, cell, x[t], y[t]))
     frame, truth, x, y = (np.array(c) for c in zip(*rows))
     linked = _frame_to_frame_tracks(frame, x, y, 6.0)
-    assert len(np.unique(linked)) == 50                     # every walker split in two by its gap
+    assert len(np.unique(linked)) == 50  # every walker split in two by its gap
     closed = close_gaps(frame, linked, x, y, max_gap_frames=2, max_displacement_um=6.0)
     recovered = sum(len(np.unique(closed[truth == cell])) == 1 for cell in range(25))
     assert recovered == 25
@@ -224,13 +232,14 @@ def test_divisions_are_found_with_recall_of_at_least_0_8():
             children = parents[parents["parent_track"] == mother.pop()]["track"]
             found += set(children) == {daughters[0].pop(), daughters[1].pop()}
     assert found / 20 >= 0.8, found
-    assert len(parents) <= 2 * 20 + 4                        # few spurious divisions
+    assert len(parents) <= 2 * 20 + 4  # few spurious divisions
 
 
 def test_neighbourhood_matches_brute_force_distances():
     # Reference: scipy.spatial.distance.cdist over all pairs.
-    from plateloom.well.features import neighbourhood
     from scipy.spatial.distance import cdist
+
+    from plateloom.well.features import neighbourhood
 
     xy = np.random.default_rng(8).uniform(0, 200, (300, 2))
     counts, nearest = neighbourhood(xy, 25.0)

@@ -13,9 +13,10 @@ import pandas as pd
 import pytest
 import yaml
 from conftest import copy_workflow, run_snakemake
+from scipy import stats
+
 from plateloom.demo.scenario import load_scenario, planted_ratios
 from plateloom.setup.screen_sheet import load_layout
-from scipy import stats
 
 NEW_PLATE = "TW-D3-P3"
 
@@ -62,11 +63,20 @@ def test_effects_table_is_complete(finished_screen):
     # With 5 frames a site, tracks are shorter than collective.min_overlap_frames (12): the readouts that
     # compare neighbours' traces have no value, and too few cells die for any spreading (index 1 everywhere).
     # They are listed as not fitted, with the reason.
-    short = effects["feature"].isin(["neighbour_correlation_reporter", "coupled_link_fraction_reporter",
-                                     "coupled_link_fraction_d2_reporter", "spreading_index"])
+    short = effects["feature"].isin(
+        [
+            "neighbour_correlation_reporter",
+            "coupled_link_fraction_reporter",
+            "coupled_link_fraction_d2_reporter",
+            "spreading_index",
+        ]
+    )
     assert (effects.loc[short, "method"] == "not fitted").all()
-    assert (effects.loc[short & (effects["feature"] != "spreading_index"), "note"]
-            .str.contains("collective.min_overlap_frames").all())
+    assert (
+        effects.loc[short & (effects["feature"] != "spreading_index"), "note"]
+        .str.contains("collective.min_overlap_frames")
+        .all()
+    )
     assert effects.loc[effects["feature"] == "spreading_index", "note"].str.contains("constant across wells").all()
     assert not effects.loc[short, "hit"].any()
     fitted = effects[~short]
@@ -105,8 +115,11 @@ def test_planted_ec50s_fall_inside_their_intervals(finished_screen):
     fits = pd.read_parquet(finished_screen / "results/dose_response.parquet").set_index(["condition", "feature"])
     scenario = load_scenario(str(finished_screen / "resources/demo/scenario.yaml"))
     planted = {c["name"]: c["ec50_um"] for c in scenario["compounds"]}
-    for compound, feature in (("TW-101", "area_um2"), ("TW-102", "mean_intensity_reporter"),
-                              ("TW-103", "speed_um_per_min")):
+    for compound, feature in (
+        ("TW-101", "area_um2"),
+        ("TW-102", "mean_intensity_reporter"),
+        ("TW-103", "speed_um_per_min"),
+    ):
         fit = fits.loc[(compound, feature)]
         assert fit["identifiable"], fit["flag"]
         assert fit["ec50_ci_low"] <= planted[compound] <= fit["ec50_ci_high"], (compound, fit["ec50"])
@@ -131,8 +144,15 @@ def test_reports_are_self_contained(finished_screen):
     report = (finished_screen / "results/reports/screen.html").read_text()
     assert "data:image/png;base64," in report and "<script" not in report and "http://" not in report
     assert "not for clinical" in report
-    for section in ("Volcano plot", "Dose-response", "Batch diagnostics", "Design check", "Variance components",
-                    "Exclusion ledger", "Method"):
+    for section in (
+        "Volcano plot",
+        "Dose-response",
+        "Batch diagnostics",
+        "Design check",
+        "Variance components",
+        "Exclusion ledger",
+        "Method",
+    ):
         assert f"<h2>{section}</h2>" in report
     plate = (finished_screen / "results/reports/plates/TW-D1-P1.html").read_text()
     assert "Z&#x27;-factor and SSMD per feature" in plate
@@ -147,7 +167,14 @@ def test_snakemake_report_holds_the_plate_and_screen_reports(finished_screen, tm
     import zipfile
 
     names = zipfile.ZipFile(target).namelist()
-    for expected in ("screen.html", "TW-D1-P1.html", "volcano.png", "batch_pca.png", "effects.csv", "dose_response.csv"):
+    for expected in (
+        "screen.html",
+        "TW-D1-P1.html",
+        "volcano.png",
+        "batch_pca.png",
+        "effects.csv",
+        "dose_response.csv",
+    ):
         assert any(name.endswith(expected) for name in names), expected
 
 
@@ -156,9 +183,13 @@ def test_hard_stop_during_per_well_stage_then_resume_gives_identical_tables(fini
     # SIGKILL the whole Snakemake process group while per-well jobs run, rerun, compare with the uninterrupted run.
     workdir = copy_workflow(tmp_path / "screen")
     shutil.copy2(finished_screen / "config" / "config.yaml", workdir / "config" / "config.yaml")
-    shutil.copy2(finished_screen / "resources" / "demo" / "scenario.yaml", workdir / "resources" / "demo" / "scenario.yaml")
+    shutil.copy2(
+        finished_screen / "resources" / "demo" / "scenario.yaml", workdir / "resources" / "demo" / "scenario.yaml"
+    )
     command = [sys.executable, "-m", "snakemake", "--cores", "2", "--scheduler", "greedy"]
-    process = subprocess.Popen(command, cwd=workdir, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, start_new_session=True)
+    process = subprocess.Popen(
+        command, cwd=workdir, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, start_new_session=True
+    )
     cells = workdir / "results" / "cells"
     deadline = time.time() + 600
     while time.time() < deadline and len(list(cells.glob("plate=*/chunk=*/well=*/part-0.parquet"))) < 30:
@@ -168,9 +199,12 @@ def test_hard_stop_during_per_well_stage_then_resume_gives_identical_tables(fini
     assert not (workdir / "results" / "effects.parquet").exists()
     run_snakemake(workdir, "--unlock")  # a killed Snakemake leaves its lock behind
     run_snakemake(workdir, "--rerun-incomplete")
-    for table in ["effects.parquet"] + [f"wells/plate={p}/part-0.parquet" for p in ("TW-D1-P1", "TW-D2-P2", "TW-D3-P1")]:
-        pd.testing.assert_frame_equal(pd.read_parquet(workdir / "results" / table),
-                                      pd.read_parquet(finished_screen / "results" / table))
+    for table in ["effects.parquet"] + [
+        f"wells/plate={p}/part-0.parquet" for p in ("TW-D1-P1", "TW-D2-P2", "TW-D3-P1")
+    ]:
+        pd.testing.assert_frame_equal(
+            pd.read_parquet(workdir / "results" / table), pd.read_parquet(finished_screen / "results" / table)
+        )
 
 
 @pytest.mark.slow
@@ -179,7 +213,10 @@ def test_planted_edge_effect_detected_then_removed_by_median_polish(finished_scr
     reporter = "mean_intensity_reporter"
 
     def edges():
-        tables = [pd.read_parquet(p) for p in sorted((finished_screen / "results/edge_effects").glob("plate=*/part-0.parquet"))]
+        tables = [
+            pd.read_parquet(p)
+            for p in sorted((finished_screen / "results/edge_effects").glob("plate=*/part-0.parquet"))
+        ]
         return pd.concat(tables).set_index("feature").loc[reporter]
 
     before = edges()
@@ -206,19 +243,39 @@ def test_new_plate_schedules_only_its_own_jobs_and_the_fan_ins(finished_screen):
     look = run_snakemake(finished_screen, "-n", "--config", f'only_plates=["{NEW_PLATE}"]')
     look_jobs = pd.Series(re.findall(r"^rule (\w+):", look.stdout + look.stderr, flags=re.M)).value_counts().to_dict()
     # 56 analysed wells in chunks of 24: 3 per-well jobs
-    assert look_jobs == {"make_demo_plate": 1, "estimate_illumination": 2, "analyse_wells": 3, "plate_profiles": 1,
-                         "plate_report": 1, "all": 1}
+    assert look_jobs == {
+        "make_demo_plate": 1,
+        "estimate_illumination": 2,
+        "analyse_wells": 3,
+        "plate_profiles": 1,
+        "plate_report": 1,
+        "all": 1,
+    }
     result = run_snakemake(finished_screen, "-n")
     output = result.stdout + result.stderr
     jobs = re.findall(r"^rule (\w+):", output, flags=re.M)
     counts = pd.Series(jobs).value_counts().to_dict()
-    assert counts == {"make_demo_plate": 1, "estimate_illumination": 2, "analyse_wells": 3, "plate_profiles": 1,
-                      "plate_report": 1,
-                      "correct_batches": 1, "fit_effects": 3, "screen_effects": 1, "dose_response": 1,
-                      "design_check": 1, "screen_report": 1, "all": 1}
+    assert counts == {
+        "make_demo_plate": 1,
+        "estimate_illumination": 2,
+        "analyse_wells": 3,
+        "plate_profiles": 1,
+        "plate_report": 1,
+        "correct_batches": 1,
+        "fit_effects": 3,
+        "screen_effects": 1,
+        "dose_response": 1,
+        "design_check": 1,
+        "screen_report": 1,
+        "all": 1,
+    }
     blocks = re.split(r"^rule ", output, flags=re.M)[1:]
-    per_plate = [b for b in blocks if b.split(":")[0] in ("make_demo_plate", "estimate_illumination", "analyse_wells",
-                                                          "plate_profiles", "plate_report")]
+    per_plate = [
+        b
+        for b in blocks
+        if b.split(":")[0]
+        in ("make_demo_plate", "estimate_illumination", "analyse_wells", "plate_profiles", "plate_report")
+    ]
     plates = {re.search(r"wildcards: plate=([\w.-]+)", block).group(1) for block in per_plate}
     assert plates == {NEW_PLATE}
     # after the run, the old plates' reports are untouched: same bytes, same modification times
@@ -237,7 +294,9 @@ def test_keep_going_finishes_the_good_plate_when_one_image_is_corrupt(tmp_path):
     workdir = copy_workflow(tmp_path / "screen")
     sheet = workdir / "config" / "plates.csv"
     lines = sheet.read_text().splitlines()
-    sheet.write_text("\n".join([lines[0]] + [line for line in lines[1:] if line.split(",")[0] in ("TW-D1-P1", "TW-D2-P1")]) + "\n")
+    sheet.write_text(
+        "\n".join([lines[0]] + [line for line in lines[1:] if line.split(",")[0] in ("TW-D1-P1", "TW-D2-P1")]) + "\n"
+    )
     config_path = workdir / "config" / "config.yaml"
     config = yaml.safe_load(config_path.read_text())
     config["demo"]["frames"] = 3
@@ -255,4 +314,4 @@ def test_keep_going_finishes_the_good_plate_when_one_image_is_corrupt(tmp_path):
     assert "A01_s1_nuclear.tif" in log and "re-copy" in log
     assert "cannot be read as TIFF" in log or "different frame counts (nuclear: 1 in A01_s1_nuclear.tif" in log
     assert not (workdir / "results/cells/plate=TW-D2-P1/chunk=000").exists()
-    assert (workdir / "results/cells/plate=TW-D2-P1/chunk=001").exists()      # the other chunk of that plate is kept
+    assert (workdir / "results/cells/plate=TW-D2-P1/chunk=001").exists()  # the other chunk of that plate is kept

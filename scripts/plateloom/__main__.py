@@ -1,4 +1,5 @@
 """``python -m plateloom``: the command line."""
+
 import sys
 
 from plateloom.cli import main

@@ -49,8 +49,12 @@ def test_demo_screen_through_slurm_equals_local_run(slurm, tmp_path):
     # every job but the local target went through sbatch: the plugin logs each SLURM job id
     slurm_ids = set(re.findall(r"SLURM jobid (\d+)", output))
     assert len(slurm_ids) >= 20, output[-3000:]
-    queue = subprocess.run(["squeue", "--states=all", "--noheader", "--format=%i %T"], capture_output=True, text=True).stdout
+    queue = subprocess.run(
+        ["squeue", "--states=all", "--noheader", "--format=%i %T"], capture_output=True, text=True
+    ).stdout
     finished = {line.split()[0] for line in queue.splitlines() if line.endswith("COMPLETED")}
     assert slurm_ids <= finished
     for table in ("effects.parquet", "wells/plate=TW-D1-P1/part-0.parquet", "wells/plate=TW-D3-P2/part-0.parquet"):
-        pd.testing.assert_frame_equal(pd.read_parquet(local / "results" / table), pd.read_parquet(cluster / "results" / table))
+        pd.testing.assert_frame_equal(
+            pd.read_parquet(local / "results" / table), pd.read_parquet(cluster / "results" / table)
+        )

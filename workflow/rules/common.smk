@@ -35,7 +35,8 @@ if config["check_images_on_start"] and workflow.is_main_process:
             print(f"plateloom warning: {problem.message}", file=sys.stderr)
     if CHECK.errors:
         raise WorkflowError(
-            "plateloom could not start:\n" + "\n".join(f"  - {p.message}" for p in CHECK.errors)
+            "plateloom could not start:\n"
+            + "\n".join(f"  - {p.message}" for p in CHECK.errors)
         )
 
 RESULTS = config["results_dir"]
@@ -62,7 +63,9 @@ SCREEN_SETTINGS = {
     "ci_level": SCREEN["ci_level"],
     "hit_q_value": SCREEN["hit_q_value"],
     "hit_min_log_ratio": SCREEN["hit_min_log_ratio"],
-    "dose_response_features": resolve_features(SCREEN["dose_response"]["features"], config),
+    "dose_response_features": resolve_features(
+        SCREEN["dose_response"]["features"], config
+    ),
     "dose_response_min_doses": SCREEN["dose_response"]["min_doses"],
     "design_check": SCREEN["design_check"],
 }
@@ -123,7 +126,10 @@ def get_flat_fields(wildcards):
     """The plate's illumination profiles, one per channel in config order (none if switched off)."""
     if ILLUMINATION.method == "none":
         return []
-    return [f"{RESULTS}/illumination/plate={wildcards.plate}/{channel}.tif" for channel in CHANNELS]
+    return [
+        f"{RESULTS}/illumination/plate={wildcards.plate}/{channel}.tif"
+        for channel in CHANNELS
+    ]
 
 
 def get_chunk_folders(kind):
@@ -131,7 +137,10 @@ def get_chunk_folders(kind):
 
     def folders(wildcards):
         chunks = PLAN.chunk_ids(wildcards.plate)
-        return [f"{RESULTS}/{kind}/plate={wildcards.plate}/chunk={chunk}" for chunk in chunks]
+        return [
+            f"{RESULTS}/{kind}/plate={wildcards.plate}/chunk={chunk}"
+            for chunk in chunks
+        ]
 
     return folders
 

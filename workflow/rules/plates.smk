@@ -10,6 +10,16 @@ rule plate_profiles:
         layout=get_layout,
     output:
         **PLATE_TABLES,
+    log:
+        f"{RESULTS}/logs/plate_profiles/{{plate}}.log",
+    benchmark:
+        f"{RESULTS}/benchmarks/plate_profiles/{{plate}}.tsv"
+    conda:
+        "../envs/plateloom.yaml"
+    threads: 2
+    resources:
+        mem_mb=2000,
+        runtime=30,
     params:
         batch=get_batch,
         plate_format=get_plate_format,
@@ -17,16 +27,6 @@ rule plate_profiles:
         template=get_filename_template,
         channels=CHANNELS,
         settings=PLATE_SETTINGS,
-    log:
-        f"{RESULTS}/logs/plate_profiles/{{plate}}.log",
-    benchmark:
-        f"{RESULTS}/benchmarks/plate_profiles/{{plate}}.tsv"
-    threads: 2
-    resources:
-        mem_mb=2000,
-        runtime=30,
-    conda:
-        "../envs/plateloom.yaml"
     script:
         "../scripts/plate_profiles.py"
 
@@ -42,20 +42,20 @@ rule plate_report:
             category="Plates",
             subcategory="{plate}",
         ),
+    log:
+        f"{RESULTS}/logs/plate_report/{{plate}}.log",
+    benchmark:
+        f"{RESULTS}/benchmarks/plate_report/{{plate}}.tsv"
+    conda:
+        "../envs/plateloom.yaml"
+    threads: 1
+    resources:
+        mem_mb=1000,
+        runtime=10,
     params:
         batch=get_batch,
         plate_format=get_plate_format,
         report_feature=config["plate"]["report_feature"],
         channels=CHANNELS,
-    log:
-        f"{RESULTS}/logs/plate_report/{{plate}}.log",
-    benchmark:
-        f"{RESULTS}/benchmarks/plate_report/{{plate}}.tsv"
-    threads: 1
-    resources:
-        mem_mb=1000,
-        runtime=10,
-    conda:
-        "../envs/plateloom.yaml"
     script:
         "../scripts/plate_report.py"

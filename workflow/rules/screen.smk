@@ -11,18 +11,18 @@ rule correct_batches:
         treatments=TREATMENTS,
         variance=f"{RESULTS}/screen/batch_variance_shares.parquet",
         components=f"{RESULTS}/screen/batch_principal_components.parquet",
-    params:
-        settings=SCREEN_SETTINGS,
     log:
         f"{RESULTS}/logs/correct_batches.log",
     benchmark:
         f"{RESULTS}/benchmarks/correct_batches.tsv"
+    conda:
+        "../envs/plateloom.yaml"
     threads: 1
     resources:
         mem_mb=SCREEN_JOB.mem_mb,
         runtime=SCREEN_JOB.runtime_min,
-    conda:
-        "../envs/plateloom.yaml"
+    params:
+        settings=SCREEN_SETTINGS,
     script:
         "../scripts/correct_batches.py"
 
@@ -33,21 +33,21 @@ rule fit_effects:
         treatments=TREATMENTS,
     output:
         part=f"{RESULTS}/screen/effects_parts/chunk={{chunk}}.parquet",
-    params:
-        features=get_feature_chunk,
-        settings=SCREEN_SETTINGS,
-    wildcard_constraints:
-        chunk=r"\d{3}",
     log:
         f"{RESULTS}/logs/fit_effects/{{chunk}}.log",
     benchmark:
         f"{RESULTS}/benchmarks/fit_effects/{{chunk}}.tsv"
+    wildcard_constraints:
+        chunk=r"\d{3}",
+    conda:
+        "../envs/plateloom.yaml"
     threads: 1
     resources:
         mem_mb=SCREEN_JOB.mem_mb,
         runtime=SCREEN_JOB.runtime_min,
-    conda:
-        "../envs/plateloom.yaml"
+    params:
+        features=get_feature_chunk,
+        settings=SCREEN_SETTINGS,
     script:
         "../scripts/fit_effects.py"
 
@@ -58,20 +58,22 @@ rule screen_effects:
     output:
         parquet=EFFECTS,
         csv=report(
-            f"{RESULTS}/effects.csv", caption="../report/effects.rst", category="Screen"
+            f"{RESULTS}/effects.csv",
+            caption="../report/effects.rst",
+            category="Screen",
         ),
-    params:
-        settings=SCREEN_SETTINGS,
     log:
         f"{RESULTS}/logs/screen_effects.log",
     benchmark:
         f"{RESULTS}/benchmarks/screen_effects.tsv"
+    conda:
+        "../envs/plateloom.yaml"
     threads: 1
     resources:
         mem_mb=SCREEN_JOB.mem_mb,
         runtime=SCREEN_JOB.runtime_min,
-    conda:
-        "../envs/plateloom.yaml"
+    params:
+        settings=SCREEN_SETTINGS,
     script:
         "../scripts/screen_effects.py"
 
@@ -87,18 +89,18 @@ rule dose_response:
             category="Screen",
         ),
         points=f"{RESULTS}/screen/dose_response_points.parquet",
-    params:
-        settings=SCREEN_SETTINGS,
     log:
         f"{RESULTS}/logs/dose_response.log",
     benchmark:
         f"{RESULTS}/benchmarks/dose_response.tsv"
+    conda:
+        "../envs/plateloom.yaml"
     threads: 1
     resources:
         mem_mb=SCREEN_JOB.mem_mb,
         runtime=SCREEN_JOB.runtime_min,
-    conda:
-        "../envs/plateloom.yaml"
+    params:
+        settings=SCREEN_SETTINGS,
     script:
         "../scripts/dose_response.py"
 
@@ -114,18 +116,18 @@ rule design_check:
             caption="../report/design_check.rst",
             category="Screen",
         ),
-    params:
-        settings=SCREEN_SETTINGS,
     log:
         f"{RESULTS}/logs/design_check.log",
     benchmark:
         f"{RESULTS}/benchmarks/design_check.tsv"
+    conda:
+        "../envs/plateloom.yaml"
     threads: 1
     resources:
         mem_mb=SCREEN_JOB.mem_mb,
         runtime=SCREEN_JOB.runtime_min,
-    conda:
-        "../envs/plateloom.yaml"
+    params:
+        settings=SCREEN_SETTINGS,
     script:
         "../scripts/design_check.py"
 
@@ -157,17 +159,17 @@ rule screen_report:
             caption="../report/batch_pca.rst",
             category="Figures",
         ),
-    params:
-        settings=SCREEN_SETTINGS,
     log:
         f"{RESULTS}/logs/screen_report.log",
     benchmark:
         f"{RESULTS}/benchmarks/screen_report.tsv"
+    conda:
+        "../envs/plateloom.yaml"
     threads: 1
     resources:
         mem_mb=SCREEN_JOB.mem_mb,
         runtime=SCREEN_JOB.runtime_min,
-    conda:
-        "../envs/plateloom.yaml"
+    params:
+        settings=SCREEN_SETTINGS,
     script:
         "../scripts/screen_report.py"

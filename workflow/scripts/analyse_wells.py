@@ -1,6 +1,8 @@
 """Rule analyse_wells: segment, track and measure one chunk of wells of one plate."""
+
 import numpy as np
 import tifffile
+
 from plateloom.io.images import index_plate_images
 from plateloom.io.job import run_step
 from plateloom.well.collective import CollectiveSettings
@@ -14,9 +16,19 @@ def step() -> None:
     index = index_plate_images(sm.input.images, sm.params.template, sm.params.plate_format, list(settings.channels))
     profiles = list(sm.input.flat_fields)
     flat_field = np.stack([tifffile.imread(path) for path in profiles]) if profiles else None
-    analyse_chunk(index, sm.wildcards.plate, list(sm.params.wells), settings,
-                  sm.output.cells, sm.output.tracks, sm.output.site_qc, dict(sm.params.settings), flat_field,
-                  sm.output.collective, CollectiveSettings(**sm.params.collective))
+    analyse_chunk(
+        index,
+        sm.wildcards.plate,
+        list(sm.params.wells),
+        settings,
+        sm.output.cells,
+        sm.output.tracks,
+        sm.output.site_qc,
+        dict(sm.params.settings),
+        flat_field,
+        sm.output.collective,
+        CollectiveSettings(**sm.params.collective),
+    )
 
 
 run_step(sm.log[0], step, f"analyse_wells {sm.wildcards.plate} chunk {sm.wildcards.chunk}")

@@ -1,5 +1,7 @@
 """Rule correct_batches: wells in the model, features on their model scale, batch-corrected, with diagnostics."""
+
 import pandas as pd
+
 from plateloom.io.job import run_step
 from plateloom.io.tables import write_parquet
 from plateloom.screen.model_wells import build_model_wells, treatment_catalogue

@@ -1,5 +1,7 @@
 """Rule dose_response: four-parameter logistic fits per compound and feature, EC50 with CI."""
+
 import pandas as pd
+
 from plateloom.io.job import run_step
 from plateloom.io.tables import read_extra, write_parquet, write_text
 from plateloom.screen.dose_response import dose_response_table
@@ -14,8 +16,9 @@ def step() -> None:
     missing = [f for f in p["dose_response_features"] if f not in scales]
     if missing:
         raise ValueError(f"screen.dose_response.features {missing} are not among screen.features; add them there")
-    fits, points = dose_response_table(model_wells, list(p["dose_response_features"]), scales,
-                                       int(p["dose_response_min_doses"]), p["ci_level"])
+    fits, points = dose_response_table(
+        model_wells, list(p["dose_response_features"]), scales, int(p["dose_response_min_doses"]), p["ci_level"]
+    )
     write_parquet(fits, sm.output.parquet, dict(p))
     write_text(fits.to_csv(index=False, float_format="%.6g"), sm.output.csv)
     write_parquet(points, sm.output.points, dict(p))

@@ -1,5 +1,7 @@
 """Rule fit_effects: the mixed-effects model for one chunk of features (chunks run in parallel)."""
+
 import pandas as pd
+
 from plateloom.io.job import run_step
 from plateloom.io.tables import read_extra, write_parquet
 from plateloom.screen.effects import fit_feature_effects
@@ -12,8 +14,10 @@ def step() -> None:
     treatments = pd.read_parquet(sm.input.treatments)
     scales = read_extra(sm.input.model_wells)["scales"]
     p = sm.params.settings
-    parts = [fit_feature_effects(model_wells, feature, scales[feature], p["ci_level"], p["fitter"], treatments)
-             for feature in sm.params.features]
+    parts = [
+        fit_feature_effects(model_wells, feature, scales[feature], p["ci_level"], p["fitter"], treatments)
+        for feature in sm.params.features
+    ]
     write_parquet(pd.concat(parts, ignore_index=True), sm.output.part, dict(p))
 
 

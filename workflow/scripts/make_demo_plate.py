@@ -1,4 +1,5 @@
 """Rule make_demo_plate: simulate one plate of the embedded demo screen."""
+
 from plateloom.demo.scenario import load_scenario
 from plateloom.demo.simulate import write_demo_plate
 from plateloom.io.job import run_step

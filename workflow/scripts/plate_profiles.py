@@ -1,4 +1,5 @@
 """Rule plate_profiles: well profiles, exclusions, positional correction, normalization and QC of one plate."""
+
 import json
 
 from plateloom.io.images import unmatched_note
@@ -15,19 +16,29 @@ sm = snakemake  # noqa: F821  (injected by Snakemake's script directive)
 def step() -> None:
     layout = load_layout(sm.input.layout, sm.params.plate_format)
     settings = dict(sm.params.settings)
-    tables = build_plate_tables_from_files(list(sm.input.cells), read_plate_dataset(list(sm.input.tracks)),
-                                           read_plate_dataset(list(sm.input.site_qc)), layout, sm.wildcards.plate,
-                                           sm.params.batch, sm.params.plate_format, PlateSettings(**settings["plate"]),
-                                           ExclusionRules.from_config(settings["exclusion_rules"]),
-                                           read_plate_dataset(list(sm.input.collective)), sm.threads)
+    tables = build_plate_tables_from_files(
+        list(sm.input.cells),
+        read_plate_dataset(list(sm.input.tracks)),
+        read_plate_dataset(list(sm.input.site_qc)),
+        layout,
+        sm.wildcards.plate,
+        sm.params.batch,
+        sm.params.plate_format,
+        PlateSettings(**settings["plate"]),
+        ExclusionRules.from_config(settings["exclusion_rules"]),
+        read_plate_dataset(list(sm.input.collective)),
+        sm.threads,
+    )
     note = unmatched_note(sm.params.image_folder, sm.params.template, sm.params.plate_format, list(sm.params.channels))
     warnings = tables.warnings + ([note] if note else [])
     write_parquet(tables.profile, sm.output.wells, settings)
     write_parquet(tables.qc, sm.output.qc, settings)
     write_parquet(tables.ledger, sm.output.ledger, settings)
     write_parquet(tables.edge, sm.output.edge, settings)
-    write_text(json.dumps({"plate": sm.wildcards.plate, "warnings": warnings,
-                                   "site_qc": tables.site_summary}, indent=1), sm.output.notes)
+    write_text(
+        json.dumps({"plate": sm.wildcards.plate, "warnings": warnings, "site_qc": tables.site_summary}, indent=1),
+        sm.output.notes,
+    )
 
 
 run_step(sm.log[0], step, f"plate_profiles {sm.wildcards.plate}")

@@ -1,5 +1,7 @@
 """Rule screen_effects: all feature chunks together, BH q-values over every (feature, treatment), hit calls."""
+
 import pandas as pd
+
 from plateloom.io.job import run_step
 from plateloom.io.tables import write_parquet, write_text
 from plateloom.screen.effects import add_hit_calls

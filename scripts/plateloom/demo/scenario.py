@@ -60,8 +60,13 @@ def planted_ratios(scenario: dict, layout: pd.DataFrame) -> pd.DataFrame:
     (nuclear area, reporter mean intensity, track speed); a ratio of 1 means no effect.
     """
     features = feature_of_quantity(scenario)
-    return pd.DataFrame([keys | {"feature": feature, "ratio": ratios[quantity]}
-                         for keys, ratios in _treated(scenario, layout) for quantity, feature in features.items()])
+    return pd.DataFrame(
+        [
+            keys | {"feature": feature, "ratio": ratios[quantity]}
+            for keys, ratios in _treated(scenario, layout)
+            for quantity, feature in features.items()
+        ]
+    )
 
 
 def _treated(scenario: dict, layout: pd.DataFrame):
@@ -71,8 +76,10 @@ def _treated(scenario: dict, layout: pd.DataFrame):
         yield keys, treatment_ratios(scenario, well["condition"], float(well["dose"]))
 
 
-COLLECTIVE_READOUTS = {"coupling": ("phase_order_{r}", "neighbour_correlation_{r}", "coupled_link_fraction_{r}"),
-                       "spreading": ("spreading_index",)}
+COLLECTIVE_READOUTS = {
+    "coupling": ("phase_order_{r}", "neighbour_correlation_{r}", "coupled_link_fraction_{r}"),
+    "spreading": ("spreading_index",),
+}
 
 
 def planted_collective(scenario: dict, layout: pd.DataFrame) -> pd.DataFrame:
@@ -80,6 +87,11 @@ def planted_collective(scenario: dict, layout: pd.DataFrame) -> pd.DataFrame:
     to the negative control of neighbour coupling (1 coupled as the controls, 0 decoupled) and of the
     chance that a death spreads, and the readouts (well features) that should move with it."""
     reporter = scenario["channels"]["reporter"]
-    return pd.DataFrame([keys | {"quantity": quantity, "ratio": ratios[quantity],
-                                 "readouts": [r.format(r=reporter) for r in readouts]}
-                         for keys, ratios in _treated(scenario, layout) for quantity, readouts in COLLECTIVE_READOUTS.items()])
+    return pd.DataFrame(
+        [
+            keys
+            | {"quantity": quantity, "ratio": ratios[quantity], "readouts": [r.format(r=reporter) for r in readouts]}
+            for keys, ratios in _treated(scenario, layout)
+            for quantity, readouts in COLLECTIVE_READOUTS.items()
+        ]
+    )

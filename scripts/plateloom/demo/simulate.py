@@ -45,19 +45,19 @@ def vignetting(size: int, corner: float) -> np.ndarray:
 
 @dataclass
 class _Cells:
-    position: np.ndarray   # (n, 2) pixels, (y, x)
-    velocity: np.ndarray   # (n, 2) um/min
+    position: np.ndarray  # (n, 2) pixels, (y, x)
+    velocity: np.ndarray  # (n, 2) um/min
     semi_major: np.ndarray  # pixels
     semi_minor: np.ndarray
     angle: np.ndarray
     nuclear: np.ndarray
     reporter: np.ndarray
     phase: np.ndarray
-    frequency: np.ndarray    # rad/min
+    frequency: np.ndarray  # rad/min
     fluctuation: np.ndarray  # relative reporter fluctuation
-    identity: np.ndarray     # index at the start (truth labels are identity + 1)
+    identity: np.ndarray  # index at the start (truth labels are identity + 1)
 
-    def keep(self, alive: np.ndarray) -> "_Cells":
+    def keep(self, alive: np.ndarray) -> _Cells:
         return _Cells(*(getattr(self, f)[alive] for f in self.__dataclass_fields__))
 
 
@@ -65,7 +65,12 @@ def _draw_cells(rng: np.random.Generator, scenario: dict, factor: dict[str, floa
     cell = scenario["cell"]
     pixel = scenario["pixel_size_um"]
     n = int(rng.poisson(scenario["cells_per_site"] * factor["cell_count"]))
-    radius = cell["nucleus_radius_um"] / pixel * np.sqrt(factor["area"]) * np.exp(rng.normal(0, cell["nucleus_radius_log_sd"], n))
+    radius = (
+        cell["nucleus_radius_um"]
+        / pixel
+        * np.sqrt(factor["area"])
+        * np.exp(rng.normal(0, cell["nucleus_radius_log_sd"], n))
+    )
     elongation = np.exp(np.abs(rng.normal(0, cell["elongation_log_sd"], n)))
     semi_major, semi_minor = radius * np.sqrt(elongation), radius / np.sqrt(elongation)
     margin = semi_major + 3
@@ -75,9 +80,22 @@ def _draw_cells(rng: np.random.Generator, scenario: dict, factor: dict[str, floa
     nuclear = cell["nuclear_level"] * factor["nuclear"] * np.exp(rng.normal(0, cell["nuclear_level_log_sd"], n))
     reporter = cell["reporter_level"] * factor["reporter"] * np.exp(rng.normal(0, cell["reporter_level_log_sd"], n))
     phase = rng.uniform(0, 2 * np.pi, n)
-    frequency = 2 * np.pi / cell["reporter_period_min"] * np.exp(rng.normal(0, cell.get("reporter_period_log_sd", 0.0), n))
-    return _Cells(position, velocity, semi_major, semi_minor, angle, nuclear, reporter, phase, frequency,
-                  np.zeros(n), np.arange(n))
+    frequency = (
+        2 * np.pi / cell["reporter_period_min"] * np.exp(rng.normal(0, cell.get("reporter_period_log_sd", 0.0), n))
+    )
+    return _Cells(
+        position,
+        velocity,
+        semi_major,
+        semi_minor,
+        angle,
+        nuclear,
+        reporter,
+        phase,
+        frequency,
+        np.zeros(n),
+        np.arange(n),
+    )
 
 
 def _neighbour_weights(cells: _Cells, radius_px: float) -> np.ndarray:
@@ -94,13 +112,20 @@ def _advance_reporter(rng: np.random.Generator, cells: _Cells, scenario: dict, c
     weights = _neighbour_weights(cells, cell["coupling_radius_um"] / scenario["pixel_size_um"])
     pull = (weights * np.sin(cells.phase[None, :] - cells.phase[:, None])).sum(axis=1)
     cells.phase[:] = cells.phase + dt * (cells.frequency + coupling * cell["phase_coupling_per_min"] * pull)
-    memory, drive = cell["fluctuation_memory"], min(coupling * cell["fluctuation_coupling"], 0.95 - cell["fluctuation_memory"])
-    cells.fluctuation[:] = (memory * cells.fluctuation + drive * weights @ cells.fluctuation
-                            + rng.normal(0, cell["fluctuation_sd"], len(cells.fluctuation)))
+    memory, drive = (
+        cell["fluctuation_memory"],
+        min(coupling * cell["fluctuation_coupling"], 0.95 - cell["fluctuation_memory"]),
+    )
+    cells.fluctuation[:] = (
+        memory * cells.fluctuation
+        + drive * weights @ cells.fluctuation
+        + rng.normal(0, cell["fluctuation_sd"], len(cells.fluctuation))
+    )
 
 
-def _dying(rng: np.random.Generator, cells: _Cells, scenario: dict, spreading: float,
-           recent_deaths: np.ndarray) -> np.ndarray:
+def _dying(
+    rng: np.random.Generator, cells: _Cells, scenario: dict, spreading: float, recent_deaths: np.ndarray
+) -> np.ndarray:
     """Which cells die in this frame: a base hazard plus a chance per neighbour that died within the last frames."""
     cell = scenario["cell"]
     if len(cells.position) == 0:
@@ -159,15 +184,16 @@ def _render(cells: _Cells, levels: np.ndarray, size: int) -> np.ndarray:
     """Sum of uniformly bright ellipses (one per cell) on a zero background."""
     image = np.zeros((size, size), np.float32)
     for i, ys, xs, inside in _ellipse_boxes(cells, size):
-        image[ys[0]:ys[-1] + 1, xs[0]:xs[-1] + 1] += levels[i] * inside
+        image[ys[0] : ys[-1] + 1, xs[0] : xs[-1] + 1] += levels[i] * inside
     return image
 
 
 def _render_labels(cells: _Cells, size: int) -> np.ndarray:
-    """Ground-truth label image: the cell drawn i-th at the start is label i + 1 (where ellipses overlap, the later cell's)."""
+    """Ground-truth label image: the cell drawn i-th at the start is label i + 1 (where ellipses
+    overlap, the later cell's)."""
     labels = np.zeros((size, size), np.int32)
     for i, ys, xs, inside in _ellipse_boxes(cells, size):
-        box = labels[ys[0]:ys[-1] + 1, xs[0]:xs[-1] + 1]
+        box = labels[ys[0] : ys[-1] + 1, xs[0] : xs[-1] + 1]
         box[inside] = cells.identity[i] + 1
     return labels
 
@@ -181,8 +207,9 @@ class SiteTruth:
     positions: pd.DataFrame
 
 
-def simulate_site(scenario: dict, factor: dict[str, float], rng: np.random.Generator,
-                  with_truth: bool = False) -> np.ndarray | tuple[np.ndarray, SiteTruth]:
+def simulate_site(
+    scenario: dict, factor: dict[str, float], rng: np.random.Generator, with_truth: bool = False
+) -> np.ndarray | tuple[np.ndarray, SiteTruth]:
     """Images of one site: array (frames, 2 channels, y, x) uint16, nuclei then reporter.
 
     With ``with_truth`` also the planted truth (the images are the same either way); its
@@ -198,8 +225,13 @@ def simulate_site(scenario: dict, factor: dict[str, float], rng: np.random.Gener
     positions = []
     recent_deaths: list[np.ndarray] = []
     for frame in range(frames):
-        dying = _dying(rng, cells, scenario, factor.get("spreading", 1.0),
-                       np.concatenate(recent_deaths[-cell["death_memory_frames"]:] or [np.empty((0, 2))]))
+        dying = _dying(
+            rng,
+            cells,
+            scenario,
+            factor.get("spreading", 1.0),
+            np.concatenate(recent_deaths[-cell["death_memory_frames"] :] or [np.empty((0, 2))]),
+        )
         oscillation = 1 + cell["reporter_oscillation_amplitude"] * np.sin(cells.phase) + cells.fluctuation
         reporter = cells.reporter * np.clip(oscillation, 0.05, None) * np.where(dying, cell["death_reporter_jump"], 1.0)
         for channel, levels in enumerate((cells.nuclear, reporter)):
@@ -209,16 +241,28 @@ def simulate_site(scenario: dict, factor: dict[str, float], rng: np.random.Gener
         if with_truth:
             truth_labels[frame] = _render_labels(cells, size)
             pixel = scenario["pixel_size_um"]
-            positions.append(pd.DataFrame({"frame": frame, "cell": cells.identity, "x_um": cells.position[:, 1] * pixel,
-                                           "y_um": cells.position[:, 0] * pixel, "dies": dying}))
+            positions.append(
+                pd.DataFrame(
+                    {
+                        "frame": frame,
+                        "cell": cells.identity,
+                        "x_um": cells.position[:, 1] * pixel,
+                        "y_um": cells.position[:, 0] * pixel,
+                        "dies": dying,
+                    }
+                )
+            )
         recent_deaths.append(cells.position[dying].copy())
         cells = cells.keep(~dying)
         _advance_reporter(rng, cells, scenario, factor.get("coupling", 1.0))
         _step(rng, cells, scenario, factor["speed"], size)
     if not with_truth:
         return stack
-    table = (pd.concat(positions, ignore_index=True) if positions
-             else pd.DataFrame(columns=["frame", "cell", "x_um", "y_um", "dies"]))
+    table = (
+        pd.concat(positions, ignore_index=True)
+        if positions
+        else pd.DataFrame(columns=["frame", "cell", "x_um", "y_um", "dies"])
+    )
     return stack, SiteTruth(truth_labels, table)
 
 

@@ -29,11 +29,16 @@ def template_regex(template: str) -> re.Pattern[str]:
     unknown = sorted(set(fields) - set(FIELD_PATTERNS))
     # without {channel}, each file is a multi-channel OME-TIFF stack of one site (channels named in its metadata)
     if unknown or not {"well", "site"} <= set(fields) or ("channel" not in fields and "frame" in fields):
-        raise InputError("config images.filename_template", f"template {template!r} has fields {fields}.",
-                         "use {well}, {site}, {channel} and optionally {frame}, each once (or {well} and {site} "
-                         "alone for one multi-channel OME-TIFF stack per site).")
+        raise InputError(
+            "config images.filename_template",
+            f"template {template!r} has fields {fields}.",
+            "use {well}, {site}, {channel} and optionally {frame}, each once (or {well} and {site} "
+            "alone for one multi-channel OME-TIFF stack per site).",
+        )
     if len(fields) != len(set(fields)):
-        raise InputError("config images.filename_template", f"template {template!r} repeats a field.", "use each field once.")
+        raise InputError(
+            "config images.filename_template", f"template {template!r} repeats a field.", "use each field once."
+        )
     pattern = ""
     for literal, field in re.findall(r"([^{]*)(?:{(\w+)})?", template):
         pattern += re.escape(literal)
@@ -111,8 +116,11 @@ def _index_multichannel_stacks(folder: str, regex: re.Pattern[str], wells: int, 
         metadata = read_ome_metadata(path)
         names = metadata.channel_names if metadata else ()
         if not names:
-            raise InputError(path, "names no channels in OME metadata, and the template has no {channel} field.",
-                             "add {channel} to images.filename_template, or export OME-TIFF with channel names.")
+            raise InputError(
+                path,
+                "names no channels in OME metadata, and the template has no {channel} field.",
+                "add {channel} to images.filename_template, or export OME-TIFF with channel names.",
+            )
         for position, channel in enumerate(channel_key(n) for n in names):
             if channel in channels:
                 rows.append((well, int(match.group("site")), -1, channel, f"{path}::{position}"))
@@ -122,13 +130,16 @@ def _index_multichannel_stacks(folder: str, regex: re.Pattern[str], wells: int, 
     return ImageIndex(table, True, tuple(unmatched), "ome_tiff")
 
 
-def _stream_multichannel_site(index: ImageIndex, well: str, site: int, channels: list[str]) -> Iterator["SiteFrame"]:
+def _stream_multichannel_site(index: ImageIndex, well: str, site: int, channels: list[str]) -> Iterator[SiteFrame]:
     files = index.table[(index.table["well"] == well) & (index.table["site"] == site)]
     positions = dict(zip(files["channel"], (int(p.split("::")[1]) for p in files["path"])))
     missing = [c for c in channels if c not in positions]
     if missing:
-        raise InputError(f"well {well}, site {site}", f"no image for channel(s) {missing} in the OME-TIFF.",
-                         "check the channel names in config against the file's OME channel names.")
+        raise InputError(
+            f"well {well}, site {site}",
+            f"no image for channel(s) {missing} in the OME-TIFF.",
+            "check the channel names in config against the file's OME channel names.",
+        )
     path = files["path"].iloc[0].split("::")[0]
     with _open_tiff(path) as tif:
         series = tif.series[0]
@@ -142,7 +153,11 @@ def _stream_multichannel_site(index: ImageIndex, well: str, site: int, channels:
             planes, saturated, problem = [], [], ""
             for channel in channels:
                 coordinate = {"T": frame, "C": positions[channel]}
-                page = int(np.ravel_multi_index([coordinate.get(a, 0) for a in order], [sizes[a] for a in order])) if order else 0
+                page = (
+                    int(np.ravel_multi_index([coordinate.get(a, 0) for a in order], [sizes[a] for a in order]))
+                    if order
+                    else 0
+                )
                 try:
                     plane = pages[page].asarray()
                     saturated.append(saturated_fraction(plane))
@@ -150,7 +165,7 @@ def _stream_multichannel_site(index: ImageIndex, well: str, site: int, channels:
                 except InputError as error:
                     problem = f"well {well}, site {site}, frame {frame}: {error}"
                     break
-                except Exception as error:   # tifffile raises many kinds for a corrupt page
+                except Exception as error:  # tifffile raises many kinds for a corrupt page
                     problem = f"well {well}, site {site}, frame {frame}: {_unreadable(path, error)}"
                     break
             if problem:
@@ -165,9 +180,13 @@ def unmatched_note(folder: str, template: str, wells: int, channels: list[str], 
     files = [name for name in index.unmatched if not name.startswith(".")]
     if not files:
         return None
-    listed = ", ".join(repr(name) for name in files[:shown]) + (f" and {len(files) - shown} more" if len(files) > shown else "")
-    return (f"{len(files)} file(s) in {folder} match neither images.filename_template {template!r} nor a configured "
-            f"channel and were not analysed: {listed}. Fix: rename them, or adjust the template or channels.")
+    listed = ", ".join(repr(name) for name in files[:shown]) + (
+        f" and {len(files) - shown} more" if len(files) > shown else ""
+    )
+    return (
+        f"{len(files)} file(s) in {folder} match neither images.filename_template {template!r} nor a configured "
+        f"channel and were not analysed: {listed}. Fix: rename them, or adjust the template or channels."
+    )
 
 
 # the micro sign (U+00B5) and the Greek mu (U+03BC) both occur in OME metadata
@@ -197,18 +216,22 @@ def _open_zarr(path: str):
     try:
         import zarr
     except ImportError:
-        raise InputError(path, "is an OME-Zarr plate, but the zarr package is not installed.",
-                         'pip install -e ".[zarr]"') from None
+        raise InputError(
+            path, "is an OME-Zarr plate, but the zarr package is not installed.", 'pip install -e ".[zarr]"'
+        ) from None
     try:
         return zarr.open_group(path, mode="r")
-    except Exception as error:   # zarr raises several kinds for a store it cannot read
-        raise InputError(path, f"cannot be opened as a Zarr store ({type(error).__name__}: {error}).",
-                         "check that the folder is a complete OME-Zarr plate.") from None
+    except Exception as error:  # zarr raises several kinds for a store it cannot read
+        raise InputError(
+            path,
+            f"cannot be opened as a Zarr store ({type(error).__name__}: {error}).",
+            "check that the folder is a complete OME-Zarr plate.",
+        ) from None
 
 
 def _ome(group) -> dict:
     attributes = dict(group.attrs)
-    return attributes.get("ome", attributes)       # OME-Zarr 0.5 nests under "ome"; 0.4 does not
+    return attributes.get("ome", attributes)  # OME-Zarr 0.5 nests under "ome"; 0.4 does not
 
 
 def _zarr_image(store: str, image_path: str):
@@ -218,8 +241,10 @@ def _zarr_image(store: str, image_path: str):
     axes = [a["name"] if isinstance(a, dict) else a for a in multiscale.get("axes", ["t", "c", "z", "y", "x"])]
     units = {a["name"]: a.get("unit") for a in multiscale.get("axes", []) if isinstance(a, dict)}
     dataset = multiscale["datasets"][0]
-    scale = next((t["scale"] for t in dataset.get("coordinateTransformations", []) if t.get("type") == "scale"),
-                 [1.0] * len(axes))
+    scale = next(
+        (t["scale"] for t in dataset.get("coordinateTransformations", []) if t.get("type") == "scale"),
+        [1.0] * len(axes),
+    )
     labels = [c.get("label", f"c{i}") for i, c in enumerate(_ome(group).get("omero", {}).get("channels", []))]
     return group[dataset["path"]], axes, labels, dict(zip(axes, scale)), units
 
@@ -257,19 +282,25 @@ def index_zarr_plate(folder: str, wells: int, channels: list[str]) -> ImageIndex
     return ImageIndex(table, True, tuple(sorted(unmatched)), "zarr")
 
 
-def _stream_zarr_site(index: ImageIndex, well: str, site: int, channels: list[str]) -> Iterator["SiteFrame"]:
+def _stream_zarr_site(index: ImageIndex, well: str, site: int, channels: list[str]) -> Iterator[SiteFrame]:
     files = index.table[(index.table["well"] == well) & (index.table["site"] == site)]
     found = set(files["channel"])
     for channel in channels:
         if channel not in found:
-            raise InputError(f"well {well}, site {site}", f"no image for channel {channel!r} in the OME-Zarr plate.",
-                             "check the channel names in config against the store's omero channel labels.")
+            raise InputError(
+                f"well {well}, site {site}",
+                f"no image for channel {channel!r} in the OME-Zarr plate.",
+                "check the channel names in config against the store's omero channel labels.",
+            )
     store, image_path = files["path"].iloc[0].split("::")
     array, axes, labels, _, _ = _zarr_image(store, image_path)
     shape = dict(zip(axes, array.shape))
     if shape.get("z", 1) > 1:
-        raise InputError(f"{store}::{image_path}", f"has {shape['z']} z planes.",
-                         "project the z stack (e.g. maximum projection) before analysis.")
+        raise InputError(
+            f"{store}::{image_path}",
+            f"has {shape['z']} z planes.",
+            "project the z stack (e.g. maximum projection) before analysis.",
+        )
     for frame in range(shape.get("t", 1)):
         planes, saturated = [], []
         for channel in channels:
@@ -279,7 +310,9 @@ def _stream_zarr_site(index: ImageIndex, well: str, site: int, channels: list[st
             try:
                 planes.append(_check_plane(plane, f"{store}::{image_path}", None))
             except InputError as error:
-                yield SiteFrame(frame, None, np.full(len(channels), np.nan), f"well {well}, site {site}, frame {frame}: {error}")
+                yield SiteFrame(
+                    frame, None, np.full(len(channels), np.nan), f"well {well}, site {site}, frame {frame}: {error}"
+                )
                 break
         else:
             yield SiteFrame(frame, np.stack(planes), np.array(saturated))
@@ -293,7 +326,7 @@ def read_ome_metadata(path: str) -> OmeMetadata | None:
     """
     import xml.etree.ElementTree as ElementTree
 
-    if "::" in path:                                     # an image of an OME-Zarr plate
+    if "::" in path:  # an image of an OME-Zarr plate
         store, image_path = path.split("::")
         _, axes, labels, scale, units = _zarr_image(store, image_path)
         pixel = scale.get("x") * ZARR_UNITS_TO_UM[units["x"]] if units.get("x") in ZARR_UNITS_TO_UM else None
@@ -306,8 +339,11 @@ def read_ome_metadata(path: str) -> OmeMetadata | None:
     try:
         root = ElementTree.fromstring(xml)
     except ElementTree.ParseError as error:
-        raise InputError(path, f"its OME-XML cannot be parsed ({error}).", "re-export the file, or set images.pixel_size_um "
-                         "and images.frame_interval_min in config.") from None
+        raise InputError(
+            path,
+            f"its OME-XML cannot be parsed ({error}).",
+            "re-export the file, or set images.pixel_size_um and images.frame_interval_min in config.",
+        ) from None
     pixels = next((e for e in root.iter() if e.tag.endswith("}Pixels") or e.tag == "Pixels"), None)
     if pixels is None:
         return None
@@ -316,9 +352,11 @@ def read_ome_metadata(path: str) -> OmeMetadata | None:
     interval = pixels.get("TimeIncrement")
     interval_unit = pixels.get("TimeIncrementUnit", "s")
     names = tuple(c.get("Name", "") for c in pixels if c.tag.endswith("Channel"))
-    return OmeMetadata(float(size) * LENGTH_TO_UM[size_unit] if size and size_unit in LENGTH_TO_UM else None,
-                       float(interval) * TIME_TO_MIN[interval_unit] if interval and interval_unit in TIME_TO_MIN else None,
-                       names)
+    return OmeMetadata(
+        float(size) * LENGTH_TO_UM[size_unit] if size and size_unit in LENGTH_TO_UM else None,
+        float(interval) * TIME_TO_MIN[interval_unit] if interval and interval_unit in TIME_TO_MIN else None,
+        names,
+    )
 
 
 def image_scale(config_images: dict, first_image: str | None) -> tuple[float, float, str]:
@@ -336,9 +374,11 @@ def image_scale(config_images: dict, first_image: str | None) -> tuple[float, fl
         interval = metadata.frame_interval_min if metadata else None
     missing = [name for name, value in (("pixel_size_um", pixel), ("frame_interval_min", interval)) if value is None]
     if missing:
-        raise InputError(f"config images ({first_image or 'no image found'})",
-                         f"{' and '.join(missing)} not set and not in the image's OME metadata.",
-                         f"set images.{' and images.'.join(missing)} in config/config.yaml.")
+        raise InputError(
+            f"config images ({first_image or 'no image found'})",
+            f"{' and '.join(missing)} not set and not in the image's OME metadata.",
+            f"set images.{' and images.'.join(missing)} in config/config.yaml.",
+        )
     return float(pixel), float(interval), f"OME metadata of {first_image}"
 
 
@@ -347,31 +387,43 @@ def saturated_fraction(plane: np.ndarray) -> float:
     if not np.issubdtype(plane.dtype, np.integer):
         return float("nan")
     top = np.iinfo(plane.dtype).max
-    if plane.max() < top:             # the usual case, and one cheap pass
+    if plane.max() < top:  # the usual case, and one cheap pass
         return 0.0
     return float(np.count_nonzero(plane == top) / plane.size)
 
 
 def _check_plane(plane: np.ndarray, path: str, shape: tuple[int, ...] | None) -> np.ndarray:
     if plane.ndim != 2:
-        raise InputError(path, f"expected one 2-D plane per page, found shape {plane.shape}.",
-                         "save one channel per file (and one page per frame for stacks).")
+        raise InputError(
+            path,
+            f"expected one 2-D plane per page, found shape {plane.shape}.",
+            "save one channel per file (and one page per frame for stacks).",
+        )
     if shape is not None and plane.shape != shape:
-        raise InputError(path, f"plane shape {plane.shape} differs from the other channels/frames {shape}.",
-                         "all images of a site must have the same size.")
+        raise InputError(
+            path,
+            f"plane shape {plane.shape} differs from the other channels/frames {shape}.",
+            "all images of a site must have the same size.",
+        )
     if not (np.issubdtype(plane.dtype, np.integer) or np.issubdtype(plane.dtype, np.floating)):
-        raise InputError(path, f"pixel type {plane.dtype} is not numeric.", "save grey-level images (uint8, uint16 or float).")
+        raise InputError(
+            path, f"pixel type {plane.dtype} is not numeric.", "save grey-level images (uint8, uint16 or float)."
+        )
     is_float = np.issubdtype(plane.dtype, np.floating)
     plane = plane.astype(np.float32, copy=False)
-    if is_float and not np.isfinite(plane).all():     # integer pixels are always finite
-        raise InputError(path, "image holds NaN or infinite pixels.",
-                         "re-export the images; plateloom expects finite grey levels.")
+    if is_float and not np.isfinite(plane).all():  # integer pixels are always finite
+        raise InputError(
+            path, "image holds NaN or infinite pixels.", "re-export the images; plateloom expects finite grey levels."
+        )
     return plane
 
 
 def _unreadable(path: str, error: Exception) -> InputError:
-    return InputError(path, f"cannot be read as TIFF ({type(error).__name__}: {error}).",
-                      "re-copy the file from the microscope; a truncated transfer is the usual cause.")
+    return InputError(
+        path,
+        f"cannot be read as TIFF ({type(error).__name__}: {error}).",
+        "re-copy the file from the microscope; a truncated transfer is the usual cause.",
+    )
 
 
 def _open_tiff(path: str) -> tifffile.TiffFile:
@@ -383,7 +435,9 @@ def _open_tiff(path: str) -> tifffile.TiffFile:
 
 def _page(tif: tifffile.TiffFile, path: str, page: int) -> np.ndarray:
     if page >= len(tif.pages):
-        raise InputError(path, f"has {len(tif.pages)} pages, frame {page} is missing.", "re-export the full time series.")
+        raise InputError(
+            path, f"has {len(tif.pages)} pages, frame {page} is missing.", "re-export the full time series."
+        )
     try:
         return tif.pages[page].asarray()
     except Exception as error:
@@ -413,7 +467,11 @@ def site_frame_counts(index: ImageIndex, well: str, site: int, channels: list[st
     for channel in channels:
         paths = files.loc[files["channel"] == channel, "path"].tolist()
         if not paths:
-            raise InputError(f"well {well}, site {site}", f"no image for channel {channel!r}.", "check the file names against images.filename_template.")
+            raise InputError(
+                f"well {well}, site {site}",
+                f"no image for channel {channel!r}.",
+                "check the file names against images.filename_template.",
+            )
         if index.stacks:
             counts[channel] = (_page_count(paths[0]), os.path.basename(paths[0]))
         else:
@@ -461,7 +519,11 @@ def stream_site(index: ImageIndex, well: str, site: int, channels: list[str]) ->
     shape: tuple[int, ...] | None = None
     with ExitStack() as stack:
         # a stack file is opened once per site, not once per frame
-        opened = {c: stack.enter_context(_open_tiff(by_channel[c]["path"].iloc[0])) for c in channels} if index.stacks else {}
+        opened = (
+            {c: stack.enter_context(_open_tiff(by_channel[c]["path"].iloc[0])) for c in channels}
+            if index.stacks
+            else {}
+        )
         paths = {c: dict(zip(t["frame"], t["path"])) for c, t in by_channel.items()}
         for frame in range(n_frames):
             planes, saturated, problem = [], [], ""
@@ -470,16 +532,21 @@ def stream_site(index: ImageIndex, well: str, site: int, channels: list[str]) ->
                     if index.stacks:
                         path = by_channel[channel]["path"].iloc[0]
                         if frame >= counts[channel][0]:
-                            raise InputError(path, f"has {counts[channel][0]} pages while another channel has {n_frames}; "
-                                             f"frame {frame} is missing.",
-                                             "re-copy or re-export the file; a truncated copy is the usual cause.")
+                            raise InputError(
+                                path,
+                                f"has {counts[channel][0]} pages while another channel has {n_frames}; "
+                                f"frame {frame} is missing.",
+                                "re-copy or re-export the file; a truncated copy is the usual cause.",
+                            )
                         plane = _page(opened[channel], path, frame)
                     else:
                         path = paths[channel].get(start + frame)
                         if path is None:
-                            raise InputError(f"well {well}, site {site}, channel {channel}",
-                                             f"frame {start + frame} is missing from the series.",
-                                             "re-export the missing frame; the other frames are analysed.")
+                            raise InputError(
+                                f"well {well}, site {site}, channel {channel}",
+                                f"frame {start + frame} is missing from the series.",
+                                "re-export the missing frame; the other frames are analysed.",
+                            )
                         with _open_tiff(path) as tif:
                             plane = _page(tif, path, 0)
                     saturated.append(saturated_fraction(plane))

@@ -21,7 +21,9 @@ def run_step(log_path: str | None, step: Callable[[], None], name: str) -> None:
     if log_path:
         os.makedirs(os.path.dirname(log_path) or ".", exist_ok=True)
         handlers.append(logging.FileHandler(log_path, mode="w", encoding="utf-8"))
-    logging.basicConfig(level=logging.INFO, format="%(asctime)s %(levelname)s %(message)s", handlers=handlers, force=True)
+    logging.basicConfig(
+        level=logging.INFO, format="%(asctime)s %(levelname)s %(message)s", handlers=handlers, force=True
+    )
     log = logging.getLogger("plateloom")
     log.info("start %s", name)
     try:

@@ -56,8 +56,11 @@ def write_parquet(frame: pd.DataFrame, path: str, settings: object, extra: dict 
     table = table.replace_schema_metadata(meta)
     # dictionary encoding only for text and categorical columns: measurements are almost all
     # distinct, and a dictionary of them makes files larger and slower to write and read
-    keys = [f.name for f in table.schema if pa.types.is_string(f.type) or pa.types.is_large_string(f.type)
-            or pa.types.is_dictionary(f.type)]
+    keys = [
+        f.name
+        for f in table.schema
+        if pa.types.is_string(f.type) or pa.types.is_large_string(f.type) or pa.types.is_dictionary(f.type)
+    ]
     pq.write_table(table, tmp, use_dictionary=keys)
     os.replace(tmp, path)
 
@@ -68,8 +71,13 @@ def write_profile_tiff(image, path: str, description: dict) -> None:
     import tifffile
 
     tmp = _temporary_path(path)
-    tifffile.imwrite(tmp, np.asarray(image, np.float32), photometric="minisblack",
-                     description=json.dumps(description, sort_keys=True), metadata=None)
+    tifffile.imwrite(
+        tmp,
+        np.asarray(image, np.float32),
+        photometric="minisblack",
+        description=json.dumps(description, sort_keys=True),
+        metadata=None,
+    )
     os.replace(tmp, path)
 
 

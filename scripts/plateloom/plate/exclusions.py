@@ -26,13 +26,19 @@ class ExclusionRules:
     z_prime_feature: str = "area_um2"
 
     @classmethod
-    def from_config(cls, section: dict) -> "ExclusionRules":
+    def from_config(cls, section: dict) -> ExclusionRules:
         return cls(**section)
 
 
 def empty_ledger() -> pd.DataFrame:
-    return pd.DataFrame({c: pd.Series(dtype="int64" if c in ("site", "frame") else "float64" if c in ("value", "threshold") else "object")
-                         for c in LEDGER_COLUMNS})
+    return pd.DataFrame(
+        {
+            c: pd.Series(
+                dtype="int64" if c in ("site", "frame") else "float64" if c in ("value", "threshold") else "object"
+            )
+            for c in LEDGER_COLUMNS
+        }
+    )
 
 
 def site_frame_exclusions(site_qc: pd.DataFrame, rules: ExclusionRules, plate: str) -> pd.DataFrame:
@@ -41,19 +47,43 @@ def site_frame_exclusions(site_qc: pd.DataFrame, rules: ExclusionRules, plate: s
     rows = []
     if "frame_problem" in site_qc.columns:
         bad = site_qc[site_qc["frame_problem"].fillna("") != ""]
-        rows += [("site_frame", plate, r.well, int(r.site), int(r.frame), "unusable_frame", float("nan"), float("nan"))
-                 for r in bad.itertuples()]
+        rows += [
+            ("site_frame", plate, r.well, int(r.site), int(r.frame), "unusable_frame", float("nan"), float("nan"))
+            for r in bad.itertuples()
+        ]
     if rules.min_focus_score is not None:
         bad = site_qc[site_qc["focus_score"] < rules.min_focus_score]
-        rows += [("site_frame", plate, r.well, int(r.site), int(r.frame), "min_focus_score", float(r.focus_score),
-                  rules.min_focus_score) for r in bad.itertuples()]
+        rows += [
+            (
+                "site_frame",
+                plate,
+                r.well,
+                int(r.site),
+                int(r.frame),
+                "min_focus_score",
+                float(r.focus_score),
+                rules.min_focus_score,
+            )
+            for r in bad.itertuples()
+        ]
     if rules.max_saturated_fraction is not None:
         columns = [c for c in site_qc.columns if c.startswith("saturated_fraction_")]
         if columns:
             worst = site_qc[columns].max(axis=1)
             bad = site_qc[worst > rules.max_saturated_fraction]
-            rows += [("site_frame", plate, r.well, int(r.site), int(r.frame), "max_saturated_fraction", float(w),
-                      rules.max_saturated_fraction) for r, w in zip(bad.itertuples(), worst[bad.index])]
+            rows += [
+                (
+                    "site_frame",
+                    plate,
+                    r.well,
+                    int(r.site),
+                    int(r.frame),
+                    "max_saturated_fraction",
+                    float(w),
+                    rules.max_saturated_fraction,
+                )
+                for r, w in zip(bad.itertuples(), worst[bad.index])
+            ]
     return pd.DataFrame(rows, columns=LEDGER_COLUMNS) if rows else empty_ledger()
 
 
@@ -82,8 +112,18 @@ def well_exclusions(profile: pd.DataFrame, rules: ExclusionRules) -> tuple[pd.Da
         for index in np.flatnonzero(low):
             value = float(out["cell_count"].iloc[index])
             reasons[index] = f"min_cells_per_well: {value:.1f} < {rules.min_cells_per_well:g}"
-            rows.append(("well", out["plate"].iloc[index], out["well"].iloc[index], -1, -1, "min_cells_per_well", value,
-                         float(rules.min_cells_per_well)))
+            rows.append(
+                (
+                    "well",
+                    out["plate"].iloc[index],
+                    out["well"].iloc[index],
+                    -1,
+                    -1,
+                    "min_cells_per_well",
+                    value,
+                    float(rules.min_cells_per_well),
+                )
+            )
     out["excluded_by"] = reasons
     ledger = pd.DataFrame(rows, columns=LEDGER_COLUMNS) if rows else empty_ledger()
     return out, ledger
@@ -97,5 +137,18 @@ def plate_exclusion(qc: pd.DataFrame, rules: ExclusionRules, plate: str) -> pd.D
     value = float(row["z_prime"].iloc[0]) if len(row) else float("nan")
     if np.isfinite(value) and value >= rules.min_plate_z_prime:
         return empty_ledger()
-    return pd.DataFrame([("plate", plate, "", -1, -1, f"min_plate_z_prime ({rules.z_prime_feature})", value,
-                          float(rules.min_plate_z_prime))], columns=LEDGER_COLUMNS)
+    return pd.DataFrame(
+        [
+            (
+                "plate",
+                plate,
+                "",
+                -1,
+                -1,
+                f"min_plate_z_prime ({rules.z_prime_feature})",
+                value,
+                float(rules.min_plate_z_prime),
+            )
+        ],
+        columns=LEDGER_COLUMNS,
+    )

@@ -59,7 +59,9 @@ def b_scores(grid: np.ndarray) -> np.ndarray:
     return residual / scale if scale > 0 else np.full(residual.shape, np.nan)
 
 
-def positional_correction(grid: np.ndarray, fit_grid: np.ndarray, min_wells_per_line: int = 3) -> tuple[np.ndarray, list[str]]:
+def positional_correction(
+    grid: np.ndarray, fit_grid: np.ndarray, min_wells_per_line: int = 3
+) -> tuple[np.ndarray, list[str]]:
     """Remove from ``grid`` the row and column effects that median polish finds in ``fit_grid``.
 
     ``fit_grid`` holds the values to fit (NaN elsewhere), normally each well minus the median
@@ -71,12 +73,17 @@ def positional_correction(grid: np.ndarray, fit_grid: np.ndarray, min_wells_per_
     polish = median_polish(fit_grid)
     notes = []
     row, column = polish.row.copy(), polish.column.copy()
-    for name, effects, support in (("row", row, np.isfinite(fit_grid).sum(axis=1)),
-                                   ("column", column, np.isfinite(fit_grid).sum(axis=0))):
+    for name, effects, support in (
+        ("row", row, np.isfinite(fit_grid).sum(axis=1)),
+        ("column", column, np.isfinite(fit_grid).sum(axis=0)),
+    ):
         thin = np.flatnonzero(support < min_wells_per_line)
         effects[thin] = 0.0
         if len(thin):
-            notes.append(f"{name}{'s' if len(thin) > 1 else ''} {', '.join(str(i + 1) for i in thin)}: fewer than {min_wells_per_line} wells, effect not estimated")
+            notes.append(
+                f"{name}{'s' if len(thin) > 1 else ''} {', '.join(str(i + 1) for i in thin)}: "
+                f"fewer than {min_wells_per_line} wells, effect not estimated"
+            )
     return grid - row[:, None] - column[None, :], notes
 
 
@@ -94,8 +101,13 @@ def edge_effect(profile: pd.DataFrame, feature: str, log_scale: bool) -> dict[st
     finite = np.isfinite(values)
     data, values = data[finite], values[finite]
     edge = data["is_edge"].to_numpy(bool)
-    result = {"feature": feature, "n_edge": int(edge.sum()), "n_inner": int((~edge).sum()), "edge_shift": np.nan,
-              "p_value": np.nan}
+    result = {
+        "feature": feature,
+        "n_edge": int(edge.sum()),
+        "n_inner": int((~edge).sum()),
+        "edge_shift": np.nan,
+        "p_value": np.nan,
+    }
     codes = pd.factorize(data["treatment"])[0]
     design = np.column_stack([np.eye(codes.max() + 1)[codes], edge.astype(float)]) if len(codes) else np.empty((0, 1))
     residual_df = len(values) - np.linalg.matrix_rank(design) if len(values) else 0

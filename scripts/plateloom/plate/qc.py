@@ -69,14 +69,23 @@ def plate_qc(profile: pd.DataFrame, features: list[str]) -> pd.DataFrame:
     for feature in features:
         neg, pos = negative[feature].dropna().to_numpy(float), positive[feature].dropna().to_numpy(float)
         value = z_prime(pos, neg)
-        rows.append({"feature": feature, "n_negative": len(neg), "n_positive": len(pos),
-                     "negative_median": float(np.median(neg)) if len(neg) else np.nan,
-                     "positive_median": float(np.median(pos)) if len(pos) else np.nan,
-                     "negative_cv": float(neg.std(ddof=1) / neg.mean()) if len(neg) > 1 and neg.mean() != 0 else np.nan,
-                     "positive_cv": float(pos.std(ddof=1) / pos.mean()) if len(pos) > 1 and pos.mean() != 0 else np.nan,
-                     "z_prime": value, "robust_z_prime": robust_z_prime(pos, neg), "ssmd": ssmd(pos, neg),
-                     "robust_ssmd": robust_ssmd(pos, neg), "signal_window": signal_window(pos, neg),
-                     "verdict": z_prime_verdict(value)})
+        rows.append(
+            {
+                "feature": feature,
+                "n_negative": len(neg),
+                "n_positive": len(pos),
+                "negative_median": float(np.median(neg)) if len(neg) else np.nan,
+                "positive_median": float(np.median(pos)) if len(pos) else np.nan,
+                "negative_cv": float(neg.std(ddof=1) / neg.mean()) if len(neg) > 1 and neg.mean() != 0 else np.nan,
+                "positive_cv": float(pos.std(ddof=1) / pos.mean()) if len(pos) > 1 and pos.mean() != 0 else np.nan,
+                "z_prime": value,
+                "robust_z_prime": robust_z_prime(pos, neg),
+                "ssmd": ssmd(pos, neg),
+                "robust_ssmd": robust_ssmd(pos, neg),
+                "signal_window": signal_window(pos, neg),
+                "verdict": z_prime_verdict(value),
+            }
+        )
     return pd.DataFrame(rows)
 
 

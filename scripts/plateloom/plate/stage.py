@@ -53,11 +53,16 @@ def summarise_site_qc(site_qc: pd.DataFrame) -> dict[str, float]:
     """Plate-level image QC: site-frames, empty fields, focus score spread, worst saturation."""
     saturation = [c for c in site_qc.columns if c.startswith("saturated_fraction_")]
     unusable = int((site_qc["frame_problem"].fillna("") != "").sum()) if "frame_problem" in site_qc.columns else 0
-    return {"site_frames": int(len(site_qc)), "empty_site_frames": int((site_qc["n_objects"] == 0).sum()) - unusable,
-            "unusable_site_frames": unusable,
-            "focus_score_median": float(site_qc["focus_score"].median()),
-            "focus_score_min": float(site_qc["focus_score"].min()),
-            "saturated_fraction_max": float(np.nanmax(site_qc[saturation].to_numpy())) if saturation and site_qc[saturation].notna().any().any() else float("nan")}
+    return {
+        "site_frames": int(len(site_qc)),
+        "empty_site_frames": int((site_qc["n_objects"] == 0).sum()) - unusable,
+        "unusable_site_frames": unusable,
+        "focus_score_median": float(site_qc["focus_score"].median()),
+        "focus_score_min": float(site_qc["focus_score"].min()),
+        "saturated_fraction_max": float(np.nanmax(site_qc[saturation].to_numpy()))
+        if saturation and site_qc[saturation].notna().any().any()
+        else float("nan"),
+    }
 
 
 def unusable_frame_notes(site_qc: pd.DataFrame, shown: int = 5) -> list[str]:
@@ -69,8 +74,10 @@ def unusable_frame_notes(site_qc: pd.DataFrame, shown: int = 5) -> list[str]:
     if not problems:
         return []
     more = f" ({len(problems) - shown} more in the site QC table)" if len(problems) > shown else ""
-    return [f"{len(problems)} site-frame(s) could not be used and are in the exclusion ledger as unusable_frame; "
-            f"the rest of their wells was analysed{more}."] + problems[:shown]
+    return [
+        f"{len(problems)} site-frame(s) could not be used and are in the exclusion ledger as unusable_frame; "
+        f"the rest of their wells was analysed{more}."
+    ] + problems[:shown]
 
 
 def _grid_values(profile: pd.DataFrame, values: np.ndarray, fmt) -> np.ndarray:
@@ -89,9 +96,18 @@ def percent_of_control(values: np.ndarray, negative: np.ndarray, positive: np.nd
     return 100.0 * (values - np.median(negative)) / span if span != 0 else np.full(np.shape(values), np.nan)
 
 
-def build_plate_tables(cells: pd.DataFrame, tracks: pd.DataFrame, site_qc: pd.DataFrame, layout: pd.DataFrame,
-                       plate: str, batch: str, wells: int, settings: PlateSettings, rules: ExclusionRules,
-                       collective: pd.DataFrame | None = None) -> PlateTables:
+def build_plate_tables(
+    cells: pd.DataFrame,
+    tracks: pd.DataFrame,
+    site_qc: pd.DataFrame,
+    layout: pd.DataFrame,
+    plate: str,
+    batch: str,
+    wells: int,
+    settings: PlateSettings,
+    rules: ExclusionRules,
+    collective: pd.DataFrame | None = None,
+) -> PlateTables:
     """Everything the plate stage writes, from the per-well tables of one plate held in memory.
 
     ``collective`` (one row per well: plate, well and collective readouts), if given, adds its
@@ -100,28 +116,61 @@ def build_plate_tables(cells: pd.DataFrame, tracks: pd.DataFrame, site_qc: pd.Da
     """
     excluded = site_frame_exclusions(site_qc, rules, plate)
     summaries = observation_summaries(drop_excluded_site_frames(cells, excluded), settings.well_summary)
-    return _plate_tables(observation_counts(cells), summaries, excluded, tracks, site_qc, layout, plate, batch, wells,
-                         settings, rules, collective)
+    return _plate_tables(
+        observation_counts(cells),
+        summaries,
+        excluded,
+        tracks,
+        site_qc,
+        layout,
+        plate,
+        batch,
+        wells,
+        settings,
+        rules,
+        collective,
+    )
 
 
-def build_plate_tables_from_files(cell_folders: list[str], tracks: pd.DataFrame, site_qc: pd.DataFrame,
-                                  layout: pd.DataFrame, plate: str, batch: str, wells: int, settings: PlateSettings,
-                                  rules: ExclusionRules, collective: pd.DataFrame | None = None,
-                                  threads: int = 1) -> PlateTables:
+def build_plate_tables_from_files(
+    cell_folders: list[str],
+    tracks: pd.DataFrame,
+    site_qc: pd.DataFrame,
+    layout: pd.DataFrame,
+    plate: str,
+    batch: str,
+    wells: int,
+    settings: PlateSettings,
+    rules: ExclusionRules,
+    collective: pd.DataFrame | None = None,
+    threads: int = 1,
+) -> PlateTables:
     """``build_plate_tables`` reading the cells tables well folder by well folder: the observation
     features are summarised per well as each folder is read (``summarise_observation_files``) and
     only the observation counts per site and frame are held for the whole plate. Same tables."""
     excluded = site_frame_exclusions(site_qc, rules, plate)
-    summaries, counts = summarise_observation_files(cell_folders, excluded_site_frames(excluded), settings.well_summary,
-                                                    threads)
-    return _plate_tables(counts, summaries, excluded, tracks, site_qc, layout, plate, batch, wells, settings, rules,
-                         collective)
+    summaries, counts = summarise_observation_files(
+        cell_folders, excluded_site_frames(excluded), settings.well_summary, threads
+    )
+    return _plate_tables(
+        counts, summaries, excluded, tracks, site_qc, layout, plate, batch, wells, settings, rules, collective
+    )
 
 
-def _plate_tables(counts: pd.DataFrame, summaries: pd.DataFrame, site_frame_ledger: pd.DataFrame,
-                  tracks: pd.DataFrame, site_qc: pd.DataFrame, layout: pd.DataFrame, plate: str, batch: str,
-                  wells: int, settings: PlateSettings, rules: ExclusionRules,
-                  collective: pd.DataFrame | None) -> PlateTables:
+def _plate_tables(
+    counts: pd.DataFrame,
+    summaries: pd.DataFrame,
+    site_frame_ledger: pd.DataFrame,
+    tracks: pd.DataFrame,
+    site_qc: pd.DataFrame,
+    layout: pd.DataFrame,
+    plate: str,
+    batch: str,
+    wells: int,
+    settings: PlateSettings,
+    rules: ExclusionRules,
+    collective: pd.DataFrame | None,
+) -> PlateTables:
     """The plate tables from the observation counts (all observations), the per-well feature
     summaries of the observations kept, and the site-frame exclusions."""
     fmt = plate_format(wells)
@@ -136,8 +185,9 @@ def _plate_tables(counts: pd.DataFrame, summaries: pd.DataFrame, site_frame_ledg
     measured = counts.groupby("well", observed=True)["observations"].sum()
     used = kept_counts.groupby("well", observed=True)["whole"].sum()
     measured.index, used.index = measured.index.astype(str), used.index.astype(str)
-    profile["fraction_observations_used"] = (used.reindex(profile["well"]).fillna(0).to_numpy()
-                                             / measured.reindex(profile["well"]).to_numpy(float))
+    profile["fraction_observations_used"] = used.reindex(profile["well"]).fillna(0).to_numpy() / measured.reindex(
+        profile["well"]
+    ).to_numpy(float)
     profile, well_ledger = well_exclusions(profile, rules)
     ledger.append(well_ledger)
     features = well_features(profile)
@@ -157,7 +207,9 @@ def _plate_tables(counts: pd.DataFrame, summaries: pd.DataFrame, site_frame_ledg
         if settings.positional_correction == "median_polish":
             scaled = np.log(values) if log_scale else values
             grid = _grid_values(profile, np.where(kept, scaled, np.nan), fmt)
-            centred = pd.Series(np.where(kept, scaled, np.nan)).groupby(profile["treatment"].to_numpy()).transform("median")
+            centred = (
+                pd.Series(np.where(kept, scaled, np.nan)).groupby(profile["treatment"].to_numpy()).transform("median")
+            )
             fit_grid = _grid_values(profile, np.where(kept, scaled - centred.to_numpy(), np.nan), fmt)
             corrected, notes = positional_correction(grid, fit_grid)
             position_notes.update(notes)
@@ -177,8 +229,9 @@ def _plate_tables(counts: pd.DataFrame, summaries: pd.DataFrame, site_frame_ledg
         if method == "robust_z":
             profile[f"{feature}_robust_z"] = robust_z(values, negative[feature].to_numpy(float))
         elif method == "percent_of_control":
-            profile[f"{feature}_percent_of_control"] = percent_of_control(values, negative[feature].dropna().to_numpy(float),
-                                                                          positive[feature].dropna().to_numpy(float))
+            profile[f"{feature}_percent_of_control"] = percent_of_control(
+                values, negative[feature].dropna().to_numpy(float), positive[feature].dropna().to_numpy(float)
+            )
     counts = profile.loc[kept, "cell_count"].to_numpy(float)
     if len(counts) >= 5 and mad(counts) > 0:
         z = (profile["cell_count"].to_numpy(float) - np.median(counts)) / (MAD_TO_SD * mad(counts))
@@ -190,6 +243,9 @@ def _plate_tables(counts: pd.DataFrame, summaries: pd.DataFrame, site_frame_ledg
     frames = [table for table in ledger if not table.empty]
     ledger_table = pd.concat(frames, ignore_index=True) if frames else ledger[0]
     plate_rows = ledger_table[ledger_table["level"] == "plate"]
-    profile["plate_excluded_by"] = (f"{plate_rows['rule'].iloc[0]}: {plate_rows['value'].iloc[0]:.3g} < "
-                                    f"{plate_rows['threshold'].iloc[0]:g}") if len(plate_rows) else ""
+    profile["plate_excluded_by"] = (
+        (f"{plate_rows['rule'].iloc[0]}: {plate_rows['value'].iloc[0]:.3g} < {plate_rows['threshold'].iloc[0]:g}")
+        if len(plate_rows)
+        else ""
+    )
     return PlateTables(profile, qc, ledger_table, pd.DataFrame(edge_rows), warnings, summarise_site_qc(site_qc))

@@ -19,8 +19,20 @@ from plateloom.well.track_stats import growth_rate_per_h
 
 TRACK_FEATURES = ("speed_um_per_min", "straightness", "walk_speed_um_per_min", "persistence_time_min")
 REPORTER_TRACK_PREFIXES = ("track_mean_", "track_cv_", "period_min_", "peaks_per_h_", "max_rate_per_min_")
-NON_FEATURE_COLUMNS = ("plate", "well", "site", "frame", "time_min", "object", "track", "parent_track", "touches_border",
-                       "centroid_x_um", "centroid_y_um", "chunk")
+NON_FEATURE_COLUMNS = (
+    "plate",
+    "well",
+    "site",
+    "frame",
+    "time_min",
+    "object",
+    "track",
+    "parent_track",
+    "touches_border",
+    "centroid_x_um",
+    "centroid_y_um",
+    "chunk",
+)
 
 
 def observation_features(columns: list[str]) -> list[str]:
@@ -44,8 +56,9 @@ def well_growth_rates(counts: pd.DataFrame) -> pd.Series:
     counts = counts[times_known]
     codes, uniques = pd.factorize(counts["well"], sort=True)
     time_codes, times = pd.factorize(counts["time_min"].to_numpy(float), sort=True)
-    totals = np.bincount(codes * len(times) + time_codes, counts["observations"].to_numpy(float),
-                         minlength=len(uniques) * len(times)).reshape(len(uniques), -1)
+    totals = np.bincount(
+        codes * len(times) + time_codes, counts["observations"].to_numpy(float), minlength=len(uniques) * len(times)
+    ).reshape(len(uniques), -1)
     rates = {str(name): growth_rate_per_h(times, totals[i]) for i, name in enumerate(np.asarray(uniques, dtype=object))}
     return pd.Series(rates, name="growth_rate_per_h", dtype=float)
 
@@ -107,7 +120,7 @@ def _block_summaries(block: np.ndarray, use_log: np.ndarray) -> np.ndarray:
     # count the lower middle value is the largest of the lower part
     block.partition(high, axis=1)
     summary = block[:, high].copy() if n % 2 else (block[:, :high].max(axis=1) + block[:, high]) / 2
-    has_nan = np.isnan(block[:, high:]).any(axis=1)      # NaN sorts last: any NaN lies at or above ``high``
+    has_nan = np.isnan(block[:, high:]).any(axis=1)  # NaN sorts last: any NaN lies at or above ``high``
     with np.errstate(all="ignore"):
         for j in np.flatnonzero(has_nan | use_log):
             finite = block[j][~np.isnan(block[j])]
@@ -123,8 +136,9 @@ def _check_statistic(statistic: str) -> None:
         raise ValueError(f"unknown well summary {statistic!r}; use median or mean_log")
 
 
-def _column_summaries(cells: pd.DataFrame, keep: np.ndarray, codes: np.ndarray, names: list[str],
-                      features: list[str], statistic: str) -> pd.DataFrame:
+def _column_summaries(
+    cells: pd.DataFrame, keep: np.ndarray, codes: np.ndarray, names: list[str], features: list[str], statistic: str
+) -> pd.DataFrame:
     """Per-well summary of every feature over the kept rows, well by well on contiguous blocks of rows.
 
     "median" is the median; "mean_log" is exp(mean(log)) for strictly positive features and the
@@ -143,8 +157,9 @@ def _column_summaries(cells: pd.DataFrame, keep: np.ndarray, codes: np.ndarray, 
         if not kept.any():
             return np.full(len(features), np.nan)
         # one row per feature, so each median partitions contiguous memory
-        return _block_summaries(np.stack([c[rows][kept] for c in columns]) if features
-                                else np.empty((0, int(kept.sum()))), use_log)
+        return _block_summaries(
+            np.stack([c[rows][kept] for c in columns]) if features else np.empty((0, int(kept.sum()))), use_log
+        )
 
     result = np.array([summarise(well) for well in range(len(names))]).reshape(len(names), len(features))
     return pd.DataFrame(result, columns=features, index=pd.Index(names, name="well"))
@@ -170,7 +185,7 @@ KEY_COLUMNS_FOR_PROFILES = ("site", "frame", "time_min", "touches_border")
 
 def _site_frame_counts(key: np.ndarray, time_min: np.ndarray, whole: np.ndarray, where: str) -> dict[str, np.ndarray]:
     """Observations (and whole ones) per site and frame (``_site_frame_key``) of one well, sorted by site and frame."""
-    if len(key) and np.all(key[1:] >= key[:-1]):     # rows written site by site, frame by frame: no sort
+    if len(key) and np.all(key[1:] >= key[:-1]):  # rows written site by site, frame by frame: no sort
         first = np.flatnonzero(np.concatenate([[True], key[1:] != key[:-1]]))
         unique = key[first]
         inverse = np.cumsum(np.concatenate([[False], key[1:] != key[:-1]]))
@@ -178,26 +193,39 @@ def _site_frame_counts(key: np.ndarray, time_min: np.ndarray, whole: np.ndarray,
         unique, first, inverse = np.unique(key, return_index=True, return_inverse=True)
     times = time_min[first].astype(np.float64)
     if not np.array_equal(time_min.astype(np.float64), times[inverse], equal_nan=True):
-        raise InputError(where, "a frame has observations with different time_min values.",
-                         "re-run the per-well job of this well: every observation of a frame has the frame's time.")
-    return {"site": unique >> 32, "frame": unique & (2**32 - 1), "time_min": times,
-            "observations": np.bincount(inverse, minlength=len(unique)),
-            "whole": np.bincount(inverse, whole, minlength=len(unique)).astype(np.int64)}
+        raise InputError(
+            where,
+            "a frame has observations with different time_min values.",
+            "re-run the per-well job of this well: every observation of a frame has the frame's time.",
+        )
+    return {
+        "site": unique >> 32,
+        "frame": unique & (2**32 - 1),
+        "time_min": times,
+        "observations": np.bincount(inverse, minlength=len(unique)),
+        "whole": np.bincount(inverse, whole, minlength=len(unique)).astype(np.int64),
+    }
 
 
-def _summarise_well_folder(paths: list[str], features: list[str], excluded: dict[str, np.ndarray],
-                           with_log: bool) -> dict[str, object]:
+def _summarise_well_folder(
+    paths: list[str], features: list[str], excluded: dict[str, np.ndarray], with_log: bool
+) -> dict[str, object]:
     """Read the files of one well folder and summarise every feature per well over its kept rows
     (not touching the border, site-frame not in ``excluded``: well -> site * 2**32 + frame keys);
     count its observations per site and frame."""
-    tables = [pq.ParquetFile(path, read_dictionary=["well"]).read(columns=features + list(KEY_COLUMNS_FOR_PROFILES)
-                                                                   + ["well"], use_threads=False) for path in paths]
+    tables = [
+        pq.ParquetFile(path, read_dictionary=["well"]).read(
+            columns=features + list(KEY_COLUMNS_FOR_PROFILES) + ["well"], use_threads=False
+        )
+        for path in paths
+    ]
     codes_by_name: dict[str, int] = {}
     code_parts = []
     for table in tables:
         well = table.column("well").combine_chunks()
-        lookup = np.array([codes_by_name.setdefault(str(w), len(codes_by_name)) for w in well.dictionary.to_pylist()],
-                          np.int64)
+        lookup = np.array(
+            [codes_by_name.setdefault(str(w), len(codes_by_name)) for w in well.dictionary.to_pylist()], np.int64
+        )
         code_parts.append(lookup[well.indices.to_numpy()] if len(lookup) else np.zeros(0, np.int64))
     names = sorted(codes_by_name)
     sorted_code = np.empty(len(names), np.int64)
@@ -213,11 +241,14 @@ def _summarise_well_folder(paths: list[str], features: list[str], excluded: dict
     counts = []
     for code, name in enumerate(names):
         rows = codes == code
-        counts.append(_site_frame_counts(site_frame[rows], keys["time_min"][rows], whole[rows],
-                                         f"well {name} ({os.path.dirname(paths[0])})"))
+        counts.append(
+            _site_frame_counts(
+                site_frame[rows], keys["time_min"][rows], whole[rows], f"well {name} ({os.path.dirname(paths[0])})"
+            )
+        )
         if name in excluded:
             rows &= ~np.isin(site_frame, excluded[name])
-        if with_log:   # which features are strictly positive is judged, as for a whole table, on the rows not excluded
+        if with_log:  # which features are strictly positive is judged, as for a whole table, on the rows not excluded
             with np.errstate(all="ignore"):
                 lowest[code] = [np.where(np.isfinite(c[rows]), c[rows], np.inf).min(initial=np.inf) for c in columns]
         kept = rows & whole
@@ -234,8 +265,9 @@ def _summarise_well_folder(paths: list[str], features: list[str], excluded: dict
     return {"names": names, "counts": counts, "median": median, "mean_log": mean_log, "lowest": lowest}
 
 
-def summarise_observation_files(folders: list[str], excluded_site_frames: pd.DataFrame, statistic: str = "median",
-                                threads: int = 1) -> tuple[pd.DataFrame, pd.DataFrame]:
+def summarise_observation_files(
+    folders: list[str], excluded_site_frames: pd.DataFrame, statistic: str = "median", threads: int = 1
+) -> tuple[pd.DataFrame, pd.DataFrame]:
     """Stream the per-well cells files of a plate once, a well folder per task on ``threads`` threads.
 
     Returns (summaries, counts). summaries: one row per well (index ``well``), the summary of
@@ -253,19 +285,29 @@ def summarise_observation_files(folders: list[str], excluded_site_frames: pd.Dat
     schema = pq.read_schema(paths[0])
     missing = [c for c in ("well",) + KEY_COLUMNS_FOR_PROFILES if c not in schema.names]
     if missing:
-        raise InputError(paths[0], f"the cells table has no column {', '.join(missing)}.",
-                         "re-run the per-well jobs of this plate (delete its results/cells folder, then snakemake).")
+        raise InputError(
+            paths[0],
+            f"the cells table has no column {', '.join(missing)}.",
+            "re-run the per-well jobs of this plate (delete its results/cells folder, then snakemake).",
+        )
     features = observation_features([n for n in schema.names if n not in NOT_READ_FOR_PROFILES])
     excluded: dict[str, np.ndarray] = {}
     for well, rows in excluded_site_frames.groupby(excluded_site_frames["well"].astype(str)):
         excluded[well] = _site_frame_key(rows["site"], rows["frame"])
     with ThreadPoolExecutor(max(1, threads)) as pool:
-        parts = list(pool.map(lambda group: _summarise_well_folder(group, features, excluded, statistic == "mean_log"),
-                              [groups[name] for name in sorted(groups)]))
+        parts = list(
+            pool.map(
+                lambda group: _summarise_well_folder(group, features, excluded, statistic == "mean_log"),
+                [groups[name] for name in sorted(groups)],
+            )
+        )
     names = [name for part in parts for name in part["names"]]
     if len(set(names)) != len(names):
-        raise InputError(", ".join(folders), "a well's observations are split over several well folders.",
-                         "keep one folder per well (well=<name>): re-run the per-well jobs of this plate.")
+        raise InputError(
+            ", ".join(folders),
+            "a well's observations are split over several well folders.",
+            "keep one folder per well (well=<name>): re-run the per-well jobs of this plate.",
+        )
     shape = (len(names), len(features))
     summary = np.concatenate([part["median"] for part in parts]).reshape(shape)
     if statistic == "mean_log":
@@ -273,14 +315,26 @@ def summarise_observation_files(folders: list[str], excluded_site_frames: pd.Dat
         summary = np.where(lowest > 0, np.concatenate([part["mean_log"] for part in parts]).reshape(shape), summary)
     summaries = pd.DataFrame(summary, columns=features, index=pd.Index(names, name="well"))
     per_well = [(name, count) for part in parts for name, count in zip(part["names"], part["counts"])]
-    counts = pd.DataFrame({c: np.concatenate([count[c] for _, count in per_well]) if per_well else np.zeros(0)
-                           for c in COUNT_COLUMNS_OF_OBSERVATIONS[1:]})
+    counts = pd.DataFrame(
+        {
+            c: np.concatenate([count[c] for _, count in per_well]) if per_well else np.zeros(0)
+            for c in COUNT_COLUMNS_OF_OBSERVATIONS[1:]
+        }
+    )
     counts.insert(0, "well", np.repeat([name for name, _ in per_well], [len(count["site"]) for _, count in per_well]))
     return summaries, counts.astype({"site": np.int64, "frame": np.int64, "observations": np.int64, "whole": np.int64})
 
 
-def summarise_wells(counts: pd.DataFrame, summaries: pd.DataFrame, tracks: pd.DataFrame, layout: pd.DataFrame,
-                    plate: str, batch: str, wells: int, statistic: str = "median") -> pd.DataFrame:
+def summarise_wells(
+    counts: pd.DataFrame,
+    summaries: pd.DataFrame,
+    tracks: pd.DataFrame,
+    layout: pd.DataFrame,
+    plate: str,
+    batch: str,
+    wells: int,
+    statistic: str = "median",
+) -> pd.DataFrame:
     """One row per analysed well: keys, layout, counts and the summary of every feature.
 
     ``counts`` is the ``observation_counts`` of the observations used and ``summaries`` their
@@ -299,26 +353,44 @@ def summarise_wells(counts: pd.DataFrame, summaries: pd.DataFrame, tracks: pd.Da
     site, frame = counts["site"].to_numpy(np.int64), counts["frame"].to_numpy(np.int64)
     observations = counts["observations"].to_numpy(np.int64)
     n_site, n_frame = int(site.max(initial=0)) + 1, int(frame.max(initial=0)) + 1
-    per_site_frame = np.bincount((codes.astype(np.int64) * n_site + site) * n_frame + frame, observations,
-                                 minlength=n_wells * n_site * n_frame).reshape(n_wells, n_site, n_frame)
+    per_site_frame = np.bincount(
+        (codes.astype(np.int64) * n_site + site) * n_frame + frame, observations, minlength=n_wells * n_site * n_frame
+    ).reshape(n_wells, n_site, n_frame)
     present = per_site_frame > 0
-    well_counts = pd.DataFrame({
-        "cell_count": per_site_frame.sum(axis=(1, 2)) / np.maximum(present.sum(axis=(1, 2)), 1),
-        "n_observations": np.bincount(codes, observations, minlength=n_wells).astype(np.int64),
-        "n_sites": present.any(axis=2).sum(axis=1),
-        "n_frames": present.any(axis=1).sum(axis=1),
-    }, index=pd.Index(names, name="well"))
+    well_counts = pd.DataFrame(
+        {
+            "cell_count": per_site_frame.sum(axis=(1, 2)) / np.maximum(present.sum(axis=(1, 2)), 1),
+            "n_observations": np.bincount(codes, observations, minlength=n_wells).astype(np.int64),
+            "n_sites": present.any(axis=2).sum(axis=1),
+            "n_frames": present.any(axis=1).sum(axis=1),
+        },
+        index=pd.Index(names, name="well"),
+    )
     usable = tracks[tracks["speed_um_per_min"].notna() & ~tracks["touches_border"]]
     track_codes, track_wells = pd.factorize(usable["well"], sort=True)
-    motion = _column_summaries(usable, np.ones(len(usable), bool), track_codes,
-                               [str(w) for w in np.asarray(track_wells, dtype=object)],
-                               track_feature_columns(list(tracks.columns)), statistic)
+    motion = _column_summaries(
+        usable,
+        np.ones(len(usable), bool),
+        track_codes,
+        [str(w) for w in np.asarray(track_wells, dtype=object)],
+        track_feature_columns(list(tracks.columns)),
+        statistic,
+    )
     growth = well_growth_rates(counts)
     n_tracks = usable.groupby("well", observed=True).size().rename("n_tracks")
     n_tracks.index = n_tracks.index.astype(str)
     analysed = layout[layout["role"] != "empty"].set_index("well")
-    profile = analysed.join([well_counts[["cell_count"]], growth, well_counts[["n_observations", "n_sites", "n_frames"]],
-                             n_tracks, summaries, motion], how="left")
+    profile = analysed.join(
+        [
+            well_counts[["cell_count"]],
+            growth,
+            well_counts[["n_observations", "n_sites", "n_frames"]],
+            n_tracks,
+            summaries,
+            motion,
+        ],
+        how="left",
+    )
     profile["cell_count"] = profile["cell_count"].fillna(0.0)
     for column in ("n_observations", "n_tracks"):
         profile[column] = profile[column].fillna(0).astype(np.int64)
@@ -334,8 +406,27 @@ def summarise_wells(counts: pd.DataFrame, summaries: pd.DataFrame, tracks: pd.Da
 
 def well_features(profile: pd.DataFrame) -> list[str]:
     """The feature columns of a well-profile table (cell_count, medians, motility)."""
-    fixed = {"plate", "batch", "well", "row", "column", "is_edge", "role", "condition", "dose", "dose_unit",
-             "treatment", "n_observations", "n_sites", "n_frames", "n_tracks", "excluded_by", "plate_excluded_by",
-             "cell_count_outlier", "fraction_observations_used", *COUNT_COLUMNS}
+    fixed = {
+        "plate",
+        "batch",
+        "well",
+        "row",
+        "column",
+        "is_edge",
+        "role",
+        "condition",
+        "dose",
+        "dose_unit",
+        "treatment",
+        "n_observations",
+        "n_sites",
+        "n_frames",
+        "n_tracks",
+        "excluded_by",
+        "plate_excluded_by",
+        "cell_count_outlier",
+        "fraction_observations_used",
+        *COUNT_COLUMNS,
+    }
     derived = ("_robust_z", "_percent_of_control", "_b_score", "_uncorrected")
     return [c for c in profile.columns if c not in fixed and not c.endswith(derived)]

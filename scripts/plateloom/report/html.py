@@ -65,7 +65,9 @@ def page(title: str, sections: list[tuple[str, str]], provenance: dict) -> str:
         style = handle.read()
     body = "".join(f"<h2>{escape(heading)}</h2>\n{content}\n" for heading, content in sections)
     meta = escape(json.dumps(provenance, sort_keys=True))
-    return (f"<!DOCTYPE html>\n<html lang=\"en\"><head><meta charset=\"utf-8\"><title>{escape(title)}</title>"
-            f"<style>{style}</style></head><body>\n<h1>{escape(title)}</h1>\n"
-            f"<p class=\"caution\">{escape(CAUTIONS)}</p>\n{body}"
-            f"<h2>Provenance</h2><p class=\"meta\">{meta}</p>\n</body></html>\n")
+    return (
+        f'<!DOCTYPE html>\n<html lang="en"><head><meta charset="utf-8"><title>{escape(title)}</title>'
+        f"<style>{style}</style></head><body>\n<h1>{escape(title)}</h1>\n"
+        f'<p class="caution">{escape(CAUTIONS)}</p>\n{body}'
+        f'<h2>Provenance</h2><p class="meta">{meta}</p>\n</body></html>\n'
+    )

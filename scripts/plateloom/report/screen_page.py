@@ -57,12 +57,17 @@ def dose_response_plot(fit: pd.Series, points: pd.DataFrame) -> plt.Figure:
     lowest = treated["dose"].min()
     control_x = lowest / 10
     controls = points[points["dose"] == 0]
-    axis.scatter(np.full(len(controls), control_x), controls["response"], s=8, color="#8a9aa8", label="negative controls")
+    axis.scatter(
+        np.full(len(controls), control_x), controls["response"], s=8, color="#8a9aa8", label="negative controls"
+    )
     axis.scatter(treated["dose"], treated["response"], s=10, color="#33546e", label="wells")
     if np.isfinite(fit.get("ec50", np.nan)):
         grid = np.logspace(np.log10(lowest) - 0.5, np.log10(treated["dose"].max()) + 0.5, 200)
-        axis.plot(grid, hill_curve(grid, fit["bottom"], fit["top"], fit["log10_ec50"], fit["hill"]),
-                  color="#b8322a" if fit["identifiable"] else "#c9a227")
+        axis.plot(
+            grid,
+            hill_curve(grid, fit["bottom"], fit["top"], fit["log10_ec50"], fit["hill"]),
+            color="#b8322a" if fit["identifiable"] else "#c9a227",
+        )
         if fit["identifiable"]:
             axis.axvspan(fit["ec50_ci_low"], fit["ec50_ci_high"], color="#b8322a", alpha=0.12, label="EC50 CI")
     axis.set_xscale("log")
@@ -97,12 +102,17 @@ def _method_text(settings: dict, provenance: dict) -> str:
     versions = ", ".join(f"{k} {v}" for k, v in sorted(provenance.get("packages", {}).items()))
     correction = {
         "none": "no batch correction",
-        "control_location": "each batch shifted so that its negative-control median equals the pooled negative-control median",
+        "control_location": (
+            "each batch shifted so that its negative-control median equals the pooled negative-control median"
+        ),
         "control_location_scale": "each batch shifted and scaled to the pooled negative-control median and MAD",
         "combat": "empirical-Bayes ComBat (Johnson, Li & Rabinovic 2007) with the treatments as protected covariates",
     }[settings["batch_correction"]]
-    fitter = ("statsmodels MixedLM" if settings["fitter"] == "statsmodels"
-              else "plateloom's exact nested REML (closed-form variance inverse; agrees with statsmodels)")
+    fitter = (
+        "statsmodels MixedLM"
+        if settings["fitter"] == "statsmodels"
+        else "plateloom's exact nested REML (closed-form variance inverse; agrees with statsmodels)"
+    )
     return (
         "<p>Wells are the experimental units. Strictly positive features are modelled as natural logs, so effects "
         "read as ratios to the negative control; the others as differences in their unit. "
@@ -116,72 +126,143 @@ def _method_text(settings: dict, provenance: dict) -> str:
         "control median, controls at dose 0, EC50 interval from the asymptotic covariance of log10 EC50 (wells "
         "treated as independent after plate centring). Design check: screens simulated on this design with this "
         "screen's fitted variance components and a planted effect, fitted by the same model.</p>"
-        f"<p class=\"meta\">Software: {escape(versions)}; Python {escape(provenance.get('python', ''))}.</p>")
+        f'<p class="meta">Software: {escape(versions)}; Python {escape(provenance.get("python", ""))}.</p>'
+    )
 
 
-def build_screen_report(effects: pd.DataFrame, wells: pd.DataFrame, ledger: pd.DataFrame, settings: dict,
-                        provenance: dict, dose_fits: pd.DataFrame | None = None, dose_points: pd.DataFrame | None = None,
-                        variance: pd.DataFrame | None = None, components: pd.DataFrame | None = None,
-                        design: pd.DataFrame | None = None, correction_notes: list[str] | None = None) -> str:
+def build_screen_report(
+    effects: pd.DataFrame,
+    wells: pd.DataFrame,
+    ledger: pd.DataFrame,
+    settings: dict,
+    provenance: dict,
+    dose_fits: pd.DataFrame | None = None,
+    dose_points: pd.DataFrame | None = None,
+    variance: pd.DataFrame | None = None,
+    components: pd.DataFrame | None = None,
+    design: pd.DataFrame | None = None,
+    correction_notes: list[str] | None = None,
+) -> str:
     """The self-contained HTML report of the whole screen."""
     ci_level, hit_q_value, hit_min_effect = settings["ci_level"], settings["hit_q_value"], settings["hit_min_log_ratio"]
-    plates = wells.groupby(["batch", "plate"]).agg(wells=("well", "size"),
-                                                   excluded_wells=("excluded_by", lambda s: int((s != "").sum())),
-                                                   plate_excluded_by=("plate_excluded_by", "first")).reset_index()
+    plates = (
+        wells.groupby(["batch", "plate"])
+        .agg(
+            wells=("well", "size"),
+            excluded_wells=("excluded_by", lambda s: int((s != "").sum())),
+            plate_excluded_by=("plate_excluded_by", "first"),
+        )
+        .reset_index()
+    )
     in_model = (wells["excluded_by"] == "") & (wells["plate_excluded_by"] == "")
-    summary = (f"<p>{wells['plate'].nunique()} plates in {wells['batch'].nunique()} batches, "
-               f"{int(in_model.sum())} wells in the model, {effects['treatment'].nunique()} treatments, "
-               f"{effects['feature'].nunique()} features. Hits: q &lt; {hit_q_value:g} (Benjamini-Hochberg over all "
-               f"{len(effects)} feature-treatment pairs) and |effect| &ge; {hit_min_effect:g} "
-               f"(natural-log ratio for log-scale features).</p>") + table_tag(plates)
+    summary = (
+        f"<p>{wells['plate'].nunique()} plates in {wells['batch'].nunique()} batches, "
+        f"{int(in_model.sum())} wells in the model, {effects['treatment'].nunique()} treatments, "
+        f"{effects['feature'].nunique()} features. Hits: q &lt; {hit_q_value:g} (Benjamini-Hochberg over all "
+        f"{len(effects)} feature-treatment pairs) and |effect| &ge; {hit_min_effect:g} "
+        f"(natural-log ratio for log-scale features).</p>"
+    ) + table_tag(plates)
     hits = effects[effects["hit"]].sort_values("q_value")
     columns = ["feature", "treatment", "scale", "estimate", "ci_low", "ci_high", "ratio", "q_value", "n_wells"]
     hit_html = "<p>No hits.</p>" if hits.empty else table_tag(hits[columns])
-    forest = "".join(figure_tag(forest_plot(effects, f, ci_level), f"forest plot {f}") for f in effects["feature"].unique())
-    component_columns = ["feature", "scale", "batch_variance", "plate_variance", "residual_variance", "icc_batch_plate",
-                         "converged", "method", "note"]
+    forest = "".join(
+        figure_tag(forest_plot(effects, f, ci_level), f"forest plot {f}") for f in effects["feature"].unique()
+    )
+    component_columns = [
+        "feature",
+        "scale",
+        "batch_variance",
+        "plate_variance",
+        "residual_variance",
+        "icc_batch_plate",
+        "converged",
+        "method",
+        "note",
+    ]
     components_table = effects.drop_duplicates("feature")[component_columns]
     flagged = effects[effects["note"].str.contains("treatment|batch only", regex=True) & ~effects["note"].eq("")]
-    notes_html = ("" if flagged.empty else "<p>Rows with a note:</p>"
-                  + table_tag(flagged[["feature", "treatment", "estimate", "note"]]))
+    notes_html = (
+        ""
+        if flagged.empty
+        else "<p>Rows with a note:</p>" + table_tag(flagged[["feature", "treatment", "estimate", "note"]])
+    )
     counts = ledger.groupby(["level", "rule"]).size().rename("count").reset_index() if len(ledger) else ledger
-    ledger_html = ("<p>Nothing was excluded.</p>" if ledger.empty else
-                   table_tag(counts) + "<p>Wells and plates left out of the model:</p>"
-                   + table_tag(ledger[ledger["level"] != "site_frame"]))
+    ledger_html = (
+        "<p>Nothing was excluded.</p>"
+        if ledger.empty
+        else table_tag(counts)
+        + "<p>Wells and plates left out of the model:</p>"
+        + table_tag(ledger[ledger["level"] != "site_frame"])
+    )
     batch_html = "<p>No diagnostics.</p>"
     if variance is not None and components is not None:
-        wide = variance.pivot(index="feature", columns="stage",
-                              values=["batch_share", "plate_share", "residual_share"])
+        wide = variance.pivot(index="feature", columns="stage", values=["batch_share", "plate_share", "residual_share"])
         wide.columns = [f"{share}_{stage}" for share, stage in wide.columns]
-        order = [f"{share}_{stage}" for share in ("batch_share", "plate_share", "residual_share")
-                 for stage in ("before", "after")]
-        batch_html = (figure_tag(batch_components_plot(components), "principal components by batch")
-                      + "<p>Share of treatment-adjusted variance between batches, plates within batch and wells, "
-                        "before and after correction:</p>" + table_tag(wide[order].reset_index()))
+        order = [
+            f"{share}_{stage}"
+            for share in ("batch_share", "plate_share", "residual_share")
+            for stage in ("before", "after")
+        ]
+        batch_html = (
+            figure_tag(batch_components_plot(components), "principal components by batch")
+            + "<p>Share of treatment-adjusted variance between batches, plates within batch and wells, "
+            "before and after correction:</p>" + table_tag(wide[order].reset_index())
+        )
     if correction_notes:
         batch_html += "<ul>" + "".join(f"<li>{escape(n)}</li>" for n in correction_notes) + "</ul>"
     dose_html = "<p>No compound has enough doses for a dose-response fit.</p>"
     if dose_fits is not None and len(dose_fits):
-        shown = dose_fits[["feature", "condition", "ec50", "ec50_ci_low", "ec50_ci_high", "dose_unit", "hill", "top",
-                           "identifiable", "flag"]]
+        shown = dose_fits[
+            [
+                "feature",
+                "condition",
+                "ec50",
+                "ec50_ci_low",
+                "ec50_ci_high",
+                "dose_unit",
+                "hill",
+                "top",
+                "identifiable",
+                "flag",
+            ]
+        ]
         figures = "".join(
-            figure_tag(dose_response_plot(fit, dose_points[(dose_points["feature"] == fit["feature"])
-                                                           & ((dose_points["condition"] == fit["condition"])
-                                                              | (dose_points["role"] == "negative_control"))]),
-                       f"dose-response {fit['condition']} {fit['feature']}")
-            for _, fit in dose_fits[dose_fits["identifiable"]].iterrows())
-        dose_html = (table_tag(shown) + "<p>Curves of the identifiable fits (red; shaded: EC50 interval):</p>"
-                     + (figures or "<p>None is identifiable.</p>"))
+            figure_tag(
+                dose_response_plot(
+                    fit,
+                    dose_points[
+                        (dose_points["feature"] == fit["feature"])
+                        & ((dose_points["condition"] == fit["condition"]) | (dose_points["role"] == "negative_control"))
+                    ],
+                ),
+                f"dose-response {fit['condition']} {fit['feature']}",
+            )
+            for _, fit in dose_fits[dose_fits["identifiable"]].iterrows()
+        )
+        dose_html = (
+            table_tag(shown)
+            + "<p>Curves of the identifiable fits (red; shaded: EC50 interval):</p>"
+            + (figures or "<p>None is identifiable.</p>")
+        )
     design_html = "<p>Not run.</p>"
     if design is not None and len(design):
-        design_html = ("<p>Simulated screens on this design, with this screen's variance components for "
-                       f"{escape(design['feature'].iloc[0])} and a planted effect of {design['effect'].iloc[0]:g} "
-                       "(model scale) on every treatment. Coverage should be near the nominal level; power is the "
-                       "share of treatments detected at p &lt; 0.05.</p>" + table_tag(design))
-    sections = [("Summary", summary), ("Method", _method_text(settings, provenance)), ("Hits", hit_html),
-                ("Volcano plot", figure_tag(volcano_plot(effects), "volcano plot")),
-                ("Effects with confidence intervals", forest), ("Dose-response", dose_html),
-                ("Batch diagnostics", batch_html), ("Variance components", table_tag(components_table) + notes_html),
-                ("Design check", design_html), ("Exclusion ledger", ledger_html),
-                ("All effects", table_tag(effects[columns + ["p_value", "hit", "note"]]))]
+        design_html = (
+            "<p>Simulated screens on this design, with this screen's variance components for "
+            f"{escape(design['feature'].iloc[0])} and a planted effect of {design['effect'].iloc[0]:g} "
+            "(model scale) on every treatment. Coverage should be near the nominal level; power is the "
+            "share of treatments detected at p &lt; 0.05.</p>" + table_tag(design)
+        )
+    sections = [
+        ("Summary", summary),
+        ("Method", _method_text(settings, provenance)),
+        ("Hits", hit_html),
+        ("Volcano plot", figure_tag(volcano_plot(effects), "volcano plot")),
+        ("Effects with confidence intervals", forest),
+        ("Dose-response", dose_html),
+        ("Batch diagnostics", batch_html),
+        ("Variance components", table_tag(components_table) + notes_html),
+        ("Design check", design_html),
+        ("Exclusion ledger", ledger_html),
+        ("All effects", table_tag(effects[columns + ["p_value", "hit", "note"]])),
+    ]
     return page("plateloom screen report", sections, provenance)

@@ -25,7 +25,9 @@ METHODS = ("none", "control_location", "control_location_scale", "combat")
 MAD_TO_SD = 1.4826  # consistency constant of the MAD for a normal distribution (common practice)
 
 
-def model_scale(wells: pd.DataFrame, features: list[str], log_features: set[str]) -> tuple[pd.DataFrame, dict[str, str]]:
+def model_scale(
+    wells: pd.DataFrame, features: list[str], log_features: set[str]
+) -> tuple[pd.DataFrame, dict[str, str]]:
     """Features on the scale they are modelled on: natural log where all finite values are > 0.
 
     Returns the values (same index as ``wells``) and the scale used per feature ("log"/"linear").
@@ -76,21 +78,27 @@ def align_to_controls(values: pd.DataFrame, batch: np.ndarray, is_control: np.nd
     return corrected
 
 
-def combat(values: np.ndarray, batch: np.ndarray, covariates: np.ndarray | None = None, mean_only: bool = False,
-           ddof: int = 1, tolerance: float = 1e-4) -> np.ndarray:
+def combat(
+    values: np.ndarray,
+    batch: np.ndarray,
+    covariates: np.ndarray | None = None,
+    mean_only: bool = False,
+    ddof: int = 1,
+    tolerance: float = 1e-4,
+) -> np.ndarray:
     """Parametric empirical-Bayes ComBat (Johnson et al. 2007) of ``values`` (wells x features).
 
     ``covariates`` (wells x k, no intercept) is the protected design, e.g. treatment indicators.
     ``ddof=1`` uses sample variances as in the authors' R implementation (recalled from memory);
     ``ddof=0`` uses population variances. Features must have no missing values.
     """
-    data = np.asarray(values, float).T                      # features x wells, as in the paper
+    data = np.asarray(values, float).T  # features x wells, as in the paper
     batch_index = np.unique(np.asarray(batch), return_inverse=True)[1].ravel()
     n_batches = int(batch_index.max()) + 1
-    batch_design = (batch_index[:, None] == np.arange(n_batches)[None, :]).astype(float)   # wells x batches
+    batch_design = (batch_index[:, None] == np.arange(n_batches)[None, :]).astype(float)  # wells x batches
     design = batch_design if covariates is None else np.column_stack([batch_design, covariates])
     n_wells = data.shape[1]
-    coefficients = np.linalg.solve(design.T @ design, design.T @ data.T)                  # (b + k) x features
+    coefficients = np.linalg.solve(design.T @ design, design.T @ data.T)  # (b + k) x features
     batch_sizes = batch_design.sum(axis=0)
     grand_mean = (batch_sizes / n_wells) @ coefficients[:n_batches]
     pooled_variance = ((data - (design @ coefficients).T) ** 2).mean(axis=1)
@@ -112,7 +120,7 @@ def combat(values: np.ndarray, batch: np.ndarray, covariates: np.ndarray | None 
             continue
         d_hat = in_batch.var(axis=1, ddof=ddof)
         m, s2 = d_hat.mean(), d_hat.var(ddof=ddof)
-        a_prior, b_prior = (2 * s2 + m * m) / s2, (m * s2 + m ** 3) / s2
+        a_prior, b_prior = (2 * s2 + m * m) / s2, (m * s2 + m**3) / s2
         gamma_star[k], delta_star[k] = _posterior(in_batch, g_hat, d_hat, g_bar, t2, a_prior, b_prior, tolerance)
     adjusted = standardised.copy()
     for k in range(n_batches):
@@ -121,8 +129,17 @@ def combat(values: np.ndarray, batch: np.ndarray, covariates: np.ndarray | None 
     return (adjusted * np.sqrt(pooled_variance)[:, None] + standard_mean).T
 
 
-def _posterior(data: np.ndarray, g_hat: np.ndarray, d_hat: np.ndarray, g_bar: float, t2: float, a: float, b: float,
-               tolerance: float, max_iterations: int = 10_000) -> tuple[np.ndarray, np.ndarray]:
+def _posterior(
+    data: np.ndarray,
+    g_hat: np.ndarray,
+    d_hat: np.ndarray,
+    g_bar: float,
+    t2: float,
+    a: float,
+    b: float,
+    tolerance: float,
+    max_iterations: int = 10_000,
+) -> tuple[np.ndarray, np.ndarray]:
     """Iterated conditional posterior means of the batch location (gamma) and scale (delta)."""
     n = data.shape[1]
     g_old, d_old = g_hat.copy(), d_hat.copy()
@@ -137,9 +154,11 @@ def _posterior(data: np.ndarray, g_hat: np.ndarray, d_hat: np.ndarray, g_bar: fl
     return g_old, d_old
 
 
-def correct_batches(values: pd.DataFrame, batch: np.ndarray, is_control: np.ndarray, treatment: np.ndarray,
-                    method: str) -> pd.DataFrame:
-    """Batch-corrected model-scale values by ``method`` (one of ``METHODS``); rows with NaN are left as they are for ComBat."""
+def correct_batches(
+    values: pd.DataFrame, batch: np.ndarray, is_control: np.ndarray, treatment: np.ndarray, method: str
+) -> pd.DataFrame:
+    """Batch-corrected model-scale values by ``method`` (one of ``METHODS``); rows with NaN are left
+    as they are for ComBat."""
     if method not in METHODS:
         raise ValueError(f"unknown batch correction {method!r}; choose one of {', '.join(METHODS)}")
     if method == "none" or len(np.unique(batch)) < 2:
@@ -150,11 +169,15 @@ def correct_batches(values: pd.DataFrame, batch: np.ndarray, is_control: np.ndar
     complete = values.notna().all(axis=1).to_numpy()
     usable = [c for c in values.columns if values.loc[complete, c].std() > 0]
     if len(usable) < 2:
-        raise ValueError("batch_correction combat pools batch effects across features and needs at least 2 features "
-                         f"with spread (found {len(usable)}); use control_location instead")
+        raise ValueError(
+            "batch_correction combat pools batch effects across features and needs at least 2 features "
+            f"with spread (found {len(usable)}); use control_location instead"
+        )
     codes = pd.factorize(np.asarray(treatment)[complete], sort=True)[0]
     covariates = (codes[:, None] == np.arange(1, codes.max() + 1)[None, :]).astype(float) if codes.max() > 0 else None
-    corrected.loc[complete, usable] = combat(values.loc[complete, usable].to_numpy(), np.asarray(batch)[complete], covariates)
+    corrected.loc[complete, usable] = combat(
+        values.loc[complete, usable].to_numpy(), np.asarray(batch)[complete], covariates
+    )
     return corrected
 
 
@@ -173,10 +196,22 @@ def variance_shares(values: pd.DataFrame, batch: np.ndarray, plate: np.ndarray, 
         residual = part["y"] - part.groupby("treatment")["y"].transform("mean")
         batch_mean = residual.groupby(part["batch"]).transform("mean")
         plate_mean = residual.groupby([part["batch"], part["plate"]]).transform("mean")
-        total = float((residual ** 2).sum())
-        shares = np.array([((batch_mean - residual.mean()) ** 2).sum(), ((plate_mean - batch_mean) ** 2).sum(),
-                           ((residual - plate_mean) ** 2).sum()]) / total if total > 0 else np.full(3, np.nan)
-        rows.append({"feature": feature, "batch_share": shares[0], "plate_share": shares[1], "residual_share": shares[2]})
+        total = float((residual**2).sum())
+        shares = (
+            np.array(
+                [
+                    ((batch_mean - residual.mean()) ** 2).sum(),
+                    ((plate_mean - batch_mean) ** 2).sum(),
+                    ((residual - plate_mean) ** 2).sum(),
+                ]
+            )
+            / total
+            if total > 0
+            else np.full(3, np.nan)
+        )
+        rows.append(
+            {"feature": feature, "batch_share": shares[0], "plate_share": shares[1], "residual_share": shares[2]}
+        )
     return pd.DataFrame(rows)
 
 
@@ -189,9 +224,9 @@ def principal_components(values: pd.DataFrame, n_components: int = 2) -> tuple[n
         return np.full((len(values), n_components), np.nan), np.full(n_components, np.nan)
     z = ((usable - usable.mean()) / usable.std(ddof=1)).to_numpy()
     u, s, vt = np.linalg.svd(z, full_matrices=False)
-    signs = np.sign(vt[np.arange(len(s)), np.abs(vt).argmax(axis=1)])   # deterministic orientation
+    signs = np.sign(vt[np.arange(len(s)), np.abs(vt).argmax(axis=1)])  # deterministic orientation
     scores = u * s * signs
-    explained = s ** 2 / np.sum(s ** 2)
+    explained = s**2 / np.sum(s**2)
     k = min(n_components, len(s))
     padded = np.full((len(values), n_components), np.nan)
     padded[:, :k] = scores[:, :k]

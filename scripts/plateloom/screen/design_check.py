@@ -35,13 +35,16 @@ def extend_design(design: pd.DataFrame, extra_batches: int) -> pd.DataFrame:
     """The design plus ``extra_batches`` copies of its first batch (new batch and plate names)."""
     design = design[DESIGN_COLUMNS].reset_index(drop=True)
     first = design[design["batch"] == sorted(design["batch"].unique())[0]]
-    copies = [first.assign(batch=f"extra{k + 1}", plate=first["plate"].astype(str) + f"-extra{k + 1}")
-              for k in range(extra_batches)]
+    copies = [
+        first.assign(batch=f"extra{k + 1}", plate=first["plate"].astype(str) + f"-extra{k + 1}")
+        for k in range(extra_batches)
+    ]
     return pd.concat([design, *copies], ignore_index=True)
 
 
-def simulate_values(design: pd.DataFrame, components: VarianceComponents, effect: float,
-                    rng: np.random.Generator) -> np.ndarray:
+def simulate_values(
+    design: pd.DataFrame, components: VarianceComponents, effect: float, rng: np.random.Generator
+) -> np.ndarray:
     """One simulated screen on ``design``: every non-control treatment has the same ``effect``."""
     batches = pd.factorize(design["batch"])[0]
     plates = pd.factorize(design["batch"].astype(str) + "\x00" + design["plate"].astype(str))[0]
@@ -52,8 +55,16 @@ def simulate_values(design: pd.DataFrame, components: VarianceComponents, effect
     return effect * treated + batch_effects[batches] + plate_effects[plates] + noise
 
 
-def simulate_design(design: pd.DataFrame, components: VarianceComponents, effect: float, n_screens: int, seed: int,
-                    ci_level: float = 0.95, alpha: float = 0.05, fitter: str = "exact") -> pd.DataFrame:
+def simulate_design(
+    design: pd.DataFrame,
+    components: VarianceComponents,
+    effect: float,
+    n_screens: int,
+    seed: int,
+    ci_level: float = 0.95,
+    alpha: float = 0.05,
+    fitter: str = "exact",
+) -> pd.DataFrame:
     """Simulate ``n_screens`` screens; one row per screen and treatment with estimate, CI and coverage."""
     rng = np.random.default_rng(seed)
     design = design[DESIGN_COLUMNS].reset_index(drop=True)
@@ -78,14 +89,29 @@ def summarise_simulation(table: pd.DataFrame, label: str, n_batches: int, effect
     per_screen = table.groupby("screen")["covered"].mean()
     n_screens = len(per_screen)
     se = float(per_screen.std(ddof=1) / np.sqrt(n_screens)) if n_screens > 1 else np.nan
-    return {"design": label, "n_batches": n_batches, "effect": effect, "n_screens": n_screens,
-            "n_intervals": len(table), "coverage": coverage, "coverage_mc_se": se,
-            "power": float(table["detected"].mean()), "converged_share": float(table["converged"].mean()),
-            "mean_ci_width": float((table["ci_high"] - table["ci_low"]).mean())}
+    return {
+        "design": label,
+        "n_batches": n_batches,
+        "effect": effect,
+        "n_screens": n_screens,
+        "n_intervals": len(table),
+        "coverage": coverage,
+        "coverage_mc_se": se,
+        "power": float(table["detected"].mean()),
+        "converged_share": float(table["converged"].mean()),
+        "mean_ci_width": float((table["ci_high"] - table["ci_low"]).mean()),
+    }
 
 
-def design_check(design: pd.DataFrame, components: VarianceComponents, effect: float, n_screens: int,
-                 extra_batches: list[int], seed: int, ci_level: float = 0.95) -> pd.DataFrame:
+def design_check(
+    design: pd.DataFrame,
+    components: VarianceComponents,
+    effect: float,
+    n_screens: int,
+    extra_batches: list[int],
+    seed: int,
+    ci_level: float = 0.95,
+) -> pd.DataFrame:
     """Coverage and power for the design as imaged and with each number of extra batches."""
     if (design["role"] == "negative_control").sum() == 0 or design["treatment"].nunique() < 2:
         raise ValueError("design check needs negative controls and at least one other treatment")
@@ -102,9 +128,11 @@ def components_from_effects(effects: pd.DataFrame, feature: str) -> VarianceComp
     """Variance components of one feature's fitted screen model (first converged row)."""
     rows = effects[(effects["feature"] == feature) & effects["converged"]]
     if rows.empty:
-        raise ValueError(f"design check: feature {feature!r} has no converged fit in the effects table; "
-                         "choose another screen.design_check.feature or give variance components in config")
+        raise ValueError(
+            f"design check: feature {feature!r} has no converged fit in the effects table; "
+            "choose another screen.design_check.feature or give variance components in config"
+        )
     first = rows.iloc[0]
-    return VarianceComponents(float(first["batch_variance"]), float(first["plate_variance"]),
-                              float(first["residual_variance"]))
-
+    return VarianceComponents(
+        float(first["batch_variance"]), float(first["plate_variance"]), float(first["residual_variance"])
+    )

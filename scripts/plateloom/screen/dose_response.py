@@ -38,15 +38,20 @@ def fit_hill(dose: np.ndarray, response: np.ndarray, ci_level: float = 0.95) -> 
         return {**result, "identifiable": False, "flag": "fewer than 4 doses or 6 wells: not fitted"}
     low, high = np.log10(tested[0]), np.log10(tested[-1])
     bounds = ([-np.inf, -np.inf, low - 2.0, HILL_BOUNDS[0]], [np.inf, np.inf, high + 2.0, HILL_BOUNDS[1]])
-    bottom0 = float(np.median(response[dose == 0])) if np.any(dose == 0) else float(np.median(response[dose == tested[0]]))
+    bottom0 = (
+        float(np.median(response[dose == 0])) if np.any(dose == 0) else float(np.median(response[dose == tested[0]]))
+    )
     top0 = float(np.median(response[dose == tested[-1]]))
 
     def residuals(p: np.ndarray) -> np.ndarray:
         return hill_curve(dose, *p) - response
 
-    fits = [optimize.least_squares(residuals, [bottom0, top0, start, 1.0], bounds=bounds, x_scale="jac",
-                                    ftol=1e-12, xtol=1e-12, gtol=1e-12)
-            for start in np.log10(tested)]
+    fits = [
+        optimize.least_squares(
+            residuals, [bottom0, top0, start, 1.0], bounds=bounds, x_scale="jac", ftol=1e-12, xtol=1e-12, gtol=1e-12
+        )
+        for start in np.log10(tested)
+    ]
     best = min(fits, key=lambda f: f.cost)
     n, k = len(dose), 4
     rss = 2.0 * best.cost
@@ -75,11 +80,25 @@ def fit_hill(dose: np.ndarray, response: np.ndarray, ci_level: float = 0.95) -> 
     se_log = errors[2]
     with np.errstate(over="ignore"):
         ci_low, ci_high = 10.0 ** (log10_ec50 - t * se_log), 10.0 ** (log10_ec50 + t * se_log)
-    return {**result, "bottom": bottom, "bottom_se": errors[0], "top": top, "top_se": errors[1],
-            "ec50": 10.0 ** log10_ec50, "log10_ec50": log10_ec50, "log10_ec50_se": se_log,
-            "ec50_ci_low": ci_low, "ec50_ci_high": ci_high,
-            "hill": hill, "hill_se": errors[3], "df": float(dof), "residual_sd": float(np.sqrt(rss / dof)),
-            "p_response": p_response, "identifiable": not flags, "flag": "; ".join(flags)}
+    return {
+        **result,
+        "bottom": bottom,
+        "bottom_se": errors[0],
+        "top": top,
+        "top_se": errors[1],
+        "ec50": 10.0**log10_ec50,
+        "log10_ec50": log10_ec50,
+        "log10_ec50_se": se_log,
+        "ec50_ci_low": ci_low,
+        "ec50_ci_high": ci_high,
+        "hill": hill,
+        "hill_se": errors[3],
+        "df": float(dof),
+        "residual_sd": float(np.sqrt(rss / dof)),
+        "p_response": p_response,
+        "identifiable": not flags,
+        "flag": "; ".join(flags),
+    }
 
 
 def plate_relative_responses(model_wells: pd.DataFrame, feature: str, scale: str) -> pd.Series:
@@ -89,8 +108,9 @@ def plate_relative_responses(model_wells: pd.DataFrame, feature: str, scale: str
     return np.exp(centred) if scale == "log" else centred
 
 
-def dose_response_table(model_wells: pd.DataFrame, features: list[str], scales: dict[str, str], min_doses: int,
-                        ci_level: float) -> tuple[pd.DataFrame, pd.DataFrame]:
+def dose_response_table(
+    model_wells: pd.DataFrame, features: list[str], scales: dict[str, str], min_doses: int, ci_level: float
+) -> tuple[pd.DataFrame, pd.DataFrame]:
     """4PL fits for every compound with >= ``min_doses`` doses (one unit) and every feature.
 
     Returns the fits (one row per compound and feature) and the points used (for plots).
@@ -108,14 +128,43 @@ def dose_response_table(model_wells: pd.DataFrame, features: list[str], scales: 
             series = frame[(frame["condition"] == compound) & (frame["role"] == "test")]
             data = pd.concat([controls, series], ignore_index=True)
             fit = fit_hill(data["dose"].to_numpy(), data["response"].to_numpy(), ci_level)
-            fits.append({"feature": feature, "condition": compound, "dose_unit": series["dose_unit"].iloc[0],
-                         "response_scale": "ratio to plate control" if scales[feature] == "log"
-                         else "difference from plate control", **fit})
+            fits.append(
+                {
+                    "feature": feature,
+                    "condition": compound,
+                    "dose_unit": series["dose_unit"].iloc[0],
+                    "response_scale": "ratio to plate control"
+                    if scales[feature] == "log"
+                    else "difference from plate control",
+                    **fit,
+                }
+            )
             points.append(series.assign(feature=feature))
         points.append(controls.assign(feature=feature))
-    columns = ["feature", "condition", "dose_unit", "response_scale", "n_wells", "n_doses", "bottom", "bottom_se", "top",
-               "top_se", "ec50", "log10_ec50", "log10_ec50_se", "ec50_ci_low", "ec50_ci_high", "hill", "hill_se", "df",
-               "residual_sd", "p_response", "identifiable", "flag"]
+    columns = [
+        "feature",
+        "condition",
+        "dose_unit",
+        "response_scale",
+        "n_wells",
+        "n_doses",
+        "bottom",
+        "bottom_se",
+        "top",
+        "top_se",
+        "ec50",
+        "log10_ec50",
+        "log10_ec50_se",
+        "ec50_ci_low",
+        "ec50_ci_high",
+        "hill",
+        "hill_se",
+        "df",
+        "residual_sd",
+        "p_response",
+        "identifiable",
+        "flag",
+    ]
     table = pd.DataFrame(fits).reindex(columns=columns)
     point_table = pd.concat(points, ignore_index=True) if points else pd.DataFrame()
     return table, point_table

@@ -31,13 +31,13 @@ REFERENCE = "negative_control"
 class NestedFit:
     """Result of one nested random-intercept fit (natural units of the response)."""
 
-    params: pd.Series           # fixed effects, named by the design columns
+    params: pd.Series  # fixed effects, named by the design columns
     std_errors: pd.Series
     batch_variance: float
     plate_variance: float
     residual_variance: float
     method: str
-    boundary: bool              # a variance component was estimated at zero (singular fit)
+    boundary: bool  # a variance component was estimated at zero (singular fit)
 
 
 # Warnings that only say a variance component sits at zero; the fixed effects are still valid.
@@ -45,9 +45,11 @@ BOUNDARY_MESSAGES = ("boundary", "Hessian", "singular")
 BOUNDARY_SHARE = 1e-4  # a component below this share of the variance counts as estimated at zero
 
 
-def fit_nested_random_intercepts(data: pd.DataFrame, formula: str, batch: str, plate: str | None,
-                                 reml: bool = True) -> NestedFit:
-    """REML (or, with ``reml=False``, maximum-likelihood) fit of ``formula`` with a random intercept per ``batch`` and, if given, per ``plate`` within batch.
+def fit_nested_random_intercepts(
+    data: pd.DataFrame, formula: str, batch: str, plate: str | None, reml: bool = True
+) -> NestedFit:
+    """REML (or, with ``reml=False``, maximum-likelihood) fit of ``formula`` with a random intercept
+    per ``batch`` and, if given, per ``plate`` within batch.
 
     ``batch`` and ``plate`` are column names of ``data``. Tries L-BFGS, then Powell and
     Nelder-Mead. A variance component at zero (the boundary) is a valid REML estimate and
@@ -73,8 +75,15 @@ def fit_nested_random_intercepts(data: pd.DataFrame, formula: str, batch: str, p
         vcomp = np.atleast_1d(result.vcomp) if plate else np.array([np.inf])
         batch_variance = float(result.cov_re.iloc[0, 0])
         boundary = min(batch_variance, float(vcomp[0])) < BOUNDARY_SHARE * (batch_variance + float(result.scale))
-        return NestedFit(result.fe_params, result.bse_fe, batch_variance, float(vcomp[0]) if plate else 0.0,
-                         float(result.scale), method, boundary)
+        return NestedFit(
+            result.fe_params,
+            result.bse_fe,
+            batch_variance,
+            float(vcomp[0]) if plate else 0.0,
+            float(result.scale),
+            method,
+            boundary,
+        )
     raise RuntimeError("mixed model did not converge: " + " | ".join(problems))
 
 
@@ -112,22 +121,33 @@ def _design(codes: pd.Series) -> tuple[np.ndarray, list[str]]:
 def _fit(data: pd.DataFrame, mapping: dict[str, str], fitter: str) -> NestedFit:
     """The nested fit of y on treatment codes; one batch only: a random intercept per plate."""
     n_batches, n_plates = data["batch"].nunique(), data["plate"].nunique()
-    groups, nested = ("batch_code", "plate_code" if n_plates > n_batches else None) if n_batches >= 2 else ("plate_code", None)
+    groups, nested = (
+        ("batch_code", "plate_code" if n_plates > n_batches else None) if n_batches >= 2 else ("plate_code", None)
+    )
     if fitter == "statsmodels":
         fit = fit_nested_random_intercepts(data, "y ~ C(code)", groups, nested)
     else:
         design, names = _design(data["code"])
-        exact = fit_nested_exact(data["y"].to_numpy(), design, data[groups].to_numpy(int),
-                                 data[nested].to_numpy(int) if nested else None)
+        exact = fit_nested_exact(
+            data["y"].to_numpy(), design, data[groups].to_numpy(int), data[nested].to_numpy(int) if nested else None
+        )
         if not exact.converged:
             raise RuntimeError("exact REML optimisation did not converge")
         total = exact.batch_variance + exact.plate_variance + exact.residual_variance
         boundary = min(exact.batch_variance, exact.plate_variance if nested else np.inf) < BOUNDARY_SHARE * total
-        fit = NestedFit(pd.Series(exact.params, index=names), pd.Series(exact.std_errors, index=names),
-                        exact.batch_variance, exact.plate_variance if nested else 0.0, exact.residual_variance,
-                        "exact", boundary)
+        fit = NestedFit(
+            pd.Series(exact.params, index=names),
+            pd.Series(exact.std_errors, index=names),
+            exact.batch_variance,
+            exact.plate_variance if nested else 0.0,
+            exact.residual_variance,
+            "exact",
+            boundary,
+        )
     if n_batches < 2:
-        fit = NestedFit(fit.params, fit.std_errors, 0.0, fit.batch_variance, fit.residual_variance, fit.method, fit.boundary)
+        fit = NestedFit(
+            fit.params, fit.std_errors, 0.0, fit.batch_variance, fit.residual_variance, fit.method, fit.boundary
+        )
     return fit
 
 
@@ -135,8 +155,14 @@ def _join(*notes: str) -> str:
     return "; ".join(n for n in notes if n)
 
 
-def fit_feature_effects(wells: pd.DataFrame, feature: str, scale: str, ci_level: float, fitter: str = "statsmodels",
-                        treatments: pd.DataFrame | None = None) -> pd.DataFrame:
+def fit_feature_effects(
+    wells: pd.DataFrame,
+    feature: str,
+    scale: str,
+    ci_level: float,
+    fitter: str = "statsmodels",
+    treatments: pd.DataFrame | None = None,
+) -> pd.DataFrame:
     """Effects of every treatment on one feature against the pooled negative controls.
 
     ``wells`` holds the wells in the model with columns batch, plate, role, treatment, condition,
@@ -154,12 +180,16 @@ def fit_feature_effects(wells: pd.DataFrame, feature: str, scale: str, ci_level:
     n_not_finite = int((~np.isfinite(data["y"])).sum())
     data = data[np.isfinite(data["y"])]
     if data.empty:
-        note = (f"no well has a value of {feature}: not fitted (collective readouts need tracks of at least "
-                "collective.min_overlap_frames frames; see the README)")
+        note = (
+            f"no well has a value of {feature}: not fitted (collective readouts need tracks of at least "
+            "collective.min_overlap_frames frames; see the README)"
+        )
         return _unfitted_table(wells, treatments, feature, scale, note)
     if (data["treatment"] == REFERENCE).sum() == 0:
-        raise ValueError(f"feature {feature}: no negative-control wells are left in the model; "
-                         "check the layouts' role column and the exclusion ledger")
+        raise ValueError(
+            f"feature {feature}: no negative-control wells are left in the model; "
+            "check the layouts' role column and the exclusion ledger"
+        )
     data["code"], mapping = _codes(data["treatment"])
     data["plate_code"] = pd.factorize(data["plate"], sort=True)[0]
     data["batch_code"] = pd.factorize(data["batch"], sort=True)[0]
@@ -167,9 +197,12 @@ def fit_feature_effects(wells: pd.DataFrame, feature: str, scale: str, ci_level:
     n_treatments = len(mapping)
     df = max(n_wells - n_plates - (n_treatments - 1), 1)
     plates_per_batch = data.groupby("batch")["plate"].nunique()
-    feature_note = _join(f"{n_not_finite} wells with a missing value left out" if n_not_finite else "",
-                         f"batch {', '.join(plates_per_batch.index[plates_per_batch == 1])} has a single plate"
-                         if data["batch"].nunique() >= 2 and (plates_per_batch == 1).any() and n_plates > data["batch"].nunique() else "")
+    feature_note = _join(
+        f"{n_not_finite} wells with a missing value left out" if n_not_finite else "",
+        f"batch {', '.join(plates_per_batch.index[plates_per_batch == 1])} has a single plate"
+        if data["batch"].nunique() >= 2 and (plates_per_batch == 1).any() and n_plates > data["batch"].nunique()
+        else "",
+    )
     try:
         if np.nanstd(data["y"]) == 0:
             raise _ConstantFeature("feature is constant across wells: not fitted")
@@ -182,7 +215,13 @@ def fit_feature_effects(wells: pd.DataFrame, feature: str, scale: str, ci_level:
         if fit.boundary:
             feature_note = _join(feature_note, "a variance component was estimated at zero (singular fit)")
     except _ConstantFeature as error:
-        params, errors, converged, components, method = pd.Series(dtype=float), pd.Series(dtype=float), False, (np.nan,) * 3, "not fitted"
+        params, errors, converged, components, method = (
+            pd.Series(dtype=float),
+            pd.Series(dtype=float),
+            False,
+            (np.nan,) * 3,
+            "not fitted",
+        )
         feature_note = _join(feature_note, str(error))
     except RuntimeError as error:
         params, errors, residual = _fixed_plate_fit(data)
@@ -192,8 +231,14 @@ def fit_feature_effects(wells: pd.DataFrame, feature: str, scale: str, ci_level:
     total = np.nansum(components)
     catalogue = _treatment_catalogue(wells, treatments)
     groups = data.groupby("code")
-    counts = pd.DataFrame({"n_wells": groups.size(), "n_plates": groups["plate"].nunique(),
-                           "n_batches": groups["batch"].nunique(), "first_batch": groups["batch"].first()})
+    counts = pd.DataFrame(
+        {
+            "n_wells": groups.size(),
+            "n_plates": groups["plate"].nunique(),
+            "n_batches": groups["batch"].nunique(),
+            "first_batch": groups["batch"].first(),
+        }
+    )
     n_batches_all = data["batch"].nunique()
     rows = []
     for name, first in catalogue.iterrows():
@@ -207,21 +252,38 @@ def fit_feature_effects(wells: pd.DataFrame, feature: str, scale: str, ci_level:
         if count is None:
             row_note = _join("all wells of this treatment were excluded or missing: no estimate", feature_note)
         elif count["n_batches"] == 1 and n_batches_all > 1:
-            row_note = _join(f"present in one batch only ({count['first_batch']}): "
-                             "estimated against that batch's controls", feature_note)
-        rows.append({
-            "feature": feature, "treatment": name, "condition": first["condition"], "dose": first["dose"],
-            "dose_unit": first["dose_unit"], "role": first["role"], "scale": scale,
-            "estimate": estimate, "std_error": error, "df": float(df),
-            "ci_low": estimate - t_quantile * error, "ci_high": estimate + t_quantile * error,
-            "t_value": t_value, "p_value": float(2 * stats.t.sf(abs(t_value), df)) if np.isfinite(t_value) else np.nan,
-            "n_wells": int(count["n_wells"]) if count is not None else 0,
-            "n_plates": int(count["n_plates"]) if count is not None else 0,
-            "n_batches": int(count["n_batches"]) if count is not None else 0,
-            "batch_variance": components[0], "plate_variance": components[1], "residual_variance": components[2],
-            "icc_batch_plate": (components[0] + components[1]) / total if total > 0 else np.nan,
-            "converged": converged, "method": method, "note": row_note,
-        })
+            row_note = _join(
+                f"present in one batch only ({count['first_batch']}): estimated against that batch's controls",
+                feature_note,
+            )
+        rows.append(
+            {
+                "feature": feature,
+                "treatment": name,
+                "condition": first["condition"],
+                "dose": first["dose"],
+                "dose_unit": first["dose_unit"],
+                "role": first["role"],
+                "scale": scale,
+                "estimate": estimate,
+                "std_error": error,
+                "df": float(df),
+                "ci_low": estimate - t_quantile * error,
+                "ci_high": estimate + t_quantile * error,
+                "t_value": t_value,
+                "p_value": float(2 * stats.t.sf(abs(t_value), df)) if np.isfinite(t_value) else np.nan,
+                "n_wells": int(count["n_wells"]) if count is not None else 0,
+                "n_plates": int(count["n_plates"]) if count is not None else 0,
+                "n_batches": int(count["n_batches"]) if count is not None else 0,
+                "batch_variance": components[0],
+                "plate_variance": components[1],
+                "residual_variance": components[2],
+                "icc_batch_plate": (components[0] + components[1]) / total if total > 0 else np.nan,
+                "converged": converged,
+                "method": method,
+                "note": row_note,
+            }
+        )
     table = pd.DataFrame(rows)
     if not table.empty:
         log_scale = scale == "log"
@@ -230,18 +292,40 @@ def fit_feature_effects(wells: pd.DataFrame, feature: str, scale: str, ci_level:
     return table
 
 
-def _unfitted_table(wells: pd.DataFrame, treatments: pd.DataFrame | None, feature: str, scale: str,
-                    note: str) -> pd.DataFrame:
+def _unfitted_table(
+    wells: pd.DataFrame, treatments: pd.DataFrame | None, feature: str, scale: str, note: str
+) -> pd.DataFrame:
     """One row per treatment with no estimate and ``note`` saying why (same columns as a fitted table)."""
     catalogue = _treatment_catalogue(wells, treatments)
     nan = np.full(len(catalogue), np.nan)
-    table = pd.DataFrame({
-        "feature": feature, "treatment": catalogue.index, "condition": catalogue["condition"].to_numpy(),
-        "dose": catalogue["dose"].to_numpy(), "dose_unit": catalogue["dose_unit"].to_numpy(),
-        "role": catalogue["role"].to_numpy(), "scale": scale, "estimate": nan, "std_error": nan, "df": nan,
-        "ci_low": nan, "ci_high": nan, "t_value": nan, "p_value": nan, "n_wells": 0, "n_plates": 0, "n_batches": 0,
-        "batch_variance": nan, "plate_variance": nan, "residual_variance": nan, "icc_batch_plate": nan,
-        "converged": False, "method": "not fitted", "note": note})
+    table = pd.DataFrame(
+        {
+            "feature": feature,
+            "treatment": catalogue.index,
+            "condition": catalogue["condition"].to_numpy(),
+            "dose": catalogue["dose"].to_numpy(),
+            "dose_unit": catalogue["dose_unit"].to_numpy(),
+            "role": catalogue["role"].to_numpy(),
+            "scale": scale,
+            "estimate": nan,
+            "std_error": nan,
+            "df": nan,
+            "ci_low": nan,
+            "ci_high": nan,
+            "t_value": nan,
+            "p_value": nan,
+            "n_wells": 0,
+            "n_plates": 0,
+            "n_batches": 0,
+            "batch_variance": nan,
+            "plate_variance": nan,
+            "residual_variance": nan,
+            "icc_batch_plate": nan,
+            "converged": False,
+            "method": "not fitted",
+            "note": note,
+        }
+    )
     for column in ("ratio", "ratio_ci_low", "ratio_ci_high"):
         table[column] = nan
     return table
@@ -251,14 +335,19 @@ def _treatment_catalogue(wells: pd.DataFrame, treatments: pd.DataFrame | None) -
     """One row per non-reference treatment (index: treatment), from ``treatments`` or from the wells."""
     source = treatments if treatments is not None else wells
     source = source[source["role"].isin(["positive_control", "test"])]
-    return (source.drop_duplicates("treatment").set_index("treatment")[["condition", "dose", "dose_unit", "role"]]
-            .sort_index())
+    return (
+        source.drop_duplicates("treatment")
+        .set_index("treatment")[["condition", "dose", "dose_unit", "role"]]
+        .sort_index()
+    )
 
 
 def in_model(wells: pd.DataFrame) -> pd.Series:
     """Wells that enter the screen model: kept, on a kept plate, with a role the model uses."""
     plate_kept = wells["plate_excluded_by"] == "" if "plate_excluded_by" in wells else True
-    return (wells["excluded_by"] == "") & plate_kept & wells["role"].isin(["negative_control", "positive_control", "test"])
+    return (
+        (wells["excluded_by"] == "") & plate_kept & wells["role"].isin(["negative_control", "positive_control", "test"])
+    )
 
 
 def add_hit_calls(table: pd.DataFrame, hit_q_value: float, hit_min_effect: float) -> pd.DataFrame:
@@ -269,13 +358,22 @@ def add_hit_calls(table: pd.DataFrame, hit_q_value: float, hit_min_effect: float
     return table
 
 
-def screen_effects(model_wells: pd.DataFrame, features: list[str], scales: dict[str, str], ci_level: float,
-                   hit_q_value: float, hit_min_effect: float, fitter: str = "statsmodels",
-                   treatments: pd.DataFrame | None = None) -> pd.DataFrame:
+def screen_effects(
+    model_wells: pd.DataFrame,
+    features: list[str],
+    scales: dict[str, str],
+    ci_level: float,
+    hit_q_value: float,
+    hit_min_effect: float,
+    fitter: str = "statsmodels",
+    treatments: pd.DataFrame | None = None,
+) -> pd.DataFrame:
     """Effects of every treatment on every feature (model-scale values), BH q-values across all pairs, hit calls."""
     missing = [f for f in features if f not in model_wells.columns]
     if missing:
         raise ValueError(f"features {missing} are not columns of the well profiles; check screen.features in config")
-    parts = [fit_feature_effects(model_wells, feature, scales[feature], ci_level, fitter, treatments) for feature in features]
+    parts = [
+        fit_feature_effects(model_wells, feature, scales[feature], ci_level, fitter, treatments) for feature in features
+    ]
     table = pd.concat([p for p in parts if not p.empty], ignore_index=True)
     return add_hit_calls(table, hit_q_value, hit_min_effect)

@@ -35,17 +35,17 @@ class ExactNestedFit:
     batch_variance: float
     plate_variance: float
     residual_variance: float
-    objective: float            # -2 x (restricted) log-likelihood, constants dropped
+    objective: float  # -2 x (restricted) log-likelihood, constants dropped
     converged: bool
 
 
 @dataclass(frozen=True)
 class _GroupSums:
-    cross: np.ndarray           # [X y]'[X y]
-    plate_sums: np.ndarray      # plates x (q + 1)
-    plate_sizes: np.ndarray     # plates
-    plate_batch: np.ndarray     # batch index of each plate
-    membership: np.ndarray      # batches x plates, 1 where the plate belongs to the batch
+    cross: np.ndarray  # [X y]'[X y]
+    plate_sums: np.ndarray  # plates x (q + 1)
+    plate_sizes: np.ndarray  # plates
+    plate_batch: np.ndarray  # batch index of each plate
+    membership: np.ndarray  # batches x plates, 1 where the plate belongs to the batch
     n_batches: int
     n_rows: int
     n_fixed: int
@@ -54,16 +54,28 @@ class _GroupSums:
 def _group_sums(y: np.ndarray, design: np.ndarray, batch: np.ndarray, plate: np.ndarray) -> _GroupSums:
     batch_index = pd.factorize(batch, sort=True)[0]
     plate_codes = pd.factorize(plate, sort=True)[0]
-    plate_index, keys = pd.factorize(batch_index.astype(np.int64) * (int(plate_codes.max()) + 1) + plate_codes, sort=True)
-    pairs = np.column_stack([np.asarray(keys) // (int(plate_codes.max()) + 1), np.asarray(keys) % (int(plate_codes.max()) + 1)])
+    plate_index, keys = pd.factorize(
+        batch_index.astype(np.int64) * (int(plate_codes.max()) + 1) + plate_codes, sort=True
+    )
+    pairs = np.column_stack(
+        [np.asarray(keys) // (int(plate_codes.max()) + 1), np.asarray(keys) % (int(plate_codes.max()) + 1)]
+    )
     columns = np.column_stack([design, y])
     n_plates = len(pairs)
     membership_rows = sparse.csr_matrix((np.ones(len(y)), (plate_index, np.arange(len(y)))), shape=(n_plates, len(y)))
     plate_sums = np.asarray(membership_rows @ columns)
     n_batches = int(batch_index.max()) + 1
     membership = (np.arange(n_batches)[:, None] == pairs[:, 0][None, :]).astype(float)
-    return _GroupSums(columns.T @ columns, plate_sums, np.bincount(plate_index, minlength=n_plates).astype(float),
-                      pairs[:, 0], membership, n_batches, len(y), design.shape[1])
+    return _GroupSums(
+        columns.T @ columns,
+        plate_sums,
+        np.bincount(plate_index, minlength=n_plates).astype(float),
+        pairs[:, 0],
+        membership,
+        n_batches,
+        len(y),
+        design.shape[1],
+    )
 
 
 def _weighted_cross(sums: _GroupSums, g_batch: float, g_plate: float) -> tuple[np.ndarray, float]:
@@ -74,8 +86,9 @@ def _weighted_cross(sums: _GroupSums, g_batch: float, g_plate: float) -> tuple[n
     batch_totals = sums.membership @ (a[:, None] * sums.plate_sums)
     s = sums.membership @ (a * n_p)
     d = g_batch / (1.0 + g_batch * s)
-    cross = (sums.cross - (sums.plate_sums * c[:, None]).T @ sums.plate_sums
-             - (batch_totals * d[:, None]).T @ batch_totals)
+    cross = (
+        sums.cross - (sums.plate_sums * c[:, None]).T @ sums.plate_sums - (batch_totals * d[:, None]).T @ batch_totals
+    )
     log_det = float(np.sum(np.log1p(g_plate * n_p)) + np.sum(np.log1p(g_batch * s)))
     return cross, log_det
 
@@ -104,21 +117,27 @@ def _solution(sums: _GroupSums, g_batch: float, g_plate: float, reml: bool) -> t
     return beta, np.linalg.inv(xtx), rss / (sums.n_rows - q if reml else sums.n_rows)
 
 
-def _newton_polish(objective, theta: np.ndarray, value: float, step: float = 1e-4,
-                   iterations: int = 4) -> tuple[np.ndarray, float]:
-    """Newton steps on ``objective`` with central-difference gradient and Hessian; a step is kept only if it lowers the value."""
+def _newton_polish(
+    objective, theta: np.ndarray, value: float, step: float = 1e-4, iterations: int = 4
+) -> tuple[np.ndarray, float]:
+    """Newton steps on ``objective`` with central-difference gradient and Hessian; a step is kept
+    only if it lowers the value."""
     k = len(theta)
     offsets = step * np.eye(k)
     for _ in range(iterations):
         f_plus = np.array([objective(theta + e) for e in offsets])
         f_minus = np.array([objective(theta - e) for e in offsets])
         gradient = (f_plus - f_minus) / (2 * step)
-        hessian = np.diag((f_plus - 2 * value + f_minus) / step ** 2)
+        hessian = np.diag((f_plus - 2 * value + f_minus) / step**2)
         for i in range(k):
             for j in range(i + 1, k):
-                mixed = (objective(theta + offsets[i] + offsets[j]) - objective(theta + offsets[i] - offsets[j])
-                         - objective(theta - offsets[i] + offsets[j]) + objective(theta - offsets[i] - offsets[j]))
-                hessian[i, j] = hessian[j, i] = mixed / (4 * step ** 2)
+                mixed = (
+                    objective(theta + offsets[i] + offsets[j])
+                    - objective(theta + offsets[i] - offsets[j])
+                    - objective(theta - offsets[i] + offsets[j])
+                    + objective(theta - offsets[i] - offsets[j])
+                )
+                hessian[i, j] = hessian[j, i] = mixed / (4 * step**2)
         try:
             if np.any(np.linalg.eigvalsh(hessian) <= 0):
                 break
@@ -132,8 +151,9 @@ def _newton_polish(objective, theta: np.ndarray, value: float, step: float = 1e-
     return theta, value
 
 
-def fit_nested_exact(y: np.ndarray, design: np.ndarray, batch: np.ndarray, plate: np.ndarray | None,
-                     reml: bool = True) -> ExactNestedFit:
+def fit_nested_exact(
+    y: np.ndarray, design: np.ndarray, batch: np.ndarray, plate: np.ndarray | None, reml: bool = True
+) -> ExactNestedFit:
     """REML (or ML) fit of ``y ~ design`` with random intercepts per batch and per plate within batch.
 
     ``batch`` and ``plate`` are labels per row (plate labels may repeat across batches; a plate
@@ -156,5 +176,12 @@ def fit_nested_exact(y: np.ndarray, design: np.ndarray, batch: np.ndarray, plate
     theta, value = _newton_polish(objective, np.abs(best.x), float(best.fun))
     g_batch, g_plate = theta[0] ** 2, (theta[1] ** 2 if with_plate else 0.0)
     beta, inverse, scale = _solution(sums, g_batch, g_plate, reml)
-    return ExactNestedFit(beta, np.sqrt(np.diag(inverse) * scale), g_batch * scale, g_plate * scale, scale,
-                          value, bool(np.isfinite(value)))
+    return ExactNestedFit(
+        beta,
+        np.sqrt(np.diag(inverse) * scale),
+        g_batch * scale,
+        g_plate * scale,
+        scale,
+        value,
+        bool(np.isfinite(value)),
+    )

@@ -16,7 +16,7 @@ from plateloom.errors import InputError
 from plateloom.io.images import ImageIndex, index_plate_images, read_ome_metadata
 from plateloom.setup.screen_sheet import check_layout, check_screen_sheet
 
-OUTPUT_BYTES_PER_OBSERVATION = 60 * 8   # about 60 columns of 8 bytes in the cells table, before compression
+OUTPUT_BYTES_PER_OBSERVATION = 60 * 8  # about 60 columns of 8 bytes in the cells table, before compression
 
 
 @dataclass
@@ -48,9 +48,11 @@ class CheckReport:
             lines += [f"  - {p.message}" for p in found]
         if self.estimate:
             e = self.estimate
-            lines.append(f"run estimate: {e['plates']:.0f} plates, {e['wells']:.0f} wells, {e['images']:.0f} image files "
-                         f"({e['image_gb']:.2f} GB), {e['jobs']:.0f} jobs; outputs about {e['output_gb']:.2f} GB "
-                         f"(assuming {e['assumed_objects_per_frame']:.0f} nuclei per site and frame)")
+            lines.append(
+                f"run estimate: {e['plates']:.0f} plates, {e['wells']:.0f} wells, {e['images']:.0f} image files "
+                f"({e['image_gb']:.2f} GB), {e['jobs']:.0f} jobs; outputs about {e['output_gb']:.2f} GB "
+                f"(assuming {e['assumed_objects_per_frame']:.0f} nuclei per site and frame)"
+            )
         return "\n".join(lines)
 
 
@@ -61,30 +63,49 @@ def _series_problems(index: ImageIndex, wells: list[str], channels: list[str]) -
     if table.empty:
         return problems, 0
     distinct = table.groupby(["well", "site"])["channel"].nunique()
-    for well, site in distinct[distinct < len(channels)].index:       # only the few incomplete sites in Python
+    for well, site in distinct[distinct < len(channels)].index:  # only the few incomplete sites in Python
         found = set(table.loc[(table["well"] == well) & (table["site"] == site), "channel"])
         for channel in channels:
             if channel not in found:
-                problems.append(InputError(f"well {well}, site {site}", f"no image for channel {channel!r}.",
-                                           "copy or export the missing channel, or check images.filename_template."))
+                problems.append(
+                    InputError(
+                        f"well {well}, site {site}",
+                        f"no image for channel {channel!r}.",
+                        "copy or export the missing channel, or check images.filename_template.",
+                    )
+                )
     if index.stacks:
         return problems, 0
     series = table.groupby(["well", "site", "channel"])["frame"].agg(["min", "max", "count"])
     for (well, site, channel), row in series[series["max"] - series["min"] + 1 != series["count"]].iterrows():
-        frames = set(table.loc[(table["well"] == well) & (table["site"] == site) & (table["channel"] == channel), "frame"])
+        frames = set(
+            table.loc[(table["well"] == well) & (table["site"] == site) & (table["channel"] == channel), "frame"]
+        )
         missing = sorted(set(range(int(row["min"]), int(row["max"]) + 1)) - frames)
-        problems.append(InputError(f"well {well}, site {site}, channel {channel}", f"frames {missing} are missing.",
-                                   "re-export the missing frames (a run would flag them and go on)."))
+        problems.append(
+            InputError(
+                f"well {well}, site {site}, channel {channel}",
+                f"frames {missing} are missing.",
+                "re-export the missing frames (a run would flag them and go on).",
+            )
+        )
     counts = series["max"] - series["min"] + 1
     uneven = counts.groupby(level=["well", "site"]).nunique() > 1
     for well, site in uneven[uneven].index:
         detail = ", ".join(f"{c}: {int(n)}" for c, n in counts.loc[well].loc[site].items())
-        problems.append(InputError(f"well {well}, site {site}", f"channels have different frame counts ({detail}).",
-                                   "re-export the shorter series (a run would flag the missing frames)."))
+        problems.append(
+            InputError(
+                f"well {well}, site {site}",
+                f"channels have different frame counts ({detail}).",
+                "re-export the shorter series (a run would flag the missing frames).",
+            )
+        )
     return problems, int(counts.groupby(level=["well", "site"]).max().sum())
 
 
-def _header_problems(index: ImageIndex, wells: list[str], shapes: dict[tuple[int, ...], str]) -> tuple[list[InputError], int]:
+def _header_problems(
+    index: ImageIndex, wells: list[str], shapes: dict[tuple[int, ...], str]
+) -> tuple[list[InputError], int]:
     """Unreadable files, image sizes that differ, stacks of different page counts; and the site-frames of stacks."""
     table = index.table[index.table["well"].isin(wells)]
     problems: list[InputError] = []
@@ -95,21 +116,35 @@ def _header_problems(index: ImageIndex, wells: list[str], shapes: dict[tuple[int
                 shape = tuple(tif.pages[0].shape)
                 if index.stacks:
                     pages.setdefault((row.well, row.site), {})[row.channel] = len(tif.pages)
-        except Exception as error:     # tifffile raises many kinds for corrupt files
-            problems.append(InputError(row.path, f"cannot be read as TIFF ({type(error).__name__}).",
-                                       "re-copy the file from the microscope."))
+        except Exception as error:  # tifffile raises many kinds for corrupt files
+            problems.append(
+                InputError(
+                    row.path,
+                    f"cannot be read as TIFF ({type(error).__name__}).",
+                    "re-copy the file from the microscope.",
+                )
+            )
             continue
         reference = shapes.setdefault(shape, row.path)
         if len(shapes) > 1 and reference == row.path:
             first_shape, first_path = next(iter(shapes.items()))
-            problems.append(InputError(row.path, f"image size {shape} differs from {first_shape} "
-                                       f"({os.path.basename(first_path)}).",
-                                       "all images of a screen must have the same size; re-export at one size."))
+            problems.append(
+                InputError(
+                    row.path,
+                    f"image size {shape} differs from {first_shape} ({os.path.basename(first_path)}).",
+                    "all images of a screen must have the same size; re-export at one size.",
+                )
+            )
     for (well, site), counts in pages.items():
         if len(set(counts.values())) > 1:
             detail = ", ".join(f"{c}: {n}" for c, n in counts.items())
-            problems.append(InputError(f"well {well}, site {site}", f"channels have different frame counts ({detail}).",
-                                       "re-copy the shorter stack (a run would flag the missing frames)."))
+            problems.append(
+                InputError(
+                    f"well {well}, site {site}",
+                    f"channels have different frame counts ({detail}).",
+                    "re-copy the shorter stack (a run would flag the missing frames).",
+                )
+            )
     return problems, sum(max(c.values()) for c in pages.values())
 
 
@@ -143,7 +178,7 @@ def check_screen(config: dict, read_headers: bool = True, assumed_objects_per_fr
     series_cache: dict[tuple, tuple[list[InputError], int]] = {}
     imaged_wells: dict[tuple[str, int], set[str]] = {}
     for entry in entries:
-        if (entry.layout, entry.plate_format) not in layouts:       # plates often share a layout
+        if (entry.layout, entry.plate_format) not in layouts:  # plates often share a layout
             layouts[(entry.layout, entry.plate_format)] = check_layout(entry.layout, entry.plate_format)
         layout, problems = layouts[(entry.layout, entry.plate_format)]
         for problem in problems:
@@ -151,9 +186,14 @@ def check_screen(config: dict, read_headers: bool = True, assumed_objects_per_fr
         demo_folder = os.path.normpath(entry.image_folder) == os.path.join(DEMO_IMAGE_ROOT, entry.plate)
         if not os.path.isdir(entry.image_folder):
             if not demo_folder:
-                report.add("error", InputError(f"{config['screen_sheet']}, plate {entry.plate}, column image_folder",
-                                               f"image folder {entry.image_folder!r} does not exist.",
-                                               "check the path (relative to the folder you run snakemake from)."))
+                report.add(
+                    "error",
+                    InputError(
+                        f"{config['screen_sheet']}, plate {entry.plate}, column image_folder",
+                        f"image folder {entry.image_folder!r} does not exist.",
+                        "check the path (relative to the folder you run snakemake from).",
+                    ),
+                )
             continue
         try:
             key = (entry.image_folder, entry.plate_format)
@@ -166,60 +206,95 @@ def check_screen(config: dict, read_headers: bool = True, assumed_objects_per_fr
         totals["plates"] += 1
         unmatched = [n for n in index.unmatched if not n.startswith(".")]
         if unmatched:
-            shown = ", ".join(repr(n) for n in unmatched[:5]) + (f" and {len(unmatched) - 5} more" if len(unmatched) > 5 else "")
-            report.add("warning", InputError(entry.image_folder, f"{len(unmatched)} file(s) match neither "
-                                             f"images.filename_template {template!r} nor a configured channel: {shown}.",
-                                             "rename them, or adjust the template or channels; they would not be analysed."))
+            shown = ", ".join(repr(n) for n in unmatched[:5]) + (
+                f" and {len(unmatched) - 5} more" if len(unmatched) > 5 else ""
+            )
+            report.add(
+                "warning",
+                InputError(
+                    entry.image_folder,
+                    f"{len(unmatched)} file(s) match neither "
+                    f"images.filename_template {template!r} nor a configured channel: {shown}.",
+                    "rename them, or adjust the template or channels; they would not be analysed.",
+                ),
+            )
         analysed = set(layout.loc[layout["role"] != "empty", "well"])
         imaged = imaged_wells.setdefault(key, set(index.table["well"].to_numpy()))
         no_images = sorted(analysed - imaged)
         if no_images:
-            report.add("error", InputError(f"{entry.layout} (plate {entry.plate})",
-                                           f"{len(no_images)} well(s) in the layout have no images: {', '.join(no_images[:12])}"
-                                           + (" ..." if len(no_images) > 12 else "") + ".",
-                                           "mark them empty in the layout, or add their images to " + entry.image_folder + "."))
+            report.add(
+                "error",
+                InputError(
+                    f"{entry.layout} (plate {entry.plate})",
+                    f"{len(no_images)} well(s) in the layout have no images: {', '.join(no_images[:12])}"
+                    + (" ..." if len(no_images) > 12 else "")
+                    + ".",
+                    "mark them empty in the layout, or add their images to " + entry.image_folder + ".",
+                ),
+            )
         not_in_layout = sorted(imaged - set(layout["well"]))
         if not_in_layout:
-            report.add("warning", InputError(f"{entry.image_folder} (plate {entry.plate})",
-                                             f"{len(not_in_layout)} imaged well(s) have no layout row: "
-                                             f"{', '.join(not_in_layout[:12])}" + (" ..." if len(not_in_layout) > 12 else "") + ".",
-                                             f"add them to {entry.layout} (role empty to skip them on purpose)."))
+            report.add(
+                "warning",
+                InputError(
+                    f"{entry.image_folder} (plate {entry.plate})",
+                    f"{len(not_in_layout)} imaged well(s) have no layout row: "
+                    f"{', '.join(not_in_layout[:12])}" + (" ..." if len(not_in_layout) > 12 else "") + ".",
+                    f"add them to {entry.layout} (role empty to skip them on purpose).",
+                ),
+            )
         wells = sorted(analysed & imaged)
         totals["wells"] += len(wells)
         totals["jobs"] += -(-len(analysed) // int(config.get("chunk_wells", 24))) + 2 + len(channels)
         series_key = (entry.image_folder, entry.plate_format, tuple(wells))
-        if series_key not in series_cache:         # plates sharing a folder and wells share the answer
+        if series_key not in series_cache:  # plates sharing a folder and wells share the answer
             series_cache[series_key] = _series_problems(index, wells, channels)
         series, site_frames = series_cache[series_key]
-        headers, stack_frames = _header_problems(index, wells, shapes) if read_headers and index.source == "tiff" else ([], 0)
+        headers, stack_frames = (
+            _header_problems(index, wells, shapes) if read_headers and index.source == "tiff" else ([], 0)
+        )
         for problem in series + headers:
             severity = "warning" if "missing" in problem.problem or "frame counts" in problem.problem else "error"
             report.add(severity, InputError(f"plate {entry.plate}: {problem.where}", problem.problem, problem.fix))
         totals["site_frames"] += site_frames + stack_frames
         in_wells = index.table["well"].isin(wells).to_numpy()
         totals["images"] += int(in_wells.sum())
-        if read_headers and index.source == "tiff":      # sizes for the run estimate; not needed at start-up
+        if read_headers and index.source == "tiff":  # sizes for the run estimate; not needed at start-up
             totals["image_bytes"] += sum(os.path.getsize(p) for p in index.table["path"].to_numpy()[in_wells])
     images = config["images"]
     if (images.get("pixel_size_um") is None or images.get("frame_interval_min") is None) and entries:
         first = next((sorted(index.table["path"])[0] for index in indexes.values() if len(index.table)), None)
         metadata = read_ome_metadata(first) if first else None
-        missing = [k for k in ("pixel_size_um", "frame_interval_min")
-                   if images.get(k) is None and (metadata is None or getattr(metadata, k) is None)]
+        missing = [
+            k
+            for k in ("pixel_size_um", "frame_interval_min")
+            if images.get(k) is None and (metadata is None or getattr(metadata, k) is None)
+        ]
         if missing:
-            report.add("error", InputError(f"config images ({first or 'no image'})",
-                                           f"{' and '.join(missing)} not set and not in the images' OME metadata.",
-                                           f"set images.{' and images.'.join(missing)} in the config."))
+            report.add(
+                "error",
+                InputError(
+                    f"config images ({first or 'no image'})",
+                    f"{' and '.join(missing)} not set and not in the images' OME metadata.",
+                    f"set images.{' and images.'.join(missing)} in the config.",
+                ),
+            )
     totals["jobs"] += 6 if totals["plates"] else 0
-    report.estimate = {"plates": totals["plates"], "wells": totals["wells"], "images": totals["images"],
-                       "image_gb": totals["image_bytes"] / 1e9, "jobs": totals["jobs"],
-                       "output_gb": totals["site_frames"] * assumed_objects_per_frame * OUTPUT_BYTES_PER_OBSERVATION / 1e9,
-                       "assumed_objects_per_frame": assumed_objects_per_frame}
+    report.estimate = {
+        "plates": totals["plates"],
+        "wells": totals["wells"],
+        "images": totals["images"],
+        "image_gb": totals["image_bytes"] / 1e9,
+        "jobs": totals["jobs"],
+        "output_gb": totals["site_frames"] * assumed_objects_per_frame * OUTPUT_BYTES_PER_OBSERVATION / 1e9,
+        "assumed_objects_per_frame": assumed_objects_per_frame,
+    }
     return report
 
 
 def load_config(path: str) -> dict:
-    """A config file validated against the workflow's schema, defaults filled; every schema problem in one InputError."""
+    """A config file validated against the workflow's schema, defaults filled; every schema problem
+    in one InputError."""
     import jsonschema
     import yaml
     from snakemake.utils import validate

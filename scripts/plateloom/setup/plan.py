@@ -47,14 +47,17 @@ class ScreenPlan:
 
     def well_job_size(self, plate: str, chunk: str) -> JobSize:
         """mem_mb and runtime of the per-well job of one chunk, from the expected image sizes."""
-        return analyse_wells_size(self.imaging[plate], len(self.chunks[plate][int(chunk)]),
-                                  float(self.sizing.get("seconds_per_megapixel_frame", 1.5)),
-                                  float(self.sizing.get("safety_factor", 2.0)))
+        return analyse_wells_size(
+            self.imaging[plate],
+            len(self.chunks[plate][int(chunk)]),
+            float(self.sizing.get("seconds_per_megapixel_frame", 1.5)),
+            float(self.sizing.get("safety_factor", 2.0)),
+        )
 
     def illumination_job_size(self, plate: str, n_planes: int) -> JobSize:
         """mem_mb of the flat-field job: the sampled planes of one channel held at once (float32)."""
         size = self.imaging[plate]
-        planes_mb = n_planes * size.side_px ** 2 * 4 * 3 / 1e6   # planes, their scaled copy, the median's work
+        planes_mb = n_planes * size.side_px**2 * 4 * 3 / 1e6  # planes, their scaled copy, the median's work
         return JobSize(int(-(-(float(self.sizing.get("safety_factor", 2.0)) * (700 + planes_mb)) // 100) * 100), 30)
 
     def screen_job_size(self) -> JobSize:
@@ -71,11 +74,17 @@ def channel_names(config: dict) -> dict[str, str]:
         roles.setdefault(channel["role"], channel["name"])
     segmented = [c["name"] for c in config["channels"] if c["role"] in ("nuclei", "label_free")]
     if not segmented:
-        raise InputError("config channels", "no channel has role nuclei (or label_free).",
-                         "give the nuclear stain role: nuclei (or an unlabelled phase-contrast channel role: label_free).")
+        raise InputError(
+            "config channels",
+            "no channel has role nuclei (or label_free).",
+            "give the nuclear stain role: nuclei (or an unlabelled phase-contrast channel role: label_free).",
+        )
     if len(segmented) > 1:
-        raise InputError("config channels", f"more than one channel has role nuclei or label_free: {segmented}.",
-                         "keep one channel to segment.")
+        raise InputError(
+            "config channels",
+            f"more than one channel has role nuclei or label_free: {segmented}.",
+            "keep one channel to segment.",
+        )
     if sum(c["role"] == "cell_body" for c in config["channels"]) > 1:
         raise InputError("config channels", "more than one channel has role cell_body.", "keep one cell_body channel.")
     names = [c["name"] for c in config["channels"]]
@@ -101,24 +110,35 @@ def plan_screen(config: dict) -> ScreenPlan:
     entries = load_screen_sheet(config["screen_sheet"])
     demo = config.get("demo", {})
     scenario_path = demo.get("scenario") or str(demo_scenario())
-    scenario = (load_scenario(scenario_path, demo.get("frames"), demo.get("image_size_px"))
-                if scenario_path and os.path.isfile(scenario_path) else None)
+    scenario = (
+        load_scenario(scenario_path, demo.get("frames"), demo.get("image_size_px"))
+        if scenario_path and os.path.isfile(scenario_path)
+        else None
+    )
     scenario_plates = demo_plates(scenario) if scenario else {}
     plan = ScreenPlan({}, {}, {})
     plan.sizing = dict(config.get("job_sizing", {}))
-    expected = ImagingSize(int(plan.sizing.get("image_side_px", 1024)), int(plan.sizing.get("frames_per_site", 100)),
-                           int(plan.sizing.get("sites_per_well", 4)), len(config["channels"]))
+    expected = ImagingSize(
+        int(plan.sizing.get("image_side_px", 1024)),
+        int(plan.sizing.get("frames_per_site", 100)),
+        int(plan.sizing.get("sites_per_well", 4)),
+        len(config["channels"]),
+    )
     layouts_by_path: dict[tuple[str, int], pd.DataFrame] = {}
     for entry in entries:
         key = (entry.layout, entry.plate_format)
         if key not in layouts_by_path:
             layouts_by_path[key] = load_layout(entry.layout, entry.plate_format)
         layout = layouts_by_path[key]
-        is_demo = entry.plate in scenario_plates and os.path.normpath(entry.image_folder) == os.path.join(DEMO_IMAGE_ROOT, entry.plate)
+        is_demo = entry.plate in scenario_plates and os.path.normpath(entry.image_folder) == os.path.join(
+            DEMO_IMAGE_ROOT, entry.plate
+        )
         if not is_demo and not os.path.isdir(entry.image_folder):
-            raise InputError(f"{config['screen_sheet']}, plate {entry.plate}, column image_folder",
-                             f"image folder {entry.image_folder!r} does not exist.",
-                             "check the path (relative to the folder you run snakemake from).")
+            raise InputError(
+                f"{config['screen_sheet']}, plate {entry.plate}, column image_folder",
+                f"image folder {entry.image_folder!r} does not exist.",
+                "check the path (relative to the folder you run snakemake from).",
+            )
         wells = analysed_wells(layout)
         if not wells:
             raise InputError(entry.layout, "no well to analyse (all empty).", "give wells a role other than empty.")
@@ -128,14 +148,18 @@ def plan_screen(config: dict) -> ScreenPlan:
         plan.imaging[entry.plate] = expected
         if is_demo:
             plan.demo_plates.add(entry.plate)
-            plan.imaging[entry.plate] = ImagingSize(int(scenario["image_size_px"]), int(scenario["frames"]),
-                                                    int(scenario["sites_per_well"]), len(config["channels"]))
+            plan.imaging[entry.plate] = ImagingSize(
+                int(scenario["image_size_px"]),
+                int(scenario["frames"]),
+                int(scenario["sites_per_well"]),
+                len(config["channels"]),
+            )
     plan.features = resolve_features(config["screen"]["features"], config)
     plan.log_features = resolve_features(config["screen"]["log_scale_features"], config)
     return plan
 
 
-def resolve_image_scale(config: dict, plan: "ScreenPlan") -> dict[str, float]:
+def resolve_image_scale(config: dict, plan: ScreenPlan) -> dict[str, float]:
     """images.pixel_size_um and frame_interval_min: from config, or else from the OME metadata of the
     first image of the first plate whose folder exists (one TIFF header read at start-up)."""
     images = config["images"]
@@ -145,7 +169,9 @@ def resolve_image_scale(config: dict, plan: "ScreenPlan") -> dict[str, float]:
         for plate in sorted(plan.plates):
             folder = plan.plates[plate].image_folder
             if is_zarr_plate(folder):
-                index = index_zarr_plate(folder, plan.plates[plate].plate_format, [c["name"] for c in config["channels"]])
+                index = index_zarr_plate(
+                    folder, plan.plates[plate].plate_format, [c["name"] for c in config["channels"]]
+                )
                 if len(index.table):
                     first = index.table["path"].iloc[0]
                     break

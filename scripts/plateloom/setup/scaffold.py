@@ -52,7 +52,7 @@ def _split(name: str) -> tuple[list[str], str] | None:
     extension = next((e for e in IMAGE_EXTENSIONS if lower.endswith(e)), None)
     if extension is None:
         return None
-    return re.split(SEPARATORS, name[:-len(extension)]), name[-len(extension):]
+    return re.split(SEPARATORS, name[: -len(extension)]), name[-len(extension) :]
 
 
 def infer_template(names: list[str]) -> str:
@@ -65,7 +65,9 @@ def infer_template(names: list[str]) -> str:
     """
     parts = [p for p in (_split(n) for n in names) if p is not None]
     if not parts:
-        raise InputError("image folder", "no .tif/.tiff files found.", "point the scaffold at the folder your microscope wrote.")
+        raise InputError(
+            "image folder", "no .tif/.tiff files found.", "point the scaffold at the folder your microscope wrote."
+        )
     shapes = Counter((tuple(tokens[1::2]), extension) for tokens, extension in parts)
     (separators, extension), _ = shapes.most_common(1)[0]
     group = [tokens for tokens, ext in parts if (tuple(tokens[1::2]), ext) == (separators, extension)]
@@ -82,36 +84,50 @@ def infer_template(names: list[str]) -> str:
             continue
         if all(matches) and len(prefixes) == 1:
             prefix = matches[0].group(1)
-            kind = ("site" if prefix.lower() in SITE_PREFIXES else "frame" if prefix.lower() in FRAME_PREFIXES
-                    else "numbered" if len(distinct) > 1 else "")
+            kind = (
+                "site"
+                if prefix.lower() in SITE_PREFIXES
+                else "frame"
+                if prefix.lower() in FRAME_PREFIXES
+                else "numbered"
+                if len(distinct) > 1
+                else ""
+            )
             if kind:
                 numbered.append((len(fields), kind))
                 fields.append(prefix + "{" + kind + "}")
                 continue
         fields.append(values[0] if len(distinct) == 1 else "{channel}")
     kinds = [k for _, k in numbered]
-    for index, kind in numbered:        # numbered parts without a telling prefix: the first is the site, then the frame
+    for index, kind in numbered:  # numbered parts without a telling prefix: the first is the site, then the frame
         if kind == "numbered":
             chosen = "site" if "site" not in kinds else "frame"
             kinds.append(chosen)
             fields[index] = fields[index].replace("{numbered}", "{" + chosen + "}")
     template = "".join(f + (separators[i] if i < len(separators) else "") for i, f in enumerate(fields)) + extension
-    if "{site}" not in template:         # one site per well: the template needs the field, so none is inferred
-        raise InputError("image folder", f"could not find a site number in names like {names[0]!r} (inferred {template!r}).",
-                         "name files with a site (field) number such as _s1_, or write images.filename_template by hand.")
+    if "{site}" not in template:  # one site per well: the template needs the field, so none is inferred
+        raise InputError(
+            "image folder",
+            f"could not find a site number in names like {names[0]!r} (inferred {template!r}).",
+            "name files with a site (field) number such as _s1_, or write images.filename_template by hand.",
+        )
     template_regex(template)
     return template
 
 
 def find_plates(folder: str) -> list[PlateFolder]:
     """Plates under ``folder``: itself if it holds image files, else each sub-folder that does."""
+
     def images_in(path: str) -> list[str]:
         return sorted(n for n in os.listdir(path) if _split(n) is not None and os.path.isfile(os.path.join(path, n)))
 
     if not os.path.isdir(folder):
         raise InputError(folder, "the image folder does not exist.", "give the folder your microscope wrote.")
-    candidates = [folder] if images_in(folder) else [os.path.join(folder, d) for d in sorted(os.listdir(folder))
-                                                     if os.path.isdir(os.path.join(folder, d))]
+    candidates = (
+        [folder]
+        if images_in(folder)
+        else [os.path.join(folder, d) for d in sorted(os.listdir(folder)) if os.path.isdir(os.path.join(folder, d))]
+    )
     plates = []
     for path in candidates:
         files = images_in(path)
@@ -119,7 +135,9 @@ def find_plates(folder: str) -> list[PlateFolder]:
             plate = re.sub(r"[^A-Za-z0-9._-]", "-", os.path.basename(os.path.normpath(path)))
             plates.append(PlateFolder(plate, path, tuple(files), _imaging_date(os.path.join(path, files[0]))))
     if not plates:
-        raise InputError(folder, "no .tif/.tiff files in it or in its sub-folders.", "point the scaffold at the image folder.")
+        raise InputError(
+            folder, "no .tif/.tiff files in it or in its sub-folders.", "point the scaffold at the image folder."
+        )
     return plates
 
 
@@ -131,7 +149,7 @@ def _imaging_date(path: str) -> str:
         found = re.search(r"<AcquisitionDate>(\d{4}-\d{2}-\d{2})", xml)
         if found:
             return found.group(1)
-    except Exception:   # an unreadable file is reported by the check; the date falls back to the file's
+    except Exception:  # an unreadable file is reported by the check; the date falls back to the file's
         pass
     return dt.date.fromtimestamp(os.path.getmtime(path)).isoformat()
 
@@ -163,33 +181,40 @@ class ScreenSurvey:
     frame_interval_min: float | None
 
     def text(self) -> str:
-        lines = [f"filename template: {self.template}",
-                 f"plates: {len(self.plates)} ({', '.join(f'{p.plate} [{p.batch}, {self.plate_formats[p.plate]} wells]' for p in self.plates)})",
-                 f"wells with images: {sum(len(w) for w in self.wells.values())} "
-                 f"({', '.join(f'{p}: {len(w)}' for p, w in self.wells.items())})",
-                 f"sites per well: {self.sites}; frames per site: {self.frames}",
-                 f"channels: {', '.join(self.channels)}",
-                 f"image size: {' x '.join(map(str, self.image_shape))} pixels, {self.dtype}",
-                 "pixel size: " + (f"{self.pixel_size_um:g} um (OME metadata)" if self.pixel_size_um else "not in the metadata"),
-                 "frame interval: " + (f"{self.frame_interval_min:g} min (OME metadata)" if self.frame_interval_min
-                                       else "not in the metadata")]
+        lines = [
+            f"filename template: {self.template}",
+            f"plates: {len(self.plates)} "
+            f"({', '.join(f'{p.plate} [{p.batch}, {self.plate_formats[p.plate]} wells]' for p in self.plates)})",
+            f"wells with images: {sum(len(w) for w in self.wells.values())} "
+            f"({', '.join(f'{p}: {len(w)}' for p, w in self.wells.items())})",
+            f"sites per well: {self.sites}; frames per site: {self.frames}",
+            f"channels: {', '.join(self.channels)}",
+            f"image size: {' x '.join(map(str, self.image_shape))} pixels, {self.dtype}",
+            "pixel size: "
+            + (f"{self.pixel_size_um:g} um (OME metadata)" if self.pixel_size_um else "not in the metadata"),
+            "frame interval: "
+            + (f"{self.frame_interval_min:g} min (OME metadata)" if self.frame_interval_min else "not in the metadata"),
+        ]
         return "\n".join(lines)
 
 
 def survey_folder(folder: str, plate_format_wells: int | None = None) -> ScreenSurvey:
     """Look at an image folder and describe the screen in it (nothing is written)."""
     plates = find_plates(folder)
-    template = infer_template(list(plates[0].files))     # plates may differ in constant parts (plate names)
+    template = infer_template(list(plates[0].files))  # plates may differ in constant parts (plate names)
     regex = template_regex(template)
     if "{channel}" in template:
         channels = sorted({regex.match(n).group("channel") for p in plates for n in p.files if regex.match(n)})
-    else:                       # one multi-channel OME-TIFF per site: channels named in its metadata
+    else:  # one multi-channel OME-TIFF per site: channels named in its metadata
         first = os.path.join(plates[0].folder, next(n for n in plates[0].files if regex.match(n)))
         metadata = read_ome_metadata(first)
         channels = [channel_key(c) for c in (metadata.channel_names if metadata else ())]
         if not channels:
-            raise InputError(first, "has no {channel} in its name and no channel names in OME metadata.",
-                             "export one file per channel, or OME-TIFF with channel names.")
+            raise InputError(
+                first,
+                "has no {channel} in its name and no channel names in OME metadata.",
+                "export one file per channel, or OME-TIFF with channel names.",
+            )
     formats, wells, sites, frames = {}, {}, 1, 1
     first_path = None
     for plate in plates:
@@ -211,16 +236,31 @@ def survey_folder(folder: str, plate_format_wells: int | None = None) -> ScreenS
         page = tif.pages[0]
         shape, dtype = tuple(page.shape), str(page.dtype)
     metadata = read_ome_metadata(first_path)
-    return ScreenSurvey(template, plates, formats, wells, sites, frames, channels, shape, dtype,
-                        metadata.pixel_size_um if metadata else None, metadata.frame_interval_min if metadata else None)
+    return ScreenSurvey(
+        template,
+        plates,
+        formats,
+        wells,
+        sites,
+        frames,
+        channels,
+        shape,
+        dtype,
+        metadata.pixel_size_um if metadata else None,
+        metadata.frame_interval_min if metadata else None,
+    )
 
 
 def _default_config() -> dict:
     from snakemake.utils import validate
 
     from plateloom.setup.config import SCHEMA as schema
-    config = {"screen_sheet": "", "images": {"filename_template": "{well}_s{site}_{channel}.tif"},
-              "channels": [{"name": "x", "role": "nuclei"}]}
+
+    config = {
+        "screen_sheet": "",
+        "images": {"filename_template": "{well}_s{site}_{channel}.tif"},
+        "channels": [{"name": "x", "role": "nuclei"}],
+    }
     validate(config, schema)
     config.pop("demo", None)
     return config
@@ -233,37 +273,66 @@ def write_scaffold(survey: ScreenSurvey, out: str, force: bool = False) -> list[
     Existing files are kept unless ``force``; the layouts list every imaged well with role
     empty, for the user to fill in.
     """
-    layouts = {size: os.path.join(out, "layouts", f"plate_{size}.csv") for size in sorted(set(survey.plate_formats.values()))}
+    layouts = {
+        size: os.path.join(out, "layouts", f"plate_{size}.csv") for size in sorted(set(survey.plate_formats.values()))
+    }
     targets = [os.path.join(out, "config.yaml"), os.path.join(out, "plates.csv"), *layouts.values()]
     existing = [t for t in targets if os.path.exists(t)]
     if existing and not force:
-        raise InputError(existing[0], "exists already; the scaffold never overwrites a file.",
-                         "choose another --out folder, or add --force to replace the scaffold's files.")
+        raise InputError(
+            existing[0],
+            "exists already; the scaffold never overwrites a file.",
+            "choose another --out folder, or add --force to replace the scaffold's files.",
+        )
     os.makedirs(os.path.join(out, "layouts"), exist_ok=True)
-    sheet = pd.DataFrame([{"plate": p.plate, "batch": p.batch, "plate_format": survey.plate_formats[p.plate],
-                           "layout": layouts[survey.plate_formats[p.plate]], "image_folder": p.folder} for p in survey.plates])
+    sheet = pd.DataFrame(
+        [
+            {
+                "plate": p.plate,
+                "batch": p.batch,
+                "plate_format": survey.plate_formats[p.plate],
+                "layout": layouts[survey.plate_formats[p.plate]],
+                "image_folder": p.folder,
+            }
+            for p in survey.plates
+        ]
+    )
     sheet.to_csv(targets[1], index=False)
     for size, path in layouts.items():
-        imaged = sorted({w for p in survey.plates if survey.plate_formats[p.plate] == size for w in survey.wells[p.plate]},
-                        key=parse_well)
-        pd.DataFrame({"well": imaged, "role": "empty", "condition": "", "dose": "", "dose_unit": ""}).to_csv(path, index=False)
+        imaged = sorted(
+            {w for p in survey.plates if survey.plate_formats[p.plate] == size for w in survey.wells[p.plate]},
+            key=parse_well,
+        )
+        pd.DataFrame({"well": imaged, "role": "empty", "condition": "", "dose": "", "dose_unit": ""}).to_csv(
+            path, index=False
+        )
     nuclear = next((c for c in survey.channels if NUCLEAR_STAINS.search(c)), survey.channels[0])
     others = [c for c in survey.channels if c != nuclear]
-    channels = [{"name": nuclear, "role": "nuclei"}] + [{"name": c, "role": "reporter" if i == 0 else "other"}
-                                                       for i, c in enumerate(others)]
+    channels = [{"name": nuclear, "role": "nuclei"}] + [
+        {"name": c, "role": "reporter" if i == 0 else "other"} for i, c in enumerate(others)
+    ]
     config = _default_config()
     config.update({"screen_sheet": targets[1], "results_dir": os.path.join(out, "results"), "channels": channels})
-    config["images"] = {"filename_template": survey.template, "pixel_size_um": survey.pixel_size_um,
-                        "frame_interval_min": survey.frame_interval_min}
-    config["job_sizing"].update({"image_side_px": int(max(survey.image_shape)), "frames_per_site": survey.frames,
-                                 "sites_per_well": survey.sites})
+    config["images"] = {
+        "filename_template": survey.template,
+        "pixel_size_um": survey.pixel_size_um,
+        "frame_interval_min": survey.frame_interval_min,
+    }
+    config["job_sizing"].update(
+        {
+            "image_side_px": int(max(survey.image_shape)),
+            "frames_per_site": survey.frames,
+            "sites_per_well": survey.sites,
+        }
+    )
     if others and survey.frames >= config["collective"]["min_overlap_frames"]:
         # a reporter imaged long enough for the neighbour readouts: model them too
         config["screen"]["features"] = list(config["screen"]["features"]) + list(MODELLED_READOUTS)
-    header = ("# Written by `plateloom scaffold` from the images it found; every key is described in\n"
-              "# workflow/schemas/config.schema.yaml. Check the channel roles (nuclei = the stain segmented),\n"
-              "# fill in the layouts, then: plateloom check --config " + targets[0] + "\n")
+    header = (
+        "# Written by `plateloom scaffold` from the images it found; every key is described in\n"
+        "# workflow/schemas/config.schema.yaml. Check the channel roles (nuclei = the stain segmented),\n"
+        "# fill in the layouts, then: plateloom check --config " + targets[0] + "\n"
+    )
     with open(targets[0], "w", encoding="utf-8") as handle:
         handle.write(header + yaml.safe_dump(config, sort_keys=False, allow_unicode=True))
     return targets
-

@@ -11,9 +11,9 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass
 
-BASE_MB = 700                 # Python, numpy, scikit-image, pandas, pyarrow loaded
-FRAME_COPIES = 12             # float64 working arrays per channel frame (smoothing, labels, distance, ...)
-BYTES_PER_OBSERVATION = 600   # one row of the cells table in memory, all columns
+BASE_MB = 700  # Python, numpy, scikit-image, pandas, pyarrow loaded
+FRAME_COPIES = 12  # float64 working arrays per channel frame (smoothing, labels, distance, ...)
+BYTES_PER_OBSERVATION = 600  # one row of the cells table in memory, all columns
 OBSERVATIONS_PER_MEGAPIXEL = 300
 
 
@@ -33,21 +33,29 @@ class JobSize:
     runtime_min: int
 
 
-def analyse_wells_size(size: ImagingSize, n_wells: int, seconds_per_megapixel_frame: float,
-                       safety_factor: float) -> JobSize:
+def analyse_wells_size(
+    size: ImagingSize, n_wells: int, seconds_per_megapixel_frame: float, safety_factor: float
+) -> JobSize:
     """Memory and run time of one per-well job over ``n_wells`` wells."""
-    megapixels = size.side_px ** 2 / 1e6
+    megapixels = size.side_px**2 / 1e6
     frame_mb = FRAME_COPIES * size.channels * megapixels * 8
-    well_table_mb = (size.sites_per_well * size.frames_per_site * megapixels * OBSERVATIONS_PER_MEGAPIXEL
-                     * BYTES_PER_OBSERVATION / 1e6)
+    well_table_mb = (
+        size.sites_per_well
+        * size.frames_per_site
+        * megapixels
+        * OBSERVATIONS_PER_MEGAPIXEL
+        * BYTES_PER_OBSERVATION
+        / 1e6
+    )
     mem = safety_factor * (BASE_MB + frame_mb + well_table_mb)
-    seconds = (n_wells * size.sites_per_well * size.frames_per_site * size.channels * megapixels
-               * seconds_per_megapixel_frame)
+    seconds = (
+        n_wells * size.sites_per_well * size.frames_per_site * size.channels * megapixels * seconds_per_megapixel_frame
+    )
     return JobSize(int(math.ceil(mem / 100) * 100), max(5, int(math.ceil(safety_factor * seconds / 60))))
 
 
 def screen_size(n_wells: int, n_features: int, safety_factor: float) -> JobSize:
     """Memory and run time of a screen-level job over ``n_wells`` well profiles."""
-    table_mb = n_wells * (n_features + 20) * 8 * 20 / 1e6     # profiles, corrected copy, design matrices
+    table_mb = n_wells * (n_features + 20) * 8 * 20 / 1e6  # profiles, corrected copy, design matrices
     mem = safety_factor * (BASE_MB + table_mb)
     return JobSize(int(math.ceil(mem / 100) * 100), max(10, int(math.ceil(safety_factor * n_wells * n_features / 2e4))))

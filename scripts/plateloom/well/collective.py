@@ -54,13 +54,14 @@ class CollectiveSettings:
     seed: int = 1
 
     @classmethod
-    def from_config(cls, config: dict) -> "CollectiveSettings":
+    def from_config(cls, config: dict) -> CollectiveSettings:
         """From the validated config (the schema rejects unknown keys)."""
         return cls(**(config.get("collective") or {}))
 
 
 # ---------------------------------------------------------------------------------------------
 # Neighbour graph
+
 
 def delaunay_edges(xy: np.ndarray, max_edge_um: float) -> np.ndarray:
     """Edges (i, j), i < j, of the Delaunay triangulation of points ``xy`` (n, 2; um) no longer than ``max_edge_um``."""
@@ -83,8 +84,9 @@ def delaunay_edges(xy: np.ndarray, max_edge_um: float) -> np.ndarray:
     return edges[length <= max_edge_um].astype(np.int64)
 
 
-def track_neighbour_pairs(frame: np.ndarray, track: np.ndarray, x: np.ndarray, y: np.ndarray,
-                          max_edge_um: float, min_fraction: float) -> np.ndarray:
+def track_neighbour_pairs(
+    frame: np.ndarray, track: np.ndarray, x: np.ndarray, y: np.ndarray, max_edge_um: float, min_fraction: float
+) -> np.ndarray:
     """Pairs of track ids (a < b) joined by a Delaunay edge in >= ``min_fraction`` of the frames both are present."""
     ids = np.unique(track)
     if len(ids) < 2:
@@ -97,11 +99,13 @@ def track_neighbour_pairs(frame: np.ndarray, track: np.ndarray, x: np.ndarray, y
     order = np.argsort(frame, kind="stable")
     bounds = np.searchsorted(frame[order], np.arange(n_frames + 1))
     for f in range(n_frames):
-        members = order[bounds[f]:bounds[f + 1]]
+        members = order[bounds[f] : bounds[f + 1]]
         edges = delaunay_edges(np.column_stack([x[members], y[members]]), max_edge_um)
         a, b = rows[members[edges[:, 0]]], rows[members[edges[:, 1]]]
         keys.append(np.minimum(a, b) * len(ids) + np.maximum(a, b))
-    joined_keys, joined = np.unique(np.concatenate(keys), return_counts=True) if keys else (np.empty(0, int), np.empty(0, int))
+    joined_keys, joined = (
+        np.unique(np.concatenate(keys), return_counts=True) if keys else (np.empty(0, int), np.empty(0, int))
+    )
     a, b = joined_keys // len(ids), joined_keys % len(ids)
     together = (present[a] & present[b]).sum(axis=1)
     keep = joined >= min_fraction * together
@@ -127,6 +131,7 @@ def pairs_at_distance_two(pairs: np.ndarray) -> np.ndarray:
 # ---------------------------------------------------------------------------------------------
 # Traces
 
+
 def detrend_rows(matrix: np.ndarray) -> np.ndarray:
     """Each row minus its least-squares line over its finite entries (NaN kept)."""
     finite = np.isfinite(matrix)
@@ -136,7 +141,9 @@ def detrend_rows(matrix: np.ndarray) -> np.ndarray:
         t_mean = np.where(finite, t, 0).sum(axis=1, keepdims=True) / n
         v_mean = np.where(finite, matrix, 0).sum(axis=1, keepdims=True) / n
         dt = np.where(finite, t - t_mean, 0)
-        slope = (dt * np.where(finite, matrix - v_mean, 0)).sum(axis=1, keepdims=True) / (dt**2).sum(axis=1, keepdims=True)
+        slope = (dt * np.where(finite, matrix - v_mean, 0)).sum(axis=1, keepdims=True) / (dt**2).sum(
+            axis=1, keepdims=True
+        )
     slope = np.nan_to_num(slope)
     return np.where(finite, matrix - v_mean - slope * (t - t_mean), np.nan)
 
@@ -173,9 +180,10 @@ def remove_dominant_oscillation(detrended: np.ndarray, padding: int = 16) -> np.
         block = np.nan_to_num(detrended[rows, first:last])
         peak = dominant_frequency(block, padding, below_nyquist=True)  # at Nyquist the sine column is all 0
         angle = 2 * np.pi * peak[:, None] * np.arange(n)[None, :]
-        design = np.stack([np.sin(angle), np.cos(angle)], axis=2)                    # (rows, n, 2)
-        coefficients = np.linalg.solve(np.einsum("rni,rnj->rij", design, design),
-                                       np.einsum("rni,rn->ri", design, block)[..., None])
+        design = np.stack([np.sin(angle), np.cos(angle)], axis=2)  # (rows, n, 2)
+        coefficients = np.linalg.solve(
+            np.einsum("rni,rnj->rij", design, design), np.einsum("rni,rn->ri", design, block)[..., None]
+        )
         residual[rows, first:last] = block - (design @ coefficients)[..., 0]
     return residual
 
@@ -214,10 +222,11 @@ def pair_correlations(traces: np.ndarray, pairs_rows: np.ndarray, min_overlap: i
 # ---------------------------------------------------------------------------------------------
 # Granger causality, vectorised over pairs
 
+
 def _lag_design(series: np.ndarray, lag: int, start: int) -> np.ndarray:
     """(pairs, n - start, lag) matrix of series values at t-1 .. t-lag for t = start .. n-1."""
     n = series.shape[1]
-    return np.stack([series[:, start - k:n - k] for k in range(1, lag + 1)], axis=2)
+    return np.stack([series[:, start - k : n - k] for k in range(1, lag + 1)], axis=2)
 
 
 def _residual_ss(design: np.ndarray, response: np.ndarray) -> np.ndarray:
@@ -282,7 +291,9 @@ def choose_granger_lag(effect: np.ndarray, cause: np.ndarray, max_lag: int, crit
     return np.nanargmin(np.where(np.isfinite(scores), scores, np.inf), axis=0) + 1
 
 
-def granger_tests(effect: np.ndarray, cause: np.ndarray, max_lag: int, criterion: str = "bic") -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def granger_tests(
+    effect: np.ndarray, cause: np.ndarray, max_lag: int, criterion: str = "bic"
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Per row pair: (chosen lag, F, p-value) of the Granger test that ``cause`` helps predict ``effect``."""
     lag = choose_granger_lag(effect, cause, max_lag, criterion)
     f, p = np.full(len(lag), np.nan), np.full(len(lag), np.nan)
@@ -295,8 +306,17 @@ def granger_tests(effect: np.ndarray, cause: np.ndarray, max_lag: int, criterion
 # ---------------------------------------------------------------------------------------------
 # Events and their spreading
 
-def knox_test(x: np.ndarray, y: np.ndarray, frame: np.ndarray, group: np.ndarray, radius_um: float,
-              window_frames: int, n_permutations: int, rng: np.random.Generator) -> tuple[int, float, float]:
+
+def knox_test(
+    x: np.ndarray,
+    y: np.ndarray,
+    frame: np.ndarray,
+    group: np.ndarray,
+    radius_um: float,
+    window_frames: int,
+    n_permutations: int,
+    rng: np.random.Generator,
+) -> tuple[int, float, float]:
     """Knox (1964) test of space-time clustering of events, Monte Carlo over permuted event times.
 
     Counts pairs of events of the same ``group`` (site) within ``radius_um`` and
@@ -321,8 +341,9 @@ def knox_test(x: np.ndarray, y: np.ndarray, frame: np.ndarray, group: np.ndarray
     return observed, float(permuted.mean()), float((1 + (permuted >= observed).sum()) / (1 + n_permutations))
 
 
-def reporter_events(frame: np.ndarray, track: np.ndarray, values: np.ndarray, at_border: np.ndarray,
-                    last_frame: int, jump_ratio: float) -> np.ndarray:
+def reporter_events(
+    frame: np.ndarray, track: np.ndarray, values: np.ndarray, at_border: np.ndarray, last_frame: int, jump_ratio: float
+) -> np.ndarray:
     """Row indices of events: the last observation of a track that ends before ``last_frame``, away
     from the border, with the reporter at >= ``jump_ratio`` times the track's median before it."""
     order = np.lexsort((frame, track))
@@ -345,13 +366,19 @@ def reporter_events(frame: np.ndarray, track: np.ndarray, values: np.ndarray, at
 
 COUNT_COLUMNS = ("n_neighbour_links", "n_coupling_tests", "n_events", "spreading_p_value")
 # The readouts worth modelling, as screen.features entries ({reporter}: the reporter channel's name).
-MODELLED_READOUTS = ("phase_order_{reporter}", "neighbour_correlation_{reporter}", "coupled_link_fraction_{reporter}",
-                     "coupled_link_fraction_d2_{reporter}", "spreading_index")
+MODELLED_READOUTS = (
+    "phase_order_{reporter}",
+    "neighbour_correlation_{reporter}",
+    "coupled_link_fraction_{reporter}",
+    "coupled_link_fraction_d2_{reporter}",
+    "spreading_index",
+)
 
 
 def _site_traces(cells: pd.DataFrame, channel: str, ids: np.ndarray) -> np.ndarray:
-    _, values = track_matrix(cells["frame"].to_numpy(), cells["track"].to_numpy(),
-                             cells[f"mean_intensity_{channel}"].to_numpy(float), ids)
+    _, values = track_matrix(
+        cells["frame"].to_numpy(), cells["track"].to_numpy(), cells[f"mean_intensity_{channel}"].to_numpy(float), ids
+    )
     return detrend_rows(fill_inner_gaps(values))
 
 
@@ -363,7 +390,9 @@ def _directed_tests(traces: np.ndarray, rows: np.ndarray, settings: CollectiveSe
     both = np.isfinite(a) & np.isfinite(b)
     _, start, stop = row_spans(both)
     both &= (both.sum(axis=1) == stop - start)[:, None]  # pairs whose common frames have a gap are not tested
-    shortest = max(settings.min_overlap_frames, 3 * settings.max_lag_frames + 2)  # leaves >= 1 residual df at the top lag
+    shortest = max(
+        settings.min_overlap_frames, 3 * settings.max_lag_frames + 2
+    )  # leaves >= 1 residual df at the top lag
     p_values = np.full((len(rows), 2), np.nan)
     for first, last, group in _span_groups(both, shortest):
         x, y = a[group, first:last], b[group, first:last]
@@ -372,8 +401,9 @@ def _directed_tests(traces: np.ndarray, rows: np.ndarray, settings: CollectiveSe
     return p_values.ravel()
 
 
-def well_collective_readouts(cells: pd.DataFrame, reporters: list[str], settings: CollectiveSettings,
-                             frame_interval_min: float, well: str) -> dict[str, float]:
+def well_collective_readouts(
+    cells: pd.DataFrame, reporters: list[str], settings: CollectiveSettings, frame_interval_min: float, well: str
+) -> dict[str, float]:
     """One row of collective readouts for a well from its cells table (columns site, frame, track,
     centroid_x_um, centroid_y_um, touches_border, mean_intensity_<reporter>).
 
@@ -381,9 +411,9 @@ def well_collective_readouts(cells: pd.DataFrame, reporters: list[str], settings
     of cells, (N r^2 - 1) / (N - 1), averaged over frames with >= 3 phases, then sites; 0 for
     independent phases, 1 for identical ones), time_to_synchrony_min (first time r reaches
     ``synchrony_level``; censored at the end of imaging, one interval after the last frame),
-    neighbour_correlation (mean over neighbour track pairs), coupled_link_fraction (share of directed neighbour links with a Granger
-    q-value <= ``coupling_q_value``; BH over all of the well's tests; each trace's dominant
-    oscillation removed first) and the same for pairs at
+    neighbour_correlation (mean over neighbour track pairs), coupled_link_fraction (share of
+    directed neighbour links with a Granger q-value <= ``coupling_q_value``; BH over all of the
+    well's tests; each trace's dominant oscillation removed first) and the same for pairs at
     graph distance 2. spreading_index = (observed + 1) / (expected + 1) Knox pairs of events of
     the first reporter (1: no clustering beyond chance).
     """
@@ -424,20 +454,28 @@ def well_collective_readouts(cells: pd.DataFrame, reporters: list[str], settings
         p1 = np.concatenate(s["p1"]) if s["p1"] else np.empty(0)
         p2 = np.concatenate(s["p2"]) if s["p2"] else np.empty(0)
         q = bh_qvalues(np.concatenate([p1, p2]))
-        q1, q2 = q[:len(p1)], q[len(p1):]
+        q1, q2 = q[: len(p1)], q[len(p1) :]
         n_tests = max(n_tests, int(np.isfinite(q).sum()))
         row[f"phase_order_{channel}"] = float(np.mean(s["order"])) if s["order"] else np.nan
         row[f"time_to_synchrony_min_{channel}"] = float(np.mean(s["time"])) if s["time"] else np.nan
         row[f"neighbour_correlation_{channel}"] = _nanmean(correlations)
         row[f"coupled_link_fraction_{channel}"] = _fraction_below(q1, settings.coupling_q_value)
         row[f"coupled_link_fraction_d2_{channel}"] = _fraction_below(q2, settings.coupling_q_value)
-    events = pd.concat(event_parts, ignore_index=True) if event_parts else pd.DataFrame(columns=["site", "frame", "x", "y"])
+    events = (
+        pd.concat(event_parts, ignore_index=True) if event_parts else pd.DataFrame(columns=["site", "frame", "x", "y"])
+    )
     rng = np.random.default_rng([settings.seed, zlib.crc32(str(well).encode())])
     if reporters and len(events) >= 2:
-        observed, expected, p_value = knox_test(events["x"].to_numpy(float), events["y"].to_numpy(float),
-                                                events["frame"].to_numpy(float), events["site"].to_numpy(),
-                                                settings.event_radius_um, settings.event_window_frames,
-                                                settings.n_permutations, rng)
+        observed, expected, p_value = knox_test(
+            events["x"].to_numpy(float),
+            events["y"].to_numpy(float),
+            events["frame"].to_numpy(float),
+            events["site"].to_numpy(),
+            settings.event_radius_um,
+            settings.event_window_frames,
+            settings.n_permutations,
+            rng,
+        )
         row["spreading_index"] = (observed + 1.0) / (expected + 1.0)
         row["spreading_p_value"] = p_value
     else:

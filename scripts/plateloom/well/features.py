@@ -2,9 +2,10 @@
 
 Every measure is computed from the object pixels of the whole frame at once (``np.bincount``
 over label ids), not object by object, the convex hulls (for solidity) included. Shape
-measures reproduce scikit-image's ``regionprops`` definitions (tests check equality): area, perimeter (4-connected border weighted as in ``skimage.measure.perimeter``),
-axis lengths and eccentricity from the second central moments, solidity from the convex hull
-of the pixel-edge midpoints.
+measures reproduce scikit-image's ``regionprops`` definitions (tests check equality): area,
+perimeter (4-connected border weighted as in ``skimage.measure.perimeter``), axis lengths and
+eccentricity from the second central moments, solidity from the convex hull of the pixel-edge
+midpoints.
 """
 
 from __future__ import annotations
@@ -39,9 +40,9 @@ class ObjectPixels:
     starts: np.ndarray  # first position of each label 1..count in the sorted arrays
 
     @classmethod
-    def of(cls, labels: np.ndarray) -> "ObjectPixels":
+    def of(cls, labels: np.ndarray) -> ObjectPixels:
         flat = labels.ravel()
-        index = np.flatnonzero(flat != 0)      # on a bool image: several times faster than on int32
+        index = np.flatnonzero(flat != 0)  # on a bool image: several times faster than on int32
         order = np.argsort(flat[index], kind="stable")
         index = index[order]
         label = flat[index].astype(np.int64)
@@ -71,7 +72,16 @@ def perimeters(labels: np.ndarray, pixels: ObjectPixels) -> tuple[np.ndarray, np
     border_image[pixels.row[~interior] + 1, pixels.col[~interior] + 1] = True
     rows, cols, lab = pixels.row[~interior] + 1, pixels.col[~interior] + 1, own[~interior]
     code = np.ones(len(lab), np.int64)
-    for dy, dx, weight in ((-1, 0, 2), (1, 0, 2), (0, -1, 2), (0, 1, 2), (-1, -1, 10), (-1, 1, 10), (1, -1, 10), (1, 1, 10)):
+    for dy, dx, weight in (
+        (-1, 0, 2),
+        (1, 0, 2),
+        (0, -1, 2),
+        (0, 1, 2),
+        (-1, -1, 10),
+        (-1, 1, 10),
+        (1, -1, 10),
+        (1, 1, 10),
+    ):
         same = (padded[rows + dy, cols + dx] == lab) & border_image[rows + dy, cols + dx]
         code += weight * same
     return np.bincount(lab, PERIMETER_WEIGHTS[code], minlength=pixels.count + 1)[1:], ~interior
@@ -91,9 +101,10 @@ def _convex_minorant(y: np.ndarray, x: np.ndarray, count: np.ndarray) -> np.ndar
             if len(rows) == 0:
                 break
             a, b = stack[rows, size[rows] - 2], stack[rows, size[rows] - 1]
-            cross = ((y[rows, b] - y[rows, a]) * (x[rows, k] - x[rows, a])
-                     - (x[rows, b] - x[rows, a]) * (y[rows, k] - y[rows, a]))
-            pop = cross <= 0          # b is not left of the chord a-k: not on the minorant
+            cross = (y[rows, b] - y[rows, a]) * (x[rows, k] - x[rows, a]) - (x[rows, b] - x[rows, a]) * (
+                y[rows, k] - y[rows, a]
+            )
+            pop = cross <= 0  # b is not left of the chord a-k: not on the minorant
             if not pop.any():
                 break
             size[rows[pop]] -= 1
@@ -105,7 +116,9 @@ def _convex_minorant(y: np.ndarray, x: np.ndarray, count: np.ndarray) -> np.ndar
     return on_chain
 
 
-def _envelope_at(obj: np.ndarray, y: np.ndarray, x: np.ndarray, query_obj: np.ndarray, query_y: np.ndarray) -> np.ndarray:
+def _envelope_at(
+    obj: np.ndarray, y: np.ndarray, x: np.ndarray, query_obj: np.ndarray, query_y: np.ndarray
+) -> np.ndarray:
     """x of each object's chain (vertices sorted by object, then y) at the query heights, by interpolation."""
     span = int(max(y.max(), query_y.max())) + 2
     keys = obj * span + y
@@ -150,19 +163,27 @@ def convex_areas(pixels: ObjectPixels, border: np.ndarray) -> np.ndarray:
     padded_left[line_label - 1, position] = leftmost
     padded_right[line_label - 1, position] = -rightmost
     # both chains in one run of the monotone chain (its cost is per step, not per object)
-    on_chain = _convex_minorant(np.concatenate([padded_y, padded_y]), np.concatenate([padded_left, padded_right]),
-                                np.concatenate([counts, counts]))
+    on_chain = _convex_minorant(
+        np.concatenate([padded_y, padded_y]),
+        np.concatenate([padded_left, padded_right]),
+        np.concatenate([counts, counts]),
+    )
     keep_left, keep_right = on_chain[line_label - 1, position], on_chain[n + line_label - 1, position]
-    pixel_rows = line_y % 2 == 0          # doubled y of pixel centres is even
+    pixel_rows = line_y % 2 == 0  # doubled y of pixel centres is even
     query_label, query_y = line_label[pixel_rows], line_y[pixel_rows]
-    low = _envelope_at(line_label[keep_left], line_y[keep_left], leftmost[keep_left].astype(float), query_label, query_y)
-    high = _envelope_at(line_label[keep_right], line_y[keep_right], rightmost[keep_right].astype(float), query_label, query_y)
+    low = _envelope_at(
+        line_label[keep_left], line_y[keep_left], leftmost[keep_left].astype(float), query_label, query_y
+    )
+    high = _envelope_at(
+        line_label[keep_right], line_y[keep_right], rightmost[keep_right].astype(float), query_label, query_y
+    )
     inside = np.floor(high / 2 + 1e-9) - np.ceil(low / 2 - 1e-9) + 1
     return np.bincount(query_label, np.maximum(inside, 0), minlength=n + 1)[1:]
 
 
-def glcm_measures(image: np.ndarray, labels: np.ndarray, pixels: ObjectPixels, distance_px: int,
-                  levels: int = 8) -> dict[str, np.ndarray]:
+def glcm_measures(
+    image: np.ndarray, labels: np.ndarray, pixels: ObjectPixels, distance_px: int, levels: int = 8
+) -> dict[str, np.ndarray]:
     """Grey-level co-occurrence texture (Haralick, Shanmugam & Dinstein 1973) of every object.
 
     Each object's grey levels are rescaled to ``levels`` levels between its own minimum and
@@ -210,9 +231,17 @@ def glcm_measures(image: np.ndarray, labels: np.ndarray, pixels: ObjectPixels, d
     return {p: v / len(GLCM_ANGLES) for p, v in results.items()}
 
 
-def measure_objects(labels: np.ndarray, planes: np.ndarray, channels: list[str], background: np.ndarray,
-                    pixel_size_um: float, cells: np.ndarray | None = None, texture_channels: list[str] | None = None,
-                    texture_distance_px: int = 2, texture_levels: int = 8) -> pd.DataFrame:
+def measure_objects(
+    labels: np.ndarray,
+    planes: np.ndarray,
+    channels: list[str],
+    background: np.ndarray,
+    pixel_size_um: float,
+    cells: np.ndarray | None = None,
+    texture_channels: list[str] | None = None,
+    texture_distance_px: int = 2,
+    texture_levels: int = 8,
+) -> pd.DataFrame:
     """Measure every labelled nucleus of one frame.
 
     ``planes`` is (channels, y, x); ``background`` the per-channel background level that is
@@ -229,8 +258,12 @@ def measure_objects(labels: np.ndarray, planes: np.ndarray, channels: list[str],
     texture_channels = [] if texture_channels is None else list(texture_channels)
     columns = object_columns(channels, texture_channels, cells is not None)
     if labels.max() == 0:
-        return pd.DataFrame({c: pd.Series(dtype="bool" if c == "touches_border" else "int64" if c == "object" else "float64")
-                             for c in columns})
+        return pd.DataFrame(
+            {
+                c: pd.Series(dtype="bool" if c == "touches_border" else "int64" if c == "object" else "float64")
+                for c in columns
+            }
+        )
     pixels = ObjectPixels.of(labels)
     n = pixels.count
     area = pixels.sums()
@@ -283,37 +316,61 @@ def _touching_border(labels: np.ndarray, count: int) -> np.ndarray:
     return touches[1:]
 
 
-def _cytoplasm_measures(nuclei: np.ndarray, cells: np.ndarray, planes: np.ndarray, channels: list[str],
-                        background: np.ndarray, pixel_size_um: float, nucleus_table: dict, n: int) -> dict[str, np.ndarray]:
+def _cytoplasm_measures(
+    nuclei: np.ndarray,
+    cells: np.ndarray,
+    planes: np.ndarray,
+    channels: list[str],
+    background: np.ndarray,
+    pixel_size_um: float,
+    nucleus_table: dict,
+    n: int,
+) -> dict[str, np.ndarray]:
     flat = cells.ravel()
     index = np.flatnonzero(flat != 0)
     label = flat[index]
     in_cytoplasm = (nuclei.ravel()[index] == 0) & (label <= n)
     cytoplasm_index, cytoplasm_label = index[in_cytoplasm], label[in_cytoplasm]
-    cell_area = np.bincount(label[label <= n], minlength=n + 1)[1:n + 1].astype(float)
-    cytoplasm_area = np.bincount(cytoplasm_label, minlength=n + 1)[1:n + 1].astype(float)
+    cell_area = np.bincount(label[label <= n], minlength=n + 1)[1 : n + 1].astype(float)
+    cytoplasm_area = np.bincount(cytoplasm_label, minlength=n + 1)[1 : n + 1].astype(float)
     out = {"cell_area_um2": cell_area * pixel_size_um**2, "cytoplasm_area_um2": cytoplasm_area * pixel_size_um**2}
     out["touches_border"] = nucleus_table["touches_border"] | _touching_border(cells, n)
     for index, channel in enumerate(channels):
         value = planes[index].ravel()[cytoplasm_index].astype(np.float64)
-        total = np.bincount(cytoplasm_label, value, minlength=n + 1)[1:n + 1]
+        total = np.bincount(cytoplasm_label, value, minlength=n + 1)[1 : n + 1]
         with np.errstate(invalid="ignore", divide="ignore"):
             mean = np.where(cytoplasm_area > 0, total / np.maximum(cytoplasm_area, 1) - background[index], np.nan)
             out[f"cytoplasm_mean_intensity_{channel}"] = mean
-            out[f"nuclear_cytoplasmic_ratio_{channel}"] = np.where(mean > 0, nucleus_table[f"mean_intensity_{channel}"] / mean,
-                                                                   np.nan)
+            out[f"nuclear_cytoplasmic_ratio_{channel}"] = np.where(
+                mean > 0, nucleus_table[f"mean_intensity_{channel}"] / mean, np.nan
+            )
     return out
 
 
 def object_columns(channels: list[str], texture_channels: list[str], with_cells: bool) -> list[str]:
     """Column order of the per-observation table ``measure_objects`` returns."""
-    columns = (["object", "area_um2", "perimeter_um", "eccentricity", "solidity", "major_axis_um", "minor_axis_um",
-                "form_factor", "centroid_x_um", "centroid_y_um", "touches_border"]
-               + [f"{kind}_intensity_{c}" for c in channels for kind in ("mean", "integrated", "std")]
-               + [f"glcm_{p}_{c}" for c in texture_channels for p in GLCM_PROPERTIES])
+    columns = (
+        [
+            "object",
+            "area_um2",
+            "perimeter_um",
+            "eccentricity",
+            "solidity",
+            "major_axis_um",
+            "minor_axis_um",
+            "form_factor",
+            "centroid_x_um",
+            "centroid_y_um",
+            "touches_border",
+        ]
+        + [f"{kind}_intensity_{c}" for c in channels for kind in ("mean", "integrated", "std")]
+        + [f"glcm_{p}_{c}" for c in texture_channels for p in GLCM_PROPERTIES]
+    )
     if with_cells:
         columns += ["cell_area_um2", "cytoplasm_area_um2"]
-        columns += [f"{kind}_{c}" for c in channels for kind in ("cytoplasm_mean_intensity", "nuclear_cytoplasmic_ratio")]
+        columns += [
+            f"{kind}_{c}" for c in channels for kind in ("cytoplasm_mean_intensity", "nuclear_cytoplasmic_ratio")
+        ]
     return columns
 
 

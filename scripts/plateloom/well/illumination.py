@@ -31,12 +31,15 @@ class IlluminationSettings:
     percentile: float = 25.0
 
     @classmethod
-    def from_config(cls, config: dict) -> "IlluminationSettings":
+    def from_config(cls, config: dict) -> IlluminationSettings:
         section = config.get("illumination", {})
-        return cls(section.get("method", cls.method), int(section.get("max_sites", cls.max_sites)),
-                   int(section.get("frames_per_site", cls.frames_per_site)),
-                   float(section.get("smoothing_sigma_um", cls.smoothing_sigma_um)),
-                   float(section.get("percentile", cls.percentile)))
+        return cls(
+            section.get("method", cls.method),
+            int(section.get("max_sites", cls.max_sites)),
+            int(section.get("frames_per_site", cls.frames_per_site)),
+            float(section.get("smoothing_sigma_um", cls.smoothing_sigma_um)),
+            float(section.get("percentile", cls.percentile)),
+        )
 
 
 def sampled_sites(index: ImageIndex, max_sites: int) -> list[tuple[str, int]]:
@@ -55,30 +58,39 @@ def flat_field_from_planes(planes: np.ndarray, sigma_px: float, percentile: floa
     if np.any(scale <= 0):
         scale = np.where(scale > 0, scale, np.mean(planes.reshape(len(planes), -1), axis=1))
     if np.any(scale <= 0):
-        raise InputError("illumination estimate", "a sampled image is black (median and mean 0).",
-                         "exclude black sites or set illumination.method: none.")
+        raise InputError(
+            "illumination estimate",
+            "a sampled image is black (median and mean 0).",
+            "exclude black sites or set illumination.method: none.",
+        )
     profile = np.percentile(planes / scale[:, None, None], percentile, axis=0)
     profile = ndimage.gaussian_filter(profile, sigma_px, mode="nearest")
     return (profile / profile.mean()).astype(np.float32)
 
 
-def estimate_flat_field(index: ImageIndex, channel: str, channels: list[str], settings: IlluminationSettings,
-                        pixel_size_um: float) -> tuple[np.ndarray, int, list[str]]:
+def estimate_flat_field(
+    index: ImageIndex, channel: str, channels: list[str], settings: IlluminationSettings, pixel_size_um: float
+) -> tuple[np.ndarray, int, list[str]]:
     """Profile of one channel of one plate, the number of planes used, and the sites skipped (with why).
 
     A sampled site that cannot be read is skipped and named (its own per-well job reports it as an
     error); the estimate fails only when fewer than 3 planes are left.
     """
     if channel not in channels:
-        raise InputError(f"illumination of channel {channel}", f"channel {channel!r} is not in config channels {channels}.",
-                         "use a channel name from config channels.")
+        raise InputError(
+            f"illumination of channel {channel}",
+            f"channel {channel!r} is not in config channels {channels}.",
+            "use a channel name from config channels.",
+        )
     planes, skipped = [], []
     for well, site in sampled_sites(index, settings.max_sites):
         site_planes = []
         try:
             # only this channel is read; the per-well jobs check that all channels of a site agree
             n_frames = site_frame_count(index, well, site, [channel])
-            wanted = set(np.linspace(0, n_frames - 1, min(settings.frames_per_site, n_frames)).round().astype(int).tolist())
+            wanted = set(
+                np.linspace(0, n_frames - 1, min(settings.frames_per_site, n_frames)).round().astype(int).tolist()
+            )
             frames = stream_site(index, well, site, [channel])
             try:
                 for position, item in enumerate(frames):
@@ -96,8 +108,11 @@ def estimate_flat_field(index: ImageIndex, channel: str, channels: list[str], se
             continue
         planes += site_planes
     if len(planes) < 3:
-        raise InputError(f"illumination of channel {channel}", f"only {len(planes)} readable image(s) to estimate it from.",
-                         "a flat field needs many sites: set illumination.method: none for plates this small.")
+        raise InputError(
+            f"illumination of channel {channel}",
+            f"only {len(planes)} readable image(s) to estimate it from.",
+            "a flat field needs many sites: set illumination.method: none for plates this small.",
+        )
     profile = flat_field_from_planes(np.stack(planes), settings.smoothing_sigma_um / pixel_size_um, settings.percentile)
     return profile, len(planes), skipped
 
@@ -107,6 +122,9 @@ def apply_flat_field(planes: np.ndarray, profiles: np.ndarray | None) -> np.ndar
     if profiles is None:
         return planes
     if profiles.shape != planes.shape:
-        raise InputError("illumination profiles", f"profile shape {profiles.shape} differs from the images {planes.shape}.",
-                         "delete results/illumination and rerun, so the profiles are estimated from these images.")
+        raise InputError(
+            "illumination profiles",
+            f"profile shape {profiles.shape} differs from the images {planes.shape}.",
+            "delete results/illumination and rerun, so the profiles are estimated from these images.",
+        )
     return planes / profiles

@@ -9,7 +9,7 @@ whose shape says they may hold more than one nucleus.
 
 from __future__ import annotations
 
-from typing import Callable
+from collections.abc import Callable
 
 import numpy as np
 from scipy import ndimage
@@ -42,8 +42,8 @@ BODY_BINNING_MIN_SIGMA_PX = 2.0
 BODY_BINNING_MIN_SIDE_PX = 32
 
 THRESHOLD_METHODS: dict[str, Callable[[np.ndarray], float]] = {
-    "otsu": threshold_otsu,          # Otsu 1979, IEEE Trans. SMC 9:62
-    "li": threshold_li,              # Li & Tam 1998, Pattern Recognit. Lett. 19:771
+    "otsu": threshold_otsu,  # Otsu 1979, IEEE Trans. SMC 9:62
+    "li": threshold_li,  # Li & Tam 1998, Pattern Recognit. Lett. 19:771
     "triangle": threshold_triangle,  # Zack, Rogers & Latt 1977, J. Histochem. Cytochem. 25:741
 }
 
@@ -65,11 +65,13 @@ def smooth_image(image: np.ndarray, sigma_px: float) -> np.ndarray:
     kernel /= kernel.sum()
     rows = ndimage.correlate1d(image, kernel, axis=1, mode="reflect")
     height = image.shape[0]
-    padded = np.pad(rows, ((radius, radius), (0, 0)), mode="symmetric")   # numpy's "symmetric" = scipy's "reflect"
-    out = padded[radius:radius + height] * np.float32(kernel[radius])
+    padded = np.pad(rows, ((radius, radius), (0, 0)), mode="symmetric")  # numpy's "symmetric" = scipy's "reflect"
+    out = padded[radius : radius + height] * np.float32(kernel[radius])
     pair = np.empty_like(out)
     for shift in range(1, radius + 1):
-        np.add(padded[radius - shift:radius - shift + height], padded[radius + shift:radius + shift + height], out=pair)
+        np.add(
+            padded[radius - shift : radius - shift + height], padded[radius + shift : radius + shift + height], out=pair
+        )
         pair *= np.float32(kernel[radius + shift])
         out += pair
     return out
@@ -83,7 +85,7 @@ def object_threshold(smooth: np.ndarray, method: str = "otsu") -> float:
     """
     if method not in THRESHOLD_METHODS:
         raise ValueError(f"unknown threshold method {method!r}; use one of {sorted(THRESHOLD_METHODS)}")
-    low, high = float(smooth.min()), float(smooth.max())   # NaN anywhere makes both NaN
+    low, high = float(smooth.min()), float(smooth.max())  # NaN anywhere makes both NaN
     if not (np.isfinite(low) and np.isfinite(high)) or high == low:
         return float("nan")
     # Whether the field holds objects is judged on the Otsu split whatever the method: contrast
@@ -100,7 +102,7 @@ def object_threshold(smooth: np.ndarray, method: str = "otsu") -> float:
     if len(below) < 16 or len(above) == 0:
         return float("nan")
     below_median = float(np.median(below))
-    noise_sd = 1.4826 * float(np.median(np.abs(below - below_median)))     # robust SD: 1.4826 x MAD
+    noise_sd = 1.4826 * float(np.median(np.abs(below - below_median)))  # robust SD: 1.4826 x MAD
     if np.median(above) - below_median < MIN_CONTRAST_NOISE_SDS * max(noise_sd, 1e-6):
         return float("nan")
     return threshold
@@ -112,7 +114,7 @@ def fill_holes(mask: np.ndarray) -> np.ndarray:
     if count == 0:
         return mask.copy()
     edge = np.unique(np.concatenate([background[0], background[-1], background[:, 0], background[:, -1]]))
-    if np.count_nonzero(edge) == count:       # every background region reaches the border: no hole
+    if np.count_nonzero(edge) == count:  # every background region reaches the border: no hole
         return mask.copy()
     outside = np.zeros(count + 1, bool)
     outside[edge] = True
@@ -123,15 +125,14 @@ def _object_pixels(labels: np.ndarray, index: np.ndarray | None) -> tuple[np.nda
     """Flat index and label of every object pixel; ``index`` (flat indices holding every object
     pixel, maybe more) spares a pass over the whole image."""
     if index is None:
-        index = np.flatnonzero(labels > 0)     # on a bool image: several times faster than on int32
+        index = np.flatnonzero(labels > 0)  # on a bool image: several times faster than on int32
         return index, labels.ravel()[index]
     label = labels.ravel()[index]
     inside = label > 0
     return index[inside], label[inside]
 
 
-def _bounding_boxes(index: np.ndarray, label: np.ndarray, wanted: np.ndarray,
-                    width: int) -> list[tuple[slice, slice]]:
+def _bounding_boxes(index: np.ndarray, label: np.ndarray, wanted: np.ndarray, width: int) -> list[tuple[slice, slice]]:
     """Bounding boxes (as ``ndimage.find_objects``) of the ``wanted`` labels, from their pixels'
     flat indices, without a pass over the whole image."""
     is_wanted = np.zeros(int(max(label.max(initial=0), wanted.max(initial=0))) + 1, bool)
@@ -142,14 +143,22 @@ def _bounding_boxes(index: np.ndarray, label: np.ndarray, wanted: np.ndarray,
     index, label = index[order], label[order]
     starts = np.flatnonzero(np.diff(label, prepend=-1))
     y, x = np.divmod(index, width)
-    boxes = np.stack([np.minimum.reduceat(y, starts), np.maximum.reduceat(y, starts) + 1,
-                      np.minimum.reduceat(x, starts), np.maximum.reduceat(x, starts) + 1], axis=1)
+    boxes = np.stack(
+        [
+            np.minimum.reduceat(y, starts),
+            np.maximum.reduceat(y, starts) + 1,
+            np.minimum.reduceat(x, starts),
+            np.maximum.reduceat(x, starts) + 1,
+        ],
+        axis=1,
+    )
     found = dict(zip(label[starts].tolist(), boxes.tolist()))
     return [(slice(found[w][0], found[w][1]), slice(found[w][2], found[w][3])) for w in wanted.tolist()]
 
 
-def _component_shapes(components: np.ndarray, count: int,
-                      index: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
+def _component_shapes(
+    components: np.ndarray, count: int, index: np.ndarray | None = None
+) -> tuple[np.ndarray, np.ndarray]:
     """Area (pixels) and fill of the moment ellipse (area / (4 pi sqrt(det covariance))) of labels 1..count."""
     index, label = _object_pixels(components, index)
     y, x = np.divmod(index, components.shape[1])
@@ -157,7 +166,7 @@ def _component_shapes(components: np.ndarray, count: int,
     safe = np.maximum(area, 1)
     my, mx = np.bincount(label, y, count + 1) / safe, np.bincount(label, x, count + 1) / safe
     dy, dx = y - my[label], x - mx[label]
-    vyy = np.bincount(label, dy * dy, count + 1) / safe + 1 / 12   # + 1/12: a pixel is a unit square
+    vyy = np.bincount(label, dy * dy, count + 1) / safe + 1 / 12  # + 1/12: a pixel is a unit square
     vxx = np.bincount(label, dx * dx, count + 1) / safe + 1 / 12
     vxy = np.bincount(label, dy * dx, count + 1) / safe
     ellipse_area = 4 * np.pi * np.sqrt(np.maximum(vyy * vxx - vxy**2, 1e-12))
@@ -178,7 +187,7 @@ def _split_components(masks: list[np.ndarray], min_distance_px: int) -> list[np.
     starts = np.cumsum([1] + [m.shape[1] + 1 for m in masks])
     piece = np.zeros((height, int(starts[-1])), np.int32)
     for number, (mask, start) in enumerate(zip(masks, starts), start=1):
-        piece[1:1 + mask.shape[0], start:start + mask.shape[1]][mask] = number
+        piece[1 : 1 + mask.shape[0], start : start + mask.shape[1]][mask] = number
     strip = piece > 0
     distance = ndimage.distance_transform_edt(strip)
     peaks = peak_local_max(distance, min_distance=min_distance_px, labels=piece, exclude_border=False)
@@ -199,15 +208,19 @@ def _split_components(masks: list[np.ndarray], min_distance_px: int) -> list[np.
         if not split[number]:
             out.append(mask.astype(np.int32))
             continue
-        local = parts[1:1 + mask.shape[0], start:start + mask.shape[1]]
-        ids, renumbered = np.unique(local, return_inverse=True)     # 0 first, then the seeds in raster order
-        out.append(renumbered.reshape(local.shape).astype(np.int32) if ids[0] == 0
-                   else renumbered.reshape(local.shape).astype(np.int32) + 1)
+        local = parts[1 : 1 + mask.shape[0], start : start + mask.shape[1]]
+        ids, renumbered = np.unique(local, return_inverse=True)  # 0 first, then the seeds in raster order
+        out.append(
+            renumbered.reshape(local.shape).astype(np.int32)
+            if ids[0] == 0
+            else renumbered.reshape(local.shape).astype(np.int32) + 1
+        )
     return out
 
 
-def split_touching(components: np.ndarray, count: int, min_distance_px: int,
-                   index: np.ndarray | None = None) -> np.ndarray:
+def split_touching(
+    components: np.ndarray, count: int, min_distance_px: int, index: np.ndarray | None = None
+) -> np.ndarray:
     """Labels after splitting the components that may hold touching nuclei; the rest are kept whole.
 
     ``components`` holds ids 1..count, some of which may be unused (area 0); ``index``, if
@@ -217,8 +230,10 @@ def split_touching(components: np.ndarray, count: int, min_distance_px: int,
     present = area > 0
     if not present.any():
         return components
-    candidates = np.flatnonzero(present & ((area > SPLIT_AREA_FACTOR * np.median(area[present]))
-                                           | (fill < SPLIT_ELLIPSE_FILL))) + 1
+    candidates = (
+        np.flatnonzero(present & ((area > SPLIT_AREA_FACTOR * np.median(area[present])) | (fill < SPLIT_ELLIPSE_FILL)))
+        + 1
+    )
     labels = components.astype(np.int32, copy=True)
     if len(candidates) == 0:
         return labels
@@ -237,8 +252,9 @@ def split_touching(components: np.ndarray, count: int, min_distance_px: int,
     return labels
 
 
-def half_maximum_masks(labels: np.ndarray, smooth: np.ndarray, background: float,
-                       index: np.ndarray | None = None) -> np.ndarray:
+def half_maximum_masks(
+    labels: np.ndarray, smooth: np.ndarray, background: float, index: np.ndarray | None = None
+) -> np.ndarray:
     """Trim each object to the pixels above half its own peak height over background.
 
     The global threshold places dim and bright nuclei's edges at different depths of their
@@ -250,7 +266,7 @@ def half_maximum_masks(labels: np.ndarray, smooth: np.ndarray, background: float
         return labels
     count = int(label.max())
     value = smooth.ravel()[index]
-    order = np.argsort(label, kind="stable")          # per-object maxima by one sort (faster than maximum.at)
+    order = np.argsort(label, kind="stable")  # per-object maxima by one sort (faster than maximum.at)
     sorted_label = label[order]
     starts = np.flatnonzero(np.diff(sorted_label, prepend=-1))
     peak = np.full(count + 1, -np.inf, dtype=np.float64)
@@ -274,9 +290,14 @@ def _drop_small(labels: np.ndarray, min_area_px: int, index: np.ndarray | None =
     return out
 
 
-def segment_nuclei(image: np.ndarray, pixel_size_um: float, smoothing_sigma_um: float,
-                   min_area_um2: float, split_min_distance_um: float,
-                   threshold_method: str = "otsu") -> tuple[np.ndarray, float]:
+def segment_nuclei(
+    image: np.ndarray,
+    pixel_size_um: float,
+    smoothing_sigma_um: float,
+    min_area_um2: float,
+    split_min_distance_um: float,
+    threshold_method: str = "otsu",
+) -> tuple[np.ndarray, float]:
     """Label the nuclei of one 2-D image.
 
     Returns (labels, threshold): labels is int32 with 0 as background and 1..n the nuclei;
@@ -289,8 +310,13 @@ def segment_nuclei(image: np.ndarray, pixel_size_um: float, smoothing_sigma_um: 
     return segment_smoothed(smooth, pixel_size_um, min_area_um2, split_min_distance_um, threshold_method)
 
 
-def segment_smoothed(smooth: np.ndarray, pixel_size_um: float, min_area_um2: float, split_min_distance_um: float,
-                     threshold_method: str = "otsu") -> tuple[np.ndarray, float]:
+def segment_smoothed(
+    smooth: np.ndarray,
+    pixel_size_um: float,
+    min_area_um2: float,
+    split_min_distance_um: float,
+    threshold_method: str = "otsu",
+) -> tuple[np.ndarray, float]:
     """``segment_nuclei`` on an image already smoothed (float32)."""
     empty = np.zeros(smooth.shape, np.int32)
     threshold = object_threshold(smooth, threshold_method)
@@ -305,7 +331,7 @@ def segment_smoothed(smooth: np.ndarray, pixel_size_um: float, min_area_um2: flo
     small[0] = False
     if small.all() or count == 0:
         return empty, threshold
-    if small.any():                       # debris removed; the other components keep their ids
+    if small.any():  # debris removed; the other components keep their ids
         debris = small[components.ravel()[index]]
         components.ravel()[index[debris]] = 0
         mask.ravel()[index[debris]] = False
@@ -327,8 +353,14 @@ def local_standard_deviation(image: np.ndarray, window_px: int) -> np.ndarray:
     return np.sqrt(np.maximum(mean_square - mean * mean, 0.0))
 
 
-def segment_label_free(image: np.ndarray, pixel_size_um: float, window_um: float, min_area_um2: float,
-                       split_min_distance_um: float, threshold_method: str = "otsu") -> tuple[np.ndarray, float]:
+def segment_label_free(
+    image: np.ndarray,
+    pixel_size_um: float,
+    window_um: float,
+    min_area_um2: float,
+    split_min_distance_um: float,
+    threshold_method: str = "otsu",
+) -> tuple[np.ndarray, float]:
     """Label cells in a phase-contrast or bright-field image (no fluorescent label).
 
     Cells are textured and the empty dish is smooth, so the foreground is where the local
@@ -352,8 +384,13 @@ def segment_label_free(image: np.ndarray, pixel_size_um: float, window_um: float
     return _drop_small(labels, min_area_px), threshold
 
 
-def grow_cell_bodies(nuclei: np.ndarray, body_image: np.ndarray, pixel_size_um: float, smoothing_sigma_um: float,
-                     threshold_method: str = "otsu") -> np.ndarray:
+def grow_cell_bodies(
+    nuclei: np.ndarray,
+    body_image: np.ndarray,
+    pixel_size_um: float,
+    smoothing_sigma_um: float,
+    threshold_method: str = "otsu",
+) -> np.ndarray:
     """Cell-body labels grown from the nuclei on a cytoplasm or membrane channel.
 
     The body channel is smoothed and thresholded (its own foreground); a watershed on the
@@ -398,7 +435,6 @@ def _block_reduce(image: np.ndarray, size: int, reduce: Callable) -> np.ndarray:
     return out
 
 
-
 def _upsample2(image: np.ndarray) -> np.ndarray:
     """Bilinear interpolation of a 2x2-binned image onto the full pixel grid (twice its size).
 
@@ -417,14 +453,15 @@ def _upsample2(image: np.ndarray) -> np.ndarray:
     return out
 
 
-def _grow_cell_bodies_binned(nuclei: np.ndarray, body_image: np.ndarray, sigma_px: float,
-                             threshold_method: str) -> np.ndarray:
+def _grow_cell_bodies_binned(
+    nuclei: np.ndarray, body_image: np.ndarray, sigma_px: float, threshold_method: str
+) -> np.ndarray:
     height, width = nuclei.shape
     binned = _block_reduce(body_image.astype(np.float32, copy=False), 2, np.add) * np.float32(0.25)
     # a 2-pixel box already blurs by a variance of 1/3 px^2; the Gaussian adds the rest, in binned pixels
     smooth = smooth_image(binned, np.sqrt(sigma_px**2 - 1 / 3) / 2)
     bodies, threshold = _seeded_bodies(_block_reduce(nuclei, 2, np.maximum), smooth, threshold_method)
-    if np.isnan(threshold):            # no foreground in the body channel: each cell is its nucleus
+    if np.isnan(threshold):  # no foreground in the body channel: each cell is its nucleus
         return nuclei.astype(np.int32, copy=True)
     rows, cols = bodies.shape
     # the outer edge at full resolution: the interpolated smooth image against the same threshold
@@ -432,11 +469,11 @@ def _grow_cell_bodies_binned(nuclei: np.ndarray, body_image: np.ndarray, sigma_p
     # each binned body pixel covers its 2x2 block of foreground pixels (one pass, no upsampled copy)
     out = np.where(foreground.reshape(rows, 2, cols, 2), bodies[:, None, :, None], 0).reshape(2 * rows, 2 * cols)
     out = np.ascontiguousarray(out[:height, :width])
-    np.copyto(out, nuclei, where=nuclei > 0)                        # every nucleus pixel keeps its own label
+    np.copyto(out, nuclei, where=nuclei > 0)  # every nucleus pixel keeps its own label
     # foreground pixels just outside the binned bodies take the largest label among their 8 neighbours;
     # they lie in empty blocks next to a body block, so only those blocks' pixels are looked at
     inside = bodies > 0
-    near = inside.copy()                        # 3x3 dilation by shifted ORs, rows then columns
+    near = inside.copy()  # 3x3 dilation by shifted ORs, rows then columns
     near[1:] |= inside[:-1]
     near[:-1] |= inside[1:]
     widened = near.copy()
@@ -451,8 +488,12 @@ def _grow_cell_bodies_binned(nuclei: np.ndarray, body_image: np.ndarray, sigma_p
     is_gap = foreground[y, x] & (out[y, x] == 0)
     y, x = y[is_gap], x[is_gap]
     if len(y):
-        neighbours = [bodies[np.clip(y + dy, 0, height - 1) // 2, np.clip(x + dx, 0, width - 1) // 2]
-                      for dy in (-1, 0, 1) for dx in (-1, 0, 1) if dy or dx]
+        neighbours = [
+            bodies[np.clip(y + dy, 0, height - 1) // 2, np.clip(x + dx, 0, width - 1) // 2]
+            for dy in (-1, 0, 1)
+            for dx in (-1, 0, 1)
+            if dy or dx
+        ]
         out[y, x] = np.maximum.reduce(neighbours)
     return out
 
@@ -489,6 +530,5 @@ def focus_score(smooth: np.ndarray) -> float:
         return float("nan")
     rows = np.arange(1, smooth.shape[0] - 1, FOCUS_ROW_STRIDE)
     centre = smooth[rows]
-    laplacian = (smooth[rows - 1, 1:-1] + smooth[rows + 1, 1:-1] + centre[:, :-2] + centre[:, 2:]
-                 - 4 * centre[:, 1:-1])
+    laplacian = smooth[rows - 1, 1:-1] + smooth[rows + 1, 1:-1] + centre[:, :-2] + centre[:, 2:] - 4 * centre[:, 1:-1]
     return float(laplacian.var(dtype=np.float64) / mean**2)

@@ -57,69 +57,112 @@ class WellSettings:
     label_free_window_um: float = 5.0
     cell_body_channel: str | None = None
     cell_body_smoothing_sigma_um: float = 2.0
-    texture_channels: tuple[str, ...] | None = None   # None: the nuclei channel
+    texture_channels: tuple[str, ...] | None = None  # None: the nuclei channel
     texture_distance_um: float = 1.6
     texture_levels: int = 8
     reporter_channels: tuple[str, ...] = ()
     msd_max_lag_frames: int = 20
 
     @classmethod
-    def from_config(cls, config: dict) -> "WellSettings":
+    def from_config(cls, config: dict) -> WellSettings:
         channels = tuple(c["name"] for c in config["channels"])
         roles = [c["role"] for c in config["channels"]]
         segmented = [c["name"] for c in config["channels"] if c["role"] in ("nuclei", "label_free")]
         seg, trk, img = config["segmentation"], config["tracking"], config["images"]
         measure = config.get("measurement", {})
         texture = measure.get("texture_channels")
-        return cls(channels, segmented[0], img["pixel_size_um"], img["frame_interval_min"], seg["smoothing_sigma_um"],
-                   seg["min_nucleus_area_um2"], seg["split_min_distance_um"], trk["max_displacement_um"],
-                   trk["min_track_frames"], int(trk.get("max_gap_frames", 2)), trk.get("division_max_distance_um"),
-                   float(measure.get("neighbour_radius_um", 25.0)), seg.get("threshold_method", "otsu"),
-                   "label_free" in roles, float(seg.get("label_free_window_um", 5.0)),
-                   next((c for c, r in zip(channels, roles) if r == "cell_body"), None),
-                   float(seg.get("cell_body_smoothing_sigma_um", 2.0)), None if texture is None else tuple(texture),
-                   float(measure.get("texture_distance_um", 1.6)), int(measure.get("texture_levels", 8)),
-                   tuple(c for c, r in zip(channels, roles) if r == "reporter"), int(trk.get("msd_max_lag_frames", 20)))
+        return cls(
+            channels,
+            segmented[0],
+            img["pixel_size_um"],
+            img["frame_interval_min"],
+            seg["smoothing_sigma_um"],
+            seg["min_nucleus_area_um2"],
+            seg["split_min_distance_um"],
+            trk["max_displacement_um"],
+            trk["min_track_frames"],
+            int(trk.get("max_gap_frames", 2)),
+            trk.get("division_max_distance_um"),
+            float(measure.get("neighbour_radius_um", 25.0)),
+            seg.get("threshold_method", "otsu"),
+            "label_free" in roles,
+            float(seg.get("label_free_window_um", 5.0)),
+            next((c for c, r in zip(channels, roles) if r == "cell_body"), None),
+            float(seg.get("cell_body_smoothing_sigma_um", 2.0)),
+            None if texture is None else tuple(texture),
+            float(measure.get("texture_distance_um", 1.6)),
+            int(measure.get("texture_levels", 8)),
+            tuple(c for c, r in zip(channels, roles) if r == "reporter"),
+            int(trk.get("msd_max_lag_frames", 20)),
+        )
 
     @property
     def measured_texture_channels(self) -> list[str]:
         return [self.nuclei_channel] if self.texture_channels is None else list(self.texture_channels)
 
 
-def segment_frame(planes: np.ndarray, settings: WellSettings) -> tuple[np.ndarray, np.ndarray | None, float, np.ndarray]:
+def segment_frame(
+    planes: np.ndarray, settings: WellSettings
+) -> tuple[np.ndarray, np.ndarray | None, float, np.ndarray]:
     """Objects of one frame: (nuclei labels, cell-body labels or None, threshold, smoothed segmented channel)."""
     channels = list(settings.channels)
     image = planes[channels.index(settings.nuclei_channel)]
     smooth = smooth_image(image, settings.smoothing_sigma_um / settings.pixel_size_um)
     if settings.label_free:
-        labels, threshold = segment_label_free(image, settings.pixel_size_um, settings.label_free_window_um,
-                                               settings.min_nucleus_area_um2, settings.split_min_distance_um,
-                                               settings.threshold_method)
+        labels, threshold = segment_label_free(
+            image,
+            settings.pixel_size_um,
+            settings.label_free_window_um,
+            settings.min_nucleus_area_um2,
+            settings.split_min_distance_um,
+            settings.threshold_method,
+        )
     else:
-        labels, threshold = segment_smoothed(smooth, settings.pixel_size_um, settings.min_nucleus_area_um2,
-                                             settings.split_min_distance_um, settings.threshold_method)
+        labels, threshold = segment_smoothed(
+            smooth,
+            settings.pixel_size_um,
+            settings.min_nucleus_area_um2,
+            settings.split_min_distance_um,
+            settings.threshold_method,
+        )
     bodies = None
     if settings.cell_body_channel:
-        bodies = grow_cell_bodies(labels, planes[channels.index(settings.cell_body_channel)], settings.pixel_size_um,
-                                  settings.cell_body_smoothing_sigma_um, settings.threshold_method)
+        bodies = grow_cell_bodies(
+            labels,
+            planes[channels.index(settings.cell_body_channel)],
+            settings.pixel_size_um,
+            settings.cell_body_smoothing_sigma_um,
+            settings.threshold_method,
+        )
     return labels, bodies, threshold, smooth
 
 
-def measure_frame(planes: np.ndarray, labels: np.ndarray, bodies: np.ndarray | None,
-                  settings: WellSettings) -> tuple[pd.DataFrame, np.ndarray]:
+def measure_frame(
+    planes: np.ndarray, labels: np.ndarray, bodies: np.ndarray | None, settings: WellSettings
+) -> tuple[pd.DataFrame, np.ndarray]:
     """Per-object table of one frame (shape, intensity, texture, cytoplasm, neighbours) and the channel backgrounds."""
     channels = list(settings.channels)
     background = background_levels(planes, labels if bodies is None else bodies)
     distance_px = max(1, int(round(settings.texture_distance_um / settings.pixel_size_um)))
-    table = measure_objects(labels, planes, channels, background, settings.pixel_size_um, bodies,
-                            settings.measured_texture_channels, distance_px, settings.texture_levels)
+    table = measure_objects(
+        labels,
+        planes,
+        channels,
+        background,
+        settings.pixel_size_um,
+        bodies,
+        settings.measured_texture_channels,
+        distance_px,
+        settings.texture_levels,
+    )
     xy = table[["centroid_x_um", "centroid_y_um"]].to_numpy()
     table["neighbours"], table["nearest_neighbour_um"] = neighbourhood(xy, settings.neighbour_radius_um)
     return table, background
 
 
-def analyse_site(index: ImageIndex, well: str, site: int, settings: WellSettings,
-                 flat_field: np.ndarray | None = None) -> tuple[pd.DataFrame, pd.DataFrame]:
+def analyse_site(
+    index: ImageIndex, well: str, site: int, settings: WellSettings, flat_field: np.ndarray | None = None
+) -> tuple[pd.DataFrame, pd.DataFrame]:
     """Observations (with track ids local to the site) and per-frame QC of one site.
 
     ``flat_field`` (channels, y, x), if given, divides every frame before segmentation and
@@ -135,8 +178,16 @@ def analyse_site(index: ImageIndex, well: str, site: int, settings: WellSettings
     for item in stream_site(index, well, site, channels):
         qc = {"site": site, "frame": item.frame}
         if item.problem:
-            qc.update({"n_objects": 0, "foreground_fraction": np.nan, "threshold": np.nan, "focus_score": np.nan,
-                       "empty_field": False, "frame_problem": item.problem})
+            qc.update(
+                {
+                    "n_objects": 0,
+                    "foreground_fraction": np.nan,
+                    "threshold": np.nan,
+                    "focus_score": np.nan,
+                    "empty_field": False,
+                    "frame_problem": item.problem,
+                }
+            )
             qc.update({f"background_{c}": np.nan for c in channels})
             qc.update({f"saturated_fraction_{c}": np.nan for c in channels})
             qc_rows.append(qc)
@@ -155,25 +206,40 @@ def analyse_site(index: ImageIndex, well: str, site: int, settings: WellSettings
         table.insert(0, "frame", item.frame)
         table.insert(1, "track", tracks.astype(np.int64))
         observations.append(table)
-        qc.update({"n_objects": len(table), "foreground_fraction": np.count_nonzero(labels) / labels.size, "threshold": threshold,
-                   "focus_score": focus_score(smooth), "empty_field": len(table) == 0, "frame_problem": ""})
+        qc.update(
+            {
+                "n_objects": len(table),
+                "foreground_fraction": np.count_nonzero(labels) / labels.size,
+                "threshold": threshold,
+                "focus_score": focus_score(smooth),
+                "empty_field": len(table) == 0,
+                "frame_problem": "",
+            }
+        )
         qc.update({f"background_{c}": float(b) for c, b in zip(channels, background)})
         qc.update({f"saturated_fraction_{c}": float(f) for c, f in zip(channels, item.saturated)})
         qc_rows.append(qc)
         previous_xy, previous_tracks = xy, tracks.astype(np.int64)
     if usable_frames == 0:
         first = qc_rows[0]["frame_problem"] if qc_rows else f"well {well}, site {site}: no frames"
-        raise InputError(f"well {well}, site {site}", f"no frame of this site can be used; the first problem: {first}",
-                         "fix the files of this site (every frame is affected, so this is not a glitch of one frame).")
+        raise InputError(
+            f"well {well}, site {site}",
+            f"no frame of this site can be used; the first problem: {first}",
+            "fix the files of this site (every frame is affected, so this is not a glitch of one frame).",
+        )
     cells = pd.concat(observations, ignore_index=True)
     cells.insert(0, "site", site)
     cells["parent_track"] = -1
     if len(cells):
         frame, x, y = cells["frame"].to_numpy(), cells["centroid_x_um"].to_numpy(), cells["centroid_y_um"].to_numpy()
-        track = close_gaps(frame, cells["track"].to_numpy(), x, y, settings.max_gap_frames, settings.max_displacement_um)
+        track = close_gaps(
+            frame, cells["track"].to_numpy(), x, y, settings.max_gap_frames, settings.max_displacement_um
+        )
         if settings.division_max_distance_um:
             track, parents = find_divisions(frame, track, x, y, settings.division_max_distance_um)
-            cells["parent_track"] = pd.Series(parents.set_index("track")["parent_track"]).reindex(track).fillna(-1).to_numpy(np.int64)
+            cells["parent_track"] = (
+                pd.Series(parents.set_index("track")["parent_track"]).reindex(track).fillna(-1).to_numpy(np.int64)
+            )
         cells["track"] = track
     return cells, pd.DataFrame(qc_rows)
 
@@ -186,8 +252,10 @@ def track_table(cells: pd.DataFrame, settings: WellSettings) -> pd.DataFrame:
     tracks = pd.DataFrame(motion)
     if tracks.empty:
         extra = ["walk_speed_um_per_min", "persistence_time_min"] + [
-            f"{column}_{c}" for c in settings.reporter_channels
-            for column in ("track_mean", "track_cv", "period_min", "peaks_per_h", "max_rate_per_min")]
+            f"{column}_{c}"
+            for c in settings.reporter_channels
+            for column in ("track_mean", "track_cv", "period_min", "peaks_per_h", "max_rate_per_min")
+        ]
         return tracks.assign(**{column: pd.Series(dtype=float) for column in extra})
     ids = tracks["track"].to_numpy()
     long_enough = tracks["n_frames"].to_numpy() >= settings.min_track_frames
@@ -197,29 +265,38 @@ def track_table(cells: pd.DataFrame, settings: WellSettings) -> pd.DataFrame:
     msd, pairs = mean_squared_displacement(x_matrix, y_matrix, max_lag)
     observed = np.isfinite(x_matrix)
     span = x_matrix.shape[1] - observed[:, ::-1].argmax(axis=1) - observed.argmax(axis=1)
-    pairs[np.arange(1, max_lag + 1)[None, :] > (span // 2)[:, None]] = 0      # a track uses lags up to half its span
+    pairs[np.arange(1, max_lag + 1)[None, :] > (span // 2)[:, None]] = 0  # a track uses lags up to half its span
     walk_speed, persistence = fit_persistent_walk(msd, pairs, settings.frame_interval_min)
     tracks["walk_speed_um_per_min"] = np.where(long_enough, walk_speed, np.nan)
     tracks["persistence_time_min"] = np.where(long_enough, persistence, np.nan)
     for channel in settings.reporter_channels:
         _, values = track_matrix(frame, track, cells[f"mean_intensity_{channel}"].to_numpy(), ids)
         dynamics = reporter_dynamics(values, settings.frame_interval_min, settings.min_track_frames)
-        for name, column in (("mean", "track_mean"), ("cv", "track_cv"), ("period_min", "period_min"),
-                             ("peaks_per_h", "peaks_per_h"), ("max_rate_per_min", "max_rate_per_min")):
+        for name, column in (
+            ("mean", "track_mean"),
+            ("cv", "track_cv"),
+            ("period_min", "period_min"),
+            ("peaks_per_h", "peaks_per_h"),
+            ("max_rate_per_min", "max_rate_per_min"),
+        ):
             tracks[f"{column}_{channel}"] = np.where(long_enough, dynamics[name], np.nan)
     return tracks
 
 
-def analyse_well(index: ImageIndex, well: str, settings: WellSettings,
-                 flat_field: np.ndarray | None = None) -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame]:
+def analyse_well(
+    index: ImageIndex, well: str, settings: WellSettings, flat_field: np.ndarray | None = None
+) -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame]:
     """Cells, tracks and site QC of one well over all its sites.
 
     Track ids are unique within the well (site-local ids are offset site by site).
     """
     sites = sorted(index.table.loc[index.table["well"] == well, "site"].unique())
     if not sites:
-        raise InputError(f"well {well}", "the layout lists this well but no image of it was found.",
-                         "check images.filename_template and the plate's image_folder, or mark the well empty.")
+        raise InputError(
+            f"well {well}",
+            "the layout lists this well but no image of it was found.",
+            "check images.filename_template and the plate's image_folder, or mark the well empty.",
+        )
     cell_parts, qc_parts, offset = [], [], 0
     for site in sites:
         cells, qc = analyse_site(index, well, int(site), settings, flat_field)
@@ -246,21 +323,32 @@ def _with_keys(frame: pd.DataFrame, plate: str, well: str) -> pd.DataFrame:
     return frame
 
 
-def collective_table(cells: pd.DataFrame, settings: WellSettings, collective: CollectiveSettings,
-                     well: str) -> pd.DataFrame:
+def collective_table(
+    cells: pd.DataFrame, settings: WellSettings, collective: CollectiveSettings, well: str
+) -> pd.DataFrame:
     """One row of collective readouts of a well (see plateloom.well.collective); no columns when switched off
     or when no channel has the role reporter."""
     if not collective.enabled or not settings.reporter_channels:
         return pd.DataFrame(index=[0])
-    row = well_collective_readouts(cells, list(settings.reporter_channels), collective,
-                                   settings.frame_interval_min, well)
+    row = well_collective_readouts(
+        cells, list(settings.reporter_channels), collective, settings.frame_interval_min, well
+    )
     return pd.DataFrame([row])
 
 
-def analyse_chunk(index: ImageIndex, plate: str, wells: list[str], settings: WellSettings,
-                  out_cells: str, out_tracks: str, out_site_qc: str, config_for_provenance: object,
-                  flat_field: np.ndarray | None = None, out_collective: str | None = None,
-                  collective: CollectiveSettings | None = None) -> None:
+def analyse_chunk(
+    index: ImageIndex,
+    plate: str,
+    wells: list[str],
+    settings: WellSettings,
+    out_cells: str,
+    out_tracks: str,
+    out_site_qc: str,
+    config_for_provenance: object,
+    flat_field: np.ndarray | None = None,
+    out_collective: str | None = None,
+    collective: CollectiveSettings | None = None,
+) -> None:
     """Analyse the wells of one chunk; one Parquet file per well in each Hive folder (cells, tracks,
     site QC and, with ``out_collective``, the well's collective readouts)."""
     outputs = (out_cells, out_tracks, out_site_qc) + ((out_collective,) if out_collective else ())

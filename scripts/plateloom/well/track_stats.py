@@ -14,8 +14,9 @@ from scipy.signal import find_peaks
 PERSISTENCE_GRID_SIZE = 400
 
 
-def track_matrix(frame: np.ndarray, track: np.ndarray, values: np.ndarray,
-                 track_ids: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
+def track_matrix(
+    frame: np.ndarray, track: np.ndarray, values: np.ndarray, track_ids: np.ndarray | None = None
+) -> tuple[np.ndarray, np.ndarray]:
     """(track ids, matrix) with matrix[i, t] the value of track i at frame t (NaN where absent).
 
     Frames index the columns directly (0 .. max frame); ``track_ids`` fixes the row order.
@@ -57,8 +58,9 @@ def persistent_walk_msd(lag_min: np.ndarray, speed: float, persistence_min: floa
     return 2 * speed**2 * persistence_min * (t - persistence_min * (1 - np.exp(-t / persistence_min)))
 
 
-def fit_persistent_walk(msd: np.ndarray, pairs: np.ndarray, frame_interval_min: float,
-                        min_points: int = 3) -> tuple[np.ndarray, np.ndarray]:
+def fit_persistent_walk(
+    msd: np.ndarray, pairs: np.ndarray, frame_interval_min: float, min_points: int = 3
+) -> tuple[np.ndarray, np.ndarray]:
     """Speed (um/min) and persistence time (min) of each track from its MSD curve.
 
     Least squares of the persistent-random-walk MSD, weighted by the number of pairs at each
@@ -74,7 +76,7 @@ def fit_persistent_walk(msd: np.ndarray, pairs: np.ndarray, frame_interval_min: 
     shape = 2 * grid[:, None] * (lags[None, :] - grid[:, None] * (1 - np.exp(-lags[None, :] / grid[:, None])))
     weight = np.where(np.isfinite(msd), pairs, 0).astype(float)
     values = np.where(np.isfinite(msd), msd, 0.0)
-    cross = (weight * values) @ shape.T                      # (tracks, grid)
+    cross = (weight * values) @ shape.T  # (tracks, grid)
     norm = weight @ (shape**2).T
     with np.errstate(invalid="ignore", divide="ignore"):
         speed_squared = cross / norm
@@ -119,8 +121,9 @@ def _filled_segments(matrix: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.nda
     return fill_inner_gaps(matrix), first, np.where(has_any, stop - 1, -1)
 
 
-def reporter_dynamics(matrix: np.ndarray, frame_interval_min: float, min_frames: int,
-                      padding: int = 32) -> dict[str, np.ndarray]:
+def reporter_dynamics(
+    matrix: np.ndarray, frame_interval_min: float, min_frames: int, padding: int = 32
+) -> dict[str, np.ndarray]:
     """Dynamics of a reporter along each track (rows of ``matrix``, grey levels per frame).
 
     Per track, over its span from first to last observation (inner gaps interpolated):

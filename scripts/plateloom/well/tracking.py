@@ -15,8 +15,9 @@ from scipy.sparse.csgraph import min_weight_full_bipartite_matching
 from scipy.spatial import cKDTree
 
 
-def _sparse_assignment(n_rows: int, n_cols: int, rows: np.ndarray, cols: np.ndarray, costs: np.ndarray,
-                       alternative: float) -> np.ndarray:
+def _sparse_assignment(
+    n_rows: int, n_cols: int, rows: np.ndarray, cols: np.ndarray, costs: np.ndarray, alternative: float
+) -> np.ndarray:
     """Column chosen for each row (or -1) in the LAP with 'no link' alternatives for every row and column.
 
     The augmented matrix of Jaqaman et al.: links (rows x cols), a transposed copy that keeps it
@@ -48,7 +49,9 @@ def link_frames(previous_um: np.ndarray, current_um: np.ndarray, max_displacemen
     links = np.full(m, -1, dtype=np.int64)
     if n == 0 or m == 0:
         return links
-    pairs = cKDTree(previous_um).sparse_distance_matrix(cKDTree(current_um), max_displacement_um, output_type="coo_matrix")
+    pairs = cKDTree(previous_um).sparse_distance_matrix(
+        cKDTree(current_um), max_displacement_um, output_type="coo_matrix"
+    )
     if pairs.nnz == 0:
         return links
     # Any allowed link (cost d^2 <= max_displacement^2) beats ending one track plus starting another.
@@ -58,8 +61,9 @@ def link_frames(previous_um: np.ndarray, current_um: np.ndarray, max_displacemen
     return links
 
 
-def track_features(frame: np.ndarray, track: np.ndarray, x_um: np.ndarray, y_um: np.ndarray,
-                   frame_interval_min: float, min_frames: int) -> dict[str, np.ndarray]:
+def track_features(
+    frame: np.ndarray, track: np.ndarray, x_um: np.ndarray, y_um: np.ndarray, frame_interval_min: float, min_frames: int
+) -> dict[str, np.ndarray]:
     """Per-track motility from observations (arrays of equal length, any order).
 
     Returns arrays indexed by track id order (sorted unique ``track``): n_frames, duration_min,
@@ -72,7 +76,8 @@ def track_features(frame: np.ndarray, track: np.ndarray, x_um: np.ndarray, y_um:
     same = track[1:] == track[:-1]
     step = np.where(same, np.hypot(np.diff(x_um), np.diff(y_um)), 0.0)
     path = np.add.reduceat(np.append(step, 0.0), start) if len(track) else np.array([])
-    # reduceat sums from each start to the next start; the last step of a track is a jump to the next track, zeroed above
+    # reduceat sums from each start to the next start; the last step of a track is a jump to the
+    # next track, zeroed above
     end = start + counts - 1
     duration = (frame[end] - frame[start]) * frame_interval_min
     net = np.hypot(x_um[end] - x_um[start], y_um[end] - y_um[start])
@@ -80,8 +85,15 @@ def track_features(frame: np.ndarray, track: np.ndarray, x_um: np.ndarray, y_um:
     with np.errstate(invalid="ignore", divide="ignore"):
         speed = np.where(valid & (duration > 0), path / duration, np.nan)
         straightness = np.where(valid & (path > 0), net / path, np.nan)
-    return {"track": tracks, "n_frames": counts, "duration_min": duration, "path_length_um": path,
-            "net_displacement_um": net, "speed_um_per_min": speed, "straightness": straightness}
+    return {
+        "track": tracks,
+        "n_frames": counts,
+        "duration_min": duration,
+        "path_length_um": path,
+        "net_displacement_um": net,
+        "speed_um_per_min": speed,
+        "straightness": straightness,
+    }
 
 
 def _track_ends(frame: np.ndarray, track: np.ndarray, x: np.ndarray, y: np.ndarray) -> pd.DataFrame:
@@ -89,8 +101,16 @@ def _track_ends(frame: np.ndarray, track: np.ndarray, x: np.ndarray, y: np.ndarr
     data = pd.DataFrame({"track": track[order], "frame": frame[order], "x": x[order], "y": y[order]})
     grouped = data.groupby("track", sort=True)
     first, last = grouped.first(), grouped.last()
-    return pd.DataFrame({"start_frame": first["frame"], "start_x": first["x"], "start_y": first["y"],
-                         "end_frame": last["frame"], "end_x": last["x"], "end_y": last["y"]})
+    return pd.DataFrame(
+        {
+            "start_frame": first["frame"],
+            "start_x": first["x"],
+            "start_y": first["y"],
+            "end_frame": last["frame"],
+            "end_x": last["x"],
+            "end_y": last["y"],
+        }
+    )
 
 
 def _relabel(track: np.ndarray, frame: np.ndarray) -> np.ndarray:
@@ -102,8 +122,14 @@ def _relabel(track: np.ndarray, frame: np.ndarray) -> np.ndarray:
     return mapping.loc[track].to_numpy(np.int64)
 
 
-def close_gaps(frame: np.ndarray, track: np.ndarray, x_um: np.ndarray, y_um: np.ndarray, max_gap_frames: int,
-               max_displacement_um: float) -> np.ndarray:
+def close_gaps(
+    frame: np.ndarray,
+    track: np.ndarray,
+    x_um: np.ndarray,
+    y_um: np.ndarray,
+    max_gap_frames: int,
+    max_displacement_um: float,
+) -> np.ndarray:
     """Join track segments across up to ``max_gap_frames`` missed frames (the gap-closing LAP).
 
     A segment ending at frame e may continue as a segment starting at s, 2 <= s - e <= max_gap + 1,
@@ -116,24 +142,28 @@ def close_gaps(frame: np.ndarray, track: np.ndarray, x_um: np.ndarray, y_um: np.
     ids = ends.index.to_numpy()
     radius = max_displacement_um * np.sqrt(max_gap_frames + 1)
     pairs = cKDTree(ends[["end_x", "end_y"]].to_numpy()).sparse_distance_matrix(
-        cKDTree(ends[["start_x", "start_y"]].to_numpy()), radius, output_type="coo_matrix")
+        cKDTree(ends[["start_x", "start_y"]].to_numpy()), radius, output_type="coo_matrix"
+    )
     gap = ends["start_frame"].to_numpy()[pairs.col] - ends["end_frame"].to_numpy()[pairs.row]
-    allowed = (gap >= 2) & (gap <= max_gap_frames + 1) & (pairs.data <= max_displacement_um * np.sqrt(np.maximum(gap, 1)))
+    allowed = (
+        (gap >= 2) & (gap <= max_gap_frames + 1) & (pairs.data <= max_displacement_um * np.sqrt(np.maximum(gap, 1)))
+    )
     rows, cols = pairs.row[allowed], pairs.col[allowed]
     costs = pairs.data[allowed] ** 2 / gap[allowed]
-    successor = _sparse_assignment(len(ids), len(ids), rows, cols, costs, max_displacement_um ** 2)
+    successor = _sparse_assignment(len(ids), len(ids), rows, cols, costs, max_displacement_um**2)
     root = np.arange(len(ids))
     predecessor = np.full(len(ids), -1)
     predecessor[successor[successor >= 0]] = np.nonzero(successor >= 0)[0]
-    for i in np.argsort(ends["start_frame"].to_numpy(), kind="stable"):    # chains follow time order
+    for i in np.argsort(ends["start_frame"].to_numpy(), kind="stable"):  # chains follow time order
         if predecessor[i] >= 0:
             root[i] = root[predecessor[i]]
     joined = pd.Series(ids[root], index=ids).loc[track].to_numpy()
     return _relabel(joined, frame)
 
 
-def find_divisions(frame: np.ndarray, track: np.ndarray, x_um: np.ndarray, y_um: np.ndarray,
-                   max_distance_um: float) -> tuple[np.ndarray, pd.DataFrame]:
+def find_divisions(
+    frame: np.ndarray, track: np.ndarray, x_um: np.ndarray, y_um: np.ndarray, max_distance_um: float
+) -> tuple[np.ndarray, pd.DataFrame]:
     """Divisions: a track starting at frame t next to a track that continues from t - 1 to t.
 
     Each such pair (cost: distance of the new start to the continuing track's position at t - 1)
@@ -159,8 +189,7 @@ def find_divisions(frame: np.ndarray, track: np.ndarray, x_um: np.ndarray, y_um:
         start_xy = np.column_stack([x_um[new_rows], y_um[new_rows]])
         mother_xy = np.column_stack([x_um[mother_rows], y_um[mother_rows]])
         pairs = cKDTree(start_xy).sparse_distance_matrix(cKDTree(mother_xy), max_distance_um, output_type="coo_matrix")
-        chosen = _sparse_assignment(len(new), len(continuing), pairs.row, pairs.col, pairs.data ** 2,
-                                    max_distance_um ** 2)
+        chosen = _sparse_assignment(len(new), len(continuing), pairs.row, pairs.col, pairs.data**2, max_distance_um**2)
         for daughter_index, mother_index in enumerate(chosen):
             if mother_index < 0:
                 continue
