@@ -25,7 +25,18 @@ TEMPLATE = "{well}_s{site}_{channel}.tif"
 
 
 def _settings(channels=("dna",)) -> WellSettings:
-    return WellSettings(tuple(channels), "dna", 1.0, 1.0, 1.0, 10.0, 5.0, 5.0, 3)
+    return WellSettings.defaults(
+        channels=tuple(channels),
+        nuclei_channel="dna",
+        pixel_size_um=1.0,
+        frame_interval_min=1.0,
+        smoothing_sigma_um=1.0,
+        min_nucleus_area_um2=10.0,
+        split_min_distance_um=5.0,
+        max_displacement_um=5.0,
+        min_track_frames=3,
+        max_gap_frames=0,
+    )
 
 
 def _nuclei_stack(frames=3, size=64, level=1000, dtype=np.uint16):
@@ -105,7 +116,7 @@ def test_nan_pixels_flag_their_frame_and_the_rest_of_the_well_is_analysed(tmp_pa
     assert "image holds NaN or infinite pixels" in flagged["frame_problem"].iloc[0]
     from plateloom.plate.exclusions import site_frame_exclusions
 
-    ledger = site_frame_exclusions(qc.assign(well="A01"), ExclusionRules(), "P1")
+    ledger = site_frame_exclusions(qc.assign(well="A01"), ExclusionRules.defaults(), "P1")
     assert ledger[["well", "frame", "rule"]].values.tolist() == [["A01", 1, "unusable_frame"]]
 
 
@@ -152,7 +163,9 @@ def test_well_with_no_cells_is_excluded_with_a_ledger_entry():
     cells = cells[cells["well"] != "C03"]
     tracks = tracks[tracks["well"] != "C03"]
     qc.loc[qc["well"] == "C03", "n_objects"] = 0
-    tables = build_plate_tables(cells, tracks, qc, layout, "P1", "d1", 96, PlateSettings(), ExclusionRules())
+    tables = build_plate_tables(
+        cells, tracks, qc, layout, "P1", "d1", 96, PlateSettings.defaults(), ExclusionRules.defaults()
+    )
     row = tables.profile.set_index("well").loc["C03"]
     assert row["cell_count"] == 0 and row["excluded_by"].startswith("min_cells_per_well")
     assert ((tables.ledger["well"] == "C03") & (tables.ledger["rule"] == "min_cells_per_well")).any()
@@ -169,13 +182,15 @@ def test_plate_whose_every_well_fails_qc_leaves_the_model_and_the_rest_continues
         "P1",
         "d1",
         96,
-        PlateSettings(),
-        ExclusionRules(),
+        PlateSettings.defaults(),
+        ExclusionRules.defaults(),
     )
     assert (failing.profile["excluded_by"] != "").all()
     assert (failing.ledger["rule"] == "min_cells_per_well").sum() == 96
     good = [
-        build_plate_tables(*_plate(seed=s)[:3], layout, f"P{s}", f"d{s}", 96, PlateSettings(), ExclusionRules()).profile
+        build_plate_tables(
+            *_plate(seed=s)[:3], layout, f"P{s}", f"d{s}", 96, PlateSettings.defaults(), ExclusionRules.defaults()
+        ).profile
         for s in (2, 3)
     ]
     wells = pd.concat([failing.profile, *good], ignore_index=True)

@@ -196,7 +196,7 @@ def _lattice_well(coupling, rng, side=5, frames=30, spacing=20.0):
 
 def test_planted_neighbour_coupling_raises_coupled_fraction_and_correlation():
     rng = np.random.default_rng(1)
-    settings = CollectiveSettings(max_edge_um=25.0, min_overlap_frames=12)
+    settings = CollectiveSettings.defaults(max_edge_um=25.0, min_overlap_frames=12)
     coupled = well_collective_readouts(_lattice_well(0.9, rng), ["rep"], settings, 5.0, "B02")
     independent = well_collective_readouts(_lattice_well(0.0, rng), ["rep"], settings, 5.0, "B03")
     assert coupled["n_neighbour_links"] == independent["n_neighbour_links"] == 40
@@ -210,15 +210,38 @@ def test_collective_table_has_no_readouts_without_a_reporter_or_when_switched_of
     from plateloom.well.stage import WellSettings, collective_table
 
     cells = _lattice_well(0.5, np.random.default_rng(0))
-    plain = WellSettings(("dna", "rep"), "dna", 0.8, 5.0, 1.0, 30.0, 7.0, 8.0, 3)
-    assert collective_table(cells, plain, CollectiveSettings(), "A01").columns.empty
-    with_reporter = WellSettings(("dna", "rep"), "dna", 0.8, 5.0, 1.0, 30.0, 7.0, 8.0, 3, reporter_channels=("rep",))
-    assert collective_table(cells, with_reporter, CollectiveSettings(enabled=False), "A01").columns.empty
-    table = collective_table(cells, with_reporter, CollectiveSettings(max_edge_um=25.0), "A01")
+    plain = WellSettings.defaults(
+        channels=("dna", "rep"),
+        nuclei_channel="dna",
+        pixel_size_um=0.8,
+        frame_interval_min=5.0,
+        smoothing_sigma_um=1.0,
+        min_nucleus_area_um2=30.0,
+        split_min_distance_um=7.0,
+        max_displacement_um=8.0,
+        min_track_frames=3,
+        max_gap_frames=0,
+    )
+    assert collective_table(cells, plain, CollectiveSettings.defaults(), "A01").columns.empty
+    with_reporter = WellSettings.defaults(
+        channels=("dna", "rep"),
+        nuclei_channel="dna",
+        pixel_size_um=0.8,
+        frame_interval_min=5.0,
+        smoothing_sigma_um=1.0,
+        min_nucleus_area_um2=30.0,
+        split_min_distance_um=7.0,
+        max_displacement_um=8.0,
+        min_track_frames=3,
+        reporter_channels=("rep",),
+        max_gap_frames=0,
+    )
+    assert collective_table(cells, with_reporter, CollectiveSettings.defaults(enabled=False), "A01").columns.empty
+    table = collective_table(cells, with_reporter, CollectiveSettings.defaults(max_edge_um=25.0), "A01")
     assert len(table) == 1 and {"phase_order_rep", "coupled_link_fraction_d2_rep", "spreading_index"} <= set(
         table.columns
     )
     # deterministic: the same inputs give the same row (permutations seeded by config seed and well)
     pd.testing.assert_frame_equal(
-        table, collective_table(cells, with_reporter, CollectiveSettings(max_edge_um=25.0), "A01")
+        table, collective_table(cells, with_reporter, CollectiveSettings.defaults(max_edge_um=25.0), "A01")
     )

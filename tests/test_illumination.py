@@ -62,7 +62,7 @@ def test_unreadable_sampled_site_is_skipped_and_named(tmp_path):
     broken = tmp_path / "A03_s1_dna.tif"
     broken.write_bytes(broken.read_bytes()[:100])
     index = index_plate_images(str(tmp_path), "{well}_s{site}_{channel}.tif", 96, ["dna"])
-    profile, n_planes, skipped = estimate_flat_field(index, "dna", ["dna"], IlluminationSettings(), 0.8)
+    profile, n_planes, skipped = estimate_flat_field(index, "dna", ["dna"], IlluminationSettings.defaults(), 0.8)
     assert n_planes == 5 and len(skipped) == 1
     assert skipped[0].startswith("well A03, site 1:") and "cannot be read as TIFF" in skipped[0]
     assert profile.shape == planes.shape[1:] and np.isfinite(profile).all()

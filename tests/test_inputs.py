@@ -75,7 +75,18 @@ def test_template_needs_its_fields():
 
 
 def _settings() -> WellSettings:
-    return WellSettings(("dna",), "dna", 1.0, 1.0, 1.0, 10.0, 5.0, 5.0, 3)
+    return WellSettings.defaults(
+        channels=("dna",),
+        nuclei_channel="dna",
+        pixel_size_um=1.0,
+        frame_interval_min=1.0,
+        smoothing_sigma_um=1.0,
+        min_nucleus_area_um2=10.0,
+        split_min_distance_um=5.0,
+        max_displacement_um=5.0,
+        min_track_frames=3,
+        max_gap_frames=0,
+    )
 
 
 def test_missing_image_of_a_listed_well_is_named(tmp_path):

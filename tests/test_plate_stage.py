@@ -72,7 +72,9 @@ def _plate(edge_ratio=1.2, seed=0):
 
 def test_edge_effect_detected_and_removed_by_median_polish():
     cells, tracks, qc, layout = _plate()
-    plain = build_plate_tables(cells, tracks, qc, layout, "P1", "d1", 96, PlateSettings(), ExclusionRules())
+    plain = build_plate_tables(
+        cells, tracks, qc, layout, "P1", "d1", 96, PlateSettings.defaults(), ExclusionRules.defaults()
+    )
     row = plain.edge.set_index("feature").loc["area_um2"]
     assert row["edge_shift"] == pytest.approx(np.log(1.2), abs=0.02) and row["p_value"] < 1e-6
     corrected = build_plate_tables(
@@ -83,8 +85,8 @@ def test_edge_effect_detected_and_removed_by_median_polish():
         "P1",
         "d1",
         96,
-        PlateSettings(positional_correction="median_polish"),
-        ExclusionRules(),
+        PlateSettings.defaults(positional_correction="median_polish"),
+        ExclusionRules.defaults(),
     )
     row = corrected.edge.set_index("feature").loc["area_um2"]
     assert abs(row["edge_shift_corrected"]) < 0.25 * np.log(1.2)
@@ -93,8 +95,8 @@ def test_edge_effect_detected_and_removed_by_median_polish():
 
 def test_every_exclusion_is_in_the_ledger_with_value_and_threshold():
     cells, tracks, qc, layout = _plate()
-    rules = ExclusionRules(min_cells_per_well=5, max_saturated_fraction=0.05, min_plate_z_prime=0.99)
-    tables = build_plate_tables(cells, tracks, qc, layout, "P1", "d1", 96, PlateSettings(), rules)
+    rules = ExclusionRules.defaults(min_cells_per_well=5, max_saturated_fraction=0.05, min_plate_z_prime=0.99)
+    tables = build_plate_tables(cells, tracks, qc, layout, "P1", "d1", 96, PlateSettings.defaults(), rules)
     ledger = tables.ledger.sort_values("level").reset_index(drop=True)
     assert ledger[["level", "well", "rule"]].values.tolist() == [
         ["plate", "", "min_plate_z_prime (area_um2)"],
@@ -112,7 +114,15 @@ def test_every_exclusion_is_in_the_ledger_with_value_and_threshold():
 def test_percent_of_control_puts_controls_at_0_and_100():
     cells, tracks, qc, layout = _plate(edge_ratio=1.0)
     tables = build_plate_tables(
-        cells, tracks, qc, layout, "P1", "d1", 96, PlateSettings(normalization="percent_of_control"), ExclusionRules()
+        cells,
+        tracks,
+        qc,
+        layout,
+        "P1",
+        "d1",
+        96,
+        PlateSettings.defaults(normalization="percent_of_control"),
+        ExclusionRules.defaults(),
     )
     profile = tables.profile[tables.profile["excluded_by"] == ""]
     neg = profile.loc[profile["role"] == "negative_control", "area_um2_percent_of_control"]
@@ -123,7 +133,9 @@ def test_percent_of_control_puts_controls_at_0_and_100():
 def test_single_well_treatment_and_image_qc_are_reported():
     cells, tracks, qc, layout = _plate(edge_ratio=1.0)
     layout.loc[layout["well"] == "A02", "treatment"] = "lonely 1 uM"
-    tables = build_plate_tables(cells, tracks, qc, layout, "P1", "d1", 96, PlateSettings(), ExclusionRules())
+    tables = build_plate_tables(
+        cells, tracks, qc, layout, "P1", "d1", 96, PlateSettings.defaults(), ExclusionRules.defaults()
+    )
     assert "treatment 'lonely 1 uM' has a single kept well on this plate" in tables.warnings
     assert tables.site_summary["site_frames"] == 192 and tables.site_summary["saturated_fraction_max"] == pytest.approx(
         0.2
@@ -147,7 +159,7 @@ def test_collective_readouts_join_the_profile_as_features_and_their_counts_do_no
         }
     )
     tables = build_plate_tables(
-        cells, tracks, qc, layout, "P1", "d1", 96, PlateSettings(), ExclusionRules(), collective
+        cells, tracks, qc, layout, "P1", "d1", 96, PlateSettings.defaults(), ExclusionRules.defaults(), collective
     )
     profile = tables.profile.set_index("well")
     np.testing.assert_allclose(profile.loc[wells, "phase_order_rep"], np.linspace(0, 1, len(wells)))
@@ -155,9 +167,13 @@ def test_collective_readouts_join_the_profile_as_features_and_their_counts_do_no
     assert "n_events_robust_z" not in profile and "spreading_p_value_robust_z" not in profile
     # no readout columns (collective readouts switched off): the profile is as without the table
     keys_only = collective[["plate", "well"]]
-    plain = build_plate_tables(cells, tracks, qc, layout, "P1", "d1", 96, PlateSettings(), ExclusionRules(), keys_only)
+    plain = build_plate_tables(
+        cells, tracks, qc, layout, "P1", "d1", 96, PlateSettings.defaults(), ExclusionRules.defaults(), keys_only
+    )
     assert list(plain.profile.columns) == list(
-        build_plate_tables(cells, tracks, qc, layout, "P1", "d1", 96, PlateSettings(), ExclusionRules()).profile.columns
+        build_plate_tables(
+            cells, tracks, qc, layout, "P1", "d1", 96, PlateSettings.defaults(), ExclusionRules.defaults()
+        ).profile.columns
     )
 
 
@@ -192,7 +208,7 @@ def test_well_summaries_streamed_from_files_equal_pandas_and_the_in_memory_path(
     )
     cells.loc[cells["well"] == "C07", "patchy"] = np.nan  # a well with no finite value
     qc.loc[(qc["well"] == "E02") & (qc["frame"] == 0), "focus_score"] = 0.1  # an excluded site-frame
-    rules = ExclusionRules(min_focus_score=0.5)
+    rules = ExclusionRules.defaults(min_focus_score=0.5)
     folders = _write_cells_folders(tmp_path, cells)
     excluded = pd.DataFrame({"well": ["E02"], "site": [1], "frame": [0]})
     summaries, counts = summarise_observation_files(folders, excluded, statistic, threads=2)
@@ -213,7 +229,7 @@ def test_well_summaries_streamed_from_files_equal_pandas_and_the_in_memory_path(
         counts.set_index(["well", "site", "frame"])[["observations", "whole"]], expected_counts, check_dtype=False
     )
     pd.testing.assert_frame_equal(observation_counts(cells), counts)
-    settings = PlateSettings(well_summary=statistic)
+    settings = PlateSettings.defaults(well_summary=statistic)
     streamed = build_plate_tables_from_files(folders, tracks, qc, layout, "P1", "d1", 96, settings, rules, threads=2)
     whole = build_plate_tables(read_plate_dataset(folders), tracks, qc, layout, "P1", "d1", 96, settings, rules)
     pd.testing.assert_frame_equal(streamed.profile, whole.profile, rtol=1e-12)

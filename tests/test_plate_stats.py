@@ -64,7 +64,7 @@ def test_exclusion_rule_marks_low_count_wells_in_table_and_ledger():
             "cell_count": [20.0, 22.0, 2.0, 21.0],
         }
     )
-    marked, ledger = well_exclusions(profile, ExclusionRules(min_cells_per_well=5))
+    marked, ledger = well_exclusions(profile, ExclusionRules.defaults(min_cells_per_well=5))
     assert list(marked["excluded_by"] != "") == [False, False, True, False]
     assert "min_cells_per_well" in marked.loc[2, "excluded_by"]
     assert ledger[["level", "well", "rule", "value", "threshold"]].values.tolist() == [

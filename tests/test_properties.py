@@ -72,7 +72,9 @@ def test_bh_q_values_are_at_least_p_monotone_and_order_free(p, seed):
 @given(seed=st.integers(0, 1000))
 def test_plate_tables_do_not_depend_on_the_order_of_cells(seed):
     cells, tracks, qc, layout = _plate(seed=3)
-    reference = build_plate_tables(cells, tracks, qc, layout, "P1", "d1", 96, PlateSettings(), ExclusionRules())
+    reference = build_plate_tables(
+        cells, tracks, qc, layout, "P1", "d1", 96, PlateSettings.defaults(), ExclusionRules.defaults()
+    )
     shuffled = cells.sample(frac=1.0, random_state=seed).reset_index(drop=True)
     tables = build_plate_tables(
         shuffled,
@@ -82,8 +84,8 @@ def test_plate_tables_do_not_depend_on_the_order_of_cells(seed):
         "P1",
         "d1",
         96,
-        PlateSettings(),
-        ExclusionRules(),
+        PlateSettings.defaults(),
+        ExclusionRules.defaults(),
     )
     pd.testing.assert_frame_equal(tables.profile, reference.profile, check_exact=False, rtol=1e-9)
     pd.testing.assert_frame_equal(tables.qc, reference.qc, check_exact=False, rtol=1e-9)

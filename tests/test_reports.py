@@ -19,10 +19,10 @@ HOSTILE = '<b>x</b> "quoted", comma & Ölsäure'
 
 
 def _report(tmp_path: Path, rules: ExclusionRules | None = None) -> Path:
-    rules = rules or ExclusionRules()
+    rules = rules or ExclusionRules.defaults()
     cells, tracks, qc, layout = _plate()
     layout.loc[layout["role"] == "test", "treatment"] = HOSTILE
-    tables = build_plate_tables(cells, tracks, qc, layout, "P1", "d1", 96, PlateSettings(), rules)
+    tables = build_plate_tables(cells, tracks, qc, layout, "P1", "d1", 96, PlateSettings.defaults(), rules)
     tables.profile.loc[tables.profile["well"] == "D05", "treatment"] = HOSTILE
     html = build_plate_report(
         tables.profile,
@@ -49,7 +49,7 @@ def test_condition_names_are_escaped(tmp_path):
 
 
 def test_excluded_plate_report_says_so(tmp_path):
-    html = _report(tmp_path, ExclusionRules(min_plate_z_prime=0.99)).read_text(encoding="utf-8")
+    html = _report(tmp_path, ExclusionRules.defaults(min_plate_z_prime=0.99)).read_text(encoding="utf-8")
     assert "This plate is left out of the screen model" in html
     assert "min_plate_z_prime (area_um2)" in html
 

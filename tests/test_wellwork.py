@@ -120,7 +120,18 @@ def test_stacks_and_one_file_per_frame_give_the_same_tables(tmp_path):
         tifffile.imwrite(stacks / f"C03_s1_{name}.tif", stack[:, channel], photometric="minisblack")
         for frame in range(4):
             tifffile.imwrite(frames / f"C03_s1_t{frame:03d}_{name}.tif", stack[frame, channel])
-    settings = WellSettings(("nuc", "rep"), "nuc", scenario["pixel_size_um"], 5.0, 1.0, 30.0, 7.0, 8.0, 3)
+    settings = WellSettings.defaults(
+        channels=("nuc", "rep"),
+        nuclei_channel="nuc",
+        pixel_size_um=scenario["pixel_size_um"],
+        frame_interval_min=5.0,
+        smoothing_sigma_um=1.0,
+        min_nucleus_area_um2=30.0,
+        split_min_distance_um=7.0,
+        max_displacement_um=8.0,
+        min_track_frames=3,
+        max_gap_frames=0,
+    )
     from_stacks = analyse_well(
         index_plate_images(str(stacks), "{well}_s{site}_{channel}.tif", 96, ["nuc", "rep"]), "C03", settings
     )

@@ -13,6 +13,8 @@ from plateloom.setup.plan import (
     resolve_features,
     resolve_image_scale,
 )
+from plateloom.plate.exclusions import ExclusionRules
+from plateloom.plate.stage import PlateSettings
 from plateloom.screen.model_wells import feature_chunks
 from plateloom.well.collective import CollectiveSettings
 from plateloom.well.illumination import IlluminationSettings
@@ -50,8 +52,8 @@ WELL_SETTINGS = asdict(WellSettings.from_config(config))
 COLLECTIVE = asdict(CollectiveSettings.from_config(config))
 ILLUMINATION = IlluminationSettings.from_config(config)
 PLATE_SETTINGS = {
-    "plate": {k: v for k, v in config["plate"].items() if k != "report_feature"},
-    "exclusion_rules": config["exclusion_rules"],
+    "plate": asdict(PlateSettings.from_config(config)),
+    "exclusion_rules": asdict(ExclusionRules.from_config(config)),
 }
 SCREEN = config["screen"]
 FEATURE_CHUNKS = feature_chunks(PLAN.features, int(SCREEN["features_per_job"]))

@@ -25,7 +25,7 @@ def step() -> None:
         sm.params.batch,
         sm.params.plate_format,
         PlateSettings(**settings["plate"]),
-        ExclusionRules.from_config(settings["exclusion_rules"]),
+        ExclusionRules(**settings["exclusion_rules"]),
         read_plate_dataset(list(sm.input.collective)),
         sm.threads,
     )

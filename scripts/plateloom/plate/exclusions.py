@@ -12,22 +12,25 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
+from plateloom.settings import FromSchema
+
 LEDGER_COLUMNS = ["level", "plate", "well", "site", "frame", "rule", "value", "threshold"]
 
 
 @dataclass(frozen=True)
-class ExclusionRules:
+class ExclusionRules(FromSchema):
     """Thresholds of the rules; None switches a rule off."""
 
-    min_cells_per_well: float | None = 5.0
-    min_focus_score: float | None = None
-    max_saturated_fraction: float | None = 0.05
-    min_plate_z_prime: float | None = None
-    z_prime_feature: str = "area_um2"
+    min_cells_per_well: float | None
+    min_focus_score: float | None
+    max_saturated_fraction: float | None
+    min_plate_z_prime: float | None
+    z_prime_feature: str
 
     @classmethod
-    def from_config(cls, section: dict) -> ExclusionRules:
-        return cls(**section)
+    def from_config(cls, config: dict) -> ExclusionRules:
+        """From the validated config's ``exclusion_rules`` section (every key filled by the schema)."""
+        return cls(**config["exclusion_rules"])
 
 
 def empty_ledger() -> pd.DataFrame:

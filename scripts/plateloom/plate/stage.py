@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
@@ -24,19 +24,25 @@ from plateloom.plate.summaries import (
     summarise_wells,
     well_features,
 )
+from plateloom.settings import FromSchema
 from plateloom.setup.plate_formats import plate_format, well_grid
 
 NORMALIZATIONS = ("robust_z", "percent_of_control", "raw")
 
 
 @dataclass(frozen=True)
-class PlateSettings:
+class PlateSettings(FromSchema):
     """Plate-stage choices from config."""
 
-    normalization: str = "robust_z"
-    normalization_by_feature: dict[str, str] = field(default_factory=dict)
-    positional_correction: str = "none"
-    well_summary: str = "median"
+    normalization: str
+    normalization_by_feature: dict[str, str]
+    positional_correction: str
+    well_summary: str
+
+    @classmethod
+    def from_config(cls, config: dict) -> PlateSettings:
+        """From the validated config's ``plate`` section (every key filled by the schema)."""
+        return cls(**{k: v for k, v in config["plate"].items() if k != "report_feature"})
 
 
 @dataclass

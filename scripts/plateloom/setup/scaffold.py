@@ -24,6 +24,7 @@ from plateloom.io.images import (
     read_ome_metadata,
     template_regex,
 )
+from plateloom.settings import schema_defaults
 from plateloom.setup.plate_formats import FORMATS as PLATE_FORMATS
 from plateloom.setup.plate_formats import parse_well, plate_format
 from plateloom.well.collective import MODELLED_READOUTS
@@ -252,16 +253,7 @@ def survey_folder(folder: str, plate_format_wells: int | None = None) -> ScreenS
 
 
 def _default_config() -> dict:
-    from snakemake.utils import validate
-
-    from plateloom.setup.config import SCHEMA as schema
-
-    config = {
-        "screen_sheet": "",
-        "images": {"filename_template": "{well}_s{site}_{channel}.tif"},
-        "channels": [{"name": "x", "role": "nuclei"}],
-    }
-    validate(config, schema)
+    config = schema_defaults()
     config.pop("demo", None)
     return config
 

@@ -26,6 +26,7 @@ import pandas as pd
 from scipy import signal, sparse, stats
 from scipy.spatial import Delaunay, QhullError, cKDTree
 
+from plateloom.settings import FromSchema
 from plateloom.stats import bh_qvalues
 from plateloom.well.track_stats import (
     dominant_frequency,
@@ -36,27 +37,27 @@ from plateloom.well.track_stats import (
 
 
 @dataclass(frozen=True)
-class CollectiveSettings:
+class CollectiveSettings(FromSchema):
     """Settings of the collective readouts (config section ``collective``; physical units)."""
 
-    enabled: bool = True
-    max_edge_um: float = 30.0
-    min_edge_fraction: float = 0.5
-    min_overlap_frames: int = 12
-    max_lag_frames: int = 3
-    lag_criterion: str = "bic"
-    coupling_q_value: float = 0.05
-    synchrony_level: float = 0.6
-    event_jump_ratio: float = 2.0
-    event_radius_um: float = 30.0
-    event_window_frames: int = 2
-    n_permutations: int = 199
-    seed: int = 1
+    enabled: bool
+    max_edge_um: float
+    min_edge_fraction: float
+    min_overlap_frames: int
+    max_lag_frames: int
+    lag_criterion: str
+    coupling_q_value: float
+    synchrony_level: float
+    event_jump_ratio: float
+    event_radius_um: float
+    event_window_frames: int
+    n_permutations: int
+    seed: int
 
     @classmethod
     def from_config(cls, config: dict) -> CollectiveSettings:
-        """From the validated config (the schema rejects unknown keys)."""
-        return cls(**(config.get("collective") or {}))
+        """From the validated config's ``collective`` section (every key filled by the schema)."""
+        return cls(**config["collective"])
 
 
 # ---------------------------------------------------------------------------------------------

@@ -16,30 +16,25 @@ from scipy import ndimage
 
 from plateloom.errors import InputError
 from plateloom.io.images import ImageIndex, site_frame_count, stream_site
+from plateloom.settings import FromSchema
 
 METHODS = ("none", "percentile_of_sites")
 
 
 @dataclass(frozen=True)
-class IlluminationSettings:
+class IlluminationSettings(FromSchema):
     """How to estimate the flat field (physical units where they apply)."""
 
-    method: str = "percentile_of_sites"
-    max_sites: int = 48
-    frames_per_site: int = 1
-    smoothing_sigma_um: float = 20.0
-    percentile: float = 25.0
+    method: str
+    max_sites: int
+    frames_per_site: int
+    smoothing_sigma_um: float
+    percentile: float
 
     @classmethod
     def from_config(cls, config: dict) -> IlluminationSettings:
-        section = config.get("illumination", {})
-        return cls(
-            section.get("method", cls.method),
-            int(section.get("max_sites", cls.max_sites)),
-            int(section.get("frames_per_site", cls.frames_per_site)),
-            float(section.get("smoothing_sigma_um", cls.smoothing_sigma_um)),
-            float(section.get("percentile", cls.percentile)),
-        )
+        """From the validated config's ``illumination`` section (every key filled by the schema)."""
+        return cls(**config["illumination"])
 
 
 def sampled_sites(index: ImageIndex, max_sites: int) -> list[tuple[str, int]]:

@@ -11,6 +11,7 @@ import pandas as pd
 from plateloom.errors import InputError
 from plateloom.io.images import ImageIndex, stream_site
 from plateloom.io.tables import well_part_path, write_parquet
+from plateloom.settings import FromSchema
 from plateloom.well.collective import CollectiveSettings, well_collective_readouts
 from plateloom.well.features import measure_objects, neighbourhood
 from plateloom.well.illumination import apply_flat_field
@@ -37,7 +38,7 @@ from plateloom.well.tracking import (
 
 
 @dataclass(frozen=True)
-class WellSettings:
+class WellSettings(FromSchema):
     """Everything the per-well stage needs from config (physical units)."""
 
     channels: tuple[str, ...]
@@ -49,51 +50,50 @@ class WellSettings:
     split_min_distance_um: float
     max_displacement_um: float
     min_track_frames: int
-    max_gap_frames: int = 0
-    division_max_distance_um: float | None = None
-    neighbour_radius_um: float = 25.0
-    threshold_method: str = "otsu"
-    label_free: bool = False
-    label_free_window_um: float = 5.0
-    cell_body_channel: str | None = None
-    cell_body_smoothing_sigma_um: float = 2.0
-    texture_channels: tuple[str, ...] | None = None  # None: the nuclei channel
-    texture_distance_um: float = 1.6
-    texture_levels: int = 8
-    reporter_channels: tuple[str, ...] = ()
-    msd_max_lag_frames: int = 20
+    max_gap_frames: int
+    division_max_distance_um: float | None
+    neighbour_radius_um: float
+    threshold_method: str
+    label_free: bool
+    label_free_window_um: float
+    cell_body_channel: str | None
+    cell_body_smoothing_sigma_um: float
+    texture_channels: tuple[str, ...] | None  # None: the nuclei channel
+    texture_distance_um: float
+    texture_levels: int
+    reporter_channels: tuple[str, ...]
+    msd_max_lag_frames: int
 
     @classmethod
     def from_config(cls, config: dict) -> WellSettings:
+        """From the validated config (images, channels, segmentation, tracking, measurement), by name."""
         channels = tuple(c["name"] for c in config["channels"])
-        roles = [c["role"] for c in config["channels"]]
-        segmented = [c["name"] for c in config["channels"] if c["role"] in ("nuclei", "label_free")]
-        seg, trk, img = config["segmentation"], config["tracking"], config["images"]
-        measure = config.get("measurement", {})
-        texture = measure.get("texture_channels")
+        roles = {c["name"]: c["role"] for c in config["channels"]}
+        seg, track, images, measure = (config[k] for k in ("segmentation", "tracking", "images", "measurement"))
+        texture = measure["texture_channels"]
         return cls(
-            channels,
-            segmented[0],
-            img["pixel_size_um"],
-            img["frame_interval_min"],
-            seg["smoothing_sigma_um"],
-            seg["min_nucleus_area_um2"],
-            seg["split_min_distance_um"],
-            trk["max_displacement_um"],
-            trk["min_track_frames"],
-            int(trk.get("max_gap_frames", 2)),
-            trk.get("division_max_distance_um"),
-            float(measure.get("neighbour_radius_um", 25.0)),
-            seg.get("threshold_method", "otsu"),
-            "label_free" in roles,
-            float(seg.get("label_free_window_um", 5.0)),
-            next((c for c, r in zip(channels, roles) if r == "cell_body"), None),
-            float(seg.get("cell_body_smoothing_sigma_um", 2.0)),
-            None if texture is None else tuple(texture),
-            float(measure.get("texture_distance_um", 1.6)),
-            int(measure.get("texture_levels", 8)),
-            tuple(c for c, r in zip(channels, roles) if r == "reporter"),
-            int(trk.get("msd_max_lag_frames", 20)),
+            channels=channels,
+            nuclei_channel=next(c for c in channels if roles[c] in ("nuclei", "label_free")),
+            pixel_size_um=images["pixel_size_um"],
+            frame_interval_min=images["frame_interval_min"],
+            smoothing_sigma_um=seg["smoothing_sigma_um"],
+            min_nucleus_area_um2=seg["min_nucleus_area_um2"],
+            split_min_distance_um=seg["split_min_distance_um"],
+            threshold_method=seg["threshold_method"],
+            label_free=any(role == "label_free" for role in roles.values()),
+            label_free_window_um=float(seg["label_free_window_um"]),
+            cell_body_channel=next((c for c in channels if roles[c] == "cell_body"), None),
+            cell_body_smoothing_sigma_um=float(seg["cell_body_smoothing_sigma_um"]),
+            max_displacement_um=track["max_displacement_um"],
+            min_track_frames=track["min_track_frames"],
+            max_gap_frames=int(track["max_gap_frames"]),
+            division_max_distance_um=track["division_max_distance_um"],
+            msd_max_lag_frames=int(track["msd_max_lag_frames"]),
+            neighbour_radius_um=float(measure["neighbour_radius_um"]),
+            texture_channels=None if texture is None else tuple(texture),
+            texture_distance_um=float(measure["texture_distance_um"]),
+            texture_levels=int(measure["texture_levels"]),
+            reporter_channels=tuple(c for c in channels if roles[c] == "reporter"),
         )
 
     @property
@@ -360,5 +360,5 @@ def analyse_chunk(
         write_parquet(_with_keys(tracks, plate, well), well_part_path(out_tracks, well), config_for_provenance)
         write_parquet(_with_keys(site_qc, plate, well), well_part_path(out_site_qc, well), config_for_provenance)
         if out_collective:
-            table = collective_table(cells, settings, collective or CollectiveSettings(), well)
+            table = collective_table(cells, settings, collective or CollectiveSettings.defaults(), well)
             write_parquet(_with_keys(table, plate, well), well_part_path(out_collective, well), config_for_provenance)
