@@ -111,23 +111,28 @@ def test_every_exclusion_is_in_the_ledger_with_value_and_threshold():
     assert profile.loc["B03", "n_frames"] == 1
 
 
-def test_percent_of_control_puts_controls_at_0_and_100():
+@pytest.mark.parametrize(("method", "negative_at", "positive_at"), [("percent_activity", 0.0, 100.0)])
+def test_percent_activity_puts_controls_at_0_and_100(method, negative_at, positive_at):
+    # normalized percent activity: 0 at the negative, 100 at the positive controls' median (common practice)
     cells, tracks, qc, layout = _plate(edge_ratio=1.0)
-    tables = build_plate_tables(
-        cells,
-        tracks,
-        qc,
-        layout,
-        "P1",
-        "d1",
-        96,
-        PlateSettings.defaults(normalization="percent_of_control"),
-        ExclusionRules.defaults(),
-    )
+    settings = PlateSettings.defaults(normalization=method)
+    tables = build_plate_tables(cells, tracks, qc, layout, "P1", "d1", 96, settings, ExclusionRules.defaults())
     profile = tables.profile[tables.profile["excluded_by"] == ""]
-    neg = profile.loc[profile["role"] == "negative_control", "area_um2_percent_of_control"]
-    pos = profile.loc[profile["role"] == "positive_control", "area_um2_percent_of_control"]
-    assert np.median(neg) == pytest.approx(0.0, abs=1e-9) and np.median(pos) == pytest.approx(100.0, abs=1e-9)
+    neg = profile.loc[profile["role"] == "negative_control", f"area_um2_{method}"]
+    pos = profile.loc[profile["role"] == "positive_control", f"area_um2_{method}"]
+    assert np.median(neg) == pytest.approx(negative_at, abs=1e-9)
+    assert np.median(pos) == pytest.approx(positive_at, abs=1e-9)
+
+
+def test_percent_of_control_is_the_percentage_of_the_negative_controls_median():
+    cells, tracks, qc, layout = _plate(edge_ratio=1.0)
+    settings = PlateSettings.defaults(normalization="percent_of_control")
+    tables = build_plate_tables(cells, tracks, qc, layout, "P1", "d1", 96, settings, ExclusionRules.defaults())
+    profile = tables.profile[tables.profile["excluded_by"] == ""]
+    neg = profile.loc[profile["role"] == "negative_control"]
+    assert np.median(neg["area_um2_percent_of_control"]) == pytest.approx(100.0, abs=1e-9)
+    ratio = profile["area_um2_percent_of_control"] / profile["area_um2"]
+    np.testing.assert_allclose(ratio, 100.0 / np.median(neg["area_um2"]), rtol=1e-12)
 
 
 def test_single_well_treatment_and_image_qc_are_reported():
@@ -203,25 +208,29 @@ def test_well_summaries_streamed_from_files_equal_pandas_and_the_in_memory_path(
     cells = cells.assign(
         time_min=cells["frame"] * 10.0,
         touches_border=rng.random(len(cells)) < 0.1,
-        signed=rng.normal(0, 1, len(cells)),
-        patchy=np.where(rng.random(len(cells)) < 0.2, np.nan, rng.lognormal(0, 1, len(cells))),
+        glcm_correlation_nuclear=rng.normal(0, 1, len(cells)),
+        nearest_neighbour_um=np.where(rng.random(len(cells)) < 0.2, np.nan, rng.lognormal(0, 1, len(cells))),
     )
-    cells.loc[cells["well"] == "C07", "patchy"] = np.nan  # a well with no finite value
+    cells.loc[cells["well"] == "C07", "nearest_neighbour_um"] = np.nan  # a well with no finite value
     qc.loc[(qc["well"] == "E02") & (qc["frame"] == 0), "focus_score"] = 0.1  # an excluded site-frame
     rules = ExclusionRules.defaults(min_focus_score=0.5)
     folders = _write_cells_folders(tmp_path, cells)
     excluded = pd.DataFrame({"well": ["E02"], "site": [1], "frame": [0]})
     summaries, counts = summarise_observation_files(folders, excluded, statistic, threads=2)
     kept = cells[~cells["touches_border"] & ~((cells["well"] == "E02") & (cells["frame"] == 0))]
-    features = ["area_um2", "signed", "patchy"]
+    features = ["area_um2", "glcm_correlation_nuclear", "nearest_neighbour_um"]
     if statistic == "median":
         expected = kept.groupby("well")[features].median()
     else:
         expected = kept.groupby("well")[features].median()
-        logs = np.log(kept[["area_um2", "patchy"]]).groupby(kept["well"]).mean()
-        expected[["area_um2", "patchy"]] = np.exp(logs)  # "signed" has negative values: median
+        logs = np.log(kept[["area_um2", "nearest_neighbour_um"]]).groupby(kept["well"]).mean()
+        expected[["area_um2", "nearest_neighbour_um"]] = np.exp(
+            logs
+        )  # "glcm_correlation_nuclear" has negative values: median
     pd.testing.assert_frame_equal(summaries[features], expected.loc[summaries.index], check_names=False, rtol=1e-12)
-    assert summaries.loc["C07", "patchy"] != summaries.loc["C07", "patchy"]  # NaN, not dropped
+    assert (
+        summaries.loc["C07", "nearest_neighbour_um"] != summaries.loc["C07", "nearest_neighbour_um"]
+    )  # NaN, not dropped
     expected_counts = cells.groupby(["well", "site", "frame"]).agg(
         observations=("object", "size"), whole=("touches_border", lambda t: int((~t).sum()))
     )

@@ -6,7 +6,6 @@ import pytest
 
 from plateloom.plate.exclusions import ExclusionRules, well_exclusions
 from plateloom.plate.qc import (
-    MAD_TO_SD,
     robust_ssmd,
     robust_z,
     robust_z_prime,
@@ -15,6 +14,7 @@ from plateloom.plate.qc import (
     z_prime,
     z_prime_verdict,
 )
+from plateloom.stats import MAD_TO_SD
 
 
 def test_z_prime_worked_example():

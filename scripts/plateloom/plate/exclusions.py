@@ -44,49 +44,74 @@ def empty_ledger() -> pd.DataFrame:
     )
 
 
+@dataclass(frozen=True)
+class ExclusionRule:
+    """One exclusion rule as data: the config key holding its threshold, the level it acts on, the
+    column it reads there, and whether the threshold is a floor ("min") or a ceiling ("max").
+    A column ending in ``*`` reads the worst of the matching columns (e.g. every channel)."""
+
+    name: str
+    level: str  # site_frame, well or plate
+    column: str
+    bound: str  # "min": values below the threshold fail; "max": values above it fail
+
+    def values(self, table: pd.DataFrame) -> pd.Series | None:
+        """The value the rule compares per row of ``table`` (None when the table has no such column)."""
+        if not self.column.endswith("*"):
+            return table[self.column] if self.column in table.columns else None
+        columns = [c for c in table.columns if c.startswith(self.column[:-1])]
+        if not columns:
+            return None
+        return table[columns].min(axis=1) if self.bound == "min" else table[columns].max(axis=1)
+
+    def fails(self, values: np.ndarray, threshold: float) -> np.ndarray:
+        """Rows that fail the rule (a NaN value fails a plate rule: its Z' could not be computed)."""
+        values = np.asarray(values, float)
+        failing = values < threshold if self.bound == "min" else values > threshold
+        return failing | (~np.isfinite(values) if self.level == "plate" else False)
+
+
+# Every exclusion rule plateloom applies; each threshold is a key of config section exclusion_rules.
+EXCLUSION_RULES = (
+    ExclusionRule("min_focus_score", "site_frame", "focus_score", "min"),
+    ExclusionRule("max_saturated_fraction", "site_frame", "saturated_fraction_*", "max"),
+    ExclusionRule("min_cells_per_well", "well", "cell_count", "min"),
+    ExclusionRule("min_plate_z_prime", "plate", "z_prime", "min"),
+)
+
+
+def _rules_at(level: str, rules: ExclusionRules) -> list[tuple[ExclusionRule, float]]:
+    """The rules of one level that are switched on, with their thresholds."""
+    found = []
+    for rule in EXCLUSION_RULES:
+        threshold = getattr(rules, rule.name)
+        if rule.level == level and threshold is not None:
+            found.append((rule, float(threshold)))
+    return found
+
+
 def site_frame_exclusions(site_qc: pd.DataFrame, rules: ExclusionRules, plate: str) -> pd.DataFrame:
-    """Ledger rows for site-frames failing the focus floor or the saturation ceiling (any channel), and for
-    frames that could not be used at all (rule unusable_frame: missing, unreadable, wrong shape, NaN pixels)."""
+    """Ledger rows for site-frames failing a site-frame rule (focus floor, saturation ceiling over
+    any channel), and for frames that could not be used at all (rule unusable_frame: missing,
+    unreadable, wrong shape, NaN pixels)."""
     rows = []
     if "frame_problem" in site_qc.columns:
         bad = site_qc[site_qc["frame_problem"].fillna("") != ""]
+        nan = float("nan")
         rows += [
-            ("site_frame", plate, r.well, int(r.site), int(r.frame), "unusable_frame", float("nan"), float("nan"))
+            ("site_frame", plate, r.well, int(r.site), int(r.frame), "unusable_frame", nan, nan)
             for r in bad.itertuples()
         ]
-    if rules.min_focus_score is not None:
-        bad = site_qc[site_qc["focus_score"] < rules.min_focus_score]
+    for rule, threshold in _rules_at("site_frame", rules):
+        values = rule.values(site_qc)
+        if values is None:
+            continue
+        failing = rule.fails(values.to_numpy(float), threshold) & values.notna().to_numpy()
+        bad = site_qc[failing]
         rows += [
-            (
-                "site_frame",
-                plate,
-                r.well,
-                int(r.site),
-                int(r.frame),
-                "min_focus_score",
-                float(r.focus_score),
-                rules.min_focus_score,
-            )
-            for r in bad.itertuples()
+            ("site_frame", plate, r.well, int(r.site), int(r.frame), rule.name, float(v), threshold)
+            for r, v in zip(bad.itertuples(), values[failing])
         ]
-    if rules.max_saturated_fraction is not None:
-        columns = [c for c in site_qc.columns if c.startswith("saturated_fraction_")]
-        if columns:
-            worst = site_qc[columns].max(axis=1)
-            bad = site_qc[worst > rules.max_saturated_fraction]
-            rows += [
-                (
-                    "site_frame",
-                    plate,
-                    r.well,
-                    int(r.site),
-                    int(r.frame),
-                    "max_saturated_fraction",
-                    float(w),
-                    rules.max_saturated_fraction,
-                )
-                for r, w in zip(bad.itertuples(), worst[bad.index])
-            ]
     return pd.DataFrame(rows, columns=LEDGER_COLUMNS) if rows else empty_ledger()
 
 
@@ -106,15 +131,16 @@ def drop_excluded_site_frames(cells: pd.DataFrame, ledger: pd.DataFrame) -> pd.D
 
 
 def well_exclusions(profile: pd.DataFrame, rules: ExclusionRules) -> tuple[pd.DataFrame, pd.DataFrame]:
-    """Mark wells by the well rules in column excluded_by ('' when kept) and return their ledger rows."""
+    """Mark wells by the well rules in column excluded_by ('' when kept; every failed rule named,
+    joined by '; ') and return their ledger rows."""
     out = profile.copy()
-    reasons = np.full(len(out), "", dtype=object)
+    reasons: list[list[str]] = [[] for _ in range(len(out))]
     rows = []
-    if rules.min_cells_per_well is not None:
-        low = out["cell_count"].to_numpy(float) < rules.min_cells_per_well
-        for index in np.flatnonzero(low):
-            value = float(out["cell_count"].iloc[index])
-            reasons[index] = f"min_cells_per_well: {value:.1f} < {rules.min_cells_per_well:g}"
+    for rule, threshold in _rules_at("well", rules):
+        values = out[rule.column].to_numpy(float)
+        for index in np.flatnonzero(rule.fails(values, threshold)):
+            comparison = "<" if rule.bound == "min" else ">"
+            reasons[index].append(f"{rule.name}: {values[index]:.1f} {comparison} {threshold:g}")
             rows.append(
                 (
                     "well",
@@ -122,36 +148,22 @@ def well_exclusions(profile: pd.DataFrame, rules: ExclusionRules) -> tuple[pd.Da
                     out["well"].iloc[index],
                     -1,
                     -1,
-                    "min_cells_per_well",
-                    value,
-                    float(rules.min_cells_per_well),
+                    rule.name,
+                    float(values[index]),
+                    threshold,
                 )
             )
-    out["excluded_by"] = reasons
+    out["excluded_by"] = np.array(["; ".join(r) for r in reasons], dtype=object)
     ledger = pd.DataFrame(rows, columns=LEDGER_COLUMNS) if rows else empty_ledger()
     return out, ledger
 
 
 def plate_exclusion(qc: pd.DataFrame, rules: ExclusionRules, plate: str) -> pd.DataFrame:
     """A ledger row when the plate's Z'-factor on the chosen feature is below the floor (or not computable)."""
-    if rules.min_plate_z_prime is None:
-        return empty_ledger()
-    row = qc[qc["feature"] == rules.z_prime_feature]
-    value = float(row["z_prime"].iloc[0]) if len(row) else float("nan")
-    if np.isfinite(value) and value >= rules.min_plate_z_prime:
-        return empty_ledger()
-    return pd.DataFrame(
-        [
-            (
-                "plate",
-                plate,
-                "",
-                -1,
-                -1,
-                f"min_plate_z_prime ({rules.z_prime_feature})",
-                value,
-                float(rules.min_plate_z_prime),
-            )
-        ],
-        columns=LEDGER_COLUMNS,
-    )
+    rows = []
+    for rule, threshold in _rules_at("plate", rules):
+        row = qc[qc["feature"] == rules.z_prime_feature]
+        value = float(row[rule.column].iloc[0]) if len(row) else float("nan")
+        if rule.fails(np.array([value]), threshold)[0]:
+            rows.append(("plate", plate, "", -1, -1, f"{rule.name} ({rules.z_prime_feature})", value, threshold))
+    return pd.DataFrame(rows, columns=LEDGER_COLUMNS) if rows else empty_ledger()

@@ -9,7 +9,7 @@ import numpy as np
 import pandas as pd
 from scipy import stats
 
-from plateloom.plate.qc import MAD_TO_SD, mad
+from plateloom.stats import MAD_TO_SD, mad
 
 
 @dataclass(frozen=True)

@@ -5,14 +5,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-MAD_TO_SD = 1.4826  # makes the MAD consistent with the SD of a normal distribution (Rousseeuw & Croux 1993)
-
-
-def mad(values: np.ndarray) -> float:
-    """Median absolute deviation from the median (unscaled)."""
-    values = np.asarray(values, float)
-    values = values[np.isfinite(values)]
-    return float(np.median(np.abs(values - np.median(values)))) if len(values) else float("nan")
+from plateloom.stats import MAD_TO_SD, mad
 
 
 def robust_z(values: np.ndarray, controls: np.ndarray) -> np.ndarray:

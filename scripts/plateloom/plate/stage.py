@@ -7,6 +7,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
+from plateloom.columns import well_features
 from plateloom.plate.exclusions import (
     ExclusionRules,
     drop_excluded_site_frames,
@@ -15,19 +16,18 @@ from plateloom.plate.exclusions import (
     site_frame_exclusions,
     well_exclusions,
 )
+from plateloom.plate.normalization import NORMALIZATIONS, normalize
 from plateloom.plate.positional import b_scores, edge_effect, positional_correction
-from plateloom.plate.qc import MAD_TO_SD, mad, plate_qc, robust_z
+from plateloom.plate.qc import plate_qc
 from plateloom.plate.summaries import (
     observation_counts,
     observation_summaries,
     summarise_observation_files,
     summarise_wells,
-    well_features,
 )
 from plateloom.settings import FromSchema
 from plateloom.setup.plate_formats import plate_format, well_grid
-
-NORMALIZATIONS = ("robust_z", "percent_of_control", "raw")
+from plateloom.stats import MAD_TO_SD, mad
 
 
 @dataclass(frozen=True)
@@ -92,14 +92,6 @@ def _grid_values(profile: pd.DataFrame, values: np.ndarray, fmt) -> np.ndarray:
 
 def _from_grid(profile: pd.DataFrame, grid: np.ndarray) -> np.ndarray:
     return grid[profile["row"].to_numpy() - 1, profile["column"].to_numpy() - 1]
-
-
-def percent_of_control(values: np.ndarray, negative: np.ndarray, positive: np.ndarray) -> np.ndarray:
-    """100 x (x - median(neg)) / (median(pos) - median(neg)): 0 at the negative, 100 at the positive control."""
-    if len(negative) == 0 or len(positive) == 0:
-        return np.full(np.shape(values), np.nan)
-    span = np.median(positive) - np.median(negative)
-    return 100.0 * (values - np.median(negative)) / span if span != 0 else np.full(np.shape(values), np.nan)
 
 
 def build_plate_tables(
@@ -196,7 +188,7 @@ def _plate_tables(
     ).to_numpy(float)
     profile, well_ledger = well_exclusions(profile, rules)
     ledger.append(well_ledger)
-    features = well_features(profile)
+    features = well_features(list(profile.columns))
     kept = (profile["excluded_by"] == "").to_numpy()
     roles = profile["role"].to_numpy()
     for treatment, count in profile.loc[kept & (roles != "negative_control"), "treatment"].value_counts().items():
@@ -231,13 +223,9 @@ def _plate_tables(
     positive = profile[(profile["role"] == "positive_control") & kept]
     for feature in features:
         method = settings.normalization_by_feature.get(feature, settings.normalization)
-        values = profile[feature].to_numpy(float)
-        if method == "robust_z":
-            profile[f"{feature}_robust_z"] = robust_z(values, negative[feature].to_numpy(float))
-        elif method == "percent_of_control":
-            profile[f"{feature}_percent_of_control"] = percent_of_control(
-                values, negative[feature].dropna().to_numpy(float), positive[feature].dropna().to_numpy(float)
-            )
+        normalized = normalize(profile[feature], negative[feature], positive[feature], method)
+        if normalized is not None:
+            profile[feature + NORMALIZATIONS[method].suffix] = normalized
     counts = profile.loc[kept, "cell_count"].to_numpy(float)
     if len(counts) >= 5 and mad(counts) > 0:
         z = (profile["cell_count"].to_numpy(float) - np.median(counts)) / (MAD_TO_SD * mad(counts))

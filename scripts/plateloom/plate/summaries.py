@@ -12,39 +12,13 @@ import pyarrow as pa
 import pyarrow.dataset as ds
 import pyarrow.parquet as pq
 
+from plateloom.columns import observation_features, track_features
 from plateloom.errors import InputError
 from plateloom.setup.plate_formats import is_edge_well, parse_well, plate_format
-from plateloom.well.collective import COUNT_COLUMNS
 from plateloom.well.track_stats import growth_rate_per_h
 
-TRACK_FEATURES = ("speed_um_per_min", "straightness", "walk_speed_um_per_min", "persistence_time_min")
-REPORTER_TRACK_PREFIXES = ("track_mean_", "track_cv_", "period_min_", "peaks_per_h_", "max_rate_per_min_")
-NON_FEATURE_COLUMNS = (
-    "plate",
-    "well",
-    "site",
-    "frame",
-    "time_min",
-    "object",
-    "track",
-    "parent_track",
-    "touches_border",
-    "centroid_x_um",
-    "centroid_y_um",
-    "chunk",
-)
 
-
-def observation_features(columns: list[str]) -> list[str]:
-    """The measured per-observation features among a cells table's columns."""
-    return [c for c in columns if c not in NON_FEATURE_COLUMNS]
-
-
-def track_feature_columns(columns: list[str]) -> list[str]:
-    """The per-track features summarised per well: motility, walk fit, reporter dynamics."""
-    return [c for c in columns if c in TRACK_FEATURES or c.startswith(REPORTER_TRACK_PREFIXES)]
-
-
+# columns of the cells table never read for the well summaries (keys of other tables, positions)
 def well_growth_rates(counts: pd.DataFrame) -> pd.Series:
     """Per well: exponential growth rate of the nucleus count (1/h), from counts summed over sites per frame.
 
@@ -290,7 +264,7 @@ def summarise_observation_files(
             f"the cells table has no column {', '.join(missing)}.",
             "re-run the per-well jobs of this plate (delete its results/cells folder, then snakemake).",
         )
-    features = observation_features([n for n in schema.names if n not in NOT_READ_FOR_PROFILES])
+    features = observation_features(list(schema.names))
     excluded: dict[str, np.ndarray] = {}
     for well, rows in excluded_site_frames.groupby(excluded_site_frames["well"].astype(str)):
         excluded[well] = _site_frame_key(rows["site"], rows["frame"])
@@ -373,7 +347,7 @@ def summarise_wells(
         np.ones(len(usable), bool),
         track_codes,
         [str(w) for w in np.asarray(track_wells, dtype=object)],
-        track_feature_columns(list(tracks.columns)),
+        track_features(list(tracks.columns)),
         statistic,
     )
     growth = well_growth_rates(counts)
@@ -402,31 +376,3 @@ def summarise_wells(
     profile.insert(4, "column", position[:, 1] + 1)
     profile.insert(5, "is_edge", [is_edge_well(w, fmt) for w in profile["well"]])
     return profile
-
-
-def well_features(profile: pd.DataFrame) -> list[str]:
-    """The feature columns of a well-profile table (cell_count, medians, motility)."""
-    fixed = {
-        "plate",
-        "batch",
-        "well",
-        "row",
-        "column",
-        "is_edge",
-        "role",
-        "condition",
-        "dose",
-        "dose_unit",
-        "treatment",
-        "n_observations",
-        "n_sites",
-        "n_frames",
-        "n_tracks",
-        "excluded_by",
-        "plate_excluded_by",
-        "cell_count_outlier",
-        "fraction_observations_used",
-        *COUNT_COLUMNS,
-    }
-    derived = ("_robust_z", "_percent_of_control", "_b_score", "_uncorrected")
-    return [c for c in profile.columns if c not in fixed and not c.endswith(derived)]

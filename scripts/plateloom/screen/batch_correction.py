@@ -18,11 +18,10 @@ scale-adjusting methods, for the weight of each batch.
 
 from __future__ import annotations
 
+from collections.abc import Callable
+
 import numpy as np
 import pandas as pd
-
-METHODS = ("none", "control_location", "control_location_scale", "combat")
-MAD_TO_SD = 1.4826  # consistency constant of the MAD for a normal distribution (common practice)
 
 
 def model_scale(
@@ -154,17 +153,22 @@ def _posterior(
     return g_old, d_old
 
 
-def correct_batches(
-    values: pd.DataFrame, batch: np.ndarray, is_control: np.ndarray, treatment: np.ndarray, method: str
+def _uncorrected(
+    values: pd.DataFrame, batch: np.ndarray, is_control: np.ndarray, treatment: np.ndarray
 ) -> pd.DataFrame:
-    """Batch-corrected model-scale values by ``method`` (one of ``METHODS``); rows with NaN are left
-    as they are for ComBat."""
-    if method not in METHODS:
-        raise ValueError(f"unknown batch correction {method!r}; choose one of {', '.join(METHODS)}")
-    if method == "none" or len(np.unique(batch)) < 2:
-        return values.copy()
-    if method in ("control_location", "control_location_scale"):
-        return align_to_controls(values, batch, is_control, scale=method == "control_location_scale")
+    return values.copy()
+
+
+def _control_location(values: pd.DataFrame, batch: np.ndarray, is_control: np.ndarray, treatment: np.ndarray):
+    return align_to_controls(values, batch, is_control, scale=False)
+
+
+def _control_location_scale(values: pd.DataFrame, batch: np.ndarray, is_control: np.ndarray, treatment: np.ndarray):
+    return align_to_controls(values, batch, is_control, scale=True)
+
+
+def _combat(values: pd.DataFrame, batch: np.ndarray, is_control: np.ndarray, treatment: np.ndarray) -> pd.DataFrame:
+    """ComBat on the complete rows, with the treatments as covariates; other rows are left as they are."""
     corrected = values.copy()
     complete = values.notna().all(axis=1).to_numpy()
     usable = [c for c in values.columns if values.loc[complete, c].std() > 0]
@@ -179,6 +183,27 @@ def correct_batches(
         values.loc[complete, usable].to_numpy(), np.asarray(batch)[complete], covariates
     )
     return corrected
+
+
+# The batch corrections (config screen.batch_correction), each (values, batch, is_control, treatment) -> values.
+BATCH_CORRECTIONS: dict[str, Callable[[pd.DataFrame, np.ndarray, np.ndarray, np.ndarray], pd.DataFrame]] = {
+    "none": _uncorrected,
+    "control_location": _control_location,
+    "control_location_scale": _control_location_scale,
+    "combat": _combat,
+}
+
+
+def correct_batches(
+    values: pd.DataFrame, batch: np.ndarray, is_control: np.ndarray, treatment: np.ndarray, method: str
+) -> pd.DataFrame:
+    """Batch-corrected model-scale values by ``method`` (a key of ``BATCH_CORRECTIONS``); a single
+    batch is left as it is."""
+    if method not in BATCH_CORRECTIONS:
+        raise ValueError(f"unknown batch correction {method!r}; choose one of {', '.join(BATCH_CORRECTIONS)}")
+    if len(np.unique(batch)) < 2:
+        return values.copy()
+    return BATCH_CORRECTIONS[method](values, batch, is_control, treatment)
 
 
 def variance_shares(values: pd.DataFrame, batch: np.ndarray, plate: np.ndarray, treatment: np.ndarray) -> pd.DataFrame:

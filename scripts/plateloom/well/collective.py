@@ -365,7 +365,6 @@ def reporter_events(
 # ---------------------------------------------------------------------------------------------
 # Per well
 
-COUNT_COLUMNS = ("n_neighbour_links", "n_coupling_tests", "n_events", "spreading_p_value")
 # The readouts worth modelling, as screen.features entries ({reporter}: the reporter channel's name).
 MODELLED_READOUTS = (
     "phase_order_{reporter}",
