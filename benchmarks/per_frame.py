@@ -30,19 +30,17 @@ from skimage.filters import threshold_otsu
 from plateloom.demo.scenario import QUANTITIES, load_scenario
 from plateloom.demo.simulate import simulate_site
 from plateloom.io.images import index_plate_images
+from plateloom.well.cell_bodies import grow_cell_bodies
 from plateloom.well.features import (
     ObjectPixels,
     convex_areas,
     glcm_measures,
     perimeters,
 )
-from plateloom.well.segment import (
-    background_levels,
-    grow_cell_bodies,
-    segment_smoothed,
-    smooth_image,
-)
+from plateloom.well.image_qc import background_levels
+from plateloom.well.segment import segment_smoothed
 from plateloom.well.stage import WellSettings, analyse_well, measure_frame
+from plateloom.well.thresholds import smooth_image
 
 ROOT = Path(__file__).resolve().parents[1]
 

@@ -13,19 +13,16 @@ from skimage.measure import regionprops_table
 
 from plateloom.demo.scenario import QUANTITIES, load_scenario
 from plateloom.demo.simulate import simulate_site
+from plateloom.well.cell_bodies import grow_cell_bodies
 from plateloom.well.features import (
     GLCM_ANGLES,
     ObjectPixels,
     glcm_measures,
     measure_objects,
 )
-from plateloom.well.segment import (
-    focus_score,
-    grow_cell_bodies,
-    object_threshold,
-    segment_label_free,
-    segment_nuclei,
-)
+from plateloom.well.image_qc import focus_score
+from plateloom.well.segment import segment_label_free, segment_nuclei
+from plateloom.well.thresholds import object_threshold
 
 
 def _demo_frame(cells=60, size=256, seed=3):
@@ -191,7 +188,7 @@ def test_label_free_path_finds_textured_cells_on_a_smooth_dish():
 def test_focus_score_is_the_variance_of_the_laplacian_and_falls_with_defocus():
     # Reference: scipy.ndimage.laplace (the 5-point discrete Laplacian); variance-of-Laplacian focus
     # measure (Pech-Pacheco et al. 2000). The score uses every FOCUS_ROW_STRIDE-th interior row.
-    from plateloom.well.segment import FOCUS_ROW_STRIDE
+    from plateloom.well.image_qc import FOCUS_ROW_STRIDE
 
     planes, _ = _demo_frame(cells=60, size=256)
     sharp = ndimage.gaussian_filter(planes[0], 1.0)
@@ -251,7 +248,7 @@ def test_a_cell_body_reaching_the_image_edge_flags_its_nucleus_as_touching_the_b
 def test_background_level_is_the_median_away_from_objects_on_odd_sized_fields():
     # Reference: median of every pixel at least 3 px from any object (scipy distance transform),
     # on a 101x99 field (not a multiple of the sampling stride); planted background 100.
-    from plateloom.well.segment import background_levels
+    from plateloom.well.image_qc import background_levels
 
     rng = np.random.default_rng(8)
     labels = np.zeros((101, 99), np.int32)
@@ -273,7 +270,7 @@ def test_background_level_is_the_median_away_from_objects_on_odd_sized_fields():
 def test_fill_holes_equals_scipy_binary_fill_holes(seed):
     # Reference: scipy.ndimage.binary_fill_holes (default 4-connected background), on rings (holes)
     # and on fields whose background all reaches the border (no hole).
-    from plateloom.well.segment import fill_holes
+    from plateloom.well.thresholds import fill_holes
 
     rng = np.random.default_rng(seed)
     mask = ndimage.gaussian_filter(rng.random((120, 130)), 3) > 0.52
@@ -288,7 +285,7 @@ def test_fill_holes_equals_scipy_binary_fill_holes(seed):
 @pytest.mark.parametrize("shape, sigma", [((256, 300), 1.25), ((64, 50), 2.5), ((7, 9), 1.25), ((40, 3), 0.6)])
 def test_smoothing_equals_scipy_gaussian_filter(shape, sigma):
     # Reference: scipy.ndimage.gaussian_filter (truncate 4, mode "reflect"), within float32 rounding.
-    from plateloom.well.segment import smooth_image
+    from plateloom.well.thresholds import smooth_image
 
     image = (np.random.default_rng(1).gamma(2.0, 300.0, shape)).astype(np.float32)
     reference = ndimage.gaussian_filter(image, sigma)
@@ -313,7 +310,7 @@ def test_bounding_boxes_from_pixels_equal_find_objects():
 def test_upsampling_of_binned_images_is_bilinear_interpolation():
     # Reference: scipy.ndimage.map_coordinates (order 1, edges repeated) at the binned coordinates
     # of the full pixel centres, (y - 1/2) / 2 and (x - 1/2) / 2.
-    from plateloom.well.segment import _upsample2
+    from plateloom.well.cell_bodies import _upsample2
 
     binned = np.random.default_rng(12).normal(size=(37, 52)).astype(np.float32)
     yy, xx = np.mgrid[0:74, 0:104]

@@ -20,8 +20,8 @@ from plateloom.well.collective import CollectiveSettings
 from plateloom.well.features import object_columns
 from plateloom.well.illumination import METHODS as ILLUMINATION_METHODS
 from plateloom.well.illumination import IlluminationSettings
-from plateloom.well.segment import THRESHOLD_METHODS
 from plateloom.well.stage import WellSettings
+from plateloom.well.thresholds import THRESHOLD_METHODS
 from plateloom.well.tracking import track_features
 
 SCHEMA = load_schema()["properties"]

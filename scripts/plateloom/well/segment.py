@@ -1,6 +1,5 @@
-"""Segmentation: nuclei (Gaussian smoothing, automatic threshold, seeded watershed), cell bodies
-grown from the nuclei on a second channel, and a label-free path for phase-contrast or
-bright-field images.
+"""Segmentation of nuclei (Gaussian smoothing, automatic threshold, seeded watershed) and a
+label-free path for phase-contrast or bright-field images.
 
 Whole-image work is a handful of vectorised filters; the costly splitting of touching nuclei
 (distance transform, h-maxima, watershed) runs only on the bounding boxes of the components
@@ -9,116 +8,24 @@ whose shape says they may hold more than one nucleus.
 
 from __future__ import annotations
 
-from collections.abc import Callable
-
 import numpy as np
 from scipy import ndimage
 from skimage.feature import peak_local_max
-from skimage.filters import threshold_li, threshold_otsu, threshold_triangle
 from skimage.morphology import h_maxima
 from skimage.segmentation import watershed
 
-# Objects brighter than the background by fewer than this many robust noise SDs mean the field
-# holds no objects (Otsu always finds a threshold, even in pure noise).
-MIN_CONTRAST_NOISE_SDS = 5.0
+from plateloom.well.thresholds import BACKGROUND_STRIDE, fill_holes, object_threshold, smooth_image
+
 SEED_DEPTH_PX = 1.0
+
+
 # A component is sent to the splitting step when its area is this many times the frame's
 # median component area, or when it fills less of its moment ellipse than this fraction
 # (a convex ellipse fills about 1; two touching disks fill 0.89).
 SPLIT_AREA_FACTOR = 1.5
+
+
 SPLIT_ELLIPSE_FILL = 0.96
-# Statistics of the background are taken on every BACKGROUND_STRIDE-th pixel in each direction:
-# the same answer to a fraction of a grey level, at 1/16 of the cost.
-BACKGROUND_STRIDE = 4
-# Automatic thresholds are computed from at most this many pixels (a regular grid sample of larger
-# images): a 256-bin histogram of a quarter of a 1024x1024 frame puts the threshold within a
-# fraction of a bin of the whole frame's, at a quarter of the cost.
-THRESHOLD_SAMPLE_PIXELS = 1 << 18
-# The focus score's Laplacian is taken on every FOCUS_ROW_STRIDE-th row.
-FOCUS_ROW_STRIDE = 4
-# Cell bodies are found on the 2x2-binned body channel when its smoothing is at least this wide
-# (pixels) and the image at least twice BODY_BINNING_MIN_SIDE_PX on each side.
-BODY_BINNING_MIN_SIGMA_PX = 2.0
-BODY_BINNING_MIN_SIDE_PX = 32
-
-THRESHOLD_METHODS: dict[str, Callable[[np.ndarray], float]] = {
-    "otsu": threshold_otsu,  # Otsu 1979, IEEE Trans. SMC 9:62
-    "li": threshold_li,  # Li & Tam 1998, Pattern Recognit. Lett. 19:771
-    "triangle": threshold_triangle,  # Zack, Rogers & Latt 1977, J. Histochem. Cytochem. 25:741
-}
-
-
-def smooth_image(image: np.ndarray, sigma_px: float) -> np.ndarray:
-    """Gaussian smoothing in float32 (sigma in pixels; 0 returns a float32 copy).
-
-    The filter of ``scipy.ndimage.gaussian_filter`` (kernel truncated at 4 sigma, edges
-    reflected): along rows by scipy, along columns as a weighted sum of shifted copies of the
-    rows, which reads memory in order (scipy's column pass is several times slower than its row
-    pass). Equal to scipy's result within float32 rounding.
-    """
-    image = image.astype(np.float32, copy=False)
-    if sigma_px <= 0:
-        return image.copy()
-    radius = int(4.0 * sigma_px + 0.5)
-    offsets = np.arange(-radius, radius + 1)
-    kernel = np.exp(-0.5 * offsets**2 / sigma_px**2)
-    kernel /= kernel.sum()
-    rows = ndimage.correlate1d(image, kernel, axis=1, mode="reflect")
-    height = image.shape[0]
-    padded = np.pad(rows, ((radius, radius), (0, 0)), mode="symmetric")  # numpy's "symmetric" = scipy's "reflect"
-    out = padded[radius : radius + height] * np.float32(kernel[radius])
-    pair = np.empty_like(out)
-    for shift in range(1, radius + 1):
-        np.add(
-            padded[radius - shift : radius - shift + height], padded[radius + shift : radius + shift + height], out=pair
-        )
-        pair *= np.float32(kernel[radius + shift])
-        out += pair
-    return out
-
-
-def object_threshold(smooth: np.ndarray, method: str = "otsu") -> float:
-    """Foreground threshold of a smoothed image (grey levels), or NaN when the field holds no objects.
-
-    A field whose pixels above the Otsu split lie (in median) within MIN_CONTRAST_NOISE_SDS robust
-    noise SDs of those below it is empty: every automatic threshold finds a level even in pure noise.
-    """
-    if method not in THRESHOLD_METHODS:
-        raise ValueError(f"unknown threshold method {method!r}; use one of {sorted(THRESHOLD_METHODS)}")
-    low, high = float(smooth.min()), float(smooth.max())  # NaN anywhere makes both NaN
-    if not (np.isfinite(low) and np.isfinite(high)) or high == low:
-        return float("nan")
-    # Whether the field holds objects is judged on the Otsu split whatever the method: contrast
-    # and noise are measured on the pixels below it, so a dense field (a third or more of it
-    # cells) does not inflate the noise estimate.
-    stride = int(np.ceil(np.sqrt(smooth.size / THRESHOLD_SAMPLE_PIXELS)))
-    threshold = float(THRESHOLD_METHODS[method](smooth[::stride, ::stride] if stride > 1 else smooth))
-    sample = smooth[::BACKGROUND_STRIDE, ::BACKGROUND_STRIDE]
-    if method == "otsu":
-        split = threshold
-    else:
-        split = float(threshold_otsu(sample)) if sample.max() > sample.min() else float(sample.max())
-    below, above = sample[sample <= split], sample[sample > split]
-    if len(below) < 16 or len(above) == 0:
-        return float("nan")
-    below_median = float(np.median(below))
-    noise_sd = 1.4826 * float(np.median(np.abs(below - below_median)))  # robust SD: 1.4826 x MAD
-    if np.median(above) - below_median < MIN_CONTRAST_NOISE_SDS * max(noise_sd, 1e-6):
-        return float("nan")
-    return threshold
-
-
-def fill_holes(mask: np.ndarray) -> np.ndarray:
-    """Fill background regions not connected to the image border (as ``binary_fill_holes``, 4-connected)."""
-    background, count = ndimage.label(~mask)
-    if count == 0:
-        return mask.copy()
-    edge = np.unique(np.concatenate([background[0], background[-1], background[:, 0], background[:, -1]]))
-    if np.count_nonzero(edge) == count:  # every background region reaches the border: no hole
-        return mask.copy()
-    outside = np.zeros(count + 1, bool)
-    outside[edge] = True
-    return mask | ~outside[background]
 
 
 def _object_pixels(labels: np.ndarray, index: np.ndarray | None) -> tuple[np.ndarray, np.ndarray]:
@@ -382,153 +289,3 @@ def segment_label_free(
         return empty, threshold
     labels = split_touching(components, count, max(1, int(round(split_min_distance_um / pixel_size_um))))
     return _drop_small(labels, min_area_px), threshold
-
-
-def grow_cell_bodies(
-    nuclei: np.ndarray,
-    body_image: np.ndarray,
-    pixel_size_um: float,
-    smoothing_sigma_um: float,
-    threshold_method: str = "otsu",
-) -> np.ndarray:
-    """Cell-body labels grown from the nuclei on a cytoplasm or membrane channel.
-
-    The body channel is smoothed and thresholded (its own foreground); a watershed on the
-    inverted smoothed intensity, seeded by the nuclei and confined to that foreground plus the
-    nuclei, gives each nucleus its cell (same label). Cytoplasm = cell body minus nucleus.
-    Foreground not reached from any nucleus stays 0.
-
-    When the smoothing is at least BODY_BINNING_MIN_SIGMA_PX pixels the smoothed image holds no
-    detail finer than 2 pixels, so smoothing, threshold and watershed run on the 2x2-binned
-    image (a quarter of the pixels) and the bodies are brought back to full resolution; every
-    nucleus pixel keeps its own label.
-    """
-    if nuclei.max() == 0:
-        return nuclei.copy()
-    sigma_px = smoothing_sigma_um / pixel_size_um
-    if sigma_px >= BODY_BINNING_MIN_SIGMA_PX and min(nuclei.shape) >= 2 * BODY_BINNING_MIN_SIDE_PX:
-        return _grow_cell_bodies_binned(nuclei, body_image, sigma_px, threshold_method)
-    return _seeded_bodies(nuclei, smooth_image(body_image, sigma_px), threshold_method)[0]
-
-
-def _seeded_bodies(seeds: np.ndarray, smooth: np.ndarray, threshold_method: str) -> tuple[np.ndarray, float]:
-    """Watershed of the inverted smoothed body image from the seeds, within its foreground plus the
-    seeds; and the foreground threshold (NaN when the channel shows no objects)."""
-    threshold = object_threshold(smooth, threshold_method)
-    foreground = seeds > 0
-    if not np.isnan(threshold):
-        foreground |= smooth > threshold
-    return watershed(-smooth, seeds, mask=foreground).astype(np.int32), threshold
-
-
-def _block_reduce(image: np.ndarray, size: int, reduce: Callable) -> np.ndarray:
-    """size x size blocks of an image (edges repeated to whole blocks) combined by the binary ufunc
-    ``reduce`` (np.add, np.maximum, np.logical_or): one pass over strided views, no reshaped copy."""
-    height, width = image.shape
-    if height % size or width % size:
-        image = np.pad(image, ((0, -height % size), (0, -width % size)), mode="edge")
-    out = image[0::size, 0::size].copy()
-    for dy in range(size):
-        for dx in range(size):
-            if dy or dx:
-                reduce(out, image[dy::size, dx::size], out=out)
-    return out
-
-
-def _upsample2(image: np.ndarray) -> np.ndarray:
-    """Bilinear interpolation of a 2x2-binned image onto the full pixel grid (twice its size).
-
-    Full pixel 2i sits at binned coordinate i - 1/4 and 2i + 1 at i + 1/4 (edges repeated).
-    """
-    rows, cols = image.shape
-    padded = np.pad(image.astype(np.float32, copy=False), 1, mode="edge")
-    centre = 0.75 * padded[1:-1]
-    tall = np.empty((2 * rows, cols + 2), np.float32)
-    np.add(centre, 0.25 * padded[:-2], out=tall[0::2])
-    np.add(centre, 0.25 * padded[2:], out=tall[1::2])
-    centre = 0.75 * tall[:, 1:-1]
-    out = np.empty((2 * rows, 2 * cols), np.float32)
-    np.add(centre, 0.25 * tall[:, :-2], out=out[:, 0::2])
-    np.add(centre, 0.25 * tall[:, 2:], out=out[:, 1::2])
-    return out
-
-
-def _grow_cell_bodies_binned(
-    nuclei: np.ndarray, body_image: np.ndarray, sigma_px: float, threshold_method: str
-) -> np.ndarray:
-    height, width = nuclei.shape
-    binned = _block_reduce(body_image.astype(np.float32, copy=False), 2, np.add) * np.float32(0.25)
-    # a 2-pixel box already blurs by a variance of 1/3 px^2; the Gaussian adds the rest, in binned pixels
-    smooth = smooth_image(binned, np.sqrt(sigma_px**2 - 1 / 3) / 2)
-    bodies, threshold = _seeded_bodies(_block_reduce(nuclei, 2, np.maximum), smooth, threshold_method)
-    if np.isnan(threshold):  # no foreground in the body channel: each cell is its nucleus
-        return nuclei.astype(np.int32, copy=True)
-    rows, cols = bodies.shape
-    # the outer edge at full resolution: the interpolated smooth image against the same threshold
-    foreground = _upsample2(smooth) > threshold
-    # each binned body pixel covers its 2x2 block of foreground pixels (one pass, no upsampled copy)
-    out = np.where(foreground.reshape(rows, 2, cols, 2), bodies[:, None, :, None], 0).reshape(2 * rows, 2 * cols)
-    out = np.ascontiguousarray(out[:height, :width])
-    np.copyto(out, nuclei, where=nuclei > 0)  # every nucleus pixel keeps its own label
-    # foreground pixels just outside the binned bodies take the largest label among their 8 neighbours;
-    # they lie in empty blocks next to a body block, so only those blocks' pixels are looked at
-    inside = bodies > 0
-    near = inside.copy()  # 3x3 dilation by shifted ORs, rows then columns
-    near[1:] |= inside[:-1]
-    near[:-1] |= inside[1:]
-    widened = near.copy()
-    widened[:, 1:] |= near[:, :-1]
-    widened[:, :-1] |= near[:, 1:]
-    edge_blocks = np.flatnonzero(widened & ~inside)
-    block_y, block_x = np.divmod(edge_blocks, cols)
-    y = (2 * block_y[:, None] + np.array([0, 0, 1, 1])).ravel()
-    x = (2 * block_x[:, None] + np.array([0, 1, 0, 1])).ravel()
-    on_image = (y < height) & (x < width)
-    y, x = y[on_image], x[on_image]
-    is_gap = foreground[y, x] & (out[y, x] == 0)
-    y, x = y[is_gap], x[is_gap]
-    if len(y):
-        neighbours = [
-            bodies[np.clip(y + dy, 0, height - 1) // 2, np.clip(x + dx, 0, width - 1) // 2]
-            for dy in (-1, 0, 1)
-            for dx in (-1, 0, 1)
-            if dy or dx
-        ]
-        out[y, x] = np.maximum.reduce(neighbours)
-    return out
-
-
-def background_levels(planes: np.ndarray, labels: np.ndarray, margin_px: int = 3) -> np.ndarray:
-    """Per-channel background (grey levels): median of pixels at least ``margin_px`` from any object.
-
-    Taken on a grid of every BACKGROUND_STRIDE-th pixel: a grid pixel counts as background when
-    no object pixel lies in its block or in the blocks within ``margin_px`` of it. A field
-    almost full of cells falls back to the 5th percentile.
-    """
-    stride = BACKGROUND_STRIDE
-    occupied = _block_reduce(labels > 0, stride, np.logical_or)
-    reach = -(-margin_px // stride)
-    near = ndimage.maximum_filter(occupied, size=2 * reach + 1) if occupied.any() else occupied
-    background = ~near
-    sample = planes[:, ::stride, ::stride]
-    if background.sum() < 0.05 * background.size:
-        return np.percentile(sample.reshape(len(planes), -1), 5, axis=1)
-    return np.median(sample[:, background], axis=1)
-
-
-def focus_score(smooth: np.ndarray) -> float:
-    """Variance of the Laplacian (Pech-Pacheco et al. 2000) of the smoothed image over its squared mean.
-
-    ``smooth`` is the nuclear image after the segmentation's Gaussian smoothing. Unitless;
-    sharp fields score high, defocused ones low. Dividing by the squared mean makes the score
-    independent of exposure. The 5-point Laplacian is taken on every FOCUS_ROW_STRIDE-th interior
-    row (a quarter of a million pixels of a 1024x1024 frame): the variance is the same to about
-    a percent at a tenth of the cost of filtering the whole frame.
-    """
-    mean = float(smooth.mean())
-    if not mean > 0 or min(smooth.shape) < 3:
-        return float("nan")
-    rows = np.arange(1, smooth.shape[0] - 1, FOCUS_ROW_STRIDE)
-    centre = smooth[rows]
-    laplacian = smooth[rows - 1, 1:-1] + smooth[rows + 1, 1:-1] + centre[:, :-2] + centre[:, 2:] - 4 * centre[:, 1:-1]
-    return float(laplacian.var(dtype=np.float64) / mean**2)

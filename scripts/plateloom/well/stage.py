@@ -12,17 +12,13 @@ from plateloom.errors import InputError
 from plateloom.io.images import ImageIndex, stream_site
 from plateloom.io.tables import well_part_path, write_parquet
 from plateloom.settings import FromSchema
+from plateloom.well.cell_bodies import grow_cell_bodies
 from plateloom.well.collective import CollectiveSettings, well_collective_readouts
 from plateloom.well.features import measure_objects, neighbourhood
 from plateloom.well.illumination import apply_flat_field
-from plateloom.well.segment import (
-    background_levels,
-    focus_score,
-    grow_cell_bodies,
-    segment_label_free,
-    segment_smoothed,
-    smooth_image,
-)
+from plateloom.well.image_qc import background_levels, focus_score
+from plateloom.well.segment import segment_label_free, segment_smoothed
+from plateloom.well.thresholds import smooth_image
 from plateloom.well.track_stats import (
     fit_persistent_walk,
     mean_squared_displacement,
