@@ -17,7 +17,7 @@ from test_plate_stage import _plate
 from plateloom.errors import InputError
 from plateloom.io.images import index_plate_images, stream_site, unmatched_note
 from plateloom.plate.exclusions import ExclusionRules
-from plateloom.plate.stage import PlateSettings, build_plate_tables
+from plateloom.plate.stage import PlateDesign, PlateSettings, WellTables, build_plate_tables
 from plateloom.screen.model_wells import build_model_wells
 from plateloom.well.stage import WellSettings, analyse_well
 
@@ -164,7 +164,11 @@ def test_well_with_no_cells_is_excluded_with_a_ledger_entry():
     tracks = tracks[tracks["well"] != "C03"]
     qc.loc[qc["well"] == "C03", "n_objects"] = 0
     tables = build_plate_tables(
-        cells, tracks, qc, layout, "P1", "d1", 96, PlateSettings.defaults(), ExclusionRules.defaults()
+        cells,
+        WellTables(tracks, qc),
+        PlateDesign("P1", "d1", 96, layout),
+        PlateSettings.defaults(),
+        ExclusionRules.defaults(),
     )
     row = tables.profile.set_index("well").loc["C03"]
     assert row["cell_count"] == 0 and row["excluded_by"].startswith("min_cells_per_well")
@@ -176,23 +180,14 @@ def test_plate_whose_every_well_fails_qc_leaves_the_model_and_the_rest_continues
     cells, tracks, qc, layout = _plate(seed=1)
     failing = build_plate_tables(
         cells.iloc[0:0],
-        tracks.iloc[0:0],
-        qc.assign(n_objects=0),
-        layout,
-        "P1",
-        "d1",
-        96,
+        WellTables(tracks.iloc[0:0], qc.assign(n_objects=0)),
+        PlateDesign("P1", "d1", 96, layout),
         PlateSettings.defaults(),
         ExclusionRules.defaults(),
     )
     assert (failing.profile["excluded_by"] != "").all()
     assert (failing.ledger["rule"] == "min_cells_per_well").sum() == 96
-    good = [
-        build_plate_tables(
-            *_plate(seed=s)[:3], layout, f"P{s}", f"d{s}", 96, PlateSettings.defaults(), ExclusionRules.defaults()
-        ).profile
-        for s in (2, 3)
-    ]
+    good = [_plate_tables_of_seed(s, layout).profile for s in (2, 3)]
     wells = pd.concat([failing.profile, *good], ignore_index=True)
     model = build_model_wells(wells, ["area_um2"], {"area_um2"}, "control_location")
     assert set(model.wells["plate"]) == {"P2", "P3"}
@@ -205,3 +200,14 @@ def test_config_value_of_the_wrong_type_stops_the_workflow_with_its_key(workflow
     output = result.stdout + result.stderr
     assert result.returncode != 0
     assert "chunk_wells" in output and "'twenty' is not of type 'integer'" in output
+
+
+def _plate_tables_of_seed(seed, layout):
+    cells, tracks, qc = _plate(seed=seed)[:3]
+    return build_plate_tables(
+        cells,
+        WellTables(tracks, qc),
+        PlateDesign(f"P{seed}", f"d{seed}", 96, layout),
+        PlateSettings.defaults(),
+        ExclusionRules.defaults(),
+    )

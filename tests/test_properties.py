@@ -9,7 +9,7 @@ from test_screen_stage import _wells
 
 from plateloom.plate.exclusions import ExclusionRules
 from plateloom.plate.qc import robust_z, z_prime
-from plateloom.plate.stage import PlateSettings, build_plate_tables
+from plateloom.plate.stage import PlateDesign, PlateSettings, WellTables, build_plate_tables
 from plateloom.screen.effects import bh_qvalues, screen_effects
 from plateloom.screen.model_wells import build_model_wells, treatment_catalogue
 
@@ -73,17 +73,17 @@ def test_bh_q_values_are_at_least_p_monotone_and_order_free(p, seed):
 def test_plate_tables_do_not_depend_on_the_order_of_cells(seed):
     cells, tracks, qc, layout = _plate(seed=3)
     reference = build_plate_tables(
-        cells, tracks, qc, layout, "P1", "d1", 96, PlateSettings.defaults(), ExclusionRules.defaults()
+        cells,
+        WellTables(tracks, qc),
+        PlateDesign("P1", "d1", 96, layout),
+        PlateSettings.defaults(),
+        ExclusionRules.defaults(),
     )
     shuffled = cells.sample(frac=1.0, random_state=seed).reset_index(drop=True)
     tables = build_plate_tables(
         shuffled,
-        tracks.sample(frac=1.0, random_state=seed),
-        qc,
-        layout,
-        "P1",
-        "d1",
-        96,
+        WellTables(tracks.sample(frac=1.0, random_state=seed), qc),
+        PlateDesign("P1", "d1", 96, layout),
         PlateSettings.defaults(),
         ExclusionRules.defaults(),
     )

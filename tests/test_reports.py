@@ -11,7 +11,7 @@ import pytest
 from test_plate_stage import _plate
 
 from plateloom.plate.exclusions import ExclusionRules
-from plateloom.plate.stage import PlateSettings, build_plate_tables
+from plateloom.plate.stage import PlateDesign, PlateSettings, WellTables, build_plate_tables
 from plateloom.report.plate_page import build_plate_report
 from plateloom.setup.plate_formats import plate_format
 
@@ -22,7 +22,9 @@ def _report(tmp_path: Path, rules: ExclusionRules | None = None) -> Path:
     rules = rules or ExclusionRules.defaults()
     cells, tracks, qc, layout = _plate()
     layout.loc[layout["role"] == "test", "treatment"] = HOSTILE
-    tables = build_plate_tables(cells, tracks, qc, layout, "P1", "d1", 96, PlateSettings.defaults(), rules)
+    tables = build_plate_tables(
+        cells, WellTables(tracks, qc), PlateDesign("P1", "d1", 96, layout), PlateSettings.defaults(), rules
+    )
     tables.profile.loc[tables.profile["well"] == "D05", "treatment"] = HOSTILE
     html = build_plate_report(
         tables.profile,

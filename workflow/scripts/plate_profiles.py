@@ -6,7 +6,7 @@ from plateloom.io.images import unmatched_note
 from plateloom.io.job import run_step
 from plateloom.io.tables import write_parquet, write_text
 from plateloom.plate.exclusions import ExclusionRules
-from plateloom.plate.stage import PlateSettings, build_plate_tables_from_files
+from plateloom.plate.stage import PlateDesign, PlateSettings, WellTables, build_plate_tables_from_files
 from plateloom.plate.summaries import read_plate_dataset
 from plateloom.setup.screen_sheet import load_layout
 
@@ -16,17 +16,18 @@ sm = snakemake  # noqa: F821  (injected by Snakemake's script directive)
 def step() -> None:
     layout = load_layout(sm.input.layout, sm.params.plate_format)
     settings = dict(sm.params.settings)
-    tables = build_plate_tables_from_files(
-        list(sm.input.cells),
+    well_tables = WellTables(
         read_plate_dataset(list(sm.input.tracks)),
         read_plate_dataset(list(sm.input.site_qc)),
-        layout,
-        sm.wildcards.plate,
-        sm.params.batch,
-        sm.params.plate_format,
+        read_plate_dataset(list(sm.input.collective)),
+    )
+    design = PlateDesign(sm.wildcards.plate, sm.params.batch, sm.params.plate_format, layout)
+    tables = build_plate_tables_from_files(
+        list(sm.input.cells),
+        well_tables,
+        design,
         PlateSettings(**settings["plate"]),
         ExclusionRules(**settings["exclusion_rules"]),
-        read_plate_dataset(list(sm.input.collective)),
         sm.threads,
     )
     note = unmatched_note(sm.params.image_folder, sm.params.template, sm.params.plate_format, list(sm.params.channels))

@@ -9,6 +9,7 @@ import numpy as np
 import pandas as pd
 from scipy import stats
 
+from plateloom.setup.plate_formats import PlateFormat, plate_format, well_grid
 from plateloom.stats import MAD_TO_SD, mad
 
 
@@ -123,3 +124,46 @@ def edge_effect(profile: pd.DataFrame, feature: str, log_scale: bool) -> dict[st
         result["p_value"] = float(2 * stats.t.sf(abs(shift / se), residual_df))
     result["edge_shift"] = shift
     return result
+
+
+def _grid_values(profile: pd.DataFrame, values: np.ndarray, fmt: PlateFormat) -> np.ndarray:
+    return well_grid(dict(zip(profile["well"], values)), fmt)
+
+
+def _from_grid(profile: pd.DataFrame, grid: np.ndarray) -> np.ndarray:
+    return grid[profile["row"].to_numpy() - 1, profile["column"].to_numpy() - 1]
+
+
+def _median_polish_feature(profile: pd.DataFrame, feature: str, kept: np.ndarray, log_scale: bool, fmt: PlateFormat):
+    """Replace ``feature`` by its row- and column-corrected values (originals kept as
+    ``<feature>_uncorrected``, B-scores as ``<feature>_b_score``); return the correction's notes."""
+    values = profile[feature].to_numpy(float)
+    scaled = np.log(values) if log_scale else values
+    grid = _grid_values(profile, np.where(kept, scaled, np.nan), fmt)
+    # row and column effects are fitted on each well's departure from its treatment's median
+    centred = pd.Series(np.where(kept, scaled, np.nan)).groupby(profile["treatment"].to_numpy()).transform("median")
+    fit_grid = _grid_values(profile, np.where(kept, scaled - centred.to_numpy(), np.nan), fmt)
+    corrected, notes = positional_correction(grid, fit_grid)
+    corrected_values = np.where(kept, _from_grid(profile, corrected), scaled)
+    profile[f"{feature}_uncorrected"] = values
+    profile[feature] = np.exp(corrected_values) if log_scale else corrected_values
+    profile[f"{feature}_b_score"] = _from_grid(profile, b_scores(grid))
+    return notes
+
+
+def correct_positions(
+    profile: pd.DataFrame, features: list[str], kept: np.ndarray, wells: int, method: str
+) -> tuple[list[dict], set[str]]:
+    """The edge-effect diagnostic of every feature and, with ``method`` "median_polish", the
+    positional correction applied in place to ``profile``; returns (edge rows, notes)."""
+    fmt = plate_format(wells)
+    edge_rows, notes = [], set()
+    for feature in features:
+        values = profile[feature].to_numpy(float)
+        log_scale = bool(np.all(values[np.isfinite(values)] > 0))
+        edge_rows.append(edge_effect(profile, feature, log_scale) | {"scale": "log" if log_scale else "linear"})
+        if method == "median_polish":
+            notes.update(_median_polish_feature(profile, feature, kept, log_scale, fmt))
+            after = edge_effect(profile, feature, log_scale)
+            edge_rows[-1] |= {"edge_shift_corrected": after["edge_shift"], "p_value_corrected": after["p_value"]}
+    return edge_rows, notes

@@ -17,7 +17,7 @@ from plateloom.plate.exclusions import (
     well_exclusions,
 )
 from plateloom.plate.normalization import NORMALIZATIONS, normalize
-from plateloom.plate.positional import b_scores, edge_effect, positional_correction
+from plateloom.plate.positional import correct_positions
 from plateloom.plate.qc import plate_qc
 from plateloom.plate.summaries import (
     observation_counts,
@@ -26,7 +26,6 @@ from plateloom.plate.summaries import (
     summarise_wells,
 )
 from plateloom.settings import FromSchema
-from plateloom.setup.plate_formats import plate_format, well_grid
 from plateloom.stats import MAD_TO_SD, mad
 
 
@@ -86,139 +85,103 @@ def unusable_frame_notes(site_qc: pd.DataFrame, shown: int = 5) -> list[str]:
     ] + problems[:shown]
 
 
-def _grid_values(profile: pd.DataFrame, values: np.ndarray, fmt) -> np.ndarray:
-    return well_grid(dict(zip(profile["well"], values)), fmt)
+@dataclass(frozen=True)
+class PlateDesign:
+    """Which plate: its id, batch (imaging day), format (number of wells) and layout."""
+
+    plate: str
+    batch: str
+    wells: int
+    layout: pd.DataFrame
 
 
-def _from_grid(profile: pd.DataFrame, grid: np.ndarray) -> np.ndarray:
-    return grid[profile["row"].to_numpy() - 1, profile["column"].to_numpy() - 1]
+@dataclass(frozen=True)
+class WellTables:
+    """The per-well stage's tables of one plate other than the cells: tracks, site QC and, if
+    computed, the collective readouts (one row per well)."""
+
+    tracks: pd.DataFrame
+    site_qc: pd.DataFrame
+    collective: pd.DataFrame | None = None
 
 
 def build_plate_tables(
-    cells: pd.DataFrame,
-    tracks: pd.DataFrame,
-    site_qc: pd.DataFrame,
-    layout: pd.DataFrame,
-    plate: str,
-    batch: str,
-    wells: int,
-    settings: PlateSettings,
-    rules: ExclusionRules,
-    collective: pd.DataFrame | None = None,
+    cells: pd.DataFrame, tables: WellTables, design: PlateDesign, settings: PlateSettings, rules: ExclusionRules
 ) -> PlateTables:
     """Everything the plate stage writes, from the per-well tables of one plate held in memory.
 
-    ``collective`` (one row per well: plate, well and collective readouts), if given, adds its
-    readouts to the well profiles as features. ``build_plate_tables_from_files`` (what the rule
-    runs, on ``threads`` threads) gives the same tables without holding the cells table.
+    The collective readouts, if given, join the well profiles as features.
+    ``build_plate_tables_from_files`` (what the rule runs) gives the same tables without holding
+    the cells table.
     """
-    excluded = site_frame_exclusions(site_qc, rules, plate)
+    excluded = site_frame_exclusions(tables.site_qc, rules, design.plate)
     summaries = observation_summaries(drop_excluded_site_frames(cells, excluded), settings.well_summary)
-    return _plate_tables(
-        observation_counts(cells),
-        summaries,
-        excluded,
-        tracks,
-        site_qc,
-        layout,
-        plate,
-        batch,
-        wells,
-        settings,
-        rules,
-        collective,
-    )
+    return _plate_tables(_Observed(observation_counts(cells), summaries, excluded), tables, design, settings, rules)
 
 
 def build_plate_tables_from_files(
     cell_folders: list[str],
-    tracks: pd.DataFrame,
-    site_qc: pd.DataFrame,
-    layout: pd.DataFrame,
-    plate: str,
-    batch: str,
-    wells: int,
+    tables: WellTables,
+    design: PlateDesign,
     settings: PlateSettings,
     rules: ExclusionRules,
-    collective: pd.DataFrame | None = None,
     threads: int = 1,
 ) -> PlateTables:
-    """``build_plate_tables`` reading the cells tables well folder by well folder: the observation
-    features are summarised per well as each folder is read (``summarise_observation_files``) and
-    only the observation counts per site and frame are held for the whole plate. Same tables."""
-    excluded = site_frame_exclusions(site_qc, rules, plate)
+    """``build_plate_tables`` reading the cells tables well folder by well folder on ``threads``
+    threads: the observation features are summarised per well as each folder is read
+    (``summarise_observation_files``) and only the observation counts per site and frame are held
+    for the whole plate. Same tables."""
+    excluded = site_frame_exclusions(tables.site_qc, rules, design.plate)
     summaries, counts = summarise_observation_files(
         cell_folders, excluded_site_frames(excluded), settings.well_summary, threads
     )
-    return _plate_tables(
-        counts, summaries, excluded, tracks, site_qc, layout, plate, batch, wells, settings, rules, collective
+    return _plate_tables(_Observed(counts, summaries, excluded), tables, design, settings, rules)
+
+
+@dataclass(frozen=True)
+class _Observed:
+    """Observation counts per well, site and frame (all observations), per-well feature summaries
+    of the kept observations, and the site-frame exclusions."""
+
+    counts: pd.DataFrame
+    summaries: pd.DataFrame
+    site_frame_ledger: pd.DataFrame
+
+
+def _well_profile(observed: _Observed, tables: WellTables, design: PlateDesign, statistic: str) -> pd.DataFrame:
+    """Well profiles with the collective readouts and the share of observations used."""
+    kept_counts = drop_excluded_site_frames(observed.counts, observed.site_frame_ledger)
+    d = design
+    profile = summarise_wells(
+        kept_counts, observed.summaries, tables.tracks, d.layout, d.plate, d.batch, d.wells, statistic
     )
-
-
-def _plate_tables(
-    counts: pd.DataFrame,
-    summaries: pd.DataFrame,
-    site_frame_ledger: pd.DataFrame,
-    tracks: pd.DataFrame,
-    site_qc: pd.DataFrame,
-    layout: pd.DataFrame,
-    plate: str,
-    batch: str,
-    wells: int,
-    settings: PlateSettings,
-    rules: ExclusionRules,
-    collective: pd.DataFrame | None,
-) -> PlateTables:
-    """The plate tables from the observation counts (all observations), the per-well feature
-    summaries of the observations kept, and the site-frame exclusions."""
-    fmt = plate_format(wells)
-    warnings: list[str] = []
-    ledger = [site_frame_ledger]
-    warnings += unusable_frame_notes(site_qc)
-    kept_counts = drop_excluded_site_frames(counts, ledger[0])
-    profile = summarise_wells(kept_counts, summaries, tracks, layout, plate, batch, wells, settings.well_summary)
+    collective = tables.collective
     if collective is not None and len(collective.columns.difference(["plate", "well"])):
         readouts = collective.drop(columns=["plate"], errors="ignore").assign(well=lambda t: t["well"].astype(str))
         profile = profile.merge(readouts, on="well", how="left", validate="one_to_one")
-    measured = counts.groupby("well", observed=True)["observations"].sum()
+    measured = observed.counts.groupby("well", observed=True)["observations"].sum()
     used = kept_counts.groupby("well", observed=True)["whole"].sum()
     measured.index, used.index = measured.index.astype(str), used.index.astype(str)
-    profile["fraction_observations_used"] = used.reindex(profile["well"]).fillna(0).to_numpy() / measured.reindex(
-        profile["well"]
-    ).to_numpy(float)
-    profile, well_ledger = well_exclusions(profile, rules)
-    ledger.append(well_ledger)
-    features = well_features(list(profile.columns))
-    kept = (profile["excluded_by"] == "").to_numpy()
+    wells = profile["well"]
+    profile["fraction_observations_used"] = used.reindex(wells).fillna(0).to_numpy() / measured.reindex(wells).to_numpy(
+        float
+    )
+    return profile
+
+
+def _design_warnings(profile: pd.DataFrame, kept: np.ndarray) -> list[str]:
+    warnings = []
     roles = profile["role"].to_numpy()
     for treatment, count in profile.loc[kept & (roles != "negative_control"), "treatment"].value_counts().items():
         if count == 1:
             warnings.append(f"treatment {treatment!r} has a single kept well on this plate")
     if not ((roles == "negative_control") & kept).any():
         warnings.append("no negative-control well passed the exclusion rules: normalized values are NaN")
-    edge_rows = []
-    position_notes: set[str] = set()
-    for feature in features:
-        values = profile[feature].to_numpy(float)
-        log_scale = bool(np.all(values[np.isfinite(values)] > 0))
-        edge_rows.append(edge_effect(profile, feature, log_scale) | {"scale": "log" if log_scale else "linear"})
-        if settings.positional_correction == "median_polish":
-            scaled = np.log(values) if log_scale else values
-            grid = _grid_values(profile, np.where(kept, scaled, np.nan), fmt)
-            centred = (
-                pd.Series(np.where(kept, scaled, np.nan)).groupby(profile["treatment"].to_numpy()).transform("median")
-            )
-            fit_grid = _grid_values(profile, np.where(kept, scaled - centred.to_numpy(), np.nan), fmt)
-            corrected, notes = positional_correction(grid, fit_grid)
-            position_notes.update(notes)
-            corrected_values = _from_grid(profile, corrected)
-            corrected_values = np.where(kept, corrected_values, scaled)
-            profile[f"{feature}_uncorrected"] = values
-            profile[feature] = np.exp(corrected_values) if log_scale else corrected_values
-            profile[f"{feature}_b_score"] = _from_grid(profile, b_scores(grid))
-            after = edge_effect(profile, feature, log_scale)
-            edge_rows[-1] |= {"edge_shift_corrected": after["edge_shift"], "p_value_corrected": after["p_value"]}
-    warnings += [f"positional correction: {note}" for note in sorted(position_notes)]
+    return warnings
+
+
+def _normalize_features(profile: pd.DataFrame, features: list[str], kept: np.ndarray, settings: PlateSettings) -> None:
+    """Add each feature's normalized column (by its method in ``settings``) to ``profile``."""
     negative = profile[(profile["role"] == "negative_control") & kept]
     positive = profile[(profile["role"] == "positive_control") & kept]
     for feature in features:
@@ -226,14 +189,32 @@ def _plate_tables(
         normalized = normalize(profile[feature], negative[feature], positive[feature], method)
         if normalized is not None:
             profile[feature + NORMALIZATIONS[method].suffix] = normalized
+
+
+def _cell_count_outliers(profile: pd.DataFrame, kept: np.ndarray) -> np.ndarray:
+    """Wells whose cell count lies over 3.5 robust SDs from the kept wells' median."""
     counts = profile.loc[kept, "cell_count"].to_numpy(float)
-    if len(counts) >= 5 and mad(counts) > 0:
-        z = (profile["cell_count"].to_numpy(float) - np.median(counts)) / (MAD_TO_SD * mad(counts))
-        profile["cell_count_outlier"] = np.abs(z) > 3.5
-    else:
-        profile["cell_count_outlier"] = False
+    if len(counts) < 5 or not mad(counts) > 0:
+        return np.zeros(len(profile), bool)
+    z = (profile["cell_count"].to_numpy(float) - np.median(counts)) / (MAD_TO_SD * mad(counts))
+    return np.abs(z) > 3.5
+
+
+def _plate_tables(
+    observed: _Observed, tables: WellTables, design: PlateDesign, settings: PlateSettings, rules: ExclusionRules
+) -> PlateTables:
+    """The plate tables from what the well folders held (see ``_Observed``)."""
+    warnings = unusable_frame_notes(tables.site_qc)
+    profile, well_ledger = well_exclusions(_well_profile(observed, tables, design, settings.well_summary), rules)
+    features = well_features(list(profile.columns))
+    kept = (profile["excluded_by"] == "").to_numpy()
+    warnings += _design_warnings(profile, kept)
+    edge_rows, position_notes = correct_positions(profile, features, kept, design.wells, settings.positional_correction)
+    warnings += [f"positional correction: {note}" for note in sorted(position_notes)]
+    _normalize_features(profile, features, kept, settings)
+    profile["cell_count_outlier"] = _cell_count_outliers(profile, kept)
     qc = plate_qc(profile, features)
-    ledger.append(plate_exclusion(qc, rules, plate))
+    ledger = [observed.site_frame_ledger, well_ledger, plate_exclusion(qc, rules, design.plate)]
     frames = [table for table in ledger if not table.empty]
     ledger_table = pd.concat(frames, ignore_index=True) if frames else ledger[0]
     plate_rows = ledger_table[ledger_table["level"] == "plate"]
@@ -242,4 +223,5 @@ def _plate_tables(
         if len(plate_rows)
         else ""
     )
-    return PlateTables(profile, qc, ledger_table, pd.DataFrame(edge_rows), warnings, summarise_site_qc(site_qc))
+    edge = pd.DataFrame(edge_rows)
+    return PlateTables(profile, qc, ledger_table, edge, warnings, summarise_site_qc(tables.site_qc))
