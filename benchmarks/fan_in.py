@@ -32,7 +32,8 @@ WELLS = 384
 PARQUET_CHILD = """
 import json, sys, time
 import numpy as np, pandas as pd
-from plateloom.plate.summaries import summarise_observation_files, summarise_wells
+from plateloom.plate.streamed_summaries import summarise_observation_files
+from plateloom.plate.summaries import summarise_wells
 
 def rss(key):
     with open('/proc/self/status') as status:

@@ -219,10 +219,10 @@ def test_well_summaries_streamed_from_files_equal_pandas_and_the_in_memory_path(
     # Reference: pandas groupby median (NaN skipped) / exp of the mean log, on the observations kept
     # (not touching the border, not in an excluded site-frame); and the whole-table path.
     from plateloom.plate.stage import build_plate_tables_from_files
+    from plateloom.plate.streamed_summaries import summarise_observation_files
     from plateloom.plate.summaries import (
         observation_counts,
         read_plate_dataset,
-        summarise_observation_files,
     )
 
     rng = np.random.default_rng(5)
@@ -293,7 +293,7 @@ def test_block_medians_equal_numpy_median_with_and_without_nan(n):
 @pytest.mark.parametrize("shuffle", [False, True])
 def test_site_frame_counts_equal_pandas_for_sorted_and_shuffled_rows(shuffle):
     # Reference: pandas groupby size / sum over (site, frame).
-    from plateloom.plate.summaries import _site_frame_counts, _site_frame_key
+    from plateloom.plate.streamed_summaries import _site_frame_counts, _site_frame_key
 
     rng = np.random.default_rng(21)
     table = pd.DataFrame({"site": np.repeat([1, 1, 2, 4], 50), "frame": np.tile(np.repeat(np.arange(5), 10), 4)})
@@ -316,7 +316,7 @@ def test_site_frame_counts_equal_pandas_for_sorted_and_shuffled_rows(shuffle):
 def test_streamed_fan_in_names_the_file_when_a_cells_table_lacks_a_key_column(tmp_path):
     # Common practice: a bad input names the file and the fix, never a bare Arrow error.
     from plateloom.errors import InputError
-    from plateloom.plate.summaries import summarise_observation_files
+    from plateloom.plate.streamed_summaries import summarise_observation_files
 
     cells, _, _, _ = _plate()
     folders = _write_cells_folders(tmp_path, cells)  # this table has no time_min column

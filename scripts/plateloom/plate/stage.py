@@ -19,10 +19,10 @@ from plateloom.plate.exclusions import (
 from plateloom.plate.normalization import NORMALIZATIONS, normalize
 from plateloom.plate.positional import correct_positions
 from plateloom.plate.qc import plate_qc
+from plateloom.plate.streamed_summaries import summarise_observation_files
 from plateloom.plate.summaries import (
     observation_counts,
     observation_summaries,
-    summarise_observation_files,
     summarise_wells,
 )
 from plateloom.settings import FromSchema

@@ -4,17 +4,13 @@ from __future__ import annotations
 
 import glob
 import os
-from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
 import pandas as pd
-import pyarrow as pa
 import pyarrow.dataset as ds
-import pyarrow.parquet as pq
 
 from plateloom.columns import observation_features, track_features
-from plateloom.errors import InputError
-from plateloom.setup.plate_formats import is_edge_well, parse_well, plate_format
+from plateloom.setup.plate_formats import PlateFormat, is_edge_well, parse_well, plate_format
 from plateloom.well.track_stats import growth_rate_per_h
 
 
@@ -148,157 +144,6 @@ def observation_summaries(cells: pd.DataFrame, statistic: str = "median") -> pd.
     return _column_summaries(cells, whole, codes, names, observation_features(list(cells.columns)), statistic)
 
 
-def _site_frame_key(site: np.ndarray, frame: np.ndarray) -> np.ndarray:
-    """One int64 per (site, frame): site in the high 32 bits, frame in the low ones."""
-    return np.asarray(site, np.int64) * 2**32 + np.asarray(frame, np.int64)
-
-
-# Columns of the cells table that the plate stage needs besides the features.
-KEY_COLUMNS_FOR_PROFILES = ("site", "frame", "time_min", "touches_border")
-
-
-def _site_frame_counts(key: np.ndarray, time_min: np.ndarray, whole: np.ndarray, where: str) -> dict[str, np.ndarray]:
-    """Observations (and whole ones) per site and frame (``_site_frame_key``) of one well, sorted by site and frame."""
-    if len(key) and np.all(key[1:] >= key[:-1]):  # rows written site by site, frame by frame: no sort
-        first = np.flatnonzero(np.concatenate([[True], key[1:] != key[:-1]]))
-        unique = key[first]
-        inverse = np.cumsum(np.concatenate([[False], key[1:] != key[:-1]]))
-    else:
-        unique, first, inverse = np.unique(key, return_index=True, return_inverse=True)
-    times = time_min[first].astype(np.float64)
-    if not np.array_equal(time_min.astype(np.float64), times[inverse], equal_nan=True):
-        raise InputError(
-            where,
-            "a frame has observations with different time_min values.",
-            "re-run the per-well job of this well: every observation of a frame has the frame's time.",
-        )
-    return {
-        "site": unique >> 32,
-        "frame": unique & (2**32 - 1),
-        "time_min": times,
-        "observations": np.bincount(inverse, minlength=len(unique)),
-        "whole": np.bincount(inverse, whole, minlength=len(unique)).astype(np.int64),
-    }
-
-
-def _summarise_well_folder(
-    paths: list[str], features: list[str], excluded: dict[str, np.ndarray], with_log: bool
-) -> dict[str, object]:
-    """Read the files of one well folder and summarise every feature per well over its kept rows
-    (not touching the border, site-frame not in ``excluded``: well -> site * 2**32 + frame keys);
-    count its observations per site and frame."""
-    tables = [
-        pq.ParquetFile(path, read_dictionary=["well"]).read(
-            columns=features + list(KEY_COLUMNS_FOR_PROFILES) + ["well"], use_threads=False
-        )
-        for path in paths
-    ]
-    codes_by_name: dict[str, int] = {}
-    code_parts = []
-    for table in tables:
-        well = table.column("well").combine_chunks()
-        lookup = np.array(
-            [codes_by_name.setdefault(str(w), len(codes_by_name)) for w in well.dictionary.to_pylist()], np.int64
-        )
-        code_parts.append(lookup[well.indices.to_numpy()] if len(lookup) else np.zeros(0, np.int64))
-    names = sorted(codes_by_name)
-    sorted_code = np.empty(len(names), np.int64)
-    sorted_code[[codes_by_name[name] for name in names]] = np.arange(len(names))
-    codes = sorted_code[np.concatenate(code_parts)] if names else np.zeros(0, np.int64)
-    table = pa.concat_tables(tables) if len(tables) > 1 else tables[0]
-    keys = {c: table.column(c).to_numpy() for c in KEY_COLUMNS_FOR_PROFILES}
-    columns = [table.column(f).to_numpy().astype(np.float64, copy=False) for f in features]
-    median, mean_log = np.full((len(names), len(features)), np.nan), np.full((len(names), len(features)), np.nan)
-    lowest = np.full((len(names), len(features)), np.inf)
-    whole = ~keys["touches_border"].astype(bool)
-    site_frame = _site_frame_key(keys["site"], keys["frame"])
-    counts = []
-    for code, name in enumerate(names):
-        rows = codes == code
-        counts.append(
-            _site_frame_counts(
-                site_frame[rows], keys["time_min"][rows], whole[rows], f"well {name} ({os.path.dirname(paths[0])})"
-            )
-        )
-        if name in excluded:
-            rows &= ~np.isin(site_frame, excluded[name])
-        if with_log:  # which features are strictly positive is judged, as for a whole table, on the rows not excluded
-            with np.errstate(all="ignore"):
-                lowest[code] = [np.where(np.isfinite(c[rows]), c[rows], np.inf).min(initial=np.inf) for c in columns]
-        kept = rows & whole
-        n_kept = int(kept.sum())
-        if n_kept == 0:
-            continue
-        # one row per feature, so each median partitions contiguous memory
-        block = np.empty((len(features), n_kept))
-        for j, column in enumerate(columns):
-            np.compress(kept, column, out=block[j])
-        median[code] = _block_summaries(block, np.zeros(len(features), bool))
-        if with_log:
-            mean_log[code] = _block_summaries(block, np.ones(len(features), bool))
-    return {"names": names, "counts": counts, "median": median, "mean_log": mean_log, "lowest": lowest}
-
-
-def summarise_observation_files(
-    folders: list[str], excluded_site_frames: pd.DataFrame, statistic: str = "median", threads: int = 1
-) -> tuple[pd.DataFrame, pd.DataFrame]:
-    """Stream the per-well cells files of a plate once, a well folder per task on ``threads`` threads.
-
-    Returns (summaries, counts). summaries: one row per well (index ``well``), the summary of
-    every observation feature over the observations kept (not touching the image border, not in
-    a site-frame of ``excluded_site_frames``: columns well, site, frame), as
-    ``observation_summaries`` computes it from the whole table. counts: the
-    ``observation_counts`` of every observation. No plate-wide table of observations is made:
-    peak memory is about one well per thread.
-    """
-    _check_statistic(statistic)
-    paths = _well_files(folders)
-    groups: dict[str, list[str]] = {}
-    for path in paths:
-        groups.setdefault(os.path.basename(os.path.dirname(path)), []).append(path)
-    schema = pq.read_schema(paths[0])
-    missing = [c for c in ("well",) + KEY_COLUMNS_FOR_PROFILES if c not in schema.names]
-    if missing:
-        raise InputError(
-            paths[0],
-            f"the cells table has no column {', '.join(missing)}.",
-            "re-run the per-well jobs of this plate (delete its results/cells folder, then snakemake).",
-        )
-    features = observation_features(list(schema.names))
-    excluded: dict[str, np.ndarray] = {}
-    for well, rows in excluded_site_frames.groupby(excluded_site_frames["well"].astype(str)):
-        excluded[well] = _site_frame_key(rows["site"], rows["frame"])
-    with ThreadPoolExecutor(max(1, threads)) as pool:
-        parts = list(
-            pool.map(
-                lambda group: _summarise_well_folder(group, features, excluded, statistic == "mean_log"),
-                [groups[name] for name in sorted(groups)],
-            )
-        )
-    names = [name for part in parts for name in part["names"]]
-    if len(set(names)) != len(names):
-        raise InputError(
-            ", ".join(folders),
-            "a well's observations are split over several well folders.",
-            "keep one folder per well (well=<name>): re-run the per-well jobs of this plate.",
-        )
-    shape = (len(names), len(features))
-    summary = np.concatenate([part["median"] for part in parts]).reshape(shape)
-    if statistic == "mean_log":
-        lowest = np.concatenate([part["lowest"] for part in parts]).reshape(shape).min(axis=0, initial=np.inf)
-        summary = np.where(lowest > 0, np.concatenate([part["mean_log"] for part in parts]).reshape(shape), summary)
-    summaries = pd.DataFrame(summary, columns=features, index=pd.Index(names, name="well"))
-    per_well = [(name, count) for part in parts for name, count in zip(part["names"], part["counts"])]
-    counts = pd.DataFrame(
-        {
-            c: np.concatenate([count[c] for _, count in per_well]) if per_well else np.zeros(0)
-            for c in COUNT_COLUMNS_OF_OBSERVATIONS[1:]
-        }
-    )
-    counts.insert(0, "well", np.repeat([name for name, _ in per_well], [len(count["site"]) for _, count in per_well]))
-    return summaries, counts.astype({"site": np.int64, "frame": np.int64, "observations": np.int64, "whole": np.int64})
-
-
 def summarise_wells(
     counts: pd.DataFrame,
     summaries: pd.DataFrame,
@@ -320,44 +165,13 @@ def summarise_wells(
     (exp of the mean of natural logs, for skewed positive features; features with
     non-positive values fall back to the median).
     """
-    fmt = plate_format(wells)
-    codes, uniques = pd.factorize(counts["well"], sort=True)
-    names = [str(name) for name in np.asarray(uniques, dtype=object)]
-    n_wells = len(names)
-    site, frame = counts["site"].to_numpy(np.int64), counts["frame"].to_numpy(np.int64)
-    observations = counts["observations"].to_numpy(np.int64)
-    n_site, n_frame = int(site.max(initial=0)) + 1, int(frame.max(initial=0)) + 1
-    per_site_frame = np.bincount(
-        (codes.astype(np.int64) * n_site + site) * n_frame + frame, observations, minlength=n_wells * n_site * n_frame
-    ).reshape(n_wells, n_site, n_frame)
-    present = per_site_frame > 0
-    well_counts = pd.DataFrame(
-        {
-            "cell_count": per_site_frame.sum(axis=(1, 2)) / np.maximum(present.sum(axis=(1, 2)), 1),
-            "n_observations": np.bincount(codes, observations, minlength=n_wells).astype(np.int64),
-            "n_sites": present.any(axis=2).sum(axis=1),
-            "n_frames": present.any(axis=1).sum(axis=1),
-        },
-        index=pd.Index(names, name="well"),
-    )
-    usable = tracks[tracks["speed_um_per_min"].notna() & ~tracks["touches_border"]]
-    track_codes, track_wells = pd.factorize(usable["well"], sort=True)
-    motion = _column_summaries(
-        usable,
-        np.ones(len(usable), bool),
-        track_codes,
-        [str(w) for w in np.asarray(track_wells, dtype=object)],
-        track_features(list(tracks.columns)),
-        statistic,
-    )
-    growth = well_growth_rates(counts)
-    n_tracks = usable.groupby("well", observed=True).size().rename("n_tracks")
-    n_tracks.index = n_tracks.index.astype(str)
     analysed = layout[layout["role"] != "empty"].set_index("well")
+    well_counts = _well_counts(counts)
+    motion, n_tracks = _track_summaries(tracks, statistic)
     profile = analysed.join(
         [
             well_counts[["cell_count"]],
-            growth,
+            well_growth_rates(counts),
             well_counts[["n_observations", "n_sites", "n_frames"]],
             n_tracks,
             summaries,
@@ -368,7 +182,51 @@ def summarise_wells(
     profile["cell_count"] = profile["cell_count"].fillna(0.0)
     for column in ("n_observations", "n_tracks"):
         profile[column] = profile[column].fillna(0).astype(np.int64)
-    profile = profile.reset_index()
+    return _with_position(profile.reset_index(), plate, batch, plate_format(wells))
+
+
+def _well_counts(counts: pd.DataFrame) -> pd.DataFrame:
+    """Per well: cell_count (mean nuclei per imaged site and frame), observations, sites, frames."""
+    codes, uniques = pd.factorize(counts["well"], sort=True)
+    names = [str(name) for name in np.asarray(uniques, dtype=object)]
+    n_wells = len(names)
+    site, frame = counts["site"].to_numpy(np.int64), counts["frame"].to_numpy(np.int64)
+    observations = counts["observations"].to_numpy(np.int64)
+    n_site, n_frame = int(site.max(initial=0)) + 1, int(frame.max(initial=0)) + 1
+    per_site_frame = np.bincount(
+        (codes.astype(np.int64) * n_site + site) * n_frame + frame, observations, minlength=n_wells * n_site * n_frame
+    ).reshape(n_wells, n_site, n_frame)
+    present = per_site_frame > 0
+    return pd.DataFrame(
+        {
+            "cell_count": per_site_frame.sum(axis=(1, 2)) / np.maximum(present.sum(axis=(1, 2)), 1),
+            "n_observations": np.bincount(codes, observations, minlength=n_wells).astype(np.int64),
+            "n_sites": present.any(axis=2).sum(axis=1),
+            "n_frames": present.any(axis=1).sum(axis=1),
+        },
+        index=pd.Index(names, name="well"),
+    )
+
+
+def _track_summaries(tracks: pd.DataFrame, statistic: str) -> tuple[pd.DataFrame, pd.Series]:
+    """Per well: the summary of every per-track feature over whole tracks, and their number."""
+    usable = tracks[tracks["speed_um_per_min"].notna() & ~tracks["touches_border"]]
+    track_codes, track_wells = pd.factorize(usable["well"], sort=True)
+    motion = _column_summaries(
+        usable,
+        np.ones(len(usable), bool),
+        track_codes,
+        [str(w) for w in np.asarray(track_wells, dtype=object)],
+        track_features(list(tracks.columns)),
+        statistic,
+    )
+    n_tracks = usable.groupby("well", observed=True).size().rename("n_tracks")
+    n_tracks.index = n_tracks.index.astype(str)
+    return motion, n_tracks
+
+
+def _with_position(profile: pd.DataFrame, plate: str, batch: str, fmt: PlateFormat) -> pd.DataFrame:
+    """The profile with plate, batch, row, column (1-based) and is_edge in front."""
     position = np.array([parse_well(w) for w in profile["well"]]).reshape(-1, 2)
     profile.insert(0, "plate", plate)
     profile.insert(1, "batch", batch)
