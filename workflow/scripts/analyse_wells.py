@@ -6,7 +6,7 @@ import tifffile
 from plateloom.io.images import index_plate_images
 from plateloom.io.job import run_step
 from plateloom.well.collective import CollectiveSettings
-from plateloom.well.stage import WellSettings, analyse_chunk
+from plateloom.well.stage import ChunkOutputs, WellSettings, analyse_chunk
 
 sm = snakemake  # noqa: F821  (injected by Snakemake's script directive)
 
@@ -21,12 +21,9 @@ def step() -> None:
         sm.wildcards.plate,
         list(sm.params.wells),
         settings,
-        sm.output.cells,
-        sm.output.tracks,
-        sm.output.site_qc,
+        ChunkOutputs(sm.output.cells, sm.output.tracks, sm.output.site_qc, sm.output.collective),
         dict(sm.params.settings),
         flat_field,
-        sm.output.collective,
         CollectiveSettings(**sm.params.collective),
     )
 

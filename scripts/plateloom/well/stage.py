@@ -9,7 +9,7 @@ import numpy as np
 import pandas as pd
 
 from plateloom.errors import InputError
-from plateloom.io.images import ImageIndex, stream_site
+from plateloom.io.images import ImageIndex, SiteFrame, stream_site
 from plateloom.io.tables import well_part_path, write_parquet
 from plateloom.settings import FromSchema
 from plateloom.well.cell_bodies import grow_cell_bodies
@@ -156,6 +156,73 @@ def measure_frame(
     return table, background
 
 
+def _unusable_frame_qc(site: int, frame: int, problem: str, channels: list[str]) -> dict:
+    """The QC row of a frame that could not be used: no measures, the problem named."""
+    qc = {"site": site, "frame": frame, "n_objects": 0, "foreground_fraction": np.nan, "threshold": np.nan}
+    qc.update({"focus_score": np.nan, "empty_field": False, "frame_problem": problem})
+    qc.update({f"background_{c}": np.nan for c in channels})
+    qc.update({f"saturated_fraction_{c}": np.nan for c in channels})
+    return qc
+
+
+def _frame_qc(
+    site: int,
+    item: SiteFrame,
+    table: pd.DataFrame,
+    labels: np.ndarray,
+    threshold: float,
+    smooth: np.ndarray,
+    background: np.ndarray,
+    channels: list[str],
+) -> dict:
+    """The QC row of an analysed frame: objects, foreground, threshold, focus, background, saturation."""
+    qc = {"site": site, "frame": item.frame, "n_objects": len(table)}
+    qc.update({"foreground_fraction": np.count_nonzero(labels) / labels.size, "threshold": threshold})
+    qc.update({"focus_score": focus_score(smooth), "empty_field": len(table) == 0, "frame_problem": ""})
+    qc.update({f"background_{c}": float(b) for c, b in zip(channels, background)})
+    qc.update({f"saturated_fraction_{c}": float(f) for c, f in zip(channels, item.saturated)})
+    return qc
+
+
+class _FrameLinker:
+    """Frame-to-frame linking along a site: each frame's objects get the track of the object they
+    link to in the previous usable frame, or a new track id; an unusable frame breaks every link
+    (gap closing bridges it later)."""
+
+    def __init__(self, max_displacement_um: float):
+        self.max_displacement_um = max_displacement_um
+        self.break_links()
+        self.next_track = 0
+
+    def break_links(self) -> None:
+        self.previous_xy, self.previous_tracks = np.empty((0, 2)), np.empty(0, dtype=np.int64)
+
+    def tracks_of(self, xy: np.ndarray) -> np.ndarray:
+        links = link_frames(self.previous_xy, xy, self.max_displacement_um)
+        previous = self.previous_tracks
+        tracks = np.where(links >= 0, previous[np.clip(links, 0, None)] if len(previous) else -1, -1)
+        new = tracks < 0
+        tracks[new] = self.next_track + np.arange(new.sum())
+        self.next_track += int(new.sum())
+        self.previous_xy, self.previous_tracks = xy, tracks.astype(np.int64)
+        return self.previous_tracks
+
+
+def _close_gaps_and_divisions(cells: pd.DataFrame, settings: WellSettings) -> pd.DataFrame:
+    """Join track segments across missed frames and, if switched on, record divisions (parent_track)."""
+    cells["parent_track"] = -1
+    if not len(cells):
+        return cells
+    frame, x, y = cells["frame"].to_numpy(), cells["centroid_x_um"].to_numpy(), cells["centroid_y_um"].to_numpy()
+    track = close_gaps(frame, cells["track"].to_numpy(), x, y, settings.max_gap_frames, settings.max_displacement_um)
+    if settings.division_max_distance_um:
+        track, parents = find_divisions(frame, track, x, y, settings.division_max_distance_um)
+        parent = pd.Series(parents.set_index("track")["parent_track"]).reindex(track).fillna(-1)
+        cells["parent_track"] = parent.to_numpy(np.int64)
+    cells["track"] = track
+    return cells
+
+
 def analyse_site(
     index: ImageIndex, well: str, site: int, settings: WellSettings, flat_field: np.ndarray | None = None
 ) -> tuple[pd.DataFrame, pd.DataFrame]:
@@ -167,56 +234,21 @@ def analyse_site(
     """
     channels = list(settings.channels)
     observations, qc_rows = [], []
-    previous_xy = np.empty((0, 2))
-    previous_tracks = np.empty(0, dtype=np.int64)
-    next_track = 0
-    usable_frames = 0
+    linker = _FrameLinker(settings.max_displacement_um)
     for item in stream_site(index, well, site, channels):
-        qc = {"site": site, "frame": item.frame}
         if item.problem:
-            qc.update(
-                {
-                    "n_objects": 0,
-                    "foreground_fraction": np.nan,
-                    "threshold": np.nan,
-                    "focus_score": np.nan,
-                    "empty_field": False,
-                    "frame_problem": item.problem,
-                }
-            )
-            qc.update({f"background_{c}": np.nan for c in channels})
-            qc.update({f"saturated_fraction_{c}": np.nan for c in channels})
-            qc_rows.append(qc)
-            previous_xy, previous_tracks = np.empty((0, 2)), np.empty(0, dtype=np.int64)
+            qc_rows.append(_unusable_frame_qc(site, item.frame, item.problem, channels))
+            linker.break_links()
             continue
-        usable_frames += 1
         planes = apply_flat_field(item.planes, flat_field)
         labels, bodies, threshold, smooth = segment_frame(planes, settings)
         table, background = measure_frame(planes, labels, bodies, settings)
-        xy = table[["centroid_x_um", "centroid_y_um"]].to_numpy()
-        links = link_frames(previous_xy, xy, settings.max_displacement_um)
-        tracks = np.where(links >= 0, previous_tracks[np.clip(links, 0, None)] if len(previous_tracks) else -1, -1)
-        new = tracks < 0
-        tracks[new] = next_track + np.arange(new.sum())
-        next_track += int(new.sum())
+        tracks = linker.tracks_of(table[["centroid_x_um", "centroid_y_um"]].to_numpy())
         table.insert(0, "frame", item.frame)
-        table.insert(1, "track", tracks.astype(np.int64))
+        table.insert(1, "track", tracks)
         observations.append(table)
-        qc.update(
-            {
-                "n_objects": len(table),
-                "foreground_fraction": np.count_nonzero(labels) / labels.size,
-                "threshold": threshold,
-                "focus_score": focus_score(smooth),
-                "empty_field": len(table) == 0,
-                "frame_problem": "",
-            }
-        )
-        qc.update({f"background_{c}": float(b) for c, b in zip(channels, background)})
-        qc.update({f"saturated_fraction_{c}": float(f) for c, f in zip(channels, item.saturated)})
-        qc_rows.append(qc)
-        previous_xy, previous_tracks = xy, tracks.astype(np.int64)
-    if usable_frames == 0:
+        qc_rows.append(_frame_qc(site, item, table, labels, threshold, smooth, background, channels))
+    if not observations:
         first = qc_rows[0]["frame_problem"] if qc_rows else f"well {well}, site {site}: no frames"
         raise InputError(
             f"well {well}, site {site}",
@@ -225,19 +257,7 @@ def analyse_site(
         )
     cells = pd.concat(observations, ignore_index=True)
     cells.insert(0, "site", site)
-    cells["parent_track"] = -1
-    if len(cells):
-        frame, x, y = cells["frame"].to_numpy(), cells["centroid_x_um"].to_numpy(), cells["centroid_y_um"].to_numpy()
-        track = close_gaps(
-            frame, cells["track"].to_numpy(), x, y, settings.max_gap_frames, settings.max_displacement_um
-        )
-        if settings.division_max_distance_um:
-            track, parents = find_divisions(frame, track, x, y, settings.division_max_distance_um)
-            cells["parent_track"] = (
-                pd.Series(parents.set_index("track")["parent_track"]).reindex(track).fillna(-1).to_numpy(np.int64)
-            )
-        cells["track"] = track
-    return cells, pd.DataFrame(qc_rows)
+    return _close_gaps_and_divisions(cells, settings), pd.DataFrame(qc_rows)
 
 
 def track_table(cells: pd.DataFrame, settings: WellSettings) -> pd.DataFrame:
@@ -332,29 +352,35 @@ def collective_table(
     return pd.DataFrame([row])
 
 
+@dataclass(frozen=True)
+class ChunkOutputs:
+    """The Hive folders a chunk job writes one Parquet file per well into (collective: optional)."""
+
+    cells: str
+    tracks: str
+    site_qc: str
+    collective: str | None = None
+
+
 def analyse_chunk(
     index: ImageIndex,
     plate: str,
     wells: list[str],
     settings: WellSettings,
-    out_cells: str,
-    out_tracks: str,
-    out_site_qc: str,
+    outputs: ChunkOutputs,
     config_for_provenance: object,
     flat_field: np.ndarray | None = None,
-    out_collective: str | None = None,
     collective: CollectiveSettings | None = None,
 ) -> None:
-    """Analyse the wells of one chunk; one Parquet file per well in each Hive folder (cells, tracks,
-    site QC and, with ``out_collective``, the well's collective readouts)."""
-    outputs = (out_cells, out_tracks, out_site_qc) + ((out_collective,) if out_collective else ())
-    for folder in outputs:
+    """Analyse the wells of one chunk; one Parquet file per well in each folder of ``outputs``
+    (cells, tracks, site QC and, with a collective folder, the well's collective readouts)."""
+    folders = [outputs.cells, outputs.tracks, outputs.site_qc] + ([outputs.collective] if outputs.collective else [])
+    for folder in folders:
         os.makedirs(folder, exist_ok=True)
     for well in wells:
         cells, tracks, site_qc = analyse_well(index, well, settings, flat_field)
-        write_parquet(_with_keys(cells, plate, well), well_part_path(out_cells, well), config_for_provenance)
-        write_parquet(_with_keys(tracks, plate, well), well_part_path(out_tracks, well), config_for_provenance)
-        write_parquet(_with_keys(site_qc, plate, well), well_part_path(out_site_qc, well), config_for_provenance)
-        if out_collective:
-            table = collective_table(cells, settings, collective or CollectiveSettings.defaults(), well)
-            write_parquet(_with_keys(table, plate, well), well_part_path(out_collective, well), config_for_provenance)
+        tables = [cells, tracks, site_qc]
+        if outputs.collective:
+            tables.append(collective_table(cells, settings, collective or CollectiveSettings.defaults(), well))
+        for table, folder in zip(tables, folders):
+            write_parquet(_with_keys(table, plate, well), well_part_path(folder, well), config_for_provenance)
