@@ -18,7 +18,7 @@ import warnings
 import numpy as np
 from statsmodels.tsa.stattools import grangercausalitytests
 
-from plateloom.well.collective import granger_f_test, granger_tests
+from plateloom.well.granger import granger_f_test, granger_tests
 
 
 def main() -> None:

@@ -9,20 +9,16 @@ from statsmodels.tsa.stattools import grangercausalitytests
 from plateloom.well.collective import (
     CollectiveSettings,
     analytic_phases,
-    choose_granger_lag,
     corrected_order_squared,
-    delaunay_edges,
     detrend_rows,
-    granger_f_test,
-    granger_tests,
     knox_test,
     kuramoto_order,
     pair_correlations,
-    pairs_at_distance_two,
     reporter_events,
-    track_neighbour_pairs,
     well_collective_readouts,
 )
+from plateloom.well.granger import choose_granger_lag, granger_f_test, granger_tests
+from plateloom.well.neighbours import delaunay_edges, pairs_at_distance_two, track_neighbour_pairs
 from plateloom.well.track_stats import fill_inner_gaps
 
 

@@ -23,11 +23,13 @@ from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
-from scipy import signal, sparse, stats
-from scipy.spatial import Delaunay, QhullError, cKDTree
+from scipy import signal
+from scipy.spatial import cKDTree
 
 from plateloom.settings import FromSchema
 from plateloom.stats import bh_qvalues
+from plateloom.well.granger import granger_tests
+from plateloom.well.neighbours import pairs_at_distance_two, track_neighbour_pairs
 from plateloom.well.track_stats import (
     dominant_frequency,
     fill_inner_gaps,
@@ -58,75 +60,6 @@ class CollectiveSettings(FromSchema):
     def from_config(cls, config: dict) -> CollectiveSettings:
         """From the validated config's ``collective`` section (every key filled by the schema)."""
         return cls(**config["collective"])
-
-
-# ---------------------------------------------------------------------------------------------
-# Neighbour graph
-
-
-def delaunay_edges(xy: np.ndarray, max_edge_um: float) -> np.ndarray:
-    """Edges (i, j), i < j, of the Delaunay triangulation of points ``xy`` (n, 2; um) no longer than ``max_edge_um``."""
-    n = len(xy)
-    if n < 2:
-        return np.empty((0, 2), np.int64)
-    if n == 2:
-        edges = np.array([[0, 1]])
-    else:
-        try:
-            simplices = Delaunay(xy).simplices
-            edges = np.concatenate([simplices[:, [0, 1]], simplices[:, [1, 2]], simplices[:, [0, 2]]])
-        except QhullError:  # all points on a line: the triangulation degenerates to the chain along it
-            centred = xy - xy.mean(axis=0)
-            direction = np.linalg.svd(centred, full_matrices=False)[2][0]
-            order = np.argsort(centred @ direction, kind="stable")
-            edges = np.column_stack([order[:-1], order[1:]])
-        edges = np.unique(np.sort(edges, axis=1), axis=0)
-    length = np.hypot(*(xy[edges[:, 0]] - xy[edges[:, 1]]).T)
-    return edges[length <= max_edge_um].astype(np.int64)
-
-
-def track_neighbour_pairs(
-    frame: np.ndarray, track: np.ndarray, x: np.ndarray, y: np.ndarray, max_edge_um: float, min_fraction: float
-) -> np.ndarray:
-    """Pairs of track ids (a < b) joined by a Delaunay edge in >= ``min_fraction`` of the frames both are present."""
-    ids = np.unique(track)
-    if len(ids) < 2:
-        return np.empty((0, 2), np.int64)
-    rows = np.searchsorted(ids, track)
-    n_frames = int(frame.max()) + 1
-    present = np.zeros((len(ids), n_frames), bool)
-    present[rows, frame] = True
-    keys = []
-    order = np.argsort(frame, kind="stable")
-    bounds = np.searchsorted(frame[order], np.arange(n_frames + 1))
-    for f in range(n_frames):
-        members = order[bounds[f] : bounds[f + 1]]
-        edges = delaunay_edges(np.column_stack([x[members], y[members]]), max_edge_um)
-        a, b = rows[members[edges[:, 0]]], rows[members[edges[:, 1]]]
-        keys.append(np.minimum(a, b) * len(ids) + np.maximum(a, b))
-    joined_keys, joined = (
-        np.unique(np.concatenate(keys), return_counts=True) if keys else (np.empty(0, int), np.empty(0, int))
-    )
-    a, b = joined_keys // len(ids), joined_keys % len(ids)
-    together = (present[a] & present[b]).sum(axis=1)
-    keep = joined >= min_fraction * together
-    return np.column_stack([ids[a[keep]], ids[b[keep]]]).astype(np.int64)
-
-
-def pairs_at_distance_two(pairs: np.ndarray) -> np.ndarray:
-    """Pairs (a < b) of nodes two edges apart in the graph of ``pairs`` and not joined directly."""
-    if len(pairs) == 0:
-        return np.empty((0, 2), np.int64)
-    nodes, index = np.unique(pairs, return_inverse=True)
-    index = index.reshape(-1, 2)
-    n = len(nodes)
-    adjacency = sparse.coo_matrix((np.ones(len(index)), (index[:, 0], index[:, 1])), shape=(n, n)).tocsr()
-    adjacency = ((adjacency + adjacency.T) > 0).astype(np.int64)
-    two = sparse.triu(adjacency @ adjacency, k=1).tocsr()
-    two = two - two.multiply(adjacency)
-    two.eliminate_zeros()
-    a, b = two.nonzero()
-    return np.column_stack([nodes[a], nodes[b]]).astype(np.int64)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -218,90 +151,6 @@ def pair_correlations(traces: np.ndarray, pairs_rows: np.ndarray, min_overlap: i
         b_c = np.where(both, b - np.where(both, b, 0).sum(1, keepdims=True) / n[:, None], 0)
         r = (a_c * b_c).sum(1) / np.sqrt((a_c**2).sum(1) * (b_c**2).sum(1))
     return np.where(n >= min_overlap, r, np.nan)
-
-
-# ---------------------------------------------------------------------------------------------
-# Granger causality, vectorised over pairs
-
-
-def _lag_design(series: np.ndarray, lag: int, start: int) -> np.ndarray:
-    """(pairs, n - start, lag) matrix of series values at t-1 .. t-lag for t = start .. n-1."""
-    n = series.shape[1]
-    return np.stack([series[:, start - k : n - k] for k in range(1, lag + 1)], axis=2)
-
-
-def _residual_ss(design: np.ndarray, response: np.ndarray) -> np.ndarray:
-    """Residual sum of squares of the least-squares fit of ``response`` (pairs, m) on ``design`` (pairs, m, k).
-
-    From the QR factorisation of [design | response]: the last diagonal element of R is the
-    residual norm (stable, batched over pairs).
-    """
-    augmented = np.concatenate([design, response[:, :, None]], axis=2)
-    r = np.linalg.qr(augmented, mode="r")
-    return r[:, -1, -1] ** 2
-
-
-def _ssr_pair(effect: np.ndarray, cause: np.ndarray, lag: int, start: int) -> tuple[np.ndarray, np.ndarray]:
-    """Residual sums of squares (own lags only, own and cause lags), constant included, for t >= start."""
-    response = effect[:, start:]
-    const = np.ones(response.shape + (1,))
-    own = np.concatenate([_lag_design(effect, lag, start), const], axis=2)
-    joint = np.concatenate([_lag_design(effect, lag, start), _lag_design(cause, lag, start), const], axis=2)
-    return _residual_ss(own, response), _residual_ss(joint, response)
-
-
-def granger_f_test(effect: np.ndarray, cause: np.ndarray, lag: int) -> tuple[np.ndarray, np.ndarray, int]:
-    """Granger F-test that ``cause`` helps predict ``effect`` at lag order ``lag``, for each row pair.
-
-    ``effect``, ``cause``: (pairs, n) complete series. As in the SSR F-test of Granger (1969)
-    with a constant: the sample is t = lag .. n-1, F = ((SSR_own - SSR_joint) / lag) /
-    (SSR_joint / (n - lag - 2 lag - 1)). Returns (F, p-value, denominator degrees of freedom);
-    NaN where the joint model fits perfectly.
-    """
-    effect, cause = np.atleast_2d(np.asarray(effect, float)), np.atleast_2d(np.asarray(cause, float))
-    n = effect.shape[1]
-    df_denom = n - lag - (2 * lag + 1)
-    if df_denom < 1:
-        raise ValueError(f"series of {n} points are too short for a Granger test at lag {lag}")
-    ssr_own, ssr_joint = _ssr_pair(effect, cause, lag, lag)
-    centred = effect[:, lag:] - effect[:, lag:].mean(axis=1, keepdims=True)
-    tss = (centred**2).sum(axis=1)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        f = (ssr_own - ssr_joint) / ssr_joint / lag * df_denom
-    f = np.where((ssr_joint > np.finfo(float).eps * tss) & (tss > 0), f, np.nan)
-    return f, stats.f.sf(f, lag, df_denom), df_denom
-
-
-def choose_granger_lag(effect: np.ndarray, cause: np.ndarray, max_lag: int, criterion: str = "bic") -> np.ndarray:
-    """Lag order 1..max_lag minimising the information criterion of the joint regression, per row pair.
-
-    All orders are compared on the same sample (t = max_lag .. n-1), as in VAR order
-    selection: AIC = m ln(SSR/m) + 2k (Akaike 1974), BIC = m ln(SSR/m) + k ln m (Schwarz 1978),
-    k = 2 lag + 1 coefficients, m sample size.
-    """
-    if criterion not in ("aic", "bic"):
-        raise ValueError(f"unknown lag criterion {criterion!r}; use aic or bic")
-    effect, cause = np.atleast_2d(np.asarray(effect, float)), np.atleast_2d(np.asarray(cause, float))
-    m = effect.shape[1] - max_lag
-    scores = []
-    for lag in range(1, max_lag + 1):
-        _, ssr = _ssr_pair(effect, cause, lag, max_lag)
-        k = 2 * lag + 1
-        with np.errstate(divide="ignore"):
-            scores.append(m * np.log(ssr / m) + (2 * k if criterion == "aic" else k * np.log(m)))
-    return np.nanargmin(np.where(np.isfinite(scores), scores, np.inf), axis=0) + 1
-
-
-def granger_tests(
-    effect: np.ndarray, cause: np.ndarray, max_lag: int, criterion: str = "bic"
-) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Per row pair: (chosen lag, F, p-value) of the Granger test that ``cause`` helps predict ``effect``."""
-    lag = choose_granger_lag(effect, cause, max_lag, criterion)
-    f, p = np.full(len(lag), np.nan), np.full(len(lag), np.nan)
-    for order in np.unique(lag):
-        rows = lag == order
-        f[rows], p[rows], _ = granger_f_test(effect[rows], cause[rows], int(order))
-    return lag, f, p
 
 
 # ---------------------------------------------------------------------------------------------
@@ -417,74 +266,96 @@ def well_collective_readouts(
     graph distance 2. spreading_index = (observed + 1) / (expected + 1) Knox pairs of events of
     the first reporter (1: no clustering beyond chance).
     """
-    row: dict[str, float] = {}
     sums = {c: {"order": [], "time": [], "corr": [], "p1": [], "p2": []} for c in reporters}
-    n_links = 0
-    event_parts = []
+    n_links, event_parts = 0, []
     for site, part in cells.groupby("site", sort=True):
         frame, track = part["frame"].to_numpy(np.int64), part["track"].to_numpy(np.int64)
         x, y = part["centroid_x_um"].to_numpy(float), part["centroid_y_um"].to_numpy(float)
         pairs = track_neighbour_pairs(frame, track, x, y, settings.max_edge_um, settings.min_edge_fraction)
         n_links += len(pairs)
         ids = np.unique(track)
-        pair_rows, second_rows = np.searchsorted(ids, pairs), np.searchsorted(ids, pairs_at_distance_two(pairs))
+        rows = (np.searchsorted(ids, pairs), np.searchsorted(ids, pairs_at_distance_two(pairs)))
         for channel in reporters:
-            traces = _site_traces(part, channel, ids)
-            phases = analytic_phases(traces)
-            order, n_phases = kuramoto_order(phases, axis=0), np.isfinite(phases).sum(axis=0)
-            counted = n_phases >= 3
-            if counted.any():
-                sums[channel]["order"].append(float(np.mean(_corrected(order, n_phases)[counted])))
-                reached = np.flatnonzero(counted & (order >= settings.synchrony_level))
-                end = (traces.shape[1]) * frame_interval_min
-                sums[channel]["time"].append(float(reached[0] * frame_interval_min) if len(reached) else end)
-            sums[channel]["corr"].append(pair_correlations(traces, pair_rows, settings.min_overlap_frames))
-            residual = remove_dominant_oscillation(traces)
-            sums[channel]["p1"].append(_directed_tests(residual, pair_rows, settings))
-            sums[channel]["p2"].append(_directed_tests(residual, second_rows, settings))
+            _add_site_readouts(sums[channel], _site_traces(part, channel, ids), rows, settings, frame_interval_min)
         if reporters:
             at_border = part["touches_border"].to_numpy(bool)
             values = part[f"mean_intensity_{reporters[0]}"].to_numpy(float)
-            rows = reporter_events(frame, track, values, at_border, int(frame.max()), settings.event_jump_ratio)
-            event_parts.append(pd.DataFrame({"site": site, "frame": frame[rows], "x": x[rows], "y": y[rows]}))
+            ended = reporter_events(frame, track, values, at_border, int(frame.max()), settings.event_jump_ratio)
+            event_parts.append(pd.DataFrame({"site": site, "frame": frame[ended], "x": x[ended], "y": y[ended]}))
+    row: dict[str, float] = {}
     n_tests = 0
     for channel in reporters:
-        s = sums[channel]
-        correlations = np.concatenate(s["corr"]) if s["corr"] else np.empty(0)
-        p1 = np.concatenate(s["p1"]) if s["p1"] else np.empty(0)
-        p2 = np.concatenate(s["p2"]) if s["p2"] else np.empty(0)
-        q = bh_qvalues(np.concatenate([p1, p2]))
-        q1, q2 = q[: len(p1)], q[len(p1) :]
-        n_tests = max(n_tests, int(np.isfinite(q).sum()))
-        row[f"phase_order_{channel}"] = float(np.mean(s["order"])) if s["order"] else np.nan
-        row[f"time_to_synchrony_min_{channel}"] = float(np.mean(s["time"])) if s["time"] else np.nan
-        row[f"neighbour_correlation_{channel}"] = _nanmean(correlations)
-        row[f"coupled_link_fraction_{channel}"] = _fraction_below(q1, settings.coupling_q_value)
-        row[f"coupled_link_fraction_d2_{channel}"] = _fraction_below(q2, settings.coupling_q_value)
+        readouts, tests = _channel_readouts(sums[channel], settings.coupling_q_value)
+        row.update({f"{name}_{channel}": value for name, value in readouts.items()})
+        n_tests = max(n_tests, tests)
     events = (
         pd.concat(event_parts, ignore_index=True) if event_parts else pd.DataFrame(columns=["site", "frame", "x", "y"])
     )
-    rng = np.random.default_rng([settings.seed, zlib.crc32(str(well).encode())])
-    if reporters and len(events) >= 2:
-        observed, expected, p_value = knox_test(
-            events["x"].to_numpy(float),
-            events["y"].to_numpy(float),
-            events["frame"].to_numpy(float),
-            events["site"].to_numpy(),
-            settings.event_radius_um,
-            settings.event_window_frames,
-            settings.n_permutations,
-            rng,
-        )
-        row["spreading_index"] = (observed + 1.0) / (expected + 1.0)
-        row["spreading_p_value"] = p_value
-    else:
-        row["spreading_index"] = 1.0 if reporters else np.nan
-        row["spreading_p_value"] = np.nan
+    row.update(_spreading(events, settings, well, bool(reporters)))
     row["n_neighbour_links"] = n_links
     row["n_coupling_tests"] = n_tests
     row["n_events"] = len(events)
     return row
+
+
+def _add_site_readouts(
+    sums: dict[str, list],
+    traces: np.ndarray,
+    rows: tuple[np.ndarray, np.ndarray],
+    settings: CollectiveSettings,
+    frame_interval_min: float,
+) -> None:
+    """Append one site's phase order, time to synchrony, neighbour correlations and Granger p-values
+    (neighbours, neighbours of neighbours) of one reporter to ``sums``."""
+    phases = analytic_phases(traces)
+    order, n_phases = kuramoto_order(phases, axis=0), np.isfinite(phases).sum(axis=0)
+    counted = n_phases >= 3
+    if counted.any():
+        sums["order"].append(float(np.mean(_corrected(order, n_phases)[counted])))
+        reached = np.flatnonzero(counted & (order >= settings.synchrony_level))
+        end = traces.shape[1] * frame_interval_min
+        sums["time"].append(float(reached[0] * frame_interval_min) if len(reached) else end)
+    sums["corr"].append(pair_correlations(traces, rows[0], settings.min_overlap_frames))
+    residual = remove_dominant_oscillation(traces)
+    sums["p1"].append(_directed_tests(residual, rows[0], settings))
+    sums["p2"].append(_directed_tests(residual, rows[1], settings))
+
+
+def _channel_readouts(sums: dict[str, list], coupling_q_value: float) -> tuple[dict[str, float], int]:
+    """The well's readouts of one reporter (names without the channel suffix) and its number of tests."""
+    correlations = np.concatenate(sums["corr"]) if sums["corr"] else np.empty(0)
+    p1 = np.concatenate(sums["p1"]) if sums["p1"] else np.empty(0)
+    p2 = np.concatenate(sums["p2"]) if sums["p2"] else np.empty(0)
+    q = bh_qvalues(np.concatenate([p1, p2]))
+    q1, q2 = q[: len(p1)], q[len(p1) :]
+    readouts = {
+        "phase_order": float(np.mean(sums["order"])) if sums["order"] else np.nan,
+        "time_to_synchrony_min": float(np.mean(sums["time"])) if sums["time"] else np.nan,
+        "neighbour_correlation": _nanmean(correlations),
+        "coupled_link_fraction": _fraction_below(q1, coupling_q_value),
+        "coupled_link_fraction_d2": _fraction_below(q2, coupling_q_value),
+    }
+    return readouts, int(np.isfinite(q).sum())
+
+
+def _spreading(events: pd.DataFrame, settings: CollectiveSettings, well: str, has_reporter: bool) -> dict[str, float]:
+    """spreading_index and its permutation p-value from the Knox test of the well's events."""
+    if not has_reporter:
+        return {"spreading_index": np.nan, "spreading_p_value": np.nan}
+    if len(events) < 2:
+        return {"spreading_index": 1.0, "spreading_p_value": np.nan}
+    rng = np.random.default_rng([settings.seed, zlib.crc32(str(well).encode())])
+    observed, expected, p_value = knox_test(
+        events["x"].to_numpy(float),
+        events["y"].to_numpy(float),
+        events["frame"].to_numpy(float),
+        events["site"].to_numpy(),
+        settings.event_radius_um,
+        settings.event_window_frames,
+        settings.n_permutations,
+        rng,
+    )
+    return {"spreading_index": (observed + 1.0) / (expected + 1.0), "spreading_p_value": p_value}
 
 
 def _nanmean(values: np.ndarray) -> float:
