@@ -231,44 +231,26 @@ def glcm_measures(
     return {p: v / len(GLCM_ANGLES) for p, v in results.items()}
 
 
-def measure_objects(
-    labels: np.ndarray,
-    planes: np.ndarray,
-    channels: list[str],
-    background: np.ndarray,
-    pixel_size_um: float,
-    cells: np.ndarray | None = None,
-    texture_channels: list[str] | None = None,
-    texture_distance_px: int = 2,
-    texture_levels: int = 8,
-) -> pd.DataFrame:
-    """Measure every labelled nucleus of one frame.
+@dataclass(frozen=True)
+class TextureSettings:
+    """Which channels get grey-level co-occurrence texture, at what pixel distance and grey levels."""
 
-    ``planes`` is (channels, y, x); ``background`` the per-channel background level that is
-    subtracted from intensities. Columns: object, area_um2, perimeter_um, eccentricity,
-    solidity, major_axis_um, minor_axis_um, form_factor (4 pi area / perimeter^2, 1 for a
-    disk), centroid_x_um, centroid_y_um, touches_border, and per channel c mean_intensity_<c>
-    (grey levels above background), integrated_intensity_<c> (mean above background x area in
-    pixels) and std_intensity_<c> (grey levels). Per channel of ``texture_channels``:
-    glcm_contrast_<c>, glcm_homogeneity_<c>, glcm_correlation_<c>, glcm_asm_<c> (unitless).
-    With ``cells`` (cell-body labels, same ids as the nuclei): cell_area_um2,
-    cytoplasm_area_um2, cytoplasm_mean_intensity_<c> (grey levels above background) and
-    nuclear_cytoplasmic_ratio_<c>; touches_border then also covers the cell body.
-    """
-    texture_channels = [] if texture_channels is None else list(texture_channels)
-    columns = object_columns(channels, texture_channels, cells is not None)
-    if labels.max() == 0:
-        return pd.DataFrame(
-            {
-                c: pd.Series(dtype="bool" if c == "touches_border" else "int64" if c == "object" else "float64")
-                for c in columns
-            }
-        )
-    pixels = ObjectPixels.of(labels)
-    n = pixels.count
-    area = pixels.sums()
-    present = area > 0
-    safe_area = np.where(present, area, 1.0)
+    channels: tuple[str, ...] = ()
+    distance_px: int = 2
+    levels: int = 8
+
+
+def _empty_table(columns: list[str]) -> pd.DataFrame:
+    dtypes = {"touches_border": "bool", "object": "int64"}
+    return pd.DataFrame({c: pd.Series(dtype=dtypes.get(c, "float64")) for c in columns})
+
+
+def _shape_measures(
+    labels: np.ndarray, pixels: ObjectPixels, area: np.ndarray, pixel_size_um: float
+) -> dict[str, np.ndarray]:
+    """Area, perimeter, moments-based axes and eccentricity, solidity, form factor, centroid, border
+    flag (``area`` in pixels)."""
+    safe_area = np.where(area > 0, area, 1.0)
     cy, cx = pixels.sums(pixels.row.astype(float)) / safe_area, pixels.sums(pixels.col.astype(float)) / safe_area
     dy, dx = pixels.row - cy[pixels.label - 1], pixels.col - cx[pixels.label - 1]
     vyy, vxx, vxy = pixels.sums(dy * dy) / safe_area, pixels.sums(dx * dx) / safe_area, pixels.sums(dy * dx) / safe_area
@@ -276,10 +258,8 @@ def measure_objects(
     major, minor = half_trace + root, np.maximum(half_trace - root, 0.0)
     perimeter, border = perimeters(labels, pixels)
     convex = convex_areas(pixels, border)
-    height, width = labels.shape
-    touches = _touching_border(labels, n)
-    table = {
-        "object": np.arange(1, n + 1, dtype=np.int64),
+    return {
+        "object": np.arange(1, pixels.count + 1, dtype=np.int64),
         "area_um2": area * pixel_size_um**2,
         "perimeter_um": perimeter * pixel_size_um,
         "eccentricity": np.sqrt(1 - minor / np.where(major > 0, major, 1.0)),
@@ -289,8 +269,16 @@ def measure_objects(
         "form_factor": np.where(perimeter > 0, 4 * np.pi * area / np.maximum(perimeter, 1e-12) ** 2, np.nan),
         "centroid_x_um": cx * pixel_size_um,
         "centroid_y_um": cy * pixel_size_um,
-        "touches_border": touches,
+        "touches_border": _touching_border(labels, pixels.count),
     }
+
+
+def _intensity_measures(
+    planes: np.ndarray, channels: list[str], background: np.ndarray, pixels: ObjectPixels, area: np.ndarray
+) -> dict[str, np.ndarray]:
+    """Per channel: mean and integrated intensity above background, SD of intensity (``area`` in pixels)."""
+    safe_area = np.where(area > 0, area, 1.0)
+    table = {}
     for index, channel in enumerate(channels):
         value = planes[index].ravel()[pixels.index].astype(np.float64)
         mean = pixels.sums(value) / safe_area
@@ -298,13 +286,49 @@ def measure_objects(
         table[f"mean_intensity_{channel}"] = mean - background[index]
         table[f"integrated_intensity_{channel}"] = (mean - background[index]) * area
         table[f"std_intensity_{channel}"] = np.sqrt(variance)
-    for channel in texture_channels:
-        texture = glcm_measures(planes[channels.index(channel)], labels, pixels, texture_distance_px, texture_levels)
+    return table
+
+
+def measure_objects(
+    labels: np.ndarray,
+    planes: np.ndarray,
+    channels: list[str],
+    background: np.ndarray,
+    pixel_size_um: float,
+    cells: np.ndarray | None = None,
+    texture: TextureSettings | None = None,
+) -> pd.DataFrame:
+    """Measure every labelled nucleus of one frame.
+
+    ``planes`` is (channels, y, x); ``background`` the per-channel background level that is
+    subtracted from intensities. Columns: object, area_um2, perimeter_um, eccentricity,
+    solidity, major_axis_um, minor_axis_um, form_factor (4 pi area / perimeter^2, 1 for a
+    disk), centroid_x_um, centroid_y_um, touches_border, and per channel c mean_intensity_<c>
+    (grey levels above background), integrated_intensity_<c> (mean above background x area in
+    pixels) and std_intensity_<c> (grey levels). Per channel of ``texture.channels``:
+    glcm_contrast_<c>, glcm_homogeneity_<c>, glcm_correlation_<c>, glcm_asm_<c> (unitless).
+    With ``cells`` (cell-body labels, same ids as the nuclei): cell_area_um2,
+    cytoplasm_area_um2, cytoplasm_mean_intensity_<c> (grey levels above background) and
+    nuclear_cytoplasmic_ratio_<c>; touches_border then also covers the cell body.
+    """
+    texture = texture or TextureSettings()
+    columns = object_columns(channels, list(texture.channels), cells is not None)
+    if labels.max() == 0:
+        return _empty_table(columns)
+    pixels = ObjectPixels.of(labels)
+    area = pixels.sums()
+    table = _shape_measures(labels, pixels, area, pixel_size_um)
+    table.update(_intensity_measures(planes, channels, background, pixels, area))
+    for channel in texture.channels:
+        measures = glcm_measures(planes[channels.index(channel)], labels, pixels, texture.distance_px, texture.levels)
         for prop in GLCM_PROPERTIES:
-            table[f"glcm_{prop}_{channel}"] = texture[prop]
+            table[f"glcm_{prop}_{channel}"] = measures[prop]
     if cells is not None:
-        table.update(_cytoplasm_measures(labels, cells, planes, channels, background, pixel_size_um, table, n))
+        table.update(
+            _cytoplasm_measures(labels, cells, planes, channels, background, pixel_size_um, table, pixels.count)
+        )
     frame = pd.DataFrame({c: table[c] for c in columns})
+    present = area > 0
     return frame if present.all() else frame[present].reset_index(drop=True)
 
 

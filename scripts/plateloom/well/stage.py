@@ -14,7 +14,7 @@ from plateloom.io.tables import well_part_path, write_parquet
 from plateloom.settings import FromSchema
 from plateloom.well.cell_bodies import grow_cell_bodies
 from plateloom.well.collective import CollectiveSettings, well_collective_readouts
-from plateloom.well.features import measure_objects, neighbourhood
+from plateloom.well.features import TextureSettings, measure_objects, neighbourhood
 from plateloom.well.illumination import apply_flat_field
 from plateloom.well.image_qc import background_levels, focus_score
 from plateloom.well.segment import segment_label_free, segment_smoothed
@@ -140,17 +140,8 @@ def measure_frame(
     channels = list(settings.channels)
     background = background_levels(planes, labels if bodies is None else bodies)
     distance_px = max(1, int(round(settings.texture_distance_um / settings.pixel_size_um)))
-    table = measure_objects(
-        labels,
-        planes,
-        channels,
-        background,
-        settings.pixel_size_um,
-        bodies,
-        settings.measured_texture_channels,
-        distance_px,
-        settings.texture_levels,
-    )
+    texture = TextureSettings(tuple(settings.measured_texture_channels), distance_px, settings.texture_levels)
+    table = measure_objects(labels, planes, channels, background, settings.pixel_size_um, bodies, texture)
     xy = table[["centroid_x_um", "centroid_y_um"]].to_numpy()
     table["neighbours"], table["nearest_neighbour_um"] = neighbourhood(xy, settings.neighbour_radius_um)
     return table, background
