@@ -87,10 +87,6 @@ def fit_nested_random_intercepts(
     raise RuntimeError("mixed model did not converge: " + " | ".join(problems))
 
 
-class _ConstantFeature(Exception):
-    """A feature with no spread across wells: nothing to fit."""
-
-
 def _fixed_plate_fit(data: pd.DataFrame) -> tuple[pd.Series, pd.Series, float]:
     """Fallback: ordinary least squares with a fixed effect per plate (absorbs batch too)."""
     result = smf.ols("y ~ C(code) + C(plate_code)", data).fit()
@@ -155,6 +151,113 @@ def _join(*notes: str) -> str:
     return "; ".join(n for n in notes if n)
 
 
+@dataclass
+class _Outcome:
+    """What the fit of one feature gave: coefficients and SEs by term name, variance components
+    (batch, plate, residual), whether the mixed model converged, its method and the note."""
+
+    params: pd.Series
+    errors: pd.Series
+    components: tuple[float, float, float]
+    converged: bool
+    method: str
+    note: str
+
+
+def _model_data(wells: pd.DataFrame, feature: str) -> tuple[pd.DataFrame, int]:
+    """The wells with a finite value of ``feature`` (as y; negative controls as the reference
+    treatment) and how many wells had none."""
+    data = wells[["batch", "plate", "role", "treatment", "condition", "dose", "dose_unit", feature]].copy()
+    data["treatment"] = np.where(data["role"] == "negative_control", REFERENCE, data["treatment"])
+    data["y"] = data[feature].to_numpy(float)
+    finite = np.isfinite(data["y"])
+    return data[finite], int((~finite).sum())
+
+
+def _design_note(data: pd.DataFrame, n_not_finite: int) -> str:
+    plates_per_batch = data.groupby("batch")["plate"].nunique()
+    n_batches, n_plates = data["batch"].nunique(), data["plate"].nunique()
+    single = plates_per_batch.index[plates_per_batch == 1]
+    return _join(
+        f"{n_not_finite} wells with a missing value left out" if n_not_finite else "",
+        f"batch {', '.join(single)} has a single plate"
+        if n_batches >= 2 and len(single) and n_plates > n_batches
+        else "",
+    )
+
+
+def _fit_outcome(data: pd.DataFrame, mapping: dict[str, str], fitter: str, note: str) -> _Outcome:
+    """The mixed model's outcome; OLS with plate fixed effects if it fails; nothing for a constant feature."""
+    if np.nanstd(data["y"]) == 0:
+        empty = pd.Series(dtype=float)
+        return _Outcome(empty, empty, (np.nan,) * 3, False, "not fitted",
+                        _join(note, "feature is constant across wells: not fitted"))  # fmt: skip
+    try:
+        fit = _fit(data, mapping, fitter)
+    except RuntimeError as error:
+        params, errors, residual = _fixed_plate_fit(data)
+        note = _join(note, f"mixed model failed ({error}); fallback used")
+        return _Outcome(
+            params, errors, (np.nan, np.nan, residual), False, "fallback: OLS with plate fixed effects", note
+        )
+    if data["batch"].nunique() < 2:
+        note = _join(note, "one batch only: random intercept per plate")
+    if fit.boundary:
+        note = _join(note, "a variance component was estimated at zero (singular fit)")
+    components = (fit.batch_variance, fit.plate_variance, fit.residual_variance)
+    return _Outcome(fit.params, fit.std_errors, components, True, f"REML mixed model ({fit.method})", note)
+
+
+def _treatment_counts(data: pd.DataFrame) -> pd.DataFrame:
+    groups = data.groupby("code")
+    return pd.DataFrame(
+        {
+            "n_wells": groups.size(),
+            "n_plates": groups["plate"].nunique(),
+            "n_batches": groups["batch"].nunique(),
+            "first_batch": groups["batch"].first(),
+        }
+    )
+
+
+def _row_note(count: pd.Series | None, n_batches: int, note: str) -> str:
+    if count is None:
+        return _join("all wells of this treatment were excluded or missing: no estimate", note)
+    if count["n_batches"] == 1 and n_batches > 1:
+        where = f"present in one batch only ({count['first_batch']}): estimated against that batch's controls"
+        return _join(where, note)
+    return note
+
+
+def _estimate_columns(outcome: _Outcome, code: str | None, df: float, t_quantile: float) -> dict[str, float]:
+    term = f"C(code)[T.{code}]"
+    estimate = float(outcome.params.get(term, np.nan)) if code else np.nan
+    error = float(outcome.errors.get(term, np.nan)) if code else np.nan
+    t_value = estimate / error if error > 0 else np.nan
+    return {
+        "estimate": estimate,
+        "std_error": error,
+        "df": float(df),
+        "ci_low": estimate - t_quantile * error,
+        "ci_high": estimate + t_quantile * error,
+        "t_value": t_value,
+        "p_value": float(2 * stats.t.sf(abs(t_value), df)) if np.isfinite(t_value) else np.nan,
+    }
+
+
+def _component_columns(outcome: _Outcome) -> dict[str, object]:
+    batch, plate, residual = outcome.components
+    total = np.nansum(outcome.components)
+    return {
+        "batch_variance": batch,
+        "plate_variance": plate,
+        "residual_variance": residual,
+        "icc_batch_plate": (batch + plate) / total if total > 0 else np.nan,
+        "converged": outcome.converged,
+        "method": outcome.method,
+    }
+
+
 def fit_feature_effects(
     wells: pd.DataFrame,
     feature: str,
@@ -174,11 +277,7 @@ def fit_feature_effects(
     """
     if fitter not in FITTERS:
         raise ValueError(f"unknown fitter {fitter!r}; choose one of {', '.join(FITTERS)}")
-    data = wells[["batch", "plate", "role", "treatment", "condition", "dose", "dose_unit", feature]].copy()
-    data["treatment"] = np.where(data["role"] == "negative_control", REFERENCE, data["treatment"])
-    data["y"] = data[feature].to_numpy(float)
-    n_not_finite = int((~np.isfinite(data["y"])).sum())
-    data = data[np.isfinite(data["y"])]
+    data, n_not_finite = _model_data(wells, feature)
     if data.empty:
         note = (
             f"no well has a value of {feature}: not fitted (collective readouts need tracks of at least "
@@ -193,102 +292,32 @@ def fit_feature_effects(
     data["code"], mapping = _codes(data["treatment"])
     data["plate_code"] = pd.factorize(data["plate"], sort=True)[0]
     data["batch_code"] = pd.factorize(data["batch"], sort=True)[0]
-    n_wells, n_plates = len(data), data["plate"].nunique()
-    n_treatments = len(mapping)
-    df = max(n_wells - n_plates - (n_treatments - 1), 1)
-    plates_per_batch = data.groupby("batch")["plate"].nunique()
-    feature_note = _join(
-        f"{n_not_finite} wells with a missing value left out" if n_not_finite else "",
-        f"batch {', '.join(plates_per_batch.index[plates_per_batch == 1])} has a single plate"
-        if data["batch"].nunique() >= 2 and (plates_per_batch == 1).any() and n_plates > data["batch"].nunique()
-        else "",
-    )
-    try:
-        if np.nanstd(data["y"]) == 0:
-            raise _ConstantFeature("feature is constant across wells: not fitted")
-        fit = _fit(data, mapping, fitter)
-        params, errors, converged = fit.params, fit.std_errors, True
-        components = (fit.batch_variance, fit.plate_variance, fit.residual_variance)
-        method = f"REML mixed model ({fit.method})"
-        if data["batch"].nunique() < 2:
-            feature_note = _join(feature_note, "one batch only: random intercept per plate")
-        if fit.boundary:
-            feature_note = _join(feature_note, "a variance component was estimated at zero (singular fit)")
-    except _ConstantFeature as error:
-        params, errors, converged, components, method = (
-            pd.Series(dtype=float),
-            pd.Series(dtype=float),
-            False,
-            (np.nan,) * 3,
-            "not fitted",
-        )
-        feature_note = _join(feature_note, str(error))
-    except RuntimeError as error:
-        params, errors, residual = _fixed_plate_fit(data)
-        converged, components, method = False, (np.nan, np.nan, residual), "fallback: OLS with plate fixed effects"
-        feature_note = _join(feature_note, f"mixed model failed ({error}); fallback used")
+    df = max(len(data) - data["plate"].nunique() - (len(mapping) - 1), 1)
+    outcome = _fit_outcome(data, mapping, fitter, _design_note(data, n_not_finite))
     t_quantile = stats.t.ppf(0.5 + ci_level / 2, df)
-    total = np.nansum(components)
-    catalogue = _treatment_catalogue(wells, treatments)
-    groups = data.groupby("code")
-    counts = pd.DataFrame(
-        {
-            "n_wells": groups.size(),
-            "n_plates": groups["plate"].nunique(),
-            "n_batches": groups["batch"].nunique(),
-            "first_batch": groups["batch"].first(),
-        }
-    )
-    n_batches_all = data["batch"].nunique()
+    counts = _treatment_counts(data)
     rows = []
-    for name, first in catalogue.iterrows():
+    for name, first in _treatment_catalogue(wells, treatments).iterrows():
         code = mapping.get(name)
         count = counts.loc[code] if code in counts.index else None
-        term = f"C(code)[T.{code}]"
-        estimate = float(params.get(term, np.nan)) if code else np.nan
-        error = float(errors.get(term, np.nan)) if code else np.nan
-        t_value = estimate / error if error > 0 else np.nan
-        row_note = feature_note
-        if count is None:
-            row_note = _join("all wells of this treatment were excluded or missing: no estimate", feature_note)
-        elif count["n_batches"] == 1 and n_batches_all > 1:
-            row_note = _join(
-                f"present in one batch only ({count['first_batch']}): estimated against that batch's controls",
-                feature_note,
-            )
+        keys = {"feature": feature, "treatment": name, **first[["condition", "dose", "dose_unit", "role"]].to_dict()}
+        sizes = {k: int(count[k]) if count is not None else 0 for k in ("n_wells", "n_plates", "n_batches")}
         rows.append(
-            {
-                "feature": feature,
-                "treatment": name,
-                "condition": first["condition"],
-                "dose": first["dose"],
-                "dose_unit": first["dose_unit"],
-                "role": first["role"],
-                "scale": scale,
-                "estimate": estimate,
-                "std_error": error,
-                "df": float(df),
-                "ci_low": estimate - t_quantile * error,
-                "ci_high": estimate + t_quantile * error,
-                "t_value": t_value,
-                "p_value": float(2 * stats.t.sf(abs(t_value), df)) if np.isfinite(t_value) else np.nan,
-                "n_wells": int(count["n_wells"]) if count is not None else 0,
-                "n_plates": int(count["n_plates"]) if count is not None else 0,
-                "n_batches": int(count["n_batches"]) if count is not None else 0,
-                "batch_variance": components[0],
-                "plate_variance": components[1],
-                "residual_variance": components[2],
-                "icc_batch_plate": (components[0] + components[1]) / total if total > 0 else np.nan,
-                "converged": converged,
-                "method": method,
-                "note": row_note,
-            }
+            keys
+            | {"scale": scale}
+            | _estimate_columns(outcome, code, df, t_quantile)
+            | sizes
+            | _component_columns(outcome)
+            | {"note": _row_note(count, data["batch"].nunique(), outcome.note)}
         )
-    table = pd.DataFrame(rows)
+    return _with_ratios(pd.DataFrame(rows), scale)
+
+
+def _with_ratios(table: pd.DataFrame, scale: str) -> pd.DataFrame:
+    """Ratio columns (exp of estimate and interval) for log-scale features; NaN for linear ones."""
     if not table.empty:
-        log_scale = scale == "log"
         for column, source in (("ratio", "estimate"), ("ratio_ci_low", "ci_low"), ("ratio_ci_high", "ci_high")):
-            table[column] = np.exp(table[source]) if log_scale else np.nan
+            table[column] = np.exp(table[source]) if scale == "log" else np.nan
     return table
 
 
