@@ -148,130 +148,122 @@ def _header_problems(
     return problems, sum(max(c.values()) for c in pages.values())
 
 
-def check_screen(config: dict, read_headers: bool = True, assumed_objects_per_frame: int = 200) -> CheckReport:
-    """Every problem of a screen's config, sheet, layouts and images, and an estimate of the run.
+def _shown(names: list[str], at_most: int, quote: bool = False) -> str:
+    listed = ", ".join(repr(n) if quote else n for n in names[:at_most])
+    return listed + (f" and {len(names) - at_most} more" if quote and len(names) > at_most else "")
 
-    ``config`` is the validated config (defaults filled). With ``read_headers`` every TIFF's
-    header is read (image sizes, page counts); without, only names are checked (fast enough
-    for every workflow start). Demo plates whose images are not simulated yet are skipped.
-    """
-    from plateloom.setup.plan import DEMO_IMAGE_ROOT, channel_names
 
-    report = CheckReport()
-    try:
-        channel_names(config)
-    except InputError as error:
-        report.add("error", error)
-    channels = [c["name"] for c in config["channels"]]
-    try:
-        entries, problems = check_screen_sheet(config["screen_sheet"])
-    except InputError as error:
-        report.add("error", error)
-        return report
-    for problem in problems:
-        report.add("error", problem)
-    template = config["images"]["filename_template"]
-    totals = {"plates": 0, "wells": 0, "images": 0, "image_bytes": 0, "site_frames": 0, "jobs": 0}
-    shapes: dict[tuple[int, ...], str] = {}
-    layouts: dict[tuple[str, int], tuple] = {}
-    indexes: dict[tuple[str, int], ImageIndex] = {}
-    series_cache: dict[tuple, tuple[list[InputError], int]] = {}
-    imaged_wells: dict[tuple[str, int], set[str]] = {}
-    for entry in entries:
-        if (entry.layout, entry.plate_format) not in layouts:  # plates often share a layout
-            layouts[(entry.layout, entry.plate_format)] = check_layout(entry.layout, entry.plate_format)
-        layout, problems = layouts[(entry.layout, entry.plate_format)]
+class _ScreenCheck:
+    """The checks of ``check_screen``, plate by plate, with what plates share read once
+    (layouts, image folders, series of the same wells) and the totals of the run estimate."""
+
+    def __init__(self, config: dict, read_headers: bool):
+        self.config, self.read_headers = config, read_headers
+        self.report = CheckReport()
+        self.channels = [c["name"] for c in config["channels"]]
+        self.template = config["images"]["filename_template"]
+        self.totals = {"plates": 0, "wells": 0, "images": 0, "image_bytes": 0, "site_frames": 0, "jobs": 0}
+        self.shapes: dict[tuple[int, ...], str] = {}
+        self.layouts: dict[tuple[str, int], tuple] = {}
+        self.indexes: dict[tuple[str, int], ImageIndex] = {}
+        self.series: dict[tuple, tuple[list[InputError], int]] = {}
+        self.imaged: dict[tuple[str, int], set[str]] = {}
+
+    def plate(self, entry) -> None:
+        layout = self._layout(entry)
+        index = self._index(entry)
+        if index is None:
+            return
+        self.totals["plates"] += 1
+        self._unmatched(entry, index)
+        analysed = set(layout.loc[layout["role"] != "empty", "well"])
+        imaged = self.imaged.setdefault((entry.image_folder, entry.plate_format), set(index.table["well"].to_numpy()))
+        self._well_coverage(entry, layout, analysed, imaged)
+        wells = sorted(analysed & imaged)
+        self.totals["wells"] += len(wells)
+        self.totals["jobs"] += -(-len(analysed) // int(self.config.get("chunk_wells", 24))) + 2 + len(self.channels)
+        self._frames_and_headers(entry, index, wells)
+
+    def _layout(self, entry):
+        key = (entry.layout, entry.plate_format)
+        if key not in self.layouts:  # plates often share a layout
+            self.layouts[key] = check_layout(entry.layout, entry.plate_format)
+        layout, problems = self.layouts[key]
         for problem in problems:
-            report.add("error", InputError(f"plate {entry.plate}: {problem.where}", problem.problem, problem.fix))
-        demo_folder = os.path.normpath(entry.image_folder) == os.path.join(DEMO_IMAGE_ROOT, entry.plate)
+            self.report.add("error", InputError(f"plate {entry.plate}: {problem.where}", problem.problem, problem.fix))
+        return layout
+
+    def _index(self, entry) -> ImageIndex | None:
+        from plateloom.setup.plan import DEMO_IMAGE_ROOT
+
         if not os.path.isdir(entry.image_folder):
-            if not demo_folder:
-                report.add(
-                    "error",
-                    InputError(
-                        f"{config['screen_sheet']}, plate {entry.plate}, column image_folder",
-                        f"image folder {entry.image_folder!r} does not exist.",
-                        "check the path (relative to the folder you run snakemake from).",
-                    ),
-                )
-            continue
+            if os.path.normpath(entry.image_folder) != os.path.join(DEMO_IMAGE_ROOT, entry.plate):
+                where = f"{self.config['screen_sheet']}, plate {entry.plate}, column image_folder"
+                fix = "check the path (relative to the folder you run snakemake from)."
+                self.report.add("error", InputError(where, f"image folder {entry.image_folder!r} does not exist.", fix))
+            return None
+        key = (entry.image_folder, entry.plate_format)
         try:
-            key = (entry.image_folder, entry.plate_format)
-            if key not in indexes:
-                indexes[key] = index_plate_images(entry.image_folder, template, entry.plate_format, channels)
-            index = indexes[key]
+            if key not in self.indexes:
+                self.indexes[key] = index_plate_images(
+                    entry.image_folder, self.template, entry.plate_format, self.channels
+                )
         except InputError as error:
-            report.add("error", error)
-            continue
-        totals["plates"] += 1
+            self.report.add("error", error)
+            return None
+        return self.indexes[key]
+
+    def _unmatched(self, entry, index: ImageIndex) -> None:
         unmatched = [n for n in index.unmatched if not n.startswith(".")]
         if unmatched:
-            shown = ", ".join(repr(n) for n in unmatched[:5]) + (
-                f" and {len(unmatched) - 5} more" if len(unmatched) > 5 else ""
+            problem = (
+                f"{len(unmatched)} file(s) match neither images.filename_template {self.template!r} nor a "
+                f"configured channel: {_shown(unmatched, 5, quote=True)}."
             )
-            report.add(
-                "warning",
-                InputError(
-                    entry.image_folder,
-                    f"{len(unmatched)} file(s) match neither "
-                    f"images.filename_template {template!r} nor a configured channel: {shown}.",
-                    "rename them, or adjust the template or channels; they would not be analysed.",
-                ),
-            )
-        analysed = set(layout.loc[layout["role"] != "empty", "well"])
-        imaged = imaged_wells.setdefault(key, set(index.table["well"].to_numpy()))
+            fix = "rename them, or adjust the template or channels; they would not be analysed."
+            self.report.add("warning", InputError(entry.image_folder, problem, fix))
+
+    def _well_coverage(self, entry, layout, analysed: set[str], imaged: set[str]) -> None:
         no_images = sorted(analysed - imaged)
         if no_images:
-            report.add(
-                "error",
-                InputError(
-                    f"{entry.layout} (plate {entry.plate})",
-                    f"{len(no_images)} well(s) in the layout have no images: {', '.join(no_images[:12])}"
-                    + (" ..." if len(no_images) > 12 else "")
-                    + ".",
-                    "mark them empty in the layout, or add their images to " + entry.image_folder + ".",
-                ),
-            )
+            more = " ..." if len(no_images) > 12 else ""
+            problem = f"{len(no_images)} well(s) in the layout have no images: {_shown(no_images, 12)}{more}."
+            fix = "mark them empty in the layout, or add their images to " + entry.image_folder + "."
+            self.report.add("error", InputError(f"{entry.layout} (plate {entry.plate})", problem, fix))
         not_in_layout = sorted(imaged - set(layout["well"]))
         if not_in_layout:
-            report.add(
-                "warning",
-                InputError(
-                    f"{entry.image_folder} (plate {entry.plate})",
-                    f"{len(not_in_layout)} imaged well(s) have no layout row: "
-                    f"{', '.join(not_in_layout[:12])}" + (" ..." if len(not_in_layout) > 12 else "") + ".",
-                    f"add them to {entry.layout} (role empty to skip them on purpose).",
-                ),
-            )
-        wells = sorted(analysed & imaged)
-        totals["wells"] += len(wells)
-        totals["jobs"] += -(-len(analysed) // int(config.get("chunk_wells", 24))) + 2 + len(channels)
+            more = " ..." if len(not_in_layout) > 12 else ""
+            problem = f"{len(not_in_layout)} imaged well(s) have no layout row: {_shown(not_in_layout, 12)}{more}."
+            fix = f"add them to {entry.layout} (role empty to skip them on purpose)."
+            self.report.add("warning", InputError(f"{entry.image_folder} (plate {entry.plate})", problem, fix))
+
+    def _frames_and_headers(self, entry, index: ImageIndex, wells: list[str]) -> None:
         series_key = (entry.image_folder, entry.plate_format, tuple(wells))
-        if series_key not in series_cache:  # plates sharing a folder and wells share the answer
-            series_cache[series_key] = _series_problems(index, wells, channels)
-        series, site_frames = series_cache[series_key]
-        headers, stack_frames = (
-            _header_problems(index, wells, shapes) if read_headers and index.source == "tiff" else ([], 0)
-        )
+        if series_key not in self.series:  # plates sharing a folder and wells share the answer
+            self.series[series_key] = _series_problems(index, wells, self.channels)
+        series, site_frames = self.series[series_key]
+        with_headers = self.read_headers and index.source == "tiff"
+        headers, stack_frames = _header_problems(index, wells, self.shapes) if with_headers else ([], 0)
         for problem in series + headers:
             severity = "warning" if "missing" in problem.problem or "frame counts" in problem.problem else "error"
-            report.add(severity, InputError(f"plate {entry.plate}: {problem.where}", problem.problem, problem.fix))
-        totals["site_frames"] += site_frames + stack_frames
+            self.report.add(severity, InputError(f"plate {entry.plate}: {problem.where}", problem.problem, problem.fix))
+        self.totals["site_frames"] += site_frames + stack_frames
         in_wells = index.table["well"].isin(wells).to_numpy()
-        totals["images"] += int(in_wells.sum())
-        if read_headers and index.source == "tiff":  # sizes for the run estimate; not needed at start-up
-            totals["image_bytes"] += sum(os.path.getsize(p) for p in index.table["path"].to_numpy()[in_wells])
-    images = config["images"]
-    if (images.get("pixel_size_um") is None or images.get("frame_interval_min") is None) and entries:
-        first = next((sorted(index.table["path"])[0] for index in indexes.values() if len(index.table)), None)
+        self.totals["images"] += int(in_wells.sum())
+        if with_headers:  # sizes for the run estimate; not needed at start-up
+            self.totals["image_bytes"] += sum(os.path.getsize(p) for p in index.table["path"].to_numpy()[in_wells])
+
+    def image_scale(self) -> None:
+        """An error when pixel size or frame interval is neither in config nor in the first image's metadata."""
+        images = self.config["images"]
+        if images.get("pixel_size_um") is not None and images.get("frame_interval_min") is not None:
+            return
+        first = next((sorted(index.table["path"])[0] for index in self.indexes.values() if len(index.table)), None)
         metadata = read_ome_metadata(first) if first else None
-        missing = [
-            k
-            for k in ("pixel_size_um", "frame_interval_min")
-            if images.get(k) is None and (metadata is None or getattr(metadata, k) is None)
-        ]
+        keys = ("pixel_size_um", "frame_interval_min")
+        missing = [k for k in keys if images.get(k) is None and (metadata is None or getattr(metadata, k) is None)]
         if missing:
-            report.add(
+            self.report.add(
                 "error",
                 InputError(
                     f"config images ({first or 'no image'})",
@@ -279,17 +271,48 @@ def check_screen(config: dict, read_headers: bool = True, assumed_objects_per_fr
                     f"set images.{' and images.'.join(missing)} in the config.",
                 ),
             )
-    totals["jobs"] += 6 if totals["plates"] else 0
-    report.estimate = {
-        "plates": totals["plates"],
-        "wells": totals["wells"],
-        "images": totals["images"],
-        "image_gb": totals["image_bytes"] / 1e9,
-        "jobs": totals["jobs"],
-        "output_gb": totals["site_frames"] * assumed_objects_per_frame * OUTPUT_BYTES_PER_OBSERVATION / 1e9,
-        "assumed_objects_per_frame": assumed_objects_per_frame,
-    }
-    return report
+
+    def estimate(self, assumed_objects_per_frame: int) -> dict:
+        totals = self.totals
+        observations = totals["site_frames"] * assumed_objects_per_frame
+        return {
+            "plates": totals["plates"],
+            "wells": totals["wells"],
+            "images": totals["images"],
+            "image_gb": totals["image_bytes"] / 1e9,
+            "jobs": totals["jobs"] + (6 if totals["plates"] else 0),
+            "output_gb": observations * OUTPUT_BYTES_PER_OBSERVATION / 1e9,
+            "assumed_objects_per_frame": assumed_objects_per_frame,
+        }
+
+
+def check_screen(config: dict, read_headers: bool = True, assumed_objects_per_frame: int = 200) -> CheckReport:
+    """Every problem of a screen's config, sheet, layouts and images, and an estimate of the run.
+
+    ``config`` is the validated config (defaults filled). With ``read_headers`` every TIFF's
+    header is read (image sizes, page counts); without, only names are checked (fast enough
+    for every workflow start). Demo plates whose images are not simulated yet are skipped.
+    """
+    from plateloom.setup.plan import channel_names
+
+    check = _ScreenCheck(config, read_headers)
+    try:
+        channel_names(config)
+    except InputError as error:
+        check.report.add("error", error)
+    try:
+        entries, problems = check_screen_sheet(config["screen_sheet"])
+    except InputError as error:
+        check.report.add("error", error)
+        return check.report
+    for problem in problems:
+        check.report.add("error", problem)
+    for entry in entries:
+        check.plate(entry)
+    if entries:
+        check.image_scale()
+    check.report.estimate = check.estimate(assumed_objects_per_frame)
+    return check.report
 
 
 def load_config(path: str) -> dict:
