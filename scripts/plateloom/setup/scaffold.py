@@ -56,6 +56,40 @@ def _split(name: str) -> tuple[list[str], str] | None:
     return re.split(SEPARATORS, name[: -len(extension)]), name[-len(extension) :]
 
 
+def _number_kind(prefix: str, varies: bool) -> str:
+    """site, frame, numbered (a varying number with an unknown prefix) or '' (a constant)."""
+    if prefix.lower() in SITE_PREFIXES:
+        return "site"
+    if prefix.lower() in FRAME_PREFIXES:
+        return "frame"
+    return "numbered" if varies else ""
+
+
+def _token_field(values: list[str], well_found: bool) -> tuple[str, str]:
+    """(template field, number kind or '') of one token position from its values across the files."""
+    matches = [NUMBERED_TOKEN.match(v) for v in values]
+    prefixes = {m.group(1).lower() for m in matches if m}
+    known_prefix = len(prefixes) == 1 and next(iter(prefixes)) in SITE_PREFIXES + FRAME_PREFIXES
+    if all(WELL_TOKEN.match(v) for v in values) and not known_prefix and not well_found:
+        return "{well}", ""
+    if all(matches) and len(prefixes) == 1:
+        prefix = matches[0].group(1)
+        kind = _number_kind(prefix, len(set(values)) > 1)
+        if kind:
+            return prefix + "{" + kind + "}", kind
+    return (values[0] if len(set(values)) == 1 else "{channel}"), ""
+
+
+def _name_unprefixed_numbers(fields: list[str], numbered: list[tuple[int, str]]) -> None:
+    """Numbered parts without a telling prefix: the first is the site, then the frame (in place)."""
+    kinds = [k for _, k in numbered]
+    for index, kind in numbered:
+        if kind == "numbered":
+            chosen = "site" if "site" not in kinds else "frame"
+            kinds.append(chosen)
+            fields[index] = fields[index].replace("{numbered}", "{" + chosen + "}")
+
+
 def infer_template(names: list[str]) -> str:
     """The filename template (fields {well}, {site}, {frame}, {channel}) that fits most of ``names``.
 
@@ -75,36 +109,11 @@ def infer_template(names: list[str]) -> str:
     fields: list[str] = []
     numbered: list[tuple[int, str]] = []
     for position in range(0, len(group[0]), 2):
-        values = [tokens[position] for tokens in group]
-        distinct = set(values)
-        matches = [NUMBERED_TOKEN.match(v) for v in values]
-        prefixes = {m.group(1).lower() for m in matches if m}
-        known_prefix = len(prefixes) == 1 and next(iter(prefixes)) in SITE_PREFIXES + FRAME_PREFIXES
-        if all(WELL_TOKEN.match(v) for v in values) and not known_prefix and "{well}" not in fields:
-            fields.append("{well}")
-            continue
-        if all(matches) and len(prefixes) == 1:
-            prefix = matches[0].group(1)
-            kind = (
-                "site"
-                if prefix.lower() in SITE_PREFIXES
-                else "frame"
-                if prefix.lower() in FRAME_PREFIXES
-                else "numbered"
-                if len(distinct) > 1
-                else ""
-            )
-            if kind:
-                numbered.append((len(fields), kind))
-                fields.append(prefix + "{" + kind + "}")
-                continue
-        fields.append(values[0] if len(distinct) == 1 else "{channel}")
-    kinds = [k for _, k in numbered]
-    for index, kind in numbered:  # numbered parts without a telling prefix: the first is the site, then the frame
-        if kind == "numbered":
-            chosen = "site" if "site" not in kinds else "frame"
-            kinds.append(chosen)
-            fields[index] = fields[index].replace("{numbered}", "{" + chosen + "}")
+        field, kind = _token_field([tokens[position] for tokens in group], "{well}" in fields)
+        if kind:
+            numbered.append((len(fields), kind))
+        fields.append(field)
+    _name_unprefixed_numbers(fields, numbered)
     template = "".join(f + (separators[i] if i < len(separators) else "") for i, f in enumerate(fields)) + extension
     if "{site}" not in template:  # one site per well: the template needs the field, so none is inferred
         raise InputError(
@@ -199,57 +208,56 @@ class ScreenSurvey:
         return "\n".join(lines)
 
 
+def _survey_channels(plates: list[PlateFolder], template: str) -> list[str]:
+    """Channel names: from the {channel} field of the file names, else from the OME metadata."""
+    regex = template_regex(template)
+    if "{channel}" in template:
+        return sorted({regex.match(n).group("channel") for p in plates for n in p.files if regex.match(n)})
+    # one multi-channel OME-TIFF per site: channels named in its metadata
+    first = os.path.join(plates[0].folder, next(n for n in plates[0].files if regex.match(n)))
+    metadata = read_ome_metadata(first)
+    channels = [channel_key(c) for c in (metadata.channel_names if metadata else ())]
+    if not channels:
+        raise InputError(
+            first,
+            "has no {channel} in its name and no channel names in OME metadata.",
+            "export one file per channel, or OME-TIFF with channel names.",
+        )
+    return channels
+
+
+def _frames_of(index) -> int:
+    """The most frames of any site and channel of one plate's image index."""
+    if index.stacks:
+        with tifffile.TiffFile(index.table["path"].iloc[0]) as tif:
+            return len(tif.pages)
+    return int(index.table.groupby(["well", "site", "channel"]).size().max())
+
+
 def survey_folder(folder: str, plate_format_wells: int | None = None) -> ScreenSurvey:
     """Look at an image folder and describe the screen in it (nothing is written)."""
     plates = find_plates(folder)
     template = infer_template(list(plates[0].files))  # plates may differ in constant parts (plate names)
     regex = template_regex(template)
-    if "{channel}" in template:
-        channels = sorted({regex.match(n).group("channel") for p in plates for n in p.files if regex.match(n)})
-    else:  # one multi-channel OME-TIFF per site: channels named in its metadata
-        first = os.path.join(plates[0].folder, next(n for n in plates[0].files if regex.match(n)))
-        metadata = read_ome_metadata(first)
-        channels = [channel_key(c) for c in (metadata.channel_names if metadata else ())]
-        if not channels:
-            raise InputError(
-                first,
-                "has no {channel} in its name and no channel names in OME metadata.",
-                "export one file per channel, or OME-TIFF with channel names.",
-            )
+    channels = _survey_channels(plates, template)
     formats, wells, sites, frames = {}, {}, 1, 1
     first_path = None
     for plate in plates:
         names = [n for n in plate.files if regex.match(n)]
         plate_wells = sorted({regex.match(n).group("well").upper() for n in names}, key=parse_well)
-        size = plate_format_wells or _smallest_format(plate_wells)
-        formats[plate.plate] = size
-        index = index_plate_images(plate.folder, template, size, channels)
+        formats[plate.plate] = plate_format_wells or _smallest_format(plate_wells)
+        index = index_plate_images(plate.folder, template, formats[plate.plate], channels)
         wells[plate.plate] = sorted(index.table["well"].unique(), key=parse_well)
         sites = max(sites, int(index.table.groupby("well")["site"].nunique().max()))
-        if index.stacks:
-            first_path = first_path or index.table["path"].iloc[0]
-            with tifffile.TiffFile(index.table["path"].iloc[0]) as tif:
-                frames = max(frames, len(tif.pages))
-        else:
-            frames = max(frames, int(index.table.groupby(["well", "site", "channel"]).size().max()))
+        frames = max(frames, _frames_of(index))
         first_path = first_path or index.table["path"].iloc[0]
     with tifffile.TiffFile(first_path) as tif:
         page = tif.pages[0]
         shape, dtype = tuple(page.shape), str(page.dtype)
     metadata = read_ome_metadata(first_path)
-    return ScreenSurvey(
-        template,
-        plates,
-        formats,
-        wells,
-        sites,
-        frames,
-        channels,
-        shape,
-        dtype,
-        metadata.pixel_size_um if metadata else None,
-        metadata.frame_interval_min if metadata else None,
-    )
+    pixel_size = metadata.pixel_size_um if metadata else None
+    interval = metadata.frame_interval_min if metadata else None
+    return ScreenSurvey(template, plates, formats, wells, sites, frames, channels, shape, dtype, pixel_size, interval)
 
 
 def _default_config() -> dict:
@@ -258,16 +266,58 @@ def _default_config() -> dict:
     return config
 
 
+def _write_sheet_and_layouts(survey: ScreenSurvey, sheet_path: str, layouts: dict[int, str]) -> None:
+    """The screen sheet (one row per plate) and one layout per plate format listing every imaged well as empty."""
+    rows = [
+        {
+            "plate": p.plate,
+            "batch": p.batch,
+            "plate_format": survey.plate_formats[p.plate],
+            "layout": layouts[survey.plate_formats[p.plate]],
+            "image_folder": p.folder,
+        }
+        for p in survey.plates
+    ]
+    pd.DataFrame(rows).to_csv(sheet_path, index=False)
+    for size, path in layouts.items():
+        of_size = [p for p in survey.plates if survey.plate_formats[p.plate] == size]
+        imaged = sorted({w for p in of_size for w in survey.wells[p.plate]}, key=parse_well)
+        empty = {"well": imaged, "role": "empty", "condition": "", "dose": "", "dose_unit": ""}
+        pd.DataFrame(empty).to_csv(path, index=False)
+
+
+def scaffold_config(survey: ScreenSurvey, sheet_path: str, results_dir: str) -> dict:
+    """The config of a surveyed screen: schema defaults, the inferred images and channels (the
+    nuclear-looking one segmented, the next a reporter), job sizes from the images."""
+    nuclear = next((c for c in survey.channels if NUCLEAR_STAINS.search(c)), survey.channels[0])
+    others = [c for c in survey.channels if c != nuclear]
+    channels = [{"name": nuclear, "role": "nuclei"}] + [
+        {"name": c, "role": "reporter" if i == 0 else "other"} for i, c in enumerate(others)
+    ]
+    config = _default_config()
+    config.update({"screen_sheet": sheet_path, "results_dir": results_dir, "channels": channels})
+    config["images"] = {
+        "filename_template": survey.template,
+        "pixel_size_um": survey.pixel_size_um,
+        "frame_interval_min": survey.frame_interval_min,
+    }
+    sizes = {"image_side_px": int(max(survey.image_shape)), "frames_per_site": survey.frames}
+    config["job_sizing"].update(sizes | {"sites_per_well": survey.sites})
+    if others and survey.frames >= config["collective"]["min_overlap_frames"]:
+        # a reporter imaged long enough for the neighbour readouts: model them too
+        config["screen"]["features"] = list(config["screen"]["features"]) + list(MODELLED_READOUTS)
+    return config
+
+
 def write_scaffold(survey: ScreenSurvey, out: str, force: bool = False) -> list[str]:
     """Write <out>/config.yaml, <out>/plates.csv and <out>/layouts/plate_<format>.csv; return their paths.
 
-    Paths inside are relative to the folder the scaffold is run from (run snakemake from there).
+    Paths inside are relative to the folder the scaffold is run from (run the workflow from there).
     Existing files are kept unless ``force``; the layouts list every imaged well with role
     empty, for the user to fill in.
     """
-    layouts = {
-        size: os.path.join(out, "layouts", f"plate_{size}.csv") for size in sorted(set(survey.plate_formats.values()))
-    }
+    formats = sorted(set(survey.plate_formats.values()))
+    layouts = {size: os.path.join(out, "layouts", f"plate_{size}.csv") for size in formats}
     targets = [os.path.join(out, "config.yaml"), os.path.join(out, "plates.csv"), *layouts.values()]
     existing = [t for t in targets if os.path.exists(t)]
     if existing and not force:
@@ -277,53 +327,12 @@ def write_scaffold(survey: ScreenSurvey, out: str, force: bool = False) -> list[
             "choose another --out folder, or add --force to replace the scaffold's files.",
         )
     os.makedirs(os.path.join(out, "layouts"), exist_ok=True)
-    sheet = pd.DataFrame(
-        [
-            {
-                "plate": p.plate,
-                "batch": p.batch,
-                "plate_format": survey.plate_formats[p.plate],
-                "layout": layouts[survey.plate_formats[p.plate]],
-                "image_folder": p.folder,
-            }
-            for p in survey.plates
-        ]
-    )
-    sheet.to_csv(targets[1], index=False)
-    for size, path in layouts.items():
-        imaged = sorted(
-            {w for p in survey.plates if survey.plate_formats[p.plate] == size for w in survey.wells[p.plate]},
-            key=parse_well,
-        )
-        pd.DataFrame({"well": imaged, "role": "empty", "condition": "", "dose": "", "dose_unit": ""}).to_csv(
-            path, index=False
-        )
-    nuclear = next((c for c in survey.channels if NUCLEAR_STAINS.search(c)), survey.channels[0])
-    others = [c for c in survey.channels if c != nuclear]
-    channels = [{"name": nuclear, "role": "nuclei"}] + [
-        {"name": c, "role": "reporter" if i == 0 else "other"} for i, c in enumerate(others)
-    ]
-    config = _default_config()
-    config.update({"screen_sheet": targets[1], "results_dir": os.path.join(out, "results"), "channels": channels})
-    config["images"] = {
-        "filename_template": survey.template,
-        "pixel_size_um": survey.pixel_size_um,
-        "frame_interval_min": survey.frame_interval_min,
-    }
-    config["job_sizing"].update(
-        {
-            "image_side_px": int(max(survey.image_shape)),
-            "frames_per_site": survey.frames,
-            "sites_per_well": survey.sites,
-        }
-    )
-    if others and survey.frames >= config["collective"]["min_overlap_frames"]:
-        # a reporter imaged long enough for the neighbour readouts: model them too
-        config["screen"]["features"] = list(config["screen"]["features"]) + list(MODELLED_READOUTS)
+    _write_sheet_and_layouts(survey, targets[1], layouts)
+    config = scaffold_config(survey, targets[1], os.path.join(out, "results"))
     header = (
-        "# Written by `plateloom scaffold` from the images it found; every key is described in\n"
-        "# workflow/schemas/config.schema.yaml. Check the channel roles (nuclei = the stain segmented),\n"
-        "# fill in the layouts, then: plateloom check --config " + targets[0] + "\n"
+        "# Written by `plateloom scaffold` from the images it found; `plateloom config-reference`\n"
+        "# describes every key. Check the channel roles (nuclei = the stain segmented), fill in the\n"
+        "# layouts, then: plateloom check --config " + targets[0] + "\n"
     )
     with open(targets[0], "w", encoding="utf-8") as handle:
         handle.write(header + yaml.safe_dump(config, sort_keys=False, allow_unicode=True))
