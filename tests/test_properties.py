@@ -10,8 +10,9 @@ from test_screen_stage import _wells
 from plateloom.plate.exclusions import ExclusionRules
 from plateloom.plate.qc import robust_z, z_prime
 from plateloom.plate.stage import PlateDesign, PlateSettings, WellTables, build_plate_tables
-from plateloom.screen.effects import bh_qvalues, screen_effects
+from plateloom.screen.effects import screen_effects
 from plateloom.screen.model_wells import build_model_wells, treatment_catalogue
+from plateloom.stats import bh_qvalues
 
 FAST = settings(max_examples=15, deadline=None)
 

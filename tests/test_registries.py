@@ -13,7 +13,7 @@ from plateloom.plate.exclusions import EXCLUSION_RULES, ExclusionRule, Exclusion
 from plateloom.plate.normalization import NORMALIZATIONS
 from plateloom.plate.stage import PlateSettings
 from plateloom.screen.batch_correction import BATCH_CORRECTIONS
-from plateloom.screen.effects import FITTERS
+from plateloom.screen.nested_fit import FITTERS
 from plateloom.settings import load_schema, schema_defaults
 from plateloom.setup.plan import resolve_features
 from plateloom.well.collective import CollectiveSettings

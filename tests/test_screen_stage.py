@@ -246,12 +246,12 @@ def test_design_check_command_explains_a_missing_run(tmp_path, capsys):
 
 
 def test_a_fit_that_fails_to_converge_is_marked_and_falls_back(monkeypatch):
-    import plateloom.screen.effects as effects
+    import plateloom.screen.nested_fit as nested_fit
 
     def refuse(*args, **kwargs):
         raise RuntimeError("mixed model did not converge: lbfgs: not converged")
 
-    monkeypatch.setattr(effects, "fit_nested_random_intercepts", refuse)
+    monkeypatch.setattr(nested_fit, "fit_nested_random_intercepts", refuse)
     model = build_model_wells(_wells(seed=9), ["value"], {"value"}, "control_location")
     table = screen_effects(model.wells, ["value"], model.scales, 0.95, 0.05, 0.1, "statsmodels")
     x = table.set_index("treatment").loc["X 1 uM"]

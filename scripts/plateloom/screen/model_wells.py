@@ -7,6 +7,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
+from plateloom.columns import ANALYSED_ROLES
 from plateloom.screen.batch_correction import (
     batches_without_controls,
     correct_batches,
@@ -14,7 +15,6 @@ from plateloom.screen.batch_correction import (
     principal_components,
     variance_shares,
 )
-from plateloom.screen.effects import in_model
 
 KEY_COLUMNS = [
     "plate",
@@ -87,9 +87,15 @@ def build_model_wells(wells: pd.DataFrame, features: list[str], log_features: se
     )
 
 
+def in_model(wells: pd.DataFrame) -> pd.Series:
+    """Wells that enter the screen model: kept, on a kept plate, with a role the model uses."""
+    plate_kept = wells["plate_excluded_by"] == "" if "plate_excluded_by" in wells else True
+    return (wells["excluded_by"] == "") & plate_kept & wells["role"].isin(list(ANALYSED_ROLES))
+
+
 def treatment_catalogue(wells: pd.DataFrame) -> pd.DataFrame:
     """Every treatment of the screen (all wells, excluded or not): treatment, condition, dose, dose_unit, role."""
-    used = wells[wells["role"].isin(["negative_control", "positive_control", "test"])]
+    used = wells[wells["role"].isin(list(ANALYSED_ROLES))]
     return (
         used.drop_duplicates("treatment")[["treatment", "condition", "dose", "dose_unit", "role"]]
         .sort_values("treatment")
