@@ -31,15 +31,12 @@ from plateloom.demo.scenario import QUANTITIES, load_scenario
 from plateloom.demo.simulate import simulate_site
 from plateloom.io.images import index_plate_images
 from plateloom.well.cell_bodies import grow_cell_bodies
-from plateloom.well.features import (
-    ObjectPixels,
-    convex_areas,
-    glcm_measures,
-    perimeters,
-)
+from plateloom.well.features import convex_areas, perimeters
 from plateloom.well.image_qc import background_levels
+from plateloom.well.object_pixels import ObjectPixels
 from plateloom.well.segment import segment_smoothed
 from plateloom.well.stage import WellSettings, analyse_well, measure_frame
+from plateloom.well.texture import glcm_measures
 from plateloom.well.thresholds import smooth_image
 
 ROOT = Path(__file__).resolve().parents[1]

@@ -14,14 +14,11 @@ from skimage.measure import regionprops_table
 from plateloom.demo.scenario import QUANTITIES, load_scenario
 from plateloom.demo.simulate import simulate_site
 from plateloom.well.cell_bodies import grow_cell_bodies
-from plateloom.well.features import (
-    GLCM_ANGLES,
-    ObjectPixels,
-    glcm_measures,
-    measure_objects,
-)
+from plateloom.well.features import measure_objects
 from plateloom.well.image_qc import focus_score
+from plateloom.well.object_pixels import ObjectPixels
 from plateloom.well.segment import segment_label_free, segment_nuclei
+from plateloom.well.texture import GLCM_ANGLES, glcm_measures
 from plateloom.well.thresholds import object_threshold
 
 

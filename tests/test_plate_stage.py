@@ -274,7 +274,7 @@ def test_well_summaries_streamed_from_files_equal_pandas_and_the_in_memory_path(
 @pytest.mark.parametrize("n", [1, 2, 7, 8, 1001])
 def test_block_medians_equal_numpy_median_with_and_without_nan(n):
     # Reference: numpy.median / numpy.nanmedian, row by row (odd and even counts, NaN rows, all-NaN row).
-    from plateloom.plate.summaries import _block_summaries
+    from plateloom.plate.summaries import block_summaries
 
     rng = np.random.default_rng(n)
     block = rng.normal(size=(5, n))
@@ -287,7 +287,7 @@ def test_block_medians_equal_numpy_median_with_and_without_nan(n):
             for row in block
         ]
     )
-    np.testing.assert_array_equal(_block_summaries(block.copy(), np.zeros(5, bool)), expected)
+    np.testing.assert_array_equal(block_summaries(block.copy(), np.zeros(5, bool)), expected)
 
 
 @pytest.mark.parametrize("shuffle", [False, True])

@@ -14,14 +14,14 @@ import pandas as pd
 from plateloom.errors import InputError
 from plateloom.io.ome_tiff import (
     OmeMetadata,
-    _index_multichannel_stacks,
-    _stream_multichannel_site,
     channel_key,
     image_scale,
+    index_multichannel_stacks,
     read_ome_metadata,
+    stream_multichannel_site,
 )
-from plateloom.io.ome_zarr import _stream_zarr_site, _zarr_image, index_zarr_plate, is_zarr_plate
-from plateloom.io.planes import ImageIndex, SiteFrame, _check_plane, _open_tiff, _page, _page_count, saturated_fraction
+from plateloom.io.ome_zarr import index_zarr_plate, is_zarr_plate, stream_zarr_site, zarr_image
+from plateloom.io.planes import ImageIndex, SiteFrame, check_plane, open_tiff, page_count, read_page, saturated_fraction
 from plateloom.setup.plate_formats import canonical_well, plate_format
 
 # the interface other modules import from here
@@ -89,7 +89,7 @@ def index_plate_images(folder: str, template: str, wells: int, channels: list[st
     regex = template_regex(template)
     stacks = "{frame}" not in template
     if "{channel}" not in template:
-        return _index_multichannel_stacks(folder, regex, wells, channels)
+        return index_multichannel_stacks(folder, regex, wells, channels)
     fmt = plate_format(wells)
     rows, unmatched = [], []
     for name in sorted(os.listdir(folder)):
@@ -128,12 +128,12 @@ def site_frame_counts(index: ImageIndex, well: str, site: int, channels: list[st
     files = index.table[(index.table["well"] == well) & (index.table["site"] == site)]
     if index.source == "zarr" and len(files):
         store, image_path = files["path"].iloc[0].split("::")
-        array, axes, _, _, _ = _zarr_image(store, image_path)
+        array, axes, _, _, _ = zarr_image(store, image_path)
         frames = dict(zip(axes, array.shape)).get("t", 1)
         return {c: (frames, image_path) for c in channels}
     if index.source == "ome_tiff" and len(files):
         path = files["path"].iloc[0].split("::")[0]
-        with _open_tiff(path) as tif:
+        with open_tiff(path) as tif:
             series = tif.series[0]
             frames = dict(zip(series.axes.upper(), series.shape)).get("T", 1)
         return {c: (frames, os.path.basename(path)) for c in channels}
@@ -147,7 +147,7 @@ def site_frame_counts(index: ImageIndex, well: str, site: int, channels: list[st
                 "check the file names against images.filename_template.",
             )
         if index.stacks:
-            counts[channel] = (_page_count(paths[0]), os.path.basename(paths[0]))
+            counts[channel] = (page_count(paths[0]), os.path.basename(paths[0]))
         else:
             frames = files.loc[files["channel"] == channel, "frame"]
             counts[channel] = (int(frames.max()) - int(frames.min()) + 1, f"{len(paths)} files")
@@ -168,10 +168,10 @@ def stream_site(index: ImageIndex, well: str, site: int, channels: list[str]) ->
     A file that cannot be opened at all, or a channel without any image, stops with an error.
     """
     if index.source == "zarr":
-        yield from _stream_zarr_site(index, well, site, channels)
+        yield from stream_zarr_site(index, well, site, channels)
         return
     if index.source == "ome_tiff":
-        yield from _stream_multichannel_site(index, well, site, channels)
+        yield from stream_multichannel_site(index, well, site, channels)
         return
     yield from _stream_tiff_site(index, well, site, channels)
 
@@ -189,7 +189,7 @@ class _TiffSite:
         by_channel = {c: files[files["channel"] == c].sort_values("frame") for c in channels}
         self.start = 0 if index.stacks else min(int(t["frame"].min()) for t in by_channel.values())
         self.stack_paths = {c: t["path"].iloc[0] for c, t in by_channel.items()} if index.stacks else {}
-        self.opened = {c: stack.enter_context(_open_tiff(p)) for c, p in self.stack_paths.items()}
+        self.opened = {c: stack.enter_context(open_tiff(p)) for c, p in self.stack_paths.items()}
         self.paths = {c: dict(zip(t["frame"], t["path"])) for c, t in by_channel.items()}
 
     def raw_plane(self, channel: str, frame: int) -> tuple[np.ndarray, str]:
@@ -203,7 +203,7 @@ class _TiffSite:
                     f"frame {frame} is missing.",
                     "re-copy or re-export the file; a truncated copy is the usual cause.",
                 )
-            return _page(self.opened[channel], path, frame), path
+            return read_page(self.opened[channel], path, frame), path
         path = self.paths[channel].get(self.start + frame)
         if path is None:
             raise InputError(
@@ -211,8 +211,8 @@ class _TiffSite:
                 f"frame {self.start + frame} is missing from the series.",
                 "re-export the missing frame; the other frames are analysed.",
             )
-        with _open_tiff(path) as tif:
-            return _page(tif, path, 0), path
+        with open_tiff(path) as tif:
+            return read_page(tif, path, 0), path
 
 
 def _stream_tiff_site(index: ImageIndex, well: str, site: int, channels: list[str]) -> Iterator[SiteFrame]:
@@ -225,7 +225,7 @@ def _stream_tiff_site(index: ImageIndex, well: str, site: int, channels: list[st
                 try:
                     plane, path = files.raw_plane(channel, frame)
                     saturated.append(saturated_fraction(plane))
-                    plane = _check_plane(plane, path, shape)
+                    plane = check_plane(plane, path, shape)
                 except InputError as error:
                     problem = f"{files.where}, frame {files.start + frame}: {error}"
                     break

@@ -12,8 +12,8 @@ import numpy as np
 import pandas as pd
 
 from plateloom.errors import InputError
-from plateloom.io.ome_zarr import ZARR_UNITS_TO_MIN, ZARR_UNITS_TO_UM, _zarr_image
-from plateloom.io.planes import ImageIndex, SiteFrame, _check_plane, _open_tiff, _unreadable, saturated_fraction
+from plateloom.io.ome_zarr import ZARR_UNITS_TO_MIN, ZARR_UNITS_TO_UM, zarr_image
+from plateloom.io.planes import ImageIndex, SiteFrame, check_plane, open_tiff, saturated_fraction, unreadable_error
 from plateloom.setup.plate_formats import canonical_well, plate_format
 
 # the micro sign (U+00B5) and the Greek mu (U+03BC) both occur in OME metadata
@@ -39,7 +39,7 @@ def channel_key(name: str) -> str:
 
 def _zarr_metadata(path: str) -> OmeMetadata:
     store, image_path = path.split("::")
-    _, _, labels, scale, units = _zarr_image(store, image_path)
+    _, _, labels, scale, units = zarr_image(store, image_path)
     pixel = scale.get("x") * ZARR_UNITS_TO_UM[units["x"]] if units.get("x") in ZARR_UNITS_TO_UM else None
     interval = scale.get("t") * ZARR_UNITS_TO_MIN[units["t"]] if units.get("t") in ZARR_UNITS_TO_MIN else None
     return OmeMetadata(pixel, interval, tuple(labels))
@@ -49,7 +49,7 @@ def _ome_pixels(path: str):
     """The Pixels element of an OME-TIFF's OME-XML, or None when the file has no OME metadata."""
     import xml.etree.ElementTree as ElementTree
 
-    with _open_tiff(path) as tif:
+    with open_tiff(path) as tif:
         xml = tif.ome_metadata
     if not xml:
         return None
@@ -109,7 +109,7 @@ def image_scale(config_images: dict, first_image: str | None) -> tuple[float, fl
     return float(pixel), float(interval), f"OME metadata of {first_image}"
 
 
-def _index_multichannel_stacks(folder: str, regex: re.Pattern[str], wells: int, channels: list[str]) -> ImageIndex:
+def index_multichannel_stacks(folder: str, regex: re.Pattern[str], wells: int, channels: list[str]) -> ImageIndex:
     """One OME-TIFF per site holding every channel and frame: channels matched to config by the
     channel names of its OME metadata; path is '<file>::<channel position in the file>'."""
     fmt = plate_format(wells)
@@ -158,7 +158,7 @@ def _frame_pages(series, positions: dict[str, int], channels: list[str], path: s
     return frames, pages
 
 
-def _stream_multichannel_site(index: ImageIndex, well: str, site: int, channels: list[str]) -> Iterator[SiteFrame]:
+def stream_multichannel_site(index: ImageIndex, well: str, site: int, channels: list[str]) -> Iterator[SiteFrame]:
     files = index.table[(index.table["well"] == well) & (index.table["site"] == site)]
     positions = dict(zip(files["channel"], (int(p.split("::")[1]) for p in files["path"])))
     missing = [c for c in channels if c not in positions]
@@ -169,7 +169,7 @@ def _stream_multichannel_site(index: ImageIndex, well: str, site: int, channels:
             "check the channel names in config against the file's OME channel names.",
         )
     path = files["path"].iloc[0].split("::")[0]
-    with _open_tiff(path) as tif:
+    with open_tiff(path) as tif:
         series = tif.series[0]
         _, pages_of_frames = _frame_pages(series, positions, channels, path)
         for frame, pages in enumerate(pages_of_frames):
@@ -178,12 +178,12 @@ def _stream_multichannel_site(index: ImageIndex, well: str, site: int, channels:
                 try:
                     plane = series.pages[page].asarray()
                     saturated.append(saturated_fraction(plane))
-                    planes.append(_check_plane(plane, path, planes[0].shape if planes else None))
+                    planes.append(check_plane(plane, path, planes[0].shape if planes else None))
                 except InputError as error:
                     problem = f"well {well}, site {site}, frame {frame}: {error}"
                     break
                 except Exception as error:  # tifffile raises many kinds for a corrupt page
-                    problem = f"well {well}, site {site}, frame {frame}: {_unreadable(path, error)}"
+                    problem = f"well {well}, site {site}, frame {frame}: {unreadable_error(path, error)}"
                     break
             if problem:
                 yield SiteFrame(frame, None, np.full(len(channels), np.nan), problem)

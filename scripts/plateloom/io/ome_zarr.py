@@ -9,7 +9,7 @@ import numpy as np
 import pandas as pd
 
 from plateloom.errors import InputError
-from plateloom.io.planes import ImageIndex, SiteFrame, _check_plane, saturated_fraction
+from plateloom.io.planes import ImageIndex, SiteFrame, check_plane, saturated_fraction
 from plateloom.setup.plate_formats import canonical_well, plate_format
 
 ZARR_UNITS_TO_UM = {"micrometer": 1.0, "nanometer": 1e-3, "millimeter": 1e3, "meter": 1e6}
@@ -45,7 +45,7 @@ def _ome(group) -> dict:
     return attributes.get("ome", attributes)  # OME-Zarr 0.5 nests under "ome"; 0.4 does not
 
 
-def _zarr_image(store: str, image_path: str):
+def zarr_image(store: str, image_path: str):
     """(array of the full-resolution level, axis names, channel labels, scale per axis, unit per axis)."""
     group = _open_zarr(store)[image_path]
     multiscale = _ome(group)["multiscales"][0]
@@ -83,7 +83,7 @@ def index_zarr_plate(folder: str, wells: int, channels: list[str]) -> ImageIndex
         images = _ome(root[entry["path"]])["well"]["images"]
         for site, image in enumerate(images, start=1):
             image_path = f"{entry['path']}/{image['path']}"
-            _, _, labels, _, _ = _zarr_image(folder, image_path)
+            _, _, labels, _, _ = zarr_image(folder, image_path)
             for label in labels:
                 if label in channels:
                     rows.append((well, site, -1, label, f"{folder}::{image_path}"))
@@ -93,7 +93,7 @@ def index_zarr_plate(folder: str, wells: int, channels: list[str]) -> ImageIndex
     return ImageIndex(table, True, tuple(sorted(unmatched)), "zarr")
 
 
-def _stream_zarr_site(index: ImageIndex, well: str, site: int, channels: list[str]) -> Iterator[SiteFrame]:
+def stream_zarr_site(index: ImageIndex, well: str, site: int, channels: list[str]) -> Iterator[SiteFrame]:
     files = index.table[(index.table["well"] == well) & (index.table["site"] == site)]
     found = set(files["channel"])
     for channel in channels:
@@ -104,7 +104,7 @@ def _stream_zarr_site(index: ImageIndex, well: str, site: int, channels: list[st
                 "check the channel names in config against the store's omero channel labels.",
             )
     store, image_path = files["path"].iloc[0].split("::")
-    array, axes, labels, _, _ = _zarr_image(store, image_path)
+    array, axes, labels, _, _ = zarr_image(store, image_path)
     shape = dict(zip(axes, array.shape))
     if shape.get("z", 1) > 1:
         raise InputError(
@@ -119,7 +119,7 @@ def _stream_zarr_site(index: ImageIndex, well: str, site: int, channels: list[st
             plane = np.asarray(array[tuple(position.get(a, slice(None)) for a in axes)])
             saturated.append(saturated_fraction(plane))
             try:
-                planes.append(_check_plane(plane, f"{store}::{image_path}", None))
+                planes.append(check_plane(plane, f"{store}::{image_path}", None))
             except InputError as error:
                 yield SiteFrame(
                     frame, None, np.full(len(channels), np.nan), f"well {well}, site {site}, frame {frame}: {error}"

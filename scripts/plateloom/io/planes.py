@@ -46,7 +46,7 @@ def saturated_fraction(plane: np.ndarray) -> float:
     return float(np.count_nonzero(plane == top) / plane.size)
 
 
-def _check_plane(plane: np.ndarray, path: str, shape: tuple[int, ...] | None) -> np.ndarray:
+def check_plane(plane: np.ndarray, path: str, shape: tuple[int, ...] | None) -> np.ndarray:
     if plane.ndim != 2:
         raise InputError(
             path,
@@ -72,7 +72,7 @@ def _check_plane(plane: np.ndarray, path: str, shape: tuple[int, ...] | None) ->
     return plane
 
 
-def _unreadable(path: str, error: Exception) -> InputError:
+def unreadable_error(path: str, error: Exception) -> InputError:
     return InputError(
         path,
         f"cannot be read as TIFF ({type(error).__name__}: {error}).",
@@ -80,14 +80,14 @@ def _unreadable(path: str, error: Exception) -> InputError:
     )
 
 
-def _open_tiff(path: str) -> tifffile.TiffFile:
+def open_tiff(path: str) -> tifffile.TiffFile:
     try:
         return tifffile.TiffFile(path)
     except Exception as error:  # tifffile raises many kinds for truncated or corrupt files
-        raise _unreadable(path, error) from None
+        raise unreadable_error(path, error) from None
 
 
-def _page(tif: tifffile.TiffFile, path: str, page: int) -> np.ndarray:
+def read_page(tif: tifffile.TiffFile, path: str, page: int) -> np.ndarray:
     if page >= len(tif.pages):
         raise InputError(
             path, f"has {len(tif.pages)} pages, frame {page} is missing.", "re-export the full time series."
@@ -95,9 +95,9 @@ def _page(tif: tifffile.TiffFile, path: str, page: int) -> np.ndarray:
     try:
         return tif.pages[page].asarray()
     except Exception as error:
-        raise _unreadable(path, error) from None
+        raise unreadable_error(path, error) from None
 
 
-def _page_count(path: str) -> int:
-    with _open_tiff(path) as tif:
+def page_count(path: str) -> int:
+    with open_tiff(path) as tif:
         return len(tif.pages)

@@ -33,7 +33,7 @@ def provenance(settings: object) -> dict[str, object]:
     return {"config_sha256": config_digest(settings), "python": platform.python_version(), "packages": versions}
 
 
-def _temporary_path(path: str) -> str:
+def temporary_path(path: str) -> str:
     """A hidden temporary file beside ``path`` (same folder, so the final rename is atomic)."""
     folder = os.path.dirname(path) or "."
     os.makedirs(folder, exist_ok=True)
@@ -47,7 +47,7 @@ def write_parquet(frame: pd.DataFrame, path: str, settings: object, extra: dict 
     is stored in the file metadata and read back by ``read_extra``. Text and categorical
     columns are dictionary-encoded, numbers are not; Snappy compression.
     """
-    tmp = _temporary_path(path)
+    tmp = temporary_path(path)
     table = pa.Table.from_pandas(frame, preserve_index=False)
     meta = dict(table.schema.metadata or {})
     meta[PROVENANCE_KEY] = json.dumps(provenance(settings), sort_keys=True).encode()
@@ -70,7 +70,7 @@ def write_profile_tiff(image, path: str, description: dict) -> None:
     import numpy as np
     import tifffile
 
-    tmp = _temporary_path(path)
+    tmp = temporary_path(path)
     tifffile.imwrite(
         tmp,
         np.asarray(image, np.float32),
@@ -83,7 +83,7 @@ def write_profile_tiff(image, path: str, description: dict) -> None:
 
 def write_text(text: str, path: str) -> None:
     """Write a text file (report, CSV) atomically."""
-    tmp = _temporary_path(path)
+    tmp = temporary_path(path)
     with open(tmp, "w", encoding="utf-8") as handle:
         handle.write(text)
     os.replace(tmp, path)

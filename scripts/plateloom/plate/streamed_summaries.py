@@ -14,7 +14,7 @@ import pyarrow.parquet as pq
 
 from plateloom.columns import observation_features
 from plateloom.errors import InputError
-from plateloom.plate.summaries import COUNT_COLUMNS_OF_OBSERVATIONS, _block_summaries, _check_statistic, _well_files
+from plateloom.plate.summaries import COUNT_COLUMNS_OF_OBSERVATIONS, block_summaries, check_statistic, well_files
 
 # Columns of the cells table that the plate stage needs besides the features.
 KEY_COLUMNS_FOR_PROFILES = ("site", "frame", "time_min", "touches_border")
@@ -108,9 +108,9 @@ def _summarise_well_folder(
         block = np.empty((len(features), n_kept))
         for j, column in enumerate(columns):
             np.compress(kept, column, out=block[j])
-        median[code] = _block_summaries(block, np.zeros(len(features), bool))
+        median[code] = block_summaries(block, np.zeros(len(features), bool))
         if with_log:
-            mean_log[code] = _block_summaries(block, np.ones(len(features), bool))
+            mean_log[code] = block_summaries(block, np.ones(len(features), bool))
     return {"names": names, "counts": counts, "median": median, "mean_log": mean_log, "lowest": lowest}
 
 
@@ -168,8 +168,8 @@ def summarise_observation_files(
     ``observation_counts`` of every observation. No plate-wide table of observations is made:
     peak memory is about one well per thread.
     """
-    _check_statistic(statistic)
-    paths = _well_files(folders)
+    check_statistic(statistic)
+    paths = well_files(folders)
     groups: dict[str, list[str]] = {}
     for path in paths:
         groups.setdefault(os.path.basename(os.path.dirname(path)), []).append(path)

@@ -52,7 +52,7 @@ def observation_counts(cells: pd.DataFrame) -> pd.DataFrame:
 NOT_READ_FOR_PROFILES = ("plate", "object", "track", "parent_track", "centroid_x_um", "centroid_y_um", "chunk")
 
 
-def _well_files(folders: list[str]) -> list[str]:
+def well_files(folders: list[str]) -> list[str]:
     files = sorted(glob.glob(os.path.join(folder, "well=*", "*.parquet")) for folder in folders)
     paths = [path for group in files for path in sorted(group)]
     if not paths:
@@ -65,7 +65,7 @@ def read_plate_dataset(folders: list[str], columns: list[str] | None = None) -> 
 
     Files are read in sorted path order, so the row order is the same on every run.
     """
-    return ds.dataset(_well_files(folders), format="parquet").to_table(columns=columns).to_pandas()
+    return ds.dataset(well_files(folders), format="parquet").to_table(columns=columns).to_pandas()
 
 
 def _well_blocks(codes: np.ndarray, n_wells: int) -> tuple[np.ndarray, np.ndarray | None]:
@@ -78,7 +78,7 @@ def _well_blocks(codes: np.ndarray, n_wells: int) -> tuple[np.ndarray, np.ndarra
     return np.searchsorted(codes, np.arange(n_wells + 1)), order
 
 
-def _block_summaries(block: np.ndarray, use_log: np.ndarray) -> np.ndarray:
+def block_summaries(block: np.ndarray, use_log: np.ndarray) -> np.ndarray:
     """Per row of a (features, observations) block: the median, or exp(mean(log)) where ``use_log``;
     NaN values ignored, NaN when a row has no finite value; the same values as ``np.median``.
     ``block`` is reordered in place (partitioned around its middle)."""
@@ -101,7 +101,7 @@ def _block_summaries(block: np.ndarray, use_log: np.ndarray) -> np.ndarray:
     return summary
 
 
-def _check_statistic(statistic: str) -> None:
+def check_statistic(statistic: str) -> None:
     if statistic not in ("median", "mean_log"):
         raise ValueError(f"unknown well summary {statistic!r}; use median or mean_log")
 
@@ -114,7 +114,7 @@ def _column_summaries(
     "median" is the median; "mean_log" is exp(mean(log)) for strictly positive features and the
     median for the others. NaN values are ignored. Memory: one well's block at a time.
     """
-    _check_statistic(statistic)
+    check_statistic(statistic)
     bounds, order = _well_blocks(codes, len(names))
     columns = [cells[f].to_numpy(np.float64) for f in features]
     if order is not None:
@@ -127,7 +127,7 @@ def _column_summaries(
         if not kept.any():
             return np.full(len(features), np.nan)
         # one row per feature, so each median partitions contiguous memory
-        return _block_summaries(
+        return block_summaries(
             np.stack([c[rows][kept] for c in columns]) if features else np.empty((0, int(kept.sum()))), use_log
         )
 

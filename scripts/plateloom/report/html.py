@@ -42,9 +42,9 @@ def figure_tag(figure: plt.Figure, alt: str) -> str:
 
 def write_figure(figure: plt.Figure, path: str) -> None:
     """Save a figure as PNG atomically (temporary file, then rename) and close it."""
-    from plateloom.io.tables import _temporary_path
+    from plateloom.io.tables import temporary_path
 
-    tmp = _temporary_path(path)
+    tmp = temporary_path(path)
     figure.savefig(tmp, format="png", dpi=110, bbox_inches="tight", metadata={"Software": None})
     plt.close(figure)
     os.replace(tmp, path)

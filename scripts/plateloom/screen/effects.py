@@ -19,7 +19,7 @@ import pandas as pd
 from scipy import stats
 
 from plateloom.screen.model_wells import treatment_catalogue
-from plateloom.screen.nested_fit import FITTERS, _fit, _fixed_plate_fit
+from plateloom.screen.nested_fit import FITTERS, fit_nested, fixed_plate_fit
 from plateloom.stats import bh_qvalues  # noqa: F401  (part of this module's interface)
 
 REFERENCE = "negative_control"
@@ -78,9 +78,9 @@ def _fit_outcome(data: pd.DataFrame, mapping: dict[str, str], fitter: str, note:
         return _Outcome(empty, empty, (np.nan,) * 3, False, "not fitted",
                         _join(note, "feature is constant across wells: not fitted"))  # fmt: skip
     try:
-        fit = _fit(data, mapping, fitter)
+        fit = fit_nested(data, mapping, fitter)
     except RuntimeError as error:
-        params, errors, residual = _fixed_plate_fit(data)
+        params, errors, residual = fixed_plate_fit(data)
         note = _join(note, f"mixed model failed ({error}); fallback used")
         return _Outcome(
             params, errors, (np.nan, np.nan, residual), False, "fallback: OLS with plate fixed effects", note

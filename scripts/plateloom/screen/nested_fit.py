@@ -79,7 +79,7 @@ def fit_nested_random_intercepts(
     raise RuntimeError("mixed model did not converge: " + " | ".join(problems))
 
 
-def _fixed_plate_fit(data: pd.DataFrame) -> tuple[pd.Series, pd.Series, float]:
+def fixed_plate_fit(data: pd.DataFrame) -> tuple[pd.Series, pd.Series, float]:
     """Fallback: ordinary least squares with a fixed effect per plate (absorbs batch too)."""
     result = smf.ols("y ~ C(code) + C(plate_code)", data).fit()
     return result.params, result.bse, float(result.scale)
@@ -99,7 +99,7 @@ def _design(codes: pd.Series) -> tuple[np.ndarray, list[str]]:
     return matrix, ["Intercept"] + [f"C(code)[T.{code}]" for code in levels[keep]]
 
 
-def _fit(data: pd.DataFrame, mapping: dict[str, str], fitter: str) -> NestedFit:
+def fit_nested(data: pd.DataFrame, mapping: dict[str, str], fitter: str) -> NestedFit:
     """The nested fit of y on treatment codes; one batch only: a random intercept per plate."""
     n_batches, n_plates = data["batch"].nunique(), data["plate"].nunique()
     groups, nested = (

@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 from skimage.segmentation import watershed
 
-from plateloom.well.thresholds import _block_reduce, object_threshold, smooth_image
+from plateloom.well.thresholds import block_reduce, object_threshold, smooth_image
 
 # Cell bodies are found on the 2x2-binned body channel when its smoothing is at least this wide
 # (pixels) and the image at least twice BODY_BINNING_MIN_SIDE_PX on each side.
@@ -74,10 +74,10 @@ def _grow_cell_bodies_binned(
     nuclei: np.ndarray, body_image: np.ndarray, sigma_px: float, threshold_method: str
 ) -> np.ndarray:
     height, width = nuclei.shape
-    binned = _block_reduce(body_image.astype(np.float32, copy=False), 2, np.add) * np.float32(0.25)
+    binned = block_reduce(body_image.astype(np.float32, copy=False), 2, np.add) * np.float32(0.25)
     # a 2-pixel box already blurs by a variance of 1/3 px^2; the Gaussian adds the rest, in binned pixels
     smooth = smooth_image(binned, np.sqrt(sigma_px**2 - 1 / 3) / 2)
-    bodies, threshold = _seeded_bodies(_block_reduce(nuclei, 2, np.maximum), smooth, threshold_method)
+    bodies, threshold = _seeded_bodies(block_reduce(nuclei, 2, np.maximum), smooth, threshold_method)
     if np.isnan(threshold):  # no foreground in the body channel: each cell is its nucleus
         return nuclei.astype(np.int32, copy=True)
     rows, cols = bodies.shape

@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 from scipy import ndimage
 
-from plateloom.well.thresholds import BACKGROUND_STRIDE, _block_reduce
+from plateloom.well.thresholds import BACKGROUND_STRIDE, block_reduce
 
 # The focus score's Laplacian is taken on every FOCUS_ROW_STRIDE-th row.
 FOCUS_ROW_STRIDE = 4
@@ -19,7 +19,7 @@ def background_levels(planes: np.ndarray, labels: np.ndarray, margin_px: int = 3
     almost full of cells falls back to the 5th percentile.
     """
     stride = BACKGROUND_STRIDE
-    occupied = _block_reduce(labels > 0, stride, np.logical_or)
+    occupied = block_reduce(labels > 0, stride, np.logical_or)
     reach = -(-margin_px // stride)
     near = ndimage.maximum_filter(occupied, size=2 * reach + 1) if occupied.any() else occupied
     background = ~near

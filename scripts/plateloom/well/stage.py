@@ -14,10 +14,11 @@ from plateloom.io.tables import well_part_path, write_parquet
 from plateloom.settings import FromSchema
 from plateloom.well.cell_bodies import grow_cell_bodies
 from plateloom.well.collective import CollectiveSettings, well_collective_readouts
-from plateloom.well.features import TextureSettings, measure_objects, neighbourhood
+from plateloom.well.features import measure_objects, neighbourhood
 from plateloom.well.illumination import apply_flat_field
 from plateloom.well.image_qc import background_levels, focus_score
 from plateloom.well.segment import segment_label_free, segment_smoothed
+from plateloom.well.texture import TextureSettings
 from plateloom.well.thresholds import smooth_image
 from plateloom.well.track_stats import (
     fit_persistent_walk,

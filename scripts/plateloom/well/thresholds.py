@@ -102,7 +102,7 @@ def fill_holes(mask: np.ndarray) -> np.ndarray:
     return mask | ~outside[background]
 
 
-def _block_reduce(image: np.ndarray, size: int, reduce: Callable) -> np.ndarray:
+def block_reduce(image: np.ndarray, size: int, reduce: Callable) -> np.ndarray:
     """size x size blocks of an image (edges repeated to whole blocks) combined by the binary ufunc
     ``reduce`` (np.add, np.maximum, np.logical_or): one pass over strided views, no reshaped copy."""
     height, width = image.shape
