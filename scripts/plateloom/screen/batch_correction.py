@@ -120,7 +120,8 @@ def combat(
         d_hat = in_batch.var(axis=1, ddof=ddof)
         m, s2 = d_hat.mean(), d_hat.var(ddof=ddof)
         a_prior, b_prior = (2 * s2 + m * m) / s2, (m * s2 + m**3) / s2
-        gamma_star[k], delta_star[k] = _posterior(in_batch, g_hat, d_hat, g_bar, t2, a_prior, b_prior, tolerance)
+        prior = (g_bar, t2, a_prior, b_prior)
+        gamma_star[k], delta_star[k] = _posterior(in_batch, g_hat, d_hat, prior, tolerance)
     adjusted = standardised.copy()
     for k in range(n_batches):
         columns = batch_index == k
@@ -132,14 +133,13 @@ def _posterior(
     data: np.ndarray,
     g_hat: np.ndarray,
     d_hat: np.ndarray,
-    g_bar: float,
-    t2: float,
-    a: float,
-    b: float,
+    prior: tuple[float, float, float, float],
     tolerance: float,
     max_iterations: int = 10_000,
 ) -> tuple[np.ndarray, np.ndarray]:
-    """Iterated conditional posterior means of the batch location (gamma) and scale (delta)."""
+    """Iterated conditional posterior means of the batch location (gamma) and scale (delta);
+    ``prior`` is (location mean, location variance, inverse-gamma a, b)."""
+    g_bar, t2, a, b = prior
     n = data.shape[1]
     g_old, d_old = g_hat.copy(), d_hat.copy()
     for _ in range(max_iterations):

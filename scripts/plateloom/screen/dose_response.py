@@ -27,21 +27,13 @@ def hill_curve(dose: np.ndarray, bottom: float, top: float, log10_ec50: float, h
     return bottom + (top - bottom) / (1.0 + ratio)
 
 
-def fit_hill(dose: np.ndarray, response: np.ndarray, ci_level: float = 0.95) -> dict:
-    """Least-squares 4PL fit; returns estimates, standard errors, the EC50 interval and identifiability flags."""
-    dose, response = np.asarray(dose, float), np.asarray(response, float)
-    ok = np.isfinite(dose) & np.isfinite(response) & (dose >= 0)
-    dose, response = dose[ok], response[ok]
-    tested = np.unique(dose[dose > 0])
-    result = {"n_wells": int(len(dose)), "n_doses": int(len(tested))}
-    if len(tested) < 4 or len(dose) < 6:
-        return {**result, "identifiable": False, "flag": "fewer than 4 doses or 6 wells: not fitted"}
+def _least_squares_4pl(dose: np.ndarray, response: np.ndarray, tested: np.ndarray):
+    """The best of least-squares 4PL fits started at every tested dose (EC50 within 2 log10 units
+    of the tested range, Hill slope within ``HILL_BOUNDS``)."""
     low, high = np.log10(tested[0]), np.log10(tested[-1])
     bounds = ([-np.inf, -np.inf, low - 2.0, HILL_BOUNDS[0]], [np.inf, np.inf, high + 2.0, HILL_BOUNDS[1]])
-    bottom0 = (
-        float(np.median(response[dose == 0])) if np.any(dose == 0) else float(np.median(response[dose == tested[0]]))
-    )
-    top0 = float(np.median(response[dose == tested[-1]]))
+    lowest = dose == 0 if np.any(dose == 0) else dose == tested[0]
+    bottom0, top0 = float(np.median(response[lowest])), float(np.median(response[dose == tested[-1]]))
 
     def residuals(p: np.ndarray) -> np.ndarray:
         return hill_curve(dose, *p) - response
@@ -52,53 +44,58 @@ def fit_hill(dose: np.ndarray, response: np.ndarray, ci_level: float = 0.95) -> 
         )
         for start in np.log10(tested)
     ]
-    best = min(fits, key=lambda f: f.cost)
-    n, k = len(dose), 4
-    rss = 2.0 * best.cost
-    dof = n - k
-    flags: list[str] = []
+    return min(fits, key=lambda f: f.cost)
+
+
+def _standard_errors(jacobian: np.ndarray, rss: float, dof: int) -> np.ndarray:
+    """Asymptotic SEs from (J'J)^-1 x residual variance; NaN when J'J is singular."""
     with np.errstate(all="ignore"):
-        jtj = best.jac.T @ best.jac
         try:
-            covariance = np.linalg.inv(jtj) * rss / dof
-            errors = np.sqrt(np.diag(covariance))
+            return np.sqrt(np.diag(np.linalg.inv(jacobian.T @ jacobian) * rss / dof))
         except np.linalg.LinAlgError:
-            errors = np.full(k, np.nan)
+            return np.full(jacobian.shape[1], np.nan)
+
+
+def _fit_flags(errors: np.ndarray, p_response: float, log10_ec50: float, hill: float, tested: np.ndarray) -> list[str]:
+    """Why a fit is not identifiable: singular, no response, EC50 outside the doses, slope at a bound."""
+    flags = []
     if not np.all(np.isfinite(errors)):
         flags.append("singular fit: parameters not identifiable from these doses")
-    rss_flat = float(np.sum((response - response.mean()) ** 2))
-    f_stat = ((rss_flat - rss) / (k - 1)) / (rss / dof) if rss > 0 else np.inf
-    p_response = float(stats.f.sf(f_stat, k - 1, dof))
     if p_response >= 0.05:
         flags.append(f"no dose-response detected (F test against a flat line, p = {p_response:.2g})")
-    bottom, top, log10_ec50, hill = best.x
-    if not low <= log10_ec50 <= high:
+    if not np.log10(tested[0]) <= log10_ec50 <= np.log10(tested[-1]):
         flags.append("EC50 outside the tested dose range")
     if np.isclose(hill, HILL_BOUNDS[0]) or np.isclose(hill, HILL_BOUNDS[1]):
         flags.append(f"Hill slope at its bound {HILL_BOUNDS}")
+    return flags
+
+
+def fit_hill(dose: np.ndarray, response: np.ndarray, ci_level: float = 0.95) -> dict:
+    """Least-squares 4PL fit; returns estimates, standard errors, the EC50 interval and identifiability flags."""
+    dose, response = np.asarray(dose, float), np.asarray(response, float)
+    ok = np.isfinite(dose) & np.isfinite(response) & (dose >= 0)
+    dose, response = dose[ok], response[ok]
+    tested = np.unique(dose[dose > 0])
+    result = {"n_wells": int(len(dose)), "n_doses": int(len(tested))}
+    if len(tested) < 4 or len(dose) < 6:
+        return {**result, "identifiable": False, "flag": "fewer than 4 doses or 6 wells: not fitted"}
+    best = _least_squares_4pl(dose, response, tested)
+    k = 4
+    rss, dof = 2.0 * best.cost, len(dose) - k
+    errors = _standard_errors(best.jac, rss, dof)
+    rss_flat = float(np.sum((response - response.mean()) ** 2))
+    f_stat = ((rss_flat - rss) / (k - 1)) / (rss / dof) if rss > 0 else np.inf
+    p_response = float(stats.f.sf(f_stat, k - 1, dof))
+    bottom, top, log10_ec50, hill = best.x
+    flags = _fit_flags(errors, p_response, log10_ec50, hill, tested)
     t = stats.t.ppf(0.5 + ci_level / 2, dof)
-    se_log = errors[2]
     with np.errstate(over="ignore"):
-        ci_low, ci_high = 10.0 ** (log10_ec50 - t * se_log), 10.0 ** (log10_ec50 + t * se_log)
-    return {
-        **result,
-        "bottom": bottom,
-        "bottom_se": errors[0],
-        "top": top,
-        "top_se": errors[1],
-        "ec50": 10.0**log10_ec50,
-        "log10_ec50": log10_ec50,
-        "log10_ec50_se": se_log,
-        "ec50_ci_low": ci_low,
-        "ec50_ci_high": ci_high,
-        "hill": hill,
-        "hill_se": errors[3],
-        "df": float(dof),
-        "residual_sd": float(np.sqrt(rss / dof)),
-        "p_response": p_response,
-        "identifiable": not flags,
-        "flag": "; ".join(flags),
-    }
+        ci_low, ci_high = 10.0 ** (log10_ec50 - t * errors[2]), 10.0 ** (log10_ec50 + t * errors[2])
+    estimates = {"bottom": bottom, "bottom_se": errors[0], "top": top, "top_se": errors[1], "ec50": 10.0**log10_ec50}
+    ec50 = {"log10_ec50": log10_ec50, "log10_ec50_se": errors[2], "ec50_ci_low": ci_low, "ec50_ci_high": ci_high}
+    fit = {"hill": hill, "hill_se": errors[3], "df": float(dof), "residual_sd": float(np.sqrt(rss / dof))}
+    verdict = {"p_response": p_response, "identifiable": not flags, "flag": "; ".join(flags)}
+    return result | estimates | ec50 | fit | verdict
 
 
 def plate_relative_responses(model_wells: pd.DataFrame, feature: str, scale: str) -> pd.Series:
