@@ -12,7 +12,7 @@ from test_plate_stage import _plate
 
 from plateloom.plate.exclusions import ExclusionRules
 from plateloom.plate.stage import PlateDesign, PlateSettings, WellTables, build_plate_tables
-from plateloom.report.plate_page import build_plate_report
+from plateloom.report.plate_page import PlatePage, build_plate_report
 from plateloom.setup.plate_formats import plate_format
 
 HOSTILE = '<b>x</b> "quoted", comma & Ölsäure'
@@ -26,19 +26,8 @@ def _report(tmp_path: Path, rules: ExclusionRules | None = None) -> Path:
         cells, WellTables(tracks, qc), PlateDesign("P1", "d1", 96, layout), PlateSettings.defaults(), rules
     )
     tables.profile.loc[tables.profile["well"] == "D05", "treatment"] = HOSTILE
-    html = build_plate_report(
-        tables.profile,
-        tables.qc,
-        tables.ledger,
-        tables.edge,
-        tables.warnings + [HOSTILE],
-        tables.site_summary,
-        "P1",
-        "d1",
-        plate_format(96),
-        "area_um2",
-        {"config_sha256": "abc"},
-    )
+    tables.warnings.append(HOSTILE)
+    html = build_plate_report(tables, PlatePage("P1", "d1", plate_format(96), "area_um2", {"config_sha256": "abc"}))
     path = tmp_path / "plate.html"
     path.write_text(html, encoding="utf-8")
     return path

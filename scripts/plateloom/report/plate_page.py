@@ -2,11 +2,14 @@
 
 from __future__ import annotations
 
+from dataclasses import dataclass
+
 import matplotlib.pyplot as plt
 import numpy as np
 import pandas as pd
 import seaborn as sns
 
+from plateloom.plate.stage import PlateTables
 from plateloom.report.html import escape, figure_tag, page, table_tag
 from plateloom.setup.plate_formats import PlateFormat, row_label, well_grid
 
@@ -90,21 +93,53 @@ def illumination_html(flat_fields: dict[str, np.ndarray] | None) -> str:
     )
 
 
-def build_plate_report(
-    profile: pd.DataFrame,
-    qc: pd.DataFrame,
-    ledger: pd.DataFrame,
-    edge: pd.DataFrame,
-    warnings: list[str],
-    site_summary: dict[str, float],
-    plate: str,
-    batch: str,
-    fmt: PlateFormat,
-    report_feature: str,
-    provenance: dict,
-    flat_fields: dict[str, np.ndarray] | None = None,
-) -> str:
-    """The self-contained HTML report of one plate; ``flat_fields`` are the illumination profiles per channel."""
+QC_COLUMNS = [
+    "feature",
+    "n_negative",
+    "n_positive",
+    "negative_median",
+    "positive_median",
+    "negative_cv",
+    "positive_cv",
+    "z_prime",
+    "robust_z_prime",
+    "ssmd",
+    "robust_ssmd",
+    "signal_window",
+    "verdict",
+]
+QC_TEXT = (
+    "<p>Z' = 1 - 3(sd<sub>pos</sub> + sd<sub>neg</sub>) / |mean<sub>pos</sub> - "
+    "mean<sub>neg</sub>| (Zhang, Chung &amp; Oldenburg 1999), robust form with medians and 1.4826 x MAD; "
+    "SSMD = (mean<sub>pos</sub> - mean<sub>neg</sub>) / sqrt(var<sub>pos</sub> + var<sub>neg</sub>) "
+    "(Zhang 2007). "
+    "Verdict bands: Z' &ge; 0.5 excellent, 0 &lt; Z' &lt; 0.5 marginal, Z' &le; 0 unusable for single-point "
+    "screening.</p>"
+)
+EDGE_TEXT = (
+    "<p>Least squares of each well value on its treatment plus an outer-well indicator (log scale for "
+    "positive features): edge_shift is the outer-minus-inner difference (log ratio or unit).</p>"
+)
+IMAGE_QC_TEXT = (
+    "<p>Per site and frame: focus score (variance of the Laplacian over the squared mean), "
+    "empty fields (no nucleus found) and the largest saturated-pixel fraction of any channel.</p>"
+)
+
+
+@dataclass(frozen=True)
+class PlatePage:
+    """What a plate report names: plate, batch, format, the heatmap feature, provenance, flat fields."""
+
+    plate: str
+    batch: str
+    fmt: PlateFormat
+    report_feature: str
+    provenance: dict
+    flat_fields: dict[str, np.ndarray] | None = None
+
+
+def _summary_html(tables: PlateTables, page_info: PlatePage) -> str:
+    profile = tables.profile
     excluded = profile[profile["excluded_by"] != ""]
     n_kept = int((profile["excluded_by"] == "").sum())
     plate_rule = profile["plate_excluded_by"].iloc[0] if "plate_excluded_by" in profile and len(profile) else ""
@@ -114,68 +149,43 @@ def build_plate_report(
         else "<p>This plate enters the screen model.</p>"
     )
     summary = (
-        f"<p>Plate <b>{escape(plate)}</b>, batch <b>{escape(batch)}</b>, {fmt.wells}-well format: "
+        f"<p>Plate <b>{escape(page_info.plate)}</b>, batch <b>{escape(page_info.batch)}</b>, "
+        f"{page_info.fmt.wells}-well format: "
         f"{len(profile)} analysed wells, {n_kept} kept, {len(excluded)} excluded; "
         f"{int(profile['n_observations'].sum())} observations, {int(profile['n_tracks'].sum())} tracks.</p>" + status
     )
-    if warnings:
-        summary += "<ul>" + "".join(f"<li>{escape(w)}</li>" for w in warnings) + "</ul>"
+    if tables.warnings:
+        summary += "<ul>" + "".join(f"<li>{escape(w)}</li>" for w in tables.warnings) + "</ul>"
     outliers = profile[profile.get("cell_count_outlier", False) == True]  # noqa: E712
     if len(outliers):
         summary += f"<p>Cell-count outliers (|robust z| &gt; 3.5): {escape(', '.join(outliers['well']))}.</p>"
+    return summary
+
+
+def _maps_html(profile: pd.DataFrame, report_feature: str, fmt: PlateFormat) -> str:
     heatmaps = figure_tag(plate_heatmap(profile, "cell_count", fmt), "cell count heatmap")
     if report_feature in profile.columns and report_feature != "cell_count":
         heatmaps += figure_tag(plate_heatmap(profile, report_feature, fmt), f"{report_feature} heatmap")
+    return heatmaps
+
+
+def build_plate_report(tables: PlateTables, page_info: PlatePage) -> str:
+    """The self-contained HTML report of one plate from its plate-stage tables."""
+    profile, qc = tables.profile, tables.qc
     features = qc["feature"].tolist()
     distributions = "".join(
         figure_tag(control_distributions(profile, features[i : i + 4]), "control distributions")
         for i in range(0, len(features), 4)
     )
-    site_html = table_tag(pd.DataFrame([site_summary]))
-    qc_table = table_tag(
-        qc[
-            [
-                "feature",
-                "n_negative",
-                "n_positive",
-                "negative_median",
-                "positive_median",
-                "negative_cv",
-                "positive_cv",
-                "z_prime",
-                "robust_z_prime",
-                "ssmd",
-                "robust_ssmd",
-                "signal_window",
-                "verdict",
-            ]
-        ]
-    )
-    edge_html = (
-        "<p>Least squares of each well value on its treatment plus an outer-well indicator (log scale for "
-        "positive features): edge_shift is the outer-minus-inner difference (log ratio or unit).</p>" + table_tag(edge)
-    )
-    ledger_html = "<p>Nothing was excluded.</p>" if ledger.empty else table_tag(ledger)
+    ledger_html = "<p>Nothing was excluded.</p>" if tables.ledger.empty else table_tag(tables.ledger)
     sections = [
-        ("Summary", summary),
-        ("Plate maps", heatmaps),
+        ("Summary", _summary_html(tables, page_info)),
+        ("Plate maps", _maps_html(profile, page_info.report_feature, page_info.fmt)),
         ("Control and test wells", distributions),
-        (
-            "Z'-factor and SSMD per feature",
-            "<p>Z' = 1 - 3(sd<sub>pos</sub> + sd<sub>neg</sub>) / |mean<sub>pos</sub> - "
-            "mean<sub>neg</sub>| (Zhang, Chung &amp; Oldenburg 1999), robust form with medians and 1.4826 x MAD; "
-            "SSMD = (mean<sub>pos</sub> - mean<sub>neg</sub>) / sqrt(var<sub>pos</sub> + var<sub>neg</sub>) "
-            "(Zhang 2007). "
-            "Verdict bands: Z' &ge; 0.5 excellent, 0 &lt; Z' &lt; 0.5 marginal, Z' &le; 0 unusable for single-point "
-            "screening.</p>" + qc_table,
-        ),
-        ("Edge effect", edge_html),
-        (
-            "Image QC",
-            "<p>Per site and frame: focus score (variance of the Laplacian over the squared mean), "
-            "empty fields (no nucleus found) and the largest saturated-pixel fraction of any channel.</p>" + site_html,
-        ),
-        ("Illumination", illumination_html(flat_fields)),
+        ("Z'-factor and SSMD per feature", QC_TEXT + table_tag(qc[QC_COLUMNS])),
+        ("Edge effect", EDGE_TEXT + table_tag(tables.edge)),
+        ("Image QC", IMAGE_QC_TEXT + table_tag(pd.DataFrame([tables.site_summary]))),
+        ("Illumination", illumination_html(page_info.flat_fields)),
         ("Exclusion ledger", ledger_html),
     ]
-    return page(f"plateloom plate report: {plate}", sections, provenance)
+    return page(f"plateloom plate report: {page_info.plate}", sections, page_info.provenance)
