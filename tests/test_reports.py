@@ -85,7 +85,7 @@ def test_plate_report_renders_offline_in_headless_chromium(tmp_path):
 def test_screen_report_escapes_hostile_treatment_names(tmp_path):
     from test_screen_stage import _wells
 
-    from plateloom.report.screen_page import build_screen_report
+    from plateloom.report.screen_page import ScreenResults, build_screen_report
     from plateloom.screen.effects import screen_effects
     from plateloom.screen.model_wells import build_model_wells
 
@@ -101,15 +101,9 @@ def test_screen_report_escapes_hostile_treatment_names(tmp_path):
         "batch_correction": "control_location",
         "fitter": "exact",
     }
-    html = build_screen_report(
-        effects,
-        wells,
-        ledger,
-        settings,
-        {"packages": {}},
-        variance=model.variance,
-        components=model.components,
-        correction_notes=[HOSTILE],
+    results = ScreenResults(
+        effects, wells, ledger, variance=model.variance, components=model.components, correction_notes=[HOSTILE]
     )
+    html = build_screen_report(results, settings, {"packages": {}})
     assert "<b>x</b>" not in html
     assert "&lt;b&gt;x&lt;/b&gt; &quot;quoted&quot;, comma &amp; Ölsäure" in html

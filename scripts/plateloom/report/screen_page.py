@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from dataclasses import dataclass, field
+
 import matplotlib.pyplot as plt
 import numpy as np
 import pandas as pd
@@ -130,21 +132,50 @@ def _method_text(settings: dict, provenance: dict) -> str:
     )
 
 
-def build_screen_report(
-    effects: pd.DataFrame,
-    wells: pd.DataFrame,
-    ledger: pd.DataFrame,
-    settings: dict,
-    provenance: dict,
-    dose_fits: pd.DataFrame | None = None,
-    dose_points: pd.DataFrame | None = None,
-    variance: pd.DataFrame | None = None,
-    components: pd.DataFrame | None = None,
-    design: pd.DataFrame | None = None,
-    correction_notes: list[str] | None = None,
-) -> str:
-    """The self-contained HTML report of the whole screen."""
-    ci_level, hit_q_value, hit_min_effect = settings["ci_level"], settings["hit_q_value"], settings["hit_min_log_ratio"]
+@dataclass(frozen=True)
+class ScreenResults:
+    """What the screen report shows: effects, well profiles, exclusion ledger and, when run,
+    dose-response fits and points, batch diagnostics, the design check and correction notes."""
+
+    effects: pd.DataFrame
+    wells: pd.DataFrame
+    ledger: pd.DataFrame
+    dose_fits: pd.DataFrame | None = None
+    dose_points: pd.DataFrame | None = None
+    variance: pd.DataFrame | None = None
+    components: pd.DataFrame | None = None
+    design: pd.DataFrame | None = None
+    correction_notes: list[str] = field(default_factory=list)
+
+
+EFFECT_COLUMNS = ["feature", "treatment", "scale", "estimate", "ci_low", "ci_high", "ratio", "q_value", "n_wells"]
+COMPONENT_COLUMNS = [
+    "feature",
+    "scale",
+    "batch_variance",
+    "plate_variance",
+    "residual_variance",
+    "icc_batch_plate",
+    "converged",
+    "method",
+    "note",
+]
+DOSE_COLUMNS = [
+    "feature",
+    "condition",
+    "ec50",
+    "ec50_ci_low",
+    "ec50_ci_high",
+    "dose_unit",
+    "hill",
+    "top",
+    "identifiable",
+    "flag",
+]
+
+
+def _summary_html(results: ScreenResults, settings: dict) -> str:
+    wells, effects = results.wells, results.effects
     plates = (
         wells.groupby(["batch", "plate"])
         .agg(
@@ -155,114 +186,97 @@ def build_screen_report(
         .reset_index()
     )
     in_model = (wells["excluded_by"] == "") & (wells["plate_excluded_by"] == "")
-    summary = (
+    return (
         f"<p>{wells['plate'].nunique()} plates in {wells['batch'].nunique()} batches, "
         f"{int(in_model.sum())} wells in the model, {effects['treatment'].nunique()} treatments, "
-        f"{effects['feature'].nunique()} features. Hits: q &lt; {hit_q_value:g} (Benjamini-Hochberg over all "
-        f"{len(effects)} feature-treatment pairs) and |effect| &ge; {hit_min_effect:g} "
+        f"{effects['feature'].nunique()} features. Hits: q &lt; {settings['hit_q_value']:g} (Benjamini-Hochberg "
+        f"over all {len(effects)} feature-treatment pairs) and |effect| &ge; {settings['hit_min_log_ratio']:g} "
         f"(natural-log ratio for log-scale features).</p>"
     ) + table_tag(plates)
-    hits = effects[effects["hit"]].sort_values("q_value")
-    columns = ["feature", "treatment", "scale", "estimate", "ci_low", "ci_high", "ratio", "q_value", "n_wells"]
-    hit_html = "<p>No hits.</p>" if hits.empty else table_tag(hits[columns])
-    forest = "".join(
-        figure_tag(forest_plot(effects, f, ci_level), f"forest plot {f}") for f in effects["feature"].unique()
-    )
-    component_columns = [
-        "feature",
-        "scale",
-        "batch_variance",
-        "plate_variance",
-        "residual_variance",
-        "icc_batch_plate",
-        "converged",
-        "method",
-        "note",
-    ]
-    components_table = effects.drop_duplicates("feature")[component_columns]
+
+
+def _components_html(effects: pd.DataFrame) -> str:
+    components_table = effects.drop_duplicates("feature")[COMPONENT_COLUMNS]
     flagged = effects[effects["note"].str.contains("treatment|batch only", regex=True) & ~effects["note"].eq("")]
     notes_html = (
         ""
         if flagged.empty
         else "<p>Rows with a note:</p>" + table_tag(flagged[["feature", "treatment", "estimate", "note"]])
     )
-    counts = ledger.groupby(["level", "rule"]).size().rename("count").reset_index() if len(ledger) else ledger
-    ledger_html = (
-        "<p>Nothing was excluded.</p>"
-        if ledger.empty
-        else table_tag(counts)
-        + "<p>Wells and plates left out of the model:</p>"
-        + table_tag(ledger[ledger["level"] != "site_frame"])
-    )
-    batch_html = "<p>No diagnostics.</p>"
-    if variance is not None and components is not None:
-        wide = variance.pivot(index="feature", columns="stage", values=["batch_share", "plate_share", "residual_share"])
+    return table_tag(components_table) + notes_html
+
+
+def _ledger_html(ledger: pd.DataFrame) -> str:
+    if ledger.empty:
+        return "<p>Nothing was excluded.</p>"
+    counts = ledger.groupby(["level", "rule"]).size().rename("count").reset_index()
+    left_out = ledger[ledger["level"] != "site_frame"]
+    return table_tag(counts) + "<p>Wells and plates left out of the model:</p>" + table_tag(left_out)
+
+
+def _batch_html(results: ScreenResults) -> str:
+    html = "<p>No diagnostics.</p>"
+    if results.variance is not None and results.components is not None:
+        shares = ("batch_share", "plate_share", "residual_share")
+        wide = results.variance.pivot(index="feature", columns="stage", values=list(shares))
         wide.columns = [f"{share}_{stage}" for share, stage in wide.columns]
-        order = [
-            f"{share}_{stage}"
-            for share in ("batch_share", "plate_share", "residual_share")
-            for stage in ("before", "after")
-        ]
-        batch_html = (
-            figure_tag(batch_components_plot(components), "principal components by batch")
+        order = [f"{share}_{stage}" for share in shares for stage in ("before", "after")]
+        html = (
+            figure_tag(batch_components_plot(results.components), "principal components by batch")
             + "<p>Share of treatment-adjusted variance between batches, plates within batch and wells, "
             "before and after correction:</p>" + table_tag(wide[order].reset_index())
         )
-    if correction_notes:
-        batch_html += "<ul>" + "".join(f"<li>{escape(n)}</li>" for n in correction_notes) + "</ul>"
-    dose_html = "<p>No compound has enough doses for a dose-response fit.</p>"
-    if dose_fits is not None and len(dose_fits):
-        shown = dose_fits[
-            [
-                "feature",
-                "condition",
-                "ec50",
-                "ec50_ci_low",
-                "ec50_ci_high",
-                "dose_unit",
-                "hill",
-                "top",
-                "identifiable",
-                "flag",
-            ]
-        ]
-        figures = "".join(
-            figure_tag(
-                dose_response_plot(
-                    fit,
-                    dose_points[
-                        (dose_points["feature"] == fit["feature"])
-                        & ((dose_points["condition"] == fit["condition"]) | (dose_points["role"] == "negative_control"))
-                    ],
-                ),
-                f"dose-response {fit['condition']} {fit['feature']}",
-            )
-            for _, fit in dose_fits[dose_fits["identifiable"]].iterrows()
-        )
-        dose_html = (
-            table_tag(shown)
-            + "<p>Curves of the identifiable fits (red; shaded: EC50 interval):</p>"
-            + (figures or "<p>None is identifiable.</p>")
-        )
-    design_html = "<p>Not run.</p>"
-    if design is not None and len(design):
-        design_html = (
-            "<p>Simulated screens on this design, with this screen's variance components for "
-            f"{escape(design['feature'].iloc[0])} and a planted effect of {design['effect'].iloc[0]:g} "
-            "(model scale) on every treatment. Coverage should be near the nominal level; power is the "
-            "share of treatments detected at p &lt; 0.05.</p>" + table_tag(design)
-        )
+    if results.correction_notes:
+        html += "<ul>" + "".join(f"<li>{escape(n)}</li>" for n in results.correction_notes) + "</ul>"
+    return html
+
+
+def _dose_html(dose_fits: pd.DataFrame | None, dose_points: pd.DataFrame | None) -> str:
+    if dose_fits is None or not len(dose_fits):
+        return "<p>No compound has enough doses for a dose-response fit.</p>"
+    figures = ""
+    for _, fit in dose_fits[dose_fits["identifiable"]].iterrows():
+        same_compound = (dose_points["condition"] == fit["condition"]) | (dose_points["role"] == "negative_control")
+        points = dose_points[(dose_points["feature"] == fit["feature"]) & same_compound]
+        figures += figure_tag(dose_response_plot(fit, points), f"dose-response {fit['condition']} {fit['feature']}")
+    return (
+        table_tag(dose_fits[DOSE_COLUMNS])
+        + "<p>Curves of the identifiable fits (red; shaded: EC50 interval):</p>"
+        + (figures or "<p>None is identifiable.</p>")
+    )
+
+
+def _design_html(design: pd.DataFrame | None) -> str:
+    if design is None or not len(design):
+        return "<p>Not run.</p>"
+    return (
+        "<p>Simulated screens on this design, with this screen's variance components for "
+        f"{escape(design['feature'].iloc[0])} and a planted effect of {design['effect'].iloc[0]:g} "
+        "(model scale) on every treatment. Coverage should be near the nominal level; power is the "
+        "share of treatments detected at p &lt; 0.05.</p>" + table_tag(design)
+    )
+
+
+def build_screen_report(results: ScreenResults, settings: dict, provenance: dict) -> str:
+    """The self-contained HTML report of the whole screen."""
+    effects = results.effects
+    hits = effects[effects["hit"]].sort_values("q_value")
+    hit_html = "<p>No hits.</p>" if hits.empty else table_tag(hits[EFFECT_COLUMNS])
+    forest = "".join(
+        figure_tag(forest_plot(effects, f, settings["ci_level"]), f"forest plot {f}")
+        for f in effects["feature"].unique()
+    )
     sections = [
-        ("Summary", summary),
+        ("Summary", _summary_html(results, settings)),
         ("Method", _method_text(settings, provenance)),
         ("Hits", hit_html),
         ("Volcano plot", figure_tag(volcano_plot(effects), "volcano plot")),
         ("Effects with confidence intervals", forest),
-        ("Dose-response", dose_html),
-        ("Batch diagnostics", batch_html),
-        ("Variance components", table_tag(components_table) + notes_html),
-        ("Design check", design_html),
-        ("Exclusion ledger", ledger_html),
-        ("All effects", table_tag(effects[columns + ["p_value", "hit", "note"]])),
+        ("Dose-response", _dose_html(results.dose_fits, results.dose_points)),
+        ("Batch diagnostics", _batch_html(results)),
+        ("Variance components", _components_html(effects)),
+        ("Design check", _design_html(results.design)),
+        ("Exclusion ledger", _ledger_html(results.ledger)),
+        ("All effects", table_tag(effects[EFFECT_COLUMNS + ["p_value", "hit", "note"]])),
     ]
     return page("plateloom screen report", sections, provenance)
