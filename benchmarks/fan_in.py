@@ -90,7 +90,7 @@ def synthetic_well(rng: np.random.Generator, well: str, rows: int) -> pd.DataFra
         "solidity",
         "major_axis_um",
         "minor_axis_um",
-        "form_factor",
+        "isoperimetric_quotient",
     ):
         data[name] = rng.lognormal(3, 0.2, n)
     for channel in ("nuclear", "reporter"):

@@ -46,8 +46,8 @@ def prepare(work: Path, frames: int, side: int) -> None:
             "sites_per_well": 2,
             "cells_per_site": int(round(scenario["cells_per_site"] * scale)),
             "batches": [
-                {"batch": "day1", "plates": ["TW-D1-P1", "TW-D1-P2"]},
-                {"batch": "day2", "plates": ["TW-D2-P1", "TW-D2-P2"]},
+                {"batch": "day1", "plates": ["WV-D1-P1", "WV-D1-P2"]},
+                {"batch": "day2", "plates": ["WV-D2-P1", "WV-D2-P2"]},
             ],
         }
     )

@@ -1,5 +1,5 @@
 """The demo's collective conditions end to end: the decoupler's planted effect on the coupling readouts is
-found with an interval excluding 0, the no-effect compound's intervals cover 0, deaths spread under TW-106."""
+found with an interval excluding 0, the no-effect compound's intervals cover 0, deaths spread under LOOM-106."""
 
 import pandas as pd
 import pytest
@@ -10,7 +10,7 @@ from scipy import stats
 from plateloom.demo.scenario import load_scenario, planted_collective
 from plateloom.setup.screen_sheet import load_layout
 
-KEPT = ("vehicle", "TW-104", "TW-105", "TW-106")
+KEPT = ("vehicle", "LOOM-104", "LOOM-105", "LOOM-106")
 
 
 @pytest.fixture(scope="module")
@@ -40,7 +40,7 @@ def test_decoupler_moves_the_coupling_readouts_and_the_null_compound_does_not(co
     truth = planted_collective(scenario, layout)
     effects = pd.read_parquet(collective_screen / "results/effects.parquet")
     decoupled = truth[(truth["quantity"] == "coupling") & (truth["ratio"] < 0.1)]
-    assert set(decoupled["condition"]) == {"TW-105"}
+    assert set(decoupled["condition"]) == {"LOOM-105"}
     for _, planted in decoupled.iterrows():
         for readout in planted["readouts"]:
             row = effects[(effects["treatment"] == planted["treatment"]) & (effects["feature"] == readout)].iloc[0]
@@ -48,7 +48,7 @@ def test_decoupler_moves_the_coupling_readouts_and_the_null_compound_does_not(co
             assert row["ci_high"] < 0, (planted["treatment"], readout, row["estimate"], row["ci_low"], row["ci_high"])
     # The no-effect compound: simultaneous 95% intervals (Bonferroni over its doses and the readouts) cover 0.
     readouts = [r for rs in truth["readouts"] for r in rs]
-    null = effects[(effects["condition"] == "TW-104") & effects["feature"].isin(readouts)]
+    null = effects[(effects["condition"] == "LOOM-104") & effects["feature"].isin(readouts)]
     assert len(null) == 4 * len(set(readouts))
     wide = stats.t.ppf(1 - 0.025 / len(null), null["df"]) * null["std_error"]
     assert ((null["estimate"] - wide <= 0) & (0 <= null["estimate"] + wide)).all(), null[
@@ -62,7 +62,7 @@ def test_deaths_spread_under_the_spreading_compound(collective_screen):
         [pd.read_parquet(p) for p in sorted((collective_screen / "results/wells").glob("plate=*/*.parquet"))]
     )
     kept = wells[wells["excluded_by"] == ""]
-    spreading = kept[(kept["condition"] == "TW-106") & (kept["dose"] == 10)]
+    spreading = kept[(kept["condition"] == "LOOM-106") & (kept["dose"] == 10)]
     control = kept[kept["role"] == "negative_control"]
     # Events cluster in space and time beyond chance (Knox test per well; combined by Fisher's method).
     p_values = spreading["spreading_p_value"].dropna().to_numpy()

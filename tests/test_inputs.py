@@ -128,7 +128,7 @@ def test_unknown_config_key_stops_the_workflow_with_its_name(workflow_dir):
 
 def test_unknown_well_stops_the_workflow_naming_layout_row(workflow_dir):
     layout = workflow_dir / "config" / "layouts" / "demo_96.csv"
-    layout.write_text(layout.read_text() + "Q01,test,TW-101,1,uM\n")
+    layout.write_text(layout.read_text() + "Q01,test,LOOM-101,1,uM\n")
     result = run_snakemake(workflow_dir, "-n", check=False)
     output = result.stdout + result.stderr
     assert result.returncode != 0

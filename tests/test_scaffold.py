@@ -34,7 +34,7 @@ OME = {"PhysicalSizeX": 0.8, "PhysicalSizeXUnit": "µm", "TimeIncrement": 300.0,
             ["B03_s1_t000_dapi.tif", "B03_s1_t001_dapi.tif", "B03_s2_t000_gfp.tif", "C11_s2_t001_gfp.tif"],
             "{well}_s{site}_t{frame}_{channel}.tif",
         ),
-        (["B03-fld1-hoechst.tiff", "B03-fld2-ktr.tiff", "H12-fld1-ktr.tiff"], "{well}-fld{site}-{channel}.tiff"),
+        (["B03-pos1-hoechst.tiff", "B03-pos2-ktr.tiff", "H12-pos1-ktr.tiff"], "{well}-pos{site}-{channel}.tiff"),
         (
             [
                 "exp7_A01_site3_T0007_cy5.ome.tif",
@@ -72,7 +72,7 @@ def _write_plate(folder, style, seed, day):
                     )
             else:
                 tifffile.imwrite(
-                    folder / f"{well}-fld1-{name}.tiff", stack[:, channel], ome=True, metadata={"axes": "TYX", **OME}
+                    folder / f"{well}-pos1-{name}.tiff", stack[:, channel], ome=True, metadata={"axes": "TYX", **OME}
                 )
     for path in folder.iterdir():
         os.utime(path, (day, day))
@@ -82,7 +82,7 @@ def _fill_layout(path):
     layout = pd.read_csv(path, dtype=str, keep_default_na=False)
     roles = ["negative_control"] * 4 + ["test"] * 4 + ["test"] * 4
     layout["role"] = roles
-    layout["condition"] = ["vehicle"] * 4 + ["TW-101"] * 4 + ["TW-104"] * 4
+    layout["condition"] = ["vehicle"] * 4 + ["LOOM-101"] * 4 + ["LOOM-104"] * 4
     layout["dose"] = [""] * 4 + ["1"] * 8
     layout["dose_unit"] = [""] * 4 + ["uM"] * 8
     layout.to_csv(path, index=False)
@@ -102,7 +102,7 @@ def test_scaffold_then_run_to_effects_without_editing_the_config(tmp_path, style
         text=True,
     )
     assert scaffold.returncode == 0, scaffold.stderr
-    expected = "{well}_s{site}_t{frame}_{channel}.tif" if style == "per_frame" else "{well}-fld{site}-{channel}.tiff"
+    expected = "{well}_s{site}_t{frame}_{channel}.tif" if style == "per_frame" else "{well}-pos{site}-{channel}.tiff"
     assert f"filename template: {expected}" in scaffold.stdout
     assert "sites per well: 1; frames per site: 4" in scaffold.stdout
     assert "channels: hoechst, ktr" in scaffold.stdout and "pixel size: 0.8 um (OME metadata)" in scaffold.stdout
@@ -128,7 +128,7 @@ def test_scaffold_then_run_to_effects_without_editing_the_config(tmp_path, style
     assert "0 error(s)." in check.stdout and "2 plates, 24 wells" in check.stdout
     run_snakemake(workdir, "myscreen/results/effects.parquet", "--configfile", "myscreen/config.yaml")
     effects = pd.read_parquet(workdir / "myscreen/results/effects.parquet")
-    assert {"TW-101 1 uM", "TW-104 1 uM"} <= set(effects["treatment"])
+    assert {"LOOM-101 1 uM", "LOOM-104 1 uM"} <= set(effects["treatment"])
     assert effects["estimate"].notna().all() and effects["ci_low"].notna().all()
     cells = pd.concat(
         pd.read_parquet(path) for path in (workdir / "myscreen/results/cells/plate=plateA").rglob("*.parquet")
@@ -161,14 +161,14 @@ def _planted_problem_screen(root):
     layouts.mkdir()
     good = (
         "well,role,condition,dose,dose_unit\nB02,negative_control,vehicle,,\n"
-        "B03,test,TW-101,1,uM\nB04,test,TW-102,1,uM\n"
+        "B03,test,LOOM-101,1,uM\nB04,test,LOOM-102,1,uM\n"
     )
-    (layouts / "good.csv").write_text(good + "D05,test,TW-103,1,uM\n")  # 6: a layout well without images
+    (layouts / "good.csv").write_text(good + "D05,test,LOOM-103,1,uM\n")  # 6: a layout well without images
     (layouts / "no_controls.csv").write_text(  # 7: no negative controls
-        "well,role,condition,dose,dose_unit\nB02,test,vehicle,,\nB03,test,TW-101,1,uM\nB04,test,TW-102,1,uM\n"
+        "well,role,condition,dose,dose_unit\nB02,test,vehicle,,\nB03,test,LOOM-101,1,uM\nB04,test,LOOM-102,1,uM\n"
     )
     (layouts / "no_unit.csv").write_text(  # 8: a dose without unit
-        "well,role,condition,dose,dose_unit\nB02,negative_control,vehicle,,\nB03,test,TW-101,1,\nB04,test,TW-102,1,uM\n"
+        "well,role,condition,dose,dose_unit\nB02,negative_control,vehicle,,\nB03,test,LOOM-101,1,\nB04,test,LOOM-102,1,uM\n"
     )
     sheet = root / "plates.csv"
     sheet.write_text(
@@ -224,7 +224,7 @@ def test_check_command_exits_non_zero_on_errors_and_names_a_bad_config_key(tmp_p
 def test_survey_describes_a_folder_without_writing(tmp_path):
     _write_plate(tmp_path / "one_plate", "stacks", 3, time.time())
     survey = survey_folder(str(tmp_path / "one_plate"))
-    assert survey.template == "{well}-fld{site}-{channel}.tiff"
+    assert survey.template == "{well}-pos{site}-{channel}.tiff"
     assert survey.frames == 4 and survey.sites == 1 and survey.channels == ["hoechst", "ktr"]
     assert survey.image_shape == (128, 128) and survey.dtype == "uint16"
     assert survey.frame_interval_min == pytest.approx(5.0)

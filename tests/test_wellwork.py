@@ -262,8 +262,8 @@ def test_neighbourhood_matches_brute_force_distances():
     assert alone_counts[0] == 0 and np.isnan(alone_nearest[0])
 
 
-def test_axis_lengths_and_form_factor_match_geometry():
-    # An ellipse with semi-axes a, b has axes 2a and 2b; a disk has form factor 4 pi A / P^2 = 1 (geometry;
+def test_axis_lengths_and_isoperimetric_quotient_match_geometry():
+    # An ellipse with semi-axes a, b has axes 2a and 2b; a disk has isoperimetric quotient 4 pi A / P^2 = 1 (geometry;
     # the pixel perimeter estimate makes it slightly lower).
     mask = np.zeros((200, 200), bool)
     mask[ellipse(100, 100, 20, 40)] = True
@@ -277,5 +277,5 @@ def test_axis_lengths_and_form_factor_match_geometry():
             assert row["major_axis_um"] == pytest.approx(2 * 40 * PIXEL, rel=0.03)
             assert row["minor_axis_um"] == pytest.approx(2 * 20 * PIXEL, rel=0.05)
         else:
-            assert 0.9 < row["form_factor"] <= 1.05
+            assert 0.9 < row["isoperimetric_quotient"] <= 1.05
             assert row["std_intensity_dna"] < 0.1 * row["mean_intensity_dna"]

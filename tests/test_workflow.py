@@ -18,7 +18,7 @@ from scipy import stats
 from plateloom.demo.scenario import load_scenario, planted_ratios
 from plateloom.setup.screen_sheet import load_layout
 
-NEW_PLATE = "TW-D3-P3"
+NEW_PLATE = "WV-D3-P3"
 
 
 @pytest.fixture(scope="module")
@@ -103,10 +103,10 @@ def test_planted_effects_recovered_within_their_intervals(finished_screen):
     assert positive["ci_low"] > 0
     # The no-effect compound: simultaneous 95% intervals (Bonferroni over its doses and the planted features) cover 0,
     # and it is no hit on any feature.
-    null = merged[merged["condition"] == "TW-104"]
+    null = merged[merged["condition"] == "LOOM-104"]
     wide = stats.t.ppf(1 - 0.025 / len(null), null["df"]) * null["std_error"]
     assert ((null["estimate"] - wide <= 0) & (0 <= null["estimate"] + wide)).all()
-    assert not effects.loc[effects["condition"] == "TW-104", "hit"].any()
+    assert not effects.loc[effects["condition"] == "LOOM-104", "hit"].any()
 
 
 @pytest.mark.slow
@@ -116,15 +116,15 @@ def test_planted_ec50s_fall_inside_their_intervals(finished_screen):
     scenario = load_scenario(str(finished_screen / "resources/demo/scenario.yaml"))
     planted = {c["name"]: c["ec50_um"] for c in scenario["compounds"]}
     for compound, feature in (
-        ("TW-101", "area_um2"),
-        ("TW-102", "mean_intensity_reporter"),
-        ("TW-103", "speed_um_per_min"),
+        ("LOOM-101", "area_um2"),
+        ("LOOM-102", "mean_intensity_reporter"),
+        ("LOOM-103", "speed_um_per_min"),
     ):
         fit = fits.loc[(compound, feature)]
         assert fit["identifiable"], fit["flag"]
         assert fit["ec50_ci_low"] <= planted[compound] <= fit["ec50_ci_high"], (compound, fit["ec50"])
     # The no-effect compound has no identifiable dose-response on any feature, and says why.
-    null = fits.loc["TW-104"]
+    null = fits.loc["LOOM-104"]
     assert not null["identifiable"].any() and null["flag"].str.contains("no dose-response").all()
 
 
@@ -154,7 +154,7 @@ def test_reports_are_self_contained(finished_screen):
         "Method",
     ):
         assert f"<h2>{section}</h2>" in report
-    plate = (finished_screen / "results/reports/plates/TW-D1-P1.html").read_text()
+    plate = (finished_screen / "results/reports/plates/WV-D1-P1.html").read_text()
     assert "Z&#x27;-factor and SSMD per feature" in plate
     assert plate.count("data:image/png;base64,") >= 4
     assert "<h2>Illumination</h2>" in plate and "illumination profiles" in plate
@@ -169,7 +169,7 @@ def test_snakemake_report_holds_the_plate_and_screen_reports(finished_screen, tm
     names = zipfile.ZipFile(target).namelist()
     for expected in (
         "screen.html",
-        "TW-D1-P1.html",
+        "WV-D1-P1.html",
         "volcano.png",
         "batch_pca.png",
         "effects.csv",
@@ -200,7 +200,7 @@ def test_hard_stop_during_per_well_stage_then_resume_gives_identical_tables(fini
     run_snakemake(workdir, "--unlock")  # a killed Snakemake leaves its lock behind
     run_snakemake(workdir, "--rerun-incomplete")
     for table in ["effects.parquet"] + [
-        f"wells/plate={p}/part-0.parquet" for p in ("TW-D1-P1", "TW-D2-P2", "TW-D3-P1")
+        f"wells/plate={p}/part-0.parquet" for p in ("WV-D1-P1", "WV-D2-P2", "WV-D3-P1")
     ]:
         pd.testing.assert_frame_equal(
             pd.read_parquet(workdir / "results" / table), pd.read_parquet(finished_screen / "results" / table)
@@ -231,7 +231,7 @@ def test_planted_edge_effect_detected_then_removed_by_median_polish(finished_scr
     assert "analyse_wells" not in re.findall(r"^rule (\w+):", result.stdout + result.stderr, flags=re.M)
     after = edges()
     assert after["edge_shift_corrected"].abs().median() < 0.4 * np.log(1.12)
-    wells = pd.read_parquet(finished_screen / "results/wells/plate=TW-D1-P1/part-0.parquet")
+    wells = pd.read_parquet(finished_screen / "results/wells/plate=WV-D1-P1/part-0.parquet")
     assert f"{reporter}_b_score" in wells and f"{reporter}_uncorrected" in wells
 
 
@@ -295,23 +295,23 @@ def test_keep_going_finishes_the_good_plate_when_one_image_is_corrupt(tmp_path):
     sheet = workdir / "config" / "plates.csv"
     lines = sheet.read_text().splitlines()
     sheet.write_text(
-        "\n".join([lines[0]] + [line for line in lines[1:] if line.split(",")[0] in ("TW-D1-P1", "TW-D2-P1")]) + "\n"
+        "\n".join([lines[0]] + [line for line in lines[1:] if line.split(",")[0] in ("WV-D1-P1", "WV-D2-P1")]) + "\n"
     )
     config_path = workdir / "config" / "config.yaml"
     config = yaml.safe_load(config_path.read_text())
     config["demo"]["frames"] = 3
     config_path.write_text(yaml.safe_dump(config, sort_keys=False))
-    run_snakemake(workdir, "demo_images/TW-D1-P1", "demo_images/TW-D2-P1")
-    bad = workdir / "demo_images" / "TW-D2-P1" / "A01_s1_nuclear.tif"
+    run_snakemake(workdir, "demo_images/WV-D1-P1", "demo_images/WV-D2-P1")
+    bad = workdir / "demo_images" / "WV-D2-P1" / "A01_s1_nuclear.tif"
     bad.write_bytes(bad.read_bytes()[:200])
     result = run_snakemake(workdir, "--keep-going", check=False)
     assert result.returncode != 0
-    assert (workdir / "results/reports/plates/TW-D1-P1.html").exists()
-    assert not (workdir / "results/reports/plates/TW-D2-P1.html").exists()
+    assert (workdir / "results/reports/plates/WV-D1-P1.html").exists()
+    assert not (workdir / "results/reports/plates/WV-D2-P1.html").exists()
     assert not (workdir / "results/reports/screen.html").exists()
-    log = (workdir / "results/logs/analyse_wells/TW-D2-P1_000.log").read_text()
+    log = (workdir / "results/logs/analyse_wells/WV-D2-P1_000.log").read_text()
     # a truncated stack is either unreadable or short of frames; either way the file and the fix are named
     assert "A01_s1_nuclear.tif" in log and "re-copy" in log
     assert "cannot be read as TIFF" in log or "different frame counts (nuclear: 1 in A01_s1_nuclear.tif" in log
-    assert not (workdir / "results/cells/plate=TW-D2-P1/chunk=000").exists()
-    assert (workdir / "results/cells/plate=TW-D2-P1/chunk=001").exists()  # the other chunk of that plate is kept
+    assert not (workdir / "results/cells/plate=WV-D2-P1/chunk=000").exists()
+    assert (workdir / "results/cells/plate=WV-D2-P1/chunk=001").exists()  # the other chunk of that plate is kept

@@ -73,7 +73,7 @@ REGISTRY: tuple[Column, ...] = (
     Column("solidity", _CW, "measure", "", "observations"),
     Column("major_axis_um", _CW, "measure", "um", "observations", "log"),
     Column("minor_axis_um", _CW, "measure", "um", "observations", "log"),
-    Column("form_factor", _CW, "measure", "", "observations", description="4 pi area / perimeter^2"),
+    Column("isoperimetric_quotient", _CW, "measure", "", "observations", description="4 pi area / perimeter^2"),
     Column("mean_intensity_{channel}", _CW, "measure", "grey level", "observations", "log"),
     Column("integrated_intensity_{channel}", _CW, "measure", "grey level x px", "observations", "log"),
     Column("std_intensity_{channel}", _CW, "measure", "grey level", "observations"),

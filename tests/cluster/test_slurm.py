@@ -54,7 +54,7 @@ def test_demo_screen_through_slurm_equals_local_run(slurm, tmp_path):
     ).stdout
     finished = {line.split()[0] for line in queue.splitlines() if line.endswith("COMPLETED")}
     assert slurm_ids <= finished
-    for table in ("effects.parquet", "wells/plate=TW-D1-P1/part-0.parquet", "wells/plate=TW-D3-P2/part-0.parquet"):
+    for table in ("effects.parquet", "wells/plate=WV-D1-P1/part-0.parquet", "wells/plate=WV-D3-P2/part-0.parquet"):
         pd.testing.assert_frame_equal(
             pd.read_parquet(local / "results" / table), pd.read_parquet(cluster / "results" / table)
         )

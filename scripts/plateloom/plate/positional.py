@@ -54,7 +54,12 @@ def median_polish(grid: np.ndarray, max_iterations: int = 20, tolerance: float =
 
 
 def b_scores(grid: np.ndarray) -> np.ndarray:
-    """B-score (Brideau et al. 2003): median-polish residuals divided by 1.4826 x their MAD."""
+    """B-score: median-polish residuals divided by 1.4826 x their MAD.
+
+    Brideau et al. (2003) divide by the unscaled MAD; plateloom scales it by 1.4826 so that a
+    B-score reads on the same scale as a robust z (1 = one robust SD). Divide by 1.4826 to get
+    the published values.
+    """
     residual = median_polish(grid).residual
     scale = MAD_TO_SD * mad(residual[np.isfinite(residual)])
     return residual / scale if scale > 0 else np.full(residual.shape, np.nan)

@@ -33,7 +33,7 @@ IMAGE_EXTENSIONS = (".ome.tiff", ".ome.tif", ".tiff", ".tif")
 SEPARATORS = r"([_\-. ])"
 WELL_TOKEN = re.compile(r"^[A-Za-z]{1,2}\d{1,2}$")
 NUMBERED_TOKEN = re.compile(r"^([A-Za-z]*)(\d+)$")
-SITE_PREFIXES = ("s", "site", "f", "fld", "field", "p", "pos", "position", "v", "view")
+SITE_PREFIXES = ("s", "site", "f", "field", "p", "pos", "position", "v", "view")
 FRAME_PREFIXES = ("t", "time", "tp", "frame", "fr")
 NUCLEAR_STAINS = re.compile(r"dapi|hoechst|nuc|dna|h2b|draq", re.IGNORECASE)
 

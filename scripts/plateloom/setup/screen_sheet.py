@@ -89,7 +89,7 @@ def _sheet_row(row: pd.Series, line: int, path: str, seen: dict[str, int]) -> Pl
         raise InputError(
             where,
             f"plate id {plate!r} is empty or has characters other than letters, digits, '-', '_', '.'.",
-            "use a short id such as TW-D1-P1.",
+            "use a short id such as WV-D1-P1.",
         )
     if plate in seen:
         raise InputError(
@@ -122,7 +122,7 @@ def _sheet_row(row: pd.Series, line: int, path: str, seen: dict[str, int]) -> Pl
 
 
 def treatment_label(condition: str, dose: float | None, dose_unit: str) -> str:
-    """The name of one treatment: condition, and dose with unit when there is one ('TW-101 0.3 uM')."""
+    """The name of one treatment: condition, and dose with unit when there is one ('LOOM-101 0.3 uM')."""
     if dose is None or (isinstance(dose, float) and math.isnan(dose)):
         return condition
     return f"{condition} {dose:g} {dose_unit}"

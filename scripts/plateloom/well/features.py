@@ -155,7 +155,7 @@ def _empty_table(columns: list[str]) -> pd.DataFrame:
 def _shape_measures(
     labels: np.ndarray, pixels: ObjectPixels, area: np.ndarray, pixel_size_um: float
 ) -> dict[str, np.ndarray]:
-    """Area, perimeter, moments-based axes and eccentricity, solidity, form factor, centroid, border
+    """Area, perimeter, moments-based axes and eccentricity, solidity, isoperimetric quotient, centroid, border
     flag (``area`` in pixels)."""
     safe_area = np.where(area > 0, area, 1.0)
     cy, cx = pixels.sums(pixels.row.astype(float)) / safe_area, pixels.sums(pixels.col.astype(float)) / safe_area
@@ -173,7 +173,7 @@ def _shape_measures(
         "solidity": area / np.where(convex > 0, convex, 1.0),
         "major_axis_um": 4 * np.sqrt(major) * pixel_size_um,
         "minor_axis_um": 4 * np.sqrt(minor) * pixel_size_um,
-        "form_factor": np.where(perimeter > 0, 4 * np.pi * area / np.maximum(perimeter, 1e-12) ** 2, np.nan),
+        "isoperimetric_quotient": np.where(perimeter > 0, 4 * np.pi * area / np.maximum(perimeter, 1e-12) ** 2, np.nan),
         "centroid_x_um": cx * pixel_size_um,
         "centroid_y_um": cy * pixel_size_um,
         "touches_border": _touching_border(labels, pixels.count),
@@ -209,7 +209,7 @@ def measure_objects(
 
     ``planes`` is (channels, y, x); ``background`` the per-channel background level that is
     subtracted from intensities. Columns: object, area_um2, perimeter_um, eccentricity,
-    solidity, major_axis_um, minor_axis_um, form_factor (4 pi area / perimeter^2, 1 for a
+    solidity, major_axis_um, minor_axis_um, isoperimetric_quotient (4 pi area / perimeter^2, 1 for a
     disk), centroid_x_um, centroid_y_um, touches_border, and per channel c mean_intensity_<c>
     (grey levels above background), integrated_intensity_<c> (mean above background x area in
     pixels) and std_intensity_<c> (grey levels). Per channel of ``texture.channels``:
@@ -289,7 +289,7 @@ def object_columns(channels: list[str], texture_channels: list[str], with_cells:
             "solidity",
             "major_axis_um",
             "minor_axis_um",
-            "form_factor",
+            "isoperimetric_quotient",
             "centroid_x_um",
             "centroid_y_um",
             "touches_border",
