@@ -1,0 +1,1 @@
+"""The embedded demo screen: an invented scenario simulated into images, with its planted truth."""

@@ -1,0 +1,97 @@
+"""The demo scenario: reading it, its plates and its planted truth (ratios to the negative control).
+
+Light on purpose: the parse-time plan reads the scenario for the demo plates' sizes without
+importing the image simulator.
+"""
+
+from __future__ import annotations
+
+import pandas as pd
+import yaml
+
+QUANTITIES = ("area", "reporter", "speed", "nuclear", "cell_count", "coupling", "spreading")
+WITHOUT_NUISANCE = ("coupling", "spreading")
+
+
+def load_scenario(path: str, frames: int | None = None, image_size_px: int | None = None) -> dict:
+    """Read the scenario YAML; ``frames`` and ``image_size_px`` override it for small runs."""
+    with open(path, encoding="utf-8") as handle:
+        scenario = yaml.safe_load(handle)
+    if frames:
+        scenario["frames"] = int(frames)
+    if image_size_px:
+        scenario["image_size_px"] = int(image_size_px)
+    return scenario
+
+
+def demo_plates(scenario: dict) -> dict[str, str]:
+    """Plate id -> batch for every plate the scenario defines."""
+    return {plate: entry["batch"] for entry in scenario["batches"] for plate in entry["plates"]}
+
+
+def hill_ratio(dose: float, max_ratio: float, ec50: float, hill: float) -> float:
+    """Ratio to control at ``dose`` (same unit as ``ec50``): 1 + (max - 1) d^h / (d^h + EC50^h)."""
+    if not dose or dose <= 0:
+        return 1.0
+    fraction = dose**hill / (dose**hill + ec50**hill)
+    return 1.0 + (max_ratio - 1.0) * fraction
+
+
+def treatment_ratios(scenario: dict, condition: str, dose: float) -> dict[str, float]:
+    """Planted ratio to the negative control for each quantity of one treatment."""
+    ratios = {q: 1.0 for q in QUANTITIES}
+    for compound in scenario["compounds"]:
+        if compound["name"] == condition:
+            for quantity, max_ratio in compound["max_ratio"].items():
+                ratios[quantity] = hill_ratio(dose, max_ratio, compound["ec50_um"], compound["hill"])
+    return ratios
+
+
+def feature_of_quantity(scenario: dict) -> dict[str, str]:
+    """Which well feature (column name) carries each planted quantity."""
+    reporter = scenario["channels"]["reporter"]
+    return {"area": "area_um2", "reporter": f"mean_intensity_{reporter}", "speed": "speed_um_per_min"}
+
+
+def planted_ratios(scenario: dict, layout: pd.DataFrame) -> pd.DataFrame:
+    """The planted truth: one row per (treatment, feature) with the ratio to the negative control.
+
+    Covers every non-control treatment of the layout and the three planted quantities
+    (nuclear area, reporter mean intensity, track speed); a ratio of 1 means no effect.
+    """
+    features = feature_of_quantity(scenario)
+    return pd.DataFrame(
+        [
+            keys | {"feature": feature, "ratio": ratios[quantity]}
+            for keys, ratios in _treated(scenario, layout)
+            for quantity, feature in features.items()
+        ]
+    )
+
+
+def _treated(scenario: dict, layout: pd.DataFrame):
+    """(treatment, condition, dose) and the planted ratios of every non-control treatment of ``layout``."""
+    for _, well in layout[layout["role"].isin(["test", "positive_control"])].drop_duplicates("treatment").iterrows():
+        keys = {"treatment": well["treatment"], "condition": well["condition"], "dose": well["dose"]}
+        yield keys, treatment_ratios(scenario, well["condition"], float(well["dose"]))
+
+
+COLLECTIVE_READOUTS = {
+    "coupling": ("phase_order_{r}", "neighbour_correlation_{r}", "coupled_link_fraction_{r}"),
+    "spreading": ("spreading_index",),
+}
+
+
+def planted_collective(scenario: dict, layout: pd.DataFrame) -> pd.DataFrame:
+    """The planted truth of the collective quantities: one row per (treatment, quantity) with the ratio
+    to the negative control of neighbour coupling (1 coupled as the controls, 0 decoupled) and of the
+    chance that a death spreads, and the readouts (well features) that should move with it."""
+    reporter = scenario["channels"]["reporter"]
+    return pd.DataFrame(
+        [
+            keys
+            | {"quantity": quantity, "ratio": ratios[quantity], "readouts": [r.format(r=reporter) for r in readouts]}
+            for keys, ratios in _treated(scenario, layout)
+            for quantity, readouts in COLLECTIVE_READOUTS.items()
+        ]
+    )

@@ -1,0 +1,1 @@
+"""Reading images (one interface, one reader per source) and writing tables with provenance."""

@@ -1,0 +1,106 @@
+"""Parquet output: atomic writes with provenance in the file metadata; Hive-style paths."""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+import platform
+from importlib import metadata
+
+import pandas as pd
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+PROVENANCE_KEY = b"plateloom_provenance"
+EXTRA_KEY = b"plateloom_extra"
+_PACKAGES = ("plateloom", "numpy", "scipy", "scikit-image", "pandas", "pyarrow", "statsmodels", "snakemake")
+
+
+def config_digest(settings: object) -> str:
+    """SHA-256 of the settings as canonical JSON (sorted keys): the same settings, the same digest."""
+    return hashlib.sha256(json.dumps(settings, sort_keys=True, default=str).encode()).hexdigest()
+
+
+def provenance(settings: object) -> dict[str, object]:
+    """What produced an output: digest of the settings used and the package versions."""
+    versions = {}
+    for name in _PACKAGES:
+        try:
+            versions[name] = metadata.version(name)
+        except metadata.PackageNotFoundError:
+            versions[name] = "not installed"
+    return {"config_sha256": config_digest(settings), "python": platform.python_version(), "packages": versions}
+
+
+def temporary_path(path: str) -> str:
+    """A hidden temporary file beside ``path`` (same folder, so the final rename is atomic)."""
+    folder = os.path.dirname(path) or "."
+    os.makedirs(folder, exist_ok=True)
+    return os.path.join(folder, f".{os.path.basename(path)}.{os.getpid()}.tmp")
+
+
+def write_parquet(frame: pd.DataFrame, path: str, settings: object, extra: dict | None = None) -> None:
+    """Write ``frame`` to ``path`` atomically (temporary file in the same folder, then rename).
+
+    An interrupted write never leaves a readable partial file at ``path``. ``extra`` (JSON-able)
+    is stored in the file metadata and read back by ``read_extra``. Text and categorical
+    columns are dictionary-encoded, numbers are not; Snappy compression.
+    """
+    tmp = temporary_path(path)
+    table = pa.Table.from_pandas(frame, preserve_index=False)
+    meta = dict(table.schema.metadata or {})
+    meta[PROVENANCE_KEY] = json.dumps(provenance(settings), sort_keys=True).encode()
+    if extra is not None:
+        meta[EXTRA_KEY] = json.dumps(extra, sort_keys=True).encode()
+    table = table.replace_schema_metadata(meta)
+    # dictionary encoding only for text and categorical columns: measurements are almost all
+    # distinct, and a dictionary of them makes files larger and slower to write and read
+    keys = [
+        f.name
+        for f in table.schema
+        if pa.types.is_string(f.type) or pa.types.is_large_string(f.type) or pa.types.is_dictionary(f.type)
+    ]
+    pq.write_table(table, tmp, use_dictionary=keys)
+    os.replace(tmp, path)
+
+
+def write_profile_tiff(image, path: str, description: dict) -> None:
+    """Write a float32 image as a one-page TIFF atomically; ``description`` (JSON) goes in its ImageDescription."""
+    import numpy as np
+    import tifffile
+
+    tmp = temporary_path(path)
+    tifffile.imwrite(
+        tmp,
+        np.asarray(image, np.float32),
+        photometric="minisblack",
+        description=json.dumps(description, sort_keys=True),
+        metadata=None,
+    )
+    os.replace(tmp, path)
+
+
+def write_text(text: str, path: str) -> None:
+    """Write a text file (report, CSV) atomically."""
+    tmp = temporary_path(path)
+    with open(tmp, "w", encoding="utf-8") as handle:
+        handle.write(text)
+    os.replace(tmp, path)
+
+
+def read_provenance(path: str) -> dict[str, object]:
+    """The provenance record stored in a plateloom Parquet file."""
+    meta = pq.read_schema(path).metadata or {}
+    return json.loads(meta[PROVENANCE_KEY])
+
+
+def read_extra(path: str) -> dict:
+    """The ``extra`` record stored by ``write_parquet`` (empty if none)."""
+    meta = pq.read_schema(path).metadata or {}
+    return json.loads(meta[EXTRA_KEY]) if EXTRA_KEY in meta else {}
+
+
+def well_part_path(root: str, well: str) -> str:
+    """Path of one well's table inside a Hive-style chunk folder: <root>/well=<W>/part-0.parquet."""
+    return os.path.join(root, f"well={well}", "part-0.parquet")

@@ -1,0 +1,2 @@
+"""The per-plate stage (fan-in over wells): well summaries, exclusions, positional correction,
+normalization, plate QC."""

@@ -1,0 +1,1 @@
+"""Self-contained HTML pages of the plate and screen stages."""

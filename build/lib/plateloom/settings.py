@@ -1,0 +1,68 @@
+"""Settings from one source: the workflow's config schema holds every default.
+
+Each stage's settings object is built by name from a validated config (``from_config``);
+``defaults(**overrides)`` builds it from the schema's defaults alone, for tests and benchmarks.
+Nothing else declares a default value of a config key.
+"""
+
+from __future__ import annotations
+
+import copy
+import dataclasses
+from functools import lru_cache
+from typing import Any, TypeVar
+
+import yaml
+
+from plateloom.assets import config_schema
+
+T = TypeVar("T", bound="FromSchema")
+
+# The fewest keys a config must give (the schema requires them); everything else has a default.
+MINIMAL_CONFIG = {
+    "screen_sheet": "",
+    "images": {"filename_template": "{well}_s{site}_{channel}.tif"},
+    "channels": [{"name": "nuclei", "role": "nuclei"}],
+}
+
+
+@lru_cache(maxsize=1)
+def load_schema() -> dict:
+    """The config schema (JSON schema written in YAML)."""
+    with open(config_schema(), encoding="utf-8") as handle:
+        return yaml.safe_load(handle)
+
+
+def fill_defaults(config: dict) -> dict:
+    """``config`` validated against the schema, with every missing key set to its schema default.
+
+    Raises ``jsonschema.ValidationError`` for the first problem (``plateloom check`` lists them all).
+    """
+    from snakemake.utils import validate
+
+    filled = copy.deepcopy(config)
+    validate(filled, str(config_schema()), set_default=True)
+    return filled
+
+
+@lru_cache(maxsize=1)
+def _schema_defaults() -> dict:
+    return fill_defaults(MINIMAL_CONFIG)
+
+
+def schema_defaults() -> dict:
+    """A complete config of schema defaults (a fresh copy: callers may change it)."""
+    return copy.deepcopy(_schema_defaults())
+
+
+class FromSchema:
+    """Mixin of the settings dataclasses: ``defaults(**overrides)`` from the schema's defaults."""
+
+    @classmethod
+    def from_config(cls: type[T], config: dict) -> T:  # pragma: no cover - each class defines it
+        raise NotImplementedError
+
+    @classmethod
+    def defaults(cls: type[T], **overrides: Any) -> T:
+        """The settings of a config that leaves every key at its schema default, then ``overrides`` by name."""
+        return dataclasses.replace(cls.from_config(schema_defaults()), **overrides)

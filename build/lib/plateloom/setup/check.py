@@ -1,0 +1,336 @@
+"""Check before launch: config, screen sheet and layouts against the images on disk, every problem at once.
+
+Errors stop a run (the workflow runs the same checks, without reading image headers, when it
+starts); warnings are things a run would work around and report (files it would not analyse,
+wells imaged but not in the layout). Each problem names the file (and row, well, site) and the fix.
+"""
+
+from __future__ import annotations
+
+import os
+from dataclasses import dataclass, field
+
+import tifffile
+
+from plateloom.errors import InputError
+from plateloom.io.images import ImageIndex, index_plate_images, read_ome_metadata
+from plateloom.setup.screen_sheet import check_layout, check_screen_sheet
+
+OUTPUT_BYTES_PER_OBSERVATION = 60 * 8  # about 60 columns of 8 bytes in the cells table, before compression
+
+
+@dataclass
+class Problem:
+    """One finding: 'error' stops a run, 'warning' is reported and worked around."""
+
+    severity: str
+    message: str
+
+
+@dataclass
+class CheckReport:
+    problems: list[Problem] = field(default_factory=list)
+    estimate: dict[str, float] = field(default_factory=dict)
+
+    @property
+    def errors(self) -> list[Problem]:
+        return [p for p in self.problems if p.severity == "error"]
+
+    def add(self, severity: str, problem: InputError | str) -> None:
+        self.problems.append(Problem(severity, str(problem)))
+
+    def text(self) -> str:
+        """The report as a person reads it: every problem, then the run estimate."""
+        lines = []
+        for severity in ("error", "warning"):
+            found = [p for p in self.problems if p.severity == severity]
+            lines.append(f"{len(found)} {severity}(s)" + (":" if found else "."))
+            lines += [f"  - {p.message}" for p in found]
+        if self.estimate:
+            e = self.estimate
+            lines.append(
+                f"run estimate: {e['plates']:.0f} plates, {e['wells']:.0f} wells, {e['images']:.0f} image files "
+                f"({e['image_gb']:.2f} GB), {e['jobs']:.0f} jobs; outputs about {e['output_gb']:.2f} GB "
+                f"(assuming {e['assumed_objects_per_frame']:.0f} nuclei per site and frame)"
+            )
+        return "\n".join(lines)
+
+
+def _series_problems(index: ImageIndex, wells: list[str], channels: list[str]) -> tuple[list[InputError], int]:
+    """Missing channels and missing frames of every site (vectorised over the file table), and the site-frames."""
+    table = index.table[index.table["well"].isin(wells)]
+    problems: list[InputError] = []
+    if table.empty:
+        return problems, 0
+    distinct = table.groupby(["well", "site"])["channel"].nunique()
+    for well, site in distinct[distinct < len(channels)].index:  # only the few incomplete sites in Python
+        found = set(table.loc[(table["well"] == well) & (table["site"] == site), "channel"])
+        for channel in channels:
+            if channel not in found:
+                problems.append(
+                    InputError(
+                        f"well {well}, site {site}",
+                        f"no image for channel {channel!r}.",
+                        "copy or export the missing channel, or check images.filename_template.",
+                    )
+                )
+    if index.stacks:
+        return problems, 0
+    series = table.groupby(["well", "site", "channel"])["frame"].agg(["min", "max", "count"])
+    for (well, site, channel), row in series[series["max"] - series["min"] + 1 != series["count"]].iterrows():
+        frames = set(
+            table.loc[(table["well"] == well) & (table["site"] == site) & (table["channel"] == channel), "frame"]
+        )
+        missing = sorted(set(range(int(row["min"]), int(row["max"]) + 1)) - frames)
+        problems.append(
+            InputError(
+                f"well {well}, site {site}, channel {channel}",
+                f"frames {missing} are missing.",
+                "re-export the missing frames (a run would flag them and go on).",
+            )
+        )
+    counts = series["max"] - series["min"] + 1
+    uneven = counts.groupby(level=["well", "site"]).nunique() > 1
+    for well, site in uneven[uneven].index:
+        detail = ", ".join(f"{c}: {int(n)}" for c, n in counts.loc[well].loc[site].items())
+        problems.append(
+            InputError(
+                f"well {well}, site {site}",
+                f"channels have different frame counts ({detail}).",
+                "re-export the shorter series (a run would flag the missing frames).",
+            )
+        )
+    return problems, int(counts.groupby(level=["well", "site"]).max().sum())
+
+
+def _header_problems(
+    index: ImageIndex, wells: list[str], shapes: dict[tuple[int, ...], str]
+) -> tuple[list[InputError], int]:
+    """Unreadable files, image sizes that differ, stacks of different page counts; and the site-frames of stacks."""
+    table = index.table[index.table["well"].isin(wells)]
+    problems: list[InputError] = []
+    pages: dict[tuple[str, int], dict[str, int]] = {}
+    for row in table.itertuples():
+        try:
+            with tifffile.TiffFile(row.path) as tif:
+                shape = tuple(tif.pages[0].shape)
+                if index.stacks:
+                    pages.setdefault((row.well, row.site), {})[row.channel] = len(tif.pages)
+        except Exception as error:  # tifffile raises many kinds for corrupt files
+            problems.append(
+                InputError(
+                    row.path,
+                    f"cannot be read as TIFF ({type(error).__name__}).",
+                    "re-copy the file from the microscope.",
+                )
+            )
+            continue
+        reference = shapes.setdefault(shape, row.path)
+        if len(shapes) > 1 and reference == row.path:
+            first_shape, first_path = next(iter(shapes.items()))
+            problems.append(
+                InputError(
+                    row.path,
+                    f"image size {shape} differs from {first_shape} ({os.path.basename(first_path)}).",
+                    "all images of a screen must have the same size; re-export at one size.",
+                )
+            )
+    for (well, site), counts in pages.items():
+        if len(set(counts.values())) > 1:
+            detail = ", ".join(f"{c}: {n}" for c, n in counts.items())
+            problems.append(
+                InputError(
+                    f"well {well}, site {site}",
+                    f"channels have different frame counts ({detail}).",
+                    "re-copy the shorter stack (a run would flag the missing frames).",
+                )
+            )
+    return problems, sum(max(c.values()) for c in pages.values())
+
+
+def _shown(names: list[str], at_most: int, quote: bool = False) -> str:
+    listed = ", ".join(repr(n) if quote else n for n in names[:at_most])
+    return listed + (f" and {len(names) - at_most} more" if quote and len(names) > at_most else "")
+
+
+class _ScreenCheck:
+    """The checks of ``check_screen``, plate by plate, with what plates share read once
+    (layouts, image folders, series of the same wells) and the totals of the run estimate."""
+
+    def __init__(self, config: dict, read_headers: bool):
+        self.config, self.read_headers = config, read_headers
+        self.report = CheckReport()
+        self.channels = [c["name"] for c in config["channels"]]
+        self.template = config["images"]["filename_template"]
+        self.totals = {"plates": 0, "wells": 0, "images": 0, "image_bytes": 0, "site_frames": 0, "jobs": 0}
+        self.shapes: dict[tuple[int, ...], str] = {}
+        self.layouts: dict[tuple[str, int], tuple] = {}
+        self.indexes: dict[tuple[str, int], ImageIndex] = {}
+        self.series: dict[tuple, tuple[list[InputError], int]] = {}
+        self.imaged: dict[tuple[str, int], set[str]] = {}
+
+    def plate(self, entry) -> None:
+        layout = self._layout(entry)
+        index = self._index(entry)
+        if index is None:
+            return
+        self.totals["plates"] += 1
+        self._unmatched(entry, index)
+        analysed = set(layout.loc[layout["role"] != "empty", "well"])
+        imaged = self.imaged.setdefault((entry.image_folder, entry.plate_format), set(index.table["well"].to_numpy()))
+        self._well_coverage(entry, layout, analysed, imaged)
+        wells = sorted(analysed & imaged)
+        self.totals["wells"] += len(wells)
+        self.totals["jobs"] += -(-len(analysed) // int(self.config.get("chunk_wells", 24))) + 2 + len(self.channels)
+        self._frames_and_headers(entry, index, wells)
+
+    def _layout(self, entry):
+        key = (entry.layout, entry.plate_format)
+        if key not in self.layouts:  # plates often share a layout
+            self.layouts[key] = check_layout(entry.layout, entry.plate_format)
+        layout, problems = self.layouts[key]
+        for problem in problems:
+            self.report.add("error", InputError(f"plate {entry.plate}: {problem.where}", problem.problem, problem.fix))
+        return layout
+
+    def _index(self, entry) -> ImageIndex | None:
+        from plateloom.setup.plan import DEMO_IMAGE_ROOT
+
+        if not os.path.isdir(entry.image_folder):
+            if os.path.normpath(entry.image_folder) != os.path.join(DEMO_IMAGE_ROOT, entry.plate):
+                where = f"{self.config['screen_sheet']}, plate {entry.plate}, column image_folder"
+                fix = "check the path (relative to the folder you run snakemake from)."
+                self.report.add("error", InputError(where, f"image folder {entry.image_folder!r} does not exist.", fix))
+            return None
+        key = (entry.image_folder, entry.plate_format)
+        try:
+            if key not in self.indexes:
+                self.indexes[key] = index_plate_images(
+                    entry.image_folder, self.template, entry.plate_format, self.channels
+                )
+        except InputError as error:
+            self.report.add("error", error)
+            return None
+        return self.indexes[key]
+
+    def _unmatched(self, entry, index: ImageIndex) -> None:
+        unmatched = [n for n in index.unmatched if not n.startswith(".")]
+        if unmatched:
+            problem = (
+                f"{len(unmatched)} file(s) match neither images.filename_template {self.template!r} nor a "
+                f"configured channel: {_shown(unmatched, 5, quote=True)}."
+            )
+            fix = "rename them, or adjust the template or channels; they would not be analysed."
+            self.report.add("warning", InputError(entry.image_folder, problem, fix))
+
+    def _well_coverage(self, entry, layout, analysed: set[str], imaged: set[str]) -> None:
+        no_images = sorted(analysed - imaged)
+        if no_images:
+            more = " ..." if len(no_images) > 12 else ""
+            problem = f"{len(no_images)} well(s) in the layout have no images: {_shown(no_images, 12)}{more}."
+            fix = "mark them empty in the layout, or add their images to " + entry.image_folder + "."
+            self.report.add("error", InputError(f"{entry.layout} (plate {entry.plate})", problem, fix))
+        not_in_layout = sorted(imaged - set(layout["well"]))
+        if not_in_layout:
+            more = " ..." if len(not_in_layout) > 12 else ""
+            problem = f"{len(not_in_layout)} imaged well(s) have no layout row: {_shown(not_in_layout, 12)}{more}."
+            fix = f"add them to {entry.layout} (role empty to skip them on purpose)."
+            self.report.add("warning", InputError(f"{entry.image_folder} (plate {entry.plate})", problem, fix))
+
+    def _frames_and_headers(self, entry, index: ImageIndex, wells: list[str]) -> None:
+        series_key = (entry.image_folder, entry.plate_format, tuple(wells))
+        if series_key not in self.series:  # plates sharing a folder and wells share the answer
+            self.series[series_key] = _series_problems(index, wells, self.channels)
+        series, site_frames = self.series[series_key]
+        with_headers = self.read_headers and index.source == "tiff"
+        headers, stack_frames = _header_problems(index, wells, self.shapes) if with_headers else ([], 0)
+        for problem in series + headers:
+            severity = "warning" if "missing" in problem.problem or "frame counts" in problem.problem else "error"
+            self.report.add(severity, InputError(f"plate {entry.plate}: {problem.where}", problem.problem, problem.fix))
+        self.totals["site_frames"] += site_frames + stack_frames
+        in_wells = index.table["well"].isin(wells).to_numpy()
+        self.totals["images"] += int(in_wells.sum())
+        if with_headers:  # sizes for the run estimate; not needed at start-up
+            self.totals["image_bytes"] += sum(os.path.getsize(p) for p in index.table["path"].to_numpy()[in_wells])
+
+    def image_scale(self) -> None:
+        """An error when pixel size or frame interval is neither in config nor in the first image's metadata."""
+        images = self.config["images"]
+        if images.get("pixel_size_um") is not None and images.get("frame_interval_min") is not None:
+            return
+        first = next((sorted(index.table["path"])[0] for index in self.indexes.values() if len(index.table)), None)
+        metadata = read_ome_metadata(first) if first else None
+        keys = ("pixel_size_um", "frame_interval_min")
+        missing = [k for k in keys if images.get(k) is None and (metadata is None or getattr(metadata, k) is None)]
+        if missing:
+            self.report.add(
+                "error",
+                InputError(
+                    f"config images ({first or 'no image'})",
+                    f"{' and '.join(missing)} not set and not in the images' OME metadata.",
+                    f"set images.{' and images.'.join(missing)} in the config.",
+                ),
+            )
+
+    def estimate(self, assumed_objects_per_frame: int) -> dict:
+        totals = self.totals
+        observations = totals["site_frames"] * assumed_objects_per_frame
+        return {
+            "plates": totals["plates"],
+            "wells": totals["wells"],
+            "images": totals["images"],
+            "image_gb": totals["image_bytes"] / 1e9,
+            "jobs": totals["jobs"] + (6 if totals["plates"] else 0),
+            "output_gb": observations * OUTPUT_BYTES_PER_OBSERVATION / 1e9,
+            "assumed_objects_per_frame": assumed_objects_per_frame,
+        }
+
+
+def check_screen(config: dict, read_headers: bool = True, assumed_objects_per_frame: int = 200) -> CheckReport:
+    """Every problem of a screen's config, sheet, layouts and images, and an estimate of the run.
+
+    ``config`` is the validated config (defaults filled). With ``read_headers`` every TIFF's
+    header is read (image sizes, page counts); without, only names are checked (fast enough
+    for every workflow start). Demo plates whose images are not simulated yet are skipped.
+    """
+    from plateloom.setup.plan import channel_names
+
+    check = _ScreenCheck(config, read_headers)
+    try:
+        channel_names(config)
+    except InputError as error:
+        check.report.add("error", error)
+    try:
+        entries, problems = check_screen_sheet(config["screen_sheet"])
+    except InputError as error:
+        check.report.add("error", error)
+        return check.report
+    for problem in problems:
+        check.report.add("error", problem)
+    for entry in entries:
+        check.plate(entry)
+    if entries:
+        check.image_scale()
+    check.report.estimate = check.estimate(assumed_objects_per_frame)
+    return check.report
+
+
+def load_config(path: str) -> dict:
+    """A config file validated against the workflow's schema, defaults filled; every schema problem
+    in one InputError."""
+    import jsonschema
+    import yaml
+    from snakemake.utils import validate
+
+    from plateloom.setup.config import SCHEMA as schema_path
+
+    with open(path, encoding="utf-8") as handle:
+        config = yaml.safe_load(handle) or {}
+    with open(schema_path, encoding="utf-8") as handle:
+        schema = yaml.safe_load(handle)
+    errors = sorted(jsonschema.Draft202012Validator(schema).iter_errors(config), key=lambda e: list(e.path))
+    if errors:
+        listed = "; ".join(f"{'.'.join(map(str, e.path)) or 'top level'}: {e.message}" for e in errors)
+        raise InputError(f"config {path}", listed + ".", "compare with workflow/schemas/config.schema.yaml.")
+    validate(config, schema_path)
+    return config

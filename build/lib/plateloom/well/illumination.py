@@ -1,0 +1,125 @@
+"""Illumination (flat-field) correction: one profile per plate and channel, estimated from many sites.
+
+Retrospective flat-field estimation (common practice): cells sit at different places in
+different fields, so a low per-pixel percentile over many fields, each scaled by its own median,
+follows the illumination and not the cells (a low percentile is less pulled up by cells than the
+median). The percentile image is smoothed with a wide Gaussian and scaled to mean 1; images are
+divided by it before segmentation and measurement, so intensities keep their units on average.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from scipy import ndimage
+
+from plateloom.errors import InputError
+from plateloom.io.images import ImageIndex, site_frame_count, stream_site
+from plateloom.settings import FromSchema
+
+METHODS = ("none", "percentile_of_sites")
+
+
+@dataclass(frozen=True)
+class IlluminationSettings(FromSchema):
+    """How to estimate the flat field (physical units where they apply)."""
+
+    method: str
+    max_sites: int
+    frames_per_site: int
+    smoothing_sigma_um: float
+    percentile: float
+
+    @classmethod
+    def from_config(cls, config: dict) -> IlluminationSettings:
+        """From the validated config's ``illumination`` section (every key filled by the schema)."""
+        return cls(**config["illumination"])
+
+
+def sampled_sites(index: ImageIndex, max_sites: int) -> list[tuple[str, int]]:
+    """Up to ``max_sites`` (well, site) pairs spread evenly over the plate, in a fixed order (deterministic)."""
+    pairs = sorted(set(zip(index.table["well"], index.table["site"].astype(int))))
+    if len(pairs) <= max_sites:
+        return pairs
+    picks = np.linspace(0, len(pairs) - 1, max_sites).round().astype(int)
+    return [pairs[i] for i in np.unique(picks)]
+
+
+def flat_field_from_planes(planes: np.ndarray, sigma_px: float, percentile: float = 25.0) -> np.ndarray:
+    """Flat-field profile (mean 1) from a stack of planes (n, y, x) of one channel; ``sigma_px`` in pixels."""
+    planes = np.asarray(planes, np.float32)
+    scale = np.median(planes.reshape(len(planes), -1), axis=1)
+    if np.any(scale <= 0):
+        scale = np.where(scale > 0, scale, np.mean(planes.reshape(len(planes), -1), axis=1))
+    if np.any(scale <= 0):
+        raise InputError(
+            "illumination estimate",
+            "a sampled image is black (median and mean 0).",
+            "exclude black sites or set illumination.method: none.",
+        )
+    profile = np.percentile(planes / scale[:, None, None], percentile, axis=0)
+    profile = ndimage.gaussian_filter(profile, sigma_px, mode="nearest")
+    return (profile / profile.mean()).astype(np.float32)
+
+
+def estimate_flat_field(
+    index: ImageIndex, channel: str, channels: list[str], settings: IlluminationSettings, pixel_size_um: float
+) -> tuple[np.ndarray, int, list[str]]:
+    """Profile of one channel of one plate, the number of planes used, and the sites skipped (with why).
+
+    A sampled site that cannot be read is skipped and named (its own per-well job reports it as an
+    error); the estimate fails only when fewer than 3 planes are left.
+    """
+    if channel not in channels:
+        raise InputError(
+            f"illumination of channel {channel}",
+            f"channel {channel!r} is not in config channels {channels}.",
+            "use a channel name from config channels.",
+        )
+    planes, skipped = [], []
+    for well, site in sampled_sites(index, settings.max_sites):
+        site_planes = []
+        try:
+            # only this channel is read; the per-well jobs check that all channels of a site agree
+            n_frames = site_frame_count(index, well, site, [channel])
+            wanted = set(
+                np.linspace(0, n_frames - 1, min(settings.frames_per_site, n_frames)).round().astype(int).tolist()
+            )
+            frames = stream_site(index, well, site, [channel])
+            try:
+                for position, item in enumerate(frames):
+                    if position in wanted:
+                        if item.problem:
+                            skipped.append(item.problem)
+                        else:
+                            site_planes.append(item.planes[0])
+                    if position >= max(wanted):
+                        break
+            finally:
+                frames.close()
+        except InputError as error:
+            skipped.append(f"well {well}, site {site}: {error}")
+            continue
+        planes += site_planes
+    if len(planes) < 3:
+        raise InputError(
+            f"illumination of channel {channel}",
+            f"only {len(planes)} readable image(s) to estimate it from.",
+            "a flat field needs many sites: set illumination.method: none for plates this small.",
+        )
+    profile = flat_field_from_planes(np.stack(planes), settings.smoothing_sigma_um / pixel_size_um, settings.percentile)
+    return profile, len(planes), skipped
+
+
+def apply_flat_field(planes: np.ndarray, profiles: np.ndarray | None) -> np.ndarray:
+    """Divide (channels, y, x) planes by their profiles (channels, y, x); None leaves them as they are."""
+    if profiles is None:
+        return planes
+    if profiles.shape != planes.shape:
+        raise InputError(
+            "illumination profiles",
+            f"profile shape {profiles.shape} differs from the images {planes.shape}.",
+            "delete results/illumination and rerun, so the profiles are estimated from these images.",
+        )
+    return planes / profiles

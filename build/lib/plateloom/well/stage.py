@@ -1,0 +1,378 @@
+"""Per-well analysis: stream each site's frames, segment, measure, link into tracks."""
+
+from __future__ import annotations
+
+import os
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+
+from plateloom.errors import InputError
+from plateloom.io.images import ImageIndex, SiteFrame, stream_site
+from plateloom.io.tables import well_part_path, write_parquet
+from plateloom.settings import FromSchema
+from plateloom.well.cell_bodies import grow_cell_bodies
+from plateloom.well.collective import CollectiveSettings, well_collective_readouts
+from plateloom.well.features import measure_objects, neighbourhood
+from plateloom.well.illumination import apply_flat_field
+from plateloom.well.image_qc import background_levels, focus_score
+from plateloom.well.segment import segment_label_free, segment_smoothed
+from plateloom.well.texture import TextureSettings
+from plateloom.well.thresholds import smooth_image
+from plateloom.well.track_stats import (
+    fit_persistent_walk,
+    mean_squared_displacement,
+    reporter_dynamics,
+    track_matrix,
+)
+from plateloom.well.tracking import (
+    close_gaps,
+    find_divisions,
+    link_frames,
+    track_features,
+)
+
+
+@dataclass(frozen=True)
+class WellSettings(FromSchema):
+    """Everything the per-well stage needs from config (physical units)."""
+
+    channels: tuple[str, ...]
+    nuclei_channel: str
+    pixel_size_um: float
+    frame_interval_min: float
+    smoothing_sigma_um: float
+    min_nucleus_area_um2: float
+    split_min_distance_um: float
+    max_displacement_um: float
+    min_track_frames: int
+    max_gap_frames: int
+    division_max_distance_um: float | None
+    neighbour_radius_um: float
+    threshold_method: str
+    label_free: bool
+    label_free_window_um: float
+    cell_body_channel: str | None
+    cell_body_smoothing_sigma_um: float
+    texture_channels: tuple[str, ...] | None  # None: the nuclei channel
+    texture_distance_um: float
+    texture_levels: int
+    reporter_channels: tuple[str, ...]
+    msd_max_lag_frames: int
+
+    @classmethod
+    def from_config(cls, config: dict) -> WellSettings:
+        """From the validated config (images, channels, segmentation, tracking, measurement), by name."""
+        channels = tuple(c["name"] for c in config["channels"])
+        roles = {c["name"]: c["role"] for c in config["channels"]}
+        seg, track, images, measure = (config[k] for k in ("segmentation", "tracking", "images", "measurement"))
+        texture = measure["texture_channels"]
+        return cls(
+            channels=channels,
+            nuclei_channel=next(c for c in channels if roles[c] in ("nuclei", "label_free")),
+            pixel_size_um=images["pixel_size_um"],
+            frame_interval_min=images["frame_interval_min"],
+            smoothing_sigma_um=seg["smoothing_sigma_um"],
+            min_nucleus_area_um2=seg["min_nucleus_area_um2"],
+            split_min_distance_um=seg["split_min_distance_um"],
+            threshold_method=seg["threshold_method"],
+            label_free=any(role == "label_free" for role in roles.values()),
+            label_free_window_um=float(seg["label_free_window_um"]),
+            cell_body_channel=next((c for c in channels if roles[c] == "cell_body"), None),
+            cell_body_smoothing_sigma_um=float(seg["cell_body_smoothing_sigma_um"]),
+            max_displacement_um=track["max_displacement_um"],
+            min_track_frames=track["min_track_frames"],
+            max_gap_frames=int(track["max_gap_frames"]),
+            division_max_distance_um=track["division_max_distance_um"],
+            msd_max_lag_frames=int(track["msd_max_lag_frames"]),
+            neighbour_radius_um=float(measure["neighbour_radius_um"]),
+            texture_channels=None if texture is None else tuple(texture),
+            texture_distance_um=float(measure["texture_distance_um"]),
+            texture_levels=int(measure["texture_levels"]),
+            reporter_channels=tuple(c for c in channels if roles[c] == "reporter"),
+        )
+
+    @property
+    def measured_texture_channels(self) -> list[str]:
+        return [self.nuclei_channel] if self.texture_channels is None else list(self.texture_channels)
+
+
+def segment_frame(
+    planes: np.ndarray, settings: WellSettings
+) -> tuple[np.ndarray, np.ndarray | None, float, np.ndarray]:
+    """Objects of one frame: (nuclei labels, cell-body labels or None, threshold, smoothed segmented channel)."""
+    channels = list(settings.channels)
+    image = planes[channels.index(settings.nuclei_channel)]
+    smooth = smooth_image(image, settings.smoothing_sigma_um / settings.pixel_size_um)
+    if settings.label_free:
+        labels, threshold = segment_label_free(
+            image,
+            settings.pixel_size_um,
+            settings.label_free_window_um,
+            settings.min_nucleus_area_um2,
+            settings.split_min_distance_um,
+            settings.threshold_method,
+        )
+    else:
+        labels, threshold = segment_smoothed(
+            smooth,
+            settings.pixel_size_um,
+            settings.min_nucleus_area_um2,
+            settings.split_min_distance_um,
+            settings.threshold_method,
+        )
+    bodies = None
+    if settings.cell_body_channel:
+        bodies = grow_cell_bodies(
+            labels,
+            planes[channels.index(settings.cell_body_channel)],
+            settings.pixel_size_um,
+            settings.cell_body_smoothing_sigma_um,
+            settings.threshold_method,
+        )
+    return labels, bodies, threshold, smooth
+
+
+def measure_frame(
+    planes: np.ndarray, labels: np.ndarray, bodies: np.ndarray | None, settings: WellSettings
+) -> tuple[pd.DataFrame, np.ndarray]:
+    """Per-object table of one frame (shape, intensity, texture, cytoplasm, neighbours) and the channel backgrounds."""
+    channels = list(settings.channels)
+    background = background_levels(planes, labels if bodies is None else bodies)
+    distance_px = max(1, int(round(settings.texture_distance_um / settings.pixel_size_um)))
+    texture = TextureSettings(tuple(settings.measured_texture_channels), distance_px, settings.texture_levels)
+    table = measure_objects(labels, planes, channels, background, settings.pixel_size_um, bodies, texture)
+    xy = table[["centroid_x_um", "centroid_y_um"]].to_numpy()
+    table["neighbours"], table["nearest_neighbour_um"] = neighbourhood(xy, settings.neighbour_radius_um)
+    return table, background
+
+
+def _unusable_frame_qc(site: int, frame: int, problem: str, channels: list[str]) -> dict:
+    """The QC row of a frame that could not be used: no measures, the problem named."""
+    qc = {"site": site, "frame": frame, "n_objects": 0, "foreground_fraction": np.nan, "threshold": np.nan}
+    qc.update({"focus_score": np.nan, "empty_field": False, "frame_problem": problem})
+    qc.update({f"background_{c}": np.nan for c in channels})
+    qc.update({f"saturated_fraction_{c}": np.nan for c in channels})
+    return qc
+
+
+def _frame_qc(
+    site: int,
+    item: SiteFrame,
+    table: pd.DataFrame,
+    labels: np.ndarray,
+    threshold: float,
+    smooth: np.ndarray,
+    background: np.ndarray,
+    channels: list[str],
+) -> dict:
+    """The QC row of an analysed frame: objects, foreground, threshold, focus, background, saturation."""
+    qc = {"site": site, "frame": item.frame, "n_objects": len(table)}
+    qc.update({"foreground_fraction": np.count_nonzero(labels) / labels.size, "threshold": threshold})
+    qc.update({"focus_score": focus_score(smooth), "empty_field": len(table) == 0, "frame_problem": ""})
+    qc.update({f"background_{c}": float(b) for c, b in zip(channels, background)})
+    qc.update({f"saturated_fraction_{c}": float(f) for c, f in zip(channels, item.saturated)})
+    return qc
+
+
+class _FrameLinker:
+    """Frame-to-frame linking along a site: each frame's objects get the track of the object they
+    link to in the previous usable frame, or a new track id; an unusable frame breaks every link
+    (gap closing bridges it later)."""
+
+    def __init__(self, max_displacement_um: float):
+        self.max_displacement_um = max_displacement_um
+        self.break_links()
+        self.next_track = 0
+
+    def break_links(self) -> None:
+        self.previous_xy, self.previous_tracks = np.empty((0, 2)), np.empty(0, dtype=np.int64)
+
+    def tracks_of(self, xy: np.ndarray) -> np.ndarray:
+        links = link_frames(self.previous_xy, xy, self.max_displacement_um)
+        previous = self.previous_tracks
+        tracks = np.where(links >= 0, previous[np.clip(links, 0, None)] if len(previous) else -1, -1)
+        new = tracks < 0
+        tracks[new] = self.next_track + np.arange(new.sum())
+        self.next_track += int(new.sum())
+        self.previous_xy, self.previous_tracks = xy, tracks.astype(np.int64)
+        return self.previous_tracks
+
+
+def _close_gaps_and_divisions(cells: pd.DataFrame, settings: WellSettings) -> pd.DataFrame:
+    """Join track segments across missed frames and, if switched on, record divisions (parent_track)."""
+    cells["parent_track"] = -1
+    if not len(cells):
+        return cells
+    frame, x, y = cells["frame"].to_numpy(), cells["centroid_x_um"].to_numpy(), cells["centroid_y_um"].to_numpy()
+    track = close_gaps(frame, cells["track"].to_numpy(), x, y, settings.max_gap_frames, settings.max_displacement_um)
+    if settings.division_max_distance_um:
+        track, parents = find_divisions(frame, track, x, y, settings.division_max_distance_um)
+        parent = pd.Series(parents.set_index("track")["parent_track"]).reindex(track).fillna(-1)
+        cells["parent_track"] = parent.to_numpy(np.int64)
+    cells["track"] = track
+    return cells
+
+
+def analyse_site(
+    index: ImageIndex, well: str, site: int, settings: WellSettings, flat_field: np.ndarray | None = None
+) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """Observations (with track ids local to the site) and per-frame QC of one site.
+
+    ``flat_field`` (channels, y, x), if given, divides every frame before segmentation and
+    measurement. A frame that cannot be used gets a QC row with ``frame_problem`` (the
+    message) and no observations; tracks bridge it by gap closing.
+    """
+    channels = list(settings.channels)
+    observations, qc_rows = [], []
+    linker = _FrameLinker(settings.max_displacement_um)
+    for item in stream_site(index, well, site, channels):
+        if item.problem:
+            qc_rows.append(_unusable_frame_qc(site, item.frame, item.problem, channels))
+            linker.break_links()
+            continue
+        planes = apply_flat_field(item.planes, flat_field)
+        labels, bodies, threshold, smooth = segment_frame(planes, settings)
+        table, background = measure_frame(planes, labels, bodies, settings)
+        tracks = linker.tracks_of(table[["centroid_x_um", "centroid_y_um"]].to_numpy())
+        table.insert(0, "frame", item.frame)
+        table.insert(1, "track", tracks)
+        observations.append(table)
+        qc_rows.append(_frame_qc(site, item, table, labels, threshold, smooth, background, channels))
+    if not observations:
+        first = qc_rows[0]["frame_problem"] if qc_rows else f"well {well}, site {site}: no frames"
+        raise InputError(
+            f"well {well}, site {site}",
+            f"no frame of this site can be used; the first problem: {first}",
+            "fix the files of this site (every frame is affected, so this is not a glitch of one frame).",
+        )
+    cells = pd.concat(observations, ignore_index=True)
+    cells.insert(0, "site", site)
+    return _close_gaps_and_divisions(cells, settings), pd.DataFrame(qc_rows)
+
+
+def track_table(cells: pd.DataFrame, settings: WellSettings) -> pd.DataFrame:
+    """One row per track: motility, persistent-random-walk fit and reporter dynamics (see README outputs)."""
+    frame, track = cells["frame"].to_numpy(), cells["track"].to_numpy()
+    x, y = cells["centroid_x_um"].to_numpy(), cells["centroid_y_um"].to_numpy()
+    motion = track_features(frame, track, x, y, settings.frame_interval_min, settings.min_track_frames)
+    tracks = pd.DataFrame(motion)
+    if tracks.empty:
+        extra = ["walk_speed_um_per_min", "persistence_time_min"] + [
+            f"{column}_{c}"
+            for c in settings.reporter_channels
+            for column in ("track_mean", "track_cv", "period_min", "peaks_per_h", "max_rate_per_min")
+        ]
+        return tracks.assign(**{column: pd.Series(dtype=float) for column in extra})
+    ids = tracks["track"].to_numpy()
+    long_enough = tracks["n_frames"].to_numpy() >= settings.min_track_frames
+    _, x_matrix = track_matrix(frame, track, x, ids)
+    _, y_matrix = track_matrix(frame, track, y, ids)
+    max_lag = max(1, min(settings.msd_max_lag_frames, x_matrix.shape[1] // 2))
+    msd, pairs = mean_squared_displacement(x_matrix, y_matrix, max_lag)
+    observed = np.isfinite(x_matrix)
+    span = x_matrix.shape[1] - observed[:, ::-1].argmax(axis=1) - observed.argmax(axis=1)
+    pairs[np.arange(1, max_lag + 1)[None, :] > (span // 2)[:, None]] = 0  # a track uses lags up to half its span
+    walk_speed, persistence = fit_persistent_walk(msd, pairs, settings.frame_interval_min)
+    tracks["walk_speed_um_per_min"] = np.where(long_enough, walk_speed, np.nan)
+    tracks["persistence_time_min"] = np.where(long_enough, persistence, np.nan)
+    for channel in settings.reporter_channels:
+        _, values = track_matrix(frame, track, cells[f"mean_intensity_{channel}"].to_numpy(), ids)
+        dynamics = reporter_dynamics(values, settings.frame_interval_min, settings.min_track_frames)
+        for name, column in (
+            ("mean", "track_mean"),
+            ("cv", "track_cv"),
+            ("period_min", "period_min"),
+            ("peaks_per_h", "peaks_per_h"),
+            ("max_rate_per_min", "max_rate_per_min"),
+        ):
+            tracks[f"{column}_{channel}"] = np.where(long_enough, dynamics[name], np.nan)
+    return tracks
+
+
+def analyse_well(
+    index: ImageIndex, well: str, settings: WellSettings, flat_field: np.ndarray | None = None
+) -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame]:
+    """Cells, tracks and site QC of one well over all its sites.
+
+    Track ids are unique within the well (site-local ids are offset site by site).
+    """
+    sites = sorted(index.table.loc[index.table["well"] == well, "site"].unique())
+    if not sites:
+        raise InputError(
+            f"well {well}",
+            "the layout lists this well but no image of it was found.",
+            "check images.filename_template and the plate's image_folder, or mark the well empty.",
+        )
+    cell_parts, qc_parts, offset = [], [], 0
+    for site in sites:
+        cells, qc = analyse_site(index, well, int(site), settings, flat_field)
+        cells["track"] += offset
+        cells.loc[cells["parent_track"] >= 0, "parent_track"] += offset
+        offset = int(cells["track"].max()) + 1 if len(cells) else offset
+        cell_parts.append(cells)
+        qc_parts.append(qc)
+    cells = pd.concat(cell_parts, ignore_index=True)
+    cells.insert(2, "time_min", cells["frame"] * settings.frame_interval_min)
+    tracks = track_table(cells, settings)
+    first = cells.sort_values(["track", "frame"]).drop_duplicates("track").set_index("track")
+    tracks.insert(0, "site", first.loc[tracks["track"], "site"].to_numpy())
+    border = cells.groupby("track")["touches_border"].any()
+    tracks["touches_border"] = border.loc[tracks["track"]].to_numpy()
+    tracks["parent_track"] = cells.groupby("track")["parent_track"].first().loc[tracks["track"]].to_numpy()
+    return cells, tracks, pd.concat(qc_parts, ignore_index=True)
+
+
+def _with_keys(frame: pd.DataFrame, plate: str, well: str) -> pd.DataFrame:
+    frame = frame.copy()
+    frame.insert(0, "plate", plate)
+    frame.insert(1, "well", well)
+    return frame
+
+
+def collective_table(
+    cells: pd.DataFrame, settings: WellSettings, collective: CollectiveSettings, well: str
+) -> pd.DataFrame:
+    """One row of collective readouts of a well (see plateloom.well.collective); no columns when switched off
+    or when no channel has the role reporter."""
+    if not collective.enabled or not settings.reporter_channels:
+        return pd.DataFrame(index=[0])
+    row = well_collective_readouts(
+        cells, list(settings.reporter_channels), collective, settings.frame_interval_min, well
+    )
+    return pd.DataFrame([row])
+
+
+@dataclass(frozen=True)
+class ChunkOutputs:
+    """The Hive folders a chunk job writes one Parquet file per well into (collective: optional)."""
+
+    cells: str
+    tracks: str
+    site_qc: str
+    collective: str | None = None
+
+
+def analyse_chunk(
+    index: ImageIndex,
+    plate: str,
+    wells: list[str],
+    settings: WellSettings,
+    outputs: ChunkOutputs,
+    config_for_provenance: object,
+    flat_field: np.ndarray | None = None,
+    collective: CollectiveSettings | None = None,
+) -> None:
+    """Analyse the wells of one chunk; one Parquet file per well in each folder of ``outputs``
+    (cells, tracks, site QC and, with a collective folder, the well's collective readouts)."""
+    folders = [outputs.cells, outputs.tracks, outputs.site_qc] + ([outputs.collective] if outputs.collective else [])
+    for folder in folders:
+        os.makedirs(folder, exist_ok=True)
+    for well in wells:
+        cells, tracks, site_qc = analyse_well(index, well, settings, flat_field)
+        tables = [cells, tracks, site_qc]
+        if outputs.collective:
+            tables.append(collective_table(cells, settings, collective or CollectiveSettings.defaults(), well))
+        for table, folder in zip(tables, folders):
+            write_parquet(_with_keys(table, plate, well), well_part_path(folder, well), config_for_provenance)

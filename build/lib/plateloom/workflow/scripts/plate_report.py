@@ -1,0 +1,41 @@
+"""Rule plate_report: the self-contained HTML report of one plate."""
+
+import json
+
+import pandas as pd
+import tifffile
+
+from plateloom.io.job import run_step
+from plateloom.io.tables import read_provenance, write_text
+from plateloom.plate.stage import PlateTables
+from plateloom.report.plate_page import PlatePage, build_plate_report
+from plateloom.setup.plate_formats import plate_format
+
+sm = snakemake  # noqa: F821  (injected by Snakemake's script directive)
+
+
+def step() -> None:
+    with open(sm.input.notes, encoding="utf-8") as handle:
+        notes = json.load(handle)
+    tables = PlateTables(
+        pd.read_parquet(sm.input.wells),
+        pd.read_parquet(sm.input.qc),
+        pd.read_parquet(sm.input.ledger),
+        pd.read_parquet(sm.input.edge),
+        notes["warnings"],
+        notes["site_qc"],
+    )
+    flat_fields = {c: tifffile.imread(p) for c, p in zip(sm.params.channels, sm.input.flat_fields)}
+    page_info = PlatePage(
+        sm.wildcards.plate,
+        sm.params.batch,
+        plate_format(sm.params.plate_format),
+        sm.params.report_feature,
+        read_provenance(sm.input.wells),
+        flat_fields,
+    )
+    html = build_plate_report(tables, page_info)
+    write_text(html, sm.output.report)
+
+
+run_step(sm.log[0], step, f"plate_report {sm.wildcards.plate}")
