@@ -1,1 +1,0 @@
-"""The embedded demo screen: an invented scenario simulated into images, with its planted truth."""

@@ -1,1 +1,0 @@
-"""Reading images (one interface, one reader per source) and writing tables with provenance."""

@@ -1,2 +1,0 @@
-"""The per-plate stage (fan-in over wells): well summaries, exclusions, positional correction,
-normalization, plate QC."""

@@ -1,1 +1,0 @@
-"""Self-contained HTML pages of the plate and screen stages."""

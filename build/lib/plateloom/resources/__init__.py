@@ -1,1 +1,0 @@
-"""Shipped assets (demo scenario, plate formats, report style), inside the package as plateloom.resources."""
