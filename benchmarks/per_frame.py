@@ -55,17 +55,10 @@ def make_site(folder: Path, frames: int) -> WellSettings:
         body[frame] = np.clip(150 + cytoplasm + rng.normal(0, 15, cytoplasm.shape), 0, 65535).astype(np.uint16)
     tifffile.imwrite(folder / "B02_s1_nuclear.tif", stack[:, 0], photometric="minisblack")
     tifffile.imwrite(folder / "B02_s1_body.tif", body, photometric="minisblack")
-    return WellSettings.defaults(
+    return WellSettings.of_demo(
         channels=("nuclear", "body"),
-        nuclei_channel="nuclear",
         pixel_size_um=scenario["pixel_size_um"],
         frame_interval_min=scenario["frame_interval_min"],
-        smoothing_sigma_um=1.0,
-        min_nucleus_area_um2=30.0,
-        split_min_distance_um=7.0,
-        max_displacement_um=8.0,
-        min_track_frames=3,
-        max_gap_frames=2,
         cell_body_channel="body",
         reporter_channels=("nuclear",),
     )

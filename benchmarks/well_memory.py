@@ -36,10 +36,7 @@ def rss(key):
         return next(int(line.split()[1]) for line in status if line.startswith(key)) / 1024
 
 folder = sys.argv[1]
-settings = WellSettings.defaults(channels=("nuclear", "body"), nuclei_channel="nuclear", pixel_size_um=0.8,
-                                 frame_interval_min=5.0, smoothing_sigma_um=1.0, min_nucleus_area_um2=30.0,
-                                 split_min_distance_um=7.0, max_displacement_um=8.0, min_track_frames=3,
-                                 max_gap_frames=2, cell_body_channel="body", reporter_channels=("nuclear",))
+settings = WellSettings.of_demo(channels=("nuclear", "body"), cell_body_channel="body", reporter_channels=("nuclear",))
 index = index_plate_images(folder, "{well}_s{site}_{channel}.tif", 96, ["nuclear", "body"])
 baseline = rss("VmRSS:")
 cells, tracks, qc = analyse_well(index, "B02", settings)

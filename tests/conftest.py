@@ -10,6 +10,8 @@ from pathlib import Path
 
 import pytest
 
+from plateloom.well.stage import WellSettings
+
 ROOT = Path(__file__).resolve().parents[1]
 WORKFLOW_PARTS = ("Snakefile", "workflow", "config", "resources", "scripts")
 
@@ -48,3 +50,19 @@ def pytest_collection_modifyitems(config, items):
 @pytest.fixture
 def workflow_dir(tmp_path: Path) -> Path:
     return copy_workflow(tmp_path / "screen")
+
+
+def tiny_well_settings(channels) -> WellSettings:
+    """Per-well settings for the small synthetic images of the bad-input tests (1 um pixels,
+    1 min frames, nuclei of at least 10 um2, no gap closing)."""
+    return WellSettings.of_demo(
+        channels=tuple(channels),
+        nuclei_channel="dna",
+        pixel_size_um=1.0,
+        frame_interval_min=1.0,
+        min_nucleus_area_um2=10.0,
+        split_min_distance_um=5.0,
+        max_displacement_um=5.0,
+        max_gap_frames=0,
+        reporter_channels=(),
+    )

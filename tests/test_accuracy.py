@@ -39,17 +39,8 @@ def test_average_precision_on_a_worked_example():
 
 def _settings(scenario):
     # the demo run's settings (config/config.yaml)
-    return WellSettings.defaults(
-        channels=("nuclear", "reporter"),
-        nuclei_channel="nuclear",
-        pixel_size_um=scenario["pixel_size_um"],
-        frame_interval_min=scenario["frame_interval_min"],
-        smoothing_sigma_um=1.0,
-        min_nucleus_area_um2=30.0,
-        split_min_distance_um=7.0,
-        max_displacement_um=8.0,
-        min_track_frames=3,
-        max_gap_frames=2,
+    return WellSettings.of_demo(
+        pixel_size_um=scenario["pixel_size_um"], frame_interval_min=scenario["frame_interval_min"], reporter_channels=()
     )
 
 

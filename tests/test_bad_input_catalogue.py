@@ -11,7 +11,7 @@ import numpy as np
 import pandas as pd
 import pytest
 import tifffile
-from conftest import run_snakemake
+from conftest import run_snakemake, tiny_well_settings
 from test_plate_stage import _plate
 
 from plateloom.errors import InputError
@@ -25,18 +25,7 @@ TEMPLATE = "{well}_s{site}_{channel}.tif"
 
 
 def _settings(channels=("dna",)) -> WellSettings:
-    return WellSettings.defaults(
-        channels=tuple(channels),
-        nuclei_channel="dna",
-        pixel_size_um=1.0,
-        frame_interval_min=1.0,
-        smoothing_sigma_um=1.0,
-        min_nucleus_area_um2=10.0,
-        split_min_distance_um=5.0,
-        max_displacement_um=5.0,
-        min_track_frames=3,
-        max_gap_frames=0,
-    )
+    return tiny_well_settings(channels)
 
 
 def _nuclei_stack(frames=3, size=64, level=1000, dtype=np.uint16):

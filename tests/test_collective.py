@@ -206,31 +206,10 @@ def test_collective_table_has_no_readouts_without_a_reporter_or_when_switched_of
     from plateloom.well.stage import WellSettings, collective_table
 
     cells = _lattice_well(0.5, np.random.default_rng(0))
-    plain = WellSettings.defaults(
-        channels=("dna", "rep"),
-        nuclei_channel="dna",
-        pixel_size_um=0.8,
-        frame_interval_min=5.0,
-        smoothing_sigma_um=1.0,
-        min_nucleus_area_um2=30.0,
-        split_min_distance_um=7.0,
-        max_displacement_um=8.0,
-        min_track_frames=3,
-        max_gap_frames=0,
-    )
+    plain = WellSettings.of_demo(channels=("dna", "rep"), nuclei_channel="dna", reporter_channels=(), max_gap_frames=0)
     assert collective_table(cells, plain, CollectiveSettings.defaults(), "A01").columns.empty
-    with_reporter = WellSettings.defaults(
-        channels=("dna", "rep"),
-        nuclei_channel="dna",
-        pixel_size_um=0.8,
-        frame_interval_min=5.0,
-        smoothing_sigma_um=1.0,
-        min_nucleus_area_um2=30.0,
-        split_min_distance_um=7.0,
-        max_displacement_um=8.0,
-        min_track_frames=3,
-        reporter_channels=("rep",),
-        max_gap_frames=0,
+    with_reporter = WellSettings.of_demo(
+        channels=("dna", "rep"), nuclei_channel="dna", reporter_channels=("rep",), max_gap_frames=0
     )
     assert collective_table(cells, with_reporter, CollectiveSettings.defaults(enabled=False), "A01").columns.empty
     table = collective_table(cells, with_reporter, CollectiveSettings.defaults(max_edge_um=25.0), "A01")

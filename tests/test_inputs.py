@@ -5,7 +5,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 import tifffile
-from conftest import run_snakemake
+from conftest import run_snakemake, tiny_well_settings
 
 from plateloom.errors import InputError
 from plateloom.io.images import index_plate_images, stream_site, template_regex
@@ -75,18 +75,7 @@ def test_template_needs_its_fields():
 
 
 def _settings() -> WellSettings:
-    return WellSettings.defaults(
-        channels=("dna",),
-        nuclei_channel="dna",
-        pixel_size_um=1.0,
-        frame_interval_min=1.0,
-        smoothing_sigma_um=1.0,
-        min_nucleus_area_um2=10.0,
-        split_min_distance_um=5.0,
-        max_displacement_um=5.0,
-        min_track_frames=3,
-        max_gap_frames=0,
-    )
+    return tiny_well_settings(("dna",))
 
 
 def test_missing_image_of_a_listed_well_is_named(tmp_path):

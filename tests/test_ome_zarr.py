@@ -68,19 +68,7 @@ def test_ome_zarr_plate_gives_the_same_tables_as_tiff_files(tmp_path):
             tifffile.imwrite(tiff_folder / f"{well}_s{site}_{name}.tif", stack[:, channel], photometric="minisblack")
     store = tmp_path / "plate.zarr"
     _write_zarr_plate(store, stacks)
-    settings = WellSettings.defaults(
-        channels=CHANNELS,
-        nuclei_channel="nuclear",
-        pixel_size_um=0.8,
-        frame_interval_min=5.0,
-        smoothing_sigma_um=1.0,
-        min_nucleus_area_um2=30.0,
-        split_min_distance_um=7.0,
-        max_displacement_um=8.0,
-        min_track_frames=3,
-        max_gap_frames=2,
-        reporter_channels=("reporter",),
-    )
+    settings = WellSettings.of_demo(channels=CHANNELS)
     from_tiff = index_plate_images(str(tiff_folder), "{well}_s{site}_{channel}.tif", 96, list(CHANNELS))
     from_zarr = index_plate_images(str(store), "{well}_s{site}_{channel}.tif", 96, list(CHANNELS))
     assert from_zarr.source == "zarr" and sorted(from_zarr.table["well"].unique()) == ["B02", "C03"]
@@ -119,18 +107,7 @@ def test_multichannel_ome_tiff_per_site_gives_the_same_tables_as_one_file_per_ch
             ome=True,
             metadata={"axes": "TCYX", "Channel": {"Name": list(CHANNELS)}, "PhysicalSizeX": 0.8},
         )
-    settings = WellSettings.defaults(
-        channels=CHANNELS,
-        nuclei_channel="nuclear",
-        pixel_size_um=0.8,
-        frame_interval_min=5.0,
-        smoothing_sigma_um=1.0,
-        min_nucleus_area_um2=30.0,
-        split_min_distance_um=7.0,
-        max_displacement_um=8.0,
-        min_track_frames=3,
-        max_gap_frames=2,
-    )
+    settings = WellSettings.of_demo(channels=CHANNELS, reporter_channels=())
     one = index_plate_images(str(per_channel), "{well}_s{site}_{channel}.tif", 96, list(CHANNELS))
     multi = index_plate_images(str(per_site), "{well}_s{site}.ome.tif", 96, list(CHANNELS))
     assert multi.source == "ome_tiff" and len(multi.table) == 8

@@ -120,16 +120,11 @@ def test_stacks_and_one_file_per_frame_give_the_same_tables(tmp_path):
         tifffile.imwrite(stacks / f"C03_s1_{name}.tif", stack[:, channel], photometric="minisblack")
         for frame in range(4):
             tifffile.imwrite(frames / f"C03_s1_t{frame:03d}_{name}.tif", stack[frame, channel])
-    settings = WellSettings.defaults(
+    settings = WellSettings.of_demo(
         channels=("nuc", "rep"),
         nuclei_channel="nuc",
         pixel_size_um=scenario["pixel_size_um"],
-        frame_interval_min=5.0,
-        smoothing_sigma_um=1.0,
-        min_nucleus_area_um2=30.0,
-        split_min_distance_um=7.0,
-        max_displacement_um=8.0,
-        min_track_frames=3,
+        reporter_channels=(),
         max_gap_frames=0,
     )
     from_stacks = analyse_well(

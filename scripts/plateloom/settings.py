@@ -14,7 +14,7 @@ from typing import Any, TypeVar
 
 import yaml
 
-from plateloom.assets import config_schema
+from plateloom.assets import config_schema, demo_config_folder
 
 T = TypeVar("T", bound="FromSchema")
 
@@ -55,6 +55,17 @@ def schema_defaults() -> dict:
     return copy.deepcopy(_schema_defaults())
 
 
+@lru_cache(maxsize=1)
+def _demo_config() -> dict:
+    with open(demo_config_folder() / "config.yaml", encoding="utf-8") as handle:
+        return fill_defaults(yaml.safe_load(handle))
+
+
+def demo_config() -> dict:
+    """The demo screen's config (config/config.yaml), validated with every default filled (a copy)."""
+    return copy.deepcopy(_demo_config())
+
+
 class FromSchema:
     """Mixin of the settings dataclasses: ``defaults(**overrides)`` from the schema's defaults."""
 
@@ -66,3 +77,8 @@ class FromSchema:
     def defaults(cls: type[T], **overrides: Any) -> T:
         """The settings of a config that leaves every key at its schema default, then ``overrides`` by name."""
         return dataclasses.replace(cls.from_config(schema_defaults()), **overrides)
+
+    @classmethod
+    def of_demo(cls: type[T], **overrides: Any) -> T:
+        """The settings of the demo screen's config, then ``overrides`` by name."""
+        return dataclasses.replace(cls.from_config(demo_config()), **overrides)
