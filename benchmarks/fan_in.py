@@ -26,6 +26,7 @@ import pandas as pd
 
 from plateloom.io.tables import write_parquet
 from plateloom.setup.plate_formats import plate_format, well_name
+from plateloom.well.features import object_columns
 
 WELLS = 384
 
@@ -83,15 +84,8 @@ def synthetic_well(rng: np.random.Generator, well: str, rows: int) -> pd.DataFra
         "centroid_x_um": rng.uniform(0, 800, n),
         "centroid_y_um": rng.uniform(0, 800, n),
     }
-    for name in (
-        "area_um2",
-        "perimeter_um",
-        "eccentricity",
-        "solidity",
-        "major_axis_um",
-        "minor_axis_um",
-        "isoperimetric_quotient",
-    ):
+    positions = ("object", "centroid_x_um", "centroid_y_um", "touches_border")
+    for name in [c for c in object_columns([], [], with_cells=False) if c not in positions]:
         data[name] = rng.lognormal(3, 0.2, n)
     for channel in ("nuclear", "reporter"):
         for kind in ("mean", "integrated", "std"):

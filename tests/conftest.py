@@ -66,3 +66,18 @@ def tiny_well_settings(channels) -> WellSettings:
         max_gap_frames=0,
         reporter_channels=(),
     )
+
+
+def plate_tables(cells, tracks, site_qc, layout, settings=None, rules=None, collective=None):
+    """The plate stage's tables of a synthetic plate P1 (batch d1, 96 wells) held in memory;
+    settings and rules default to the schema's."""
+    from plateloom.plate.exclusions import ExclusionRules
+    from plateloom.plate.stage import PlateDesign, PlateSettings, WellTables, build_plate_tables
+
+    return build_plate_tables(
+        cells,
+        WellTables(tracks, site_qc, collective),
+        PlateDesign("P1", "d1", 96, layout),
+        settings or PlateSettings.defaults(),
+        rules or ExclusionRules.defaults(),
+    )

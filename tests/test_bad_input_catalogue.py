@@ -11,7 +11,7 @@ import numpy as np
 import pandas as pd
 import pytest
 import tifffile
-from conftest import run_snakemake, tiny_well_settings
+from conftest import plate_tables, run_snakemake, tiny_well_settings
 from test_plate_stage import _plate
 
 from plateloom.errors import InputError
@@ -152,13 +152,7 @@ def test_well_with_no_cells_is_excluded_with_a_ledger_entry():
     cells = cells[cells["well"] != "C03"]
     tracks = tracks[tracks["well"] != "C03"]
     qc.loc[qc["well"] == "C03", "n_objects"] = 0
-    tables = build_plate_tables(
-        cells,
-        WellTables(tracks, qc),
-        PlateDesign("P1", "d1", 96, layout),
-        PlateSettings.defaults(),
-        ExclusionRules.defaults(),
-    )
+    tables = plate_tables(cells, tracks, qc, layout)
     row = tables.profile.set_index("well").loc["C03"]
     assert row["cell_count"] == 0 and row["excluded_by"].startswith("min_cells_per_well")
     assert ((tables.ledger["well"] == "C03") & (tables.ledger["rule"] == "min_cells_per_well")).any()
@@ -167,13 +161,7 @@ def test_well_with_no_cells_is_excluded_with_a_ledger_entry():
 
 def test_plate_whose_every_well_fails_qc_leaves_the_model_and_the_rest_continues():
     cells, tracks, qc, layout = _plate(seed=1)
-    failing = build_plate_tables(
-        cells.iloc[0:0],
-        WellTables(tracks.iloc[0:0], qc.assign(n_objects=0)),
-        PlateDesign("P1", "d1", 96, layout),
-        PlateSettings.defaults(),
-        ExclusionRules.defaults(),
-    )
+    failing = plate_tables(cells.iloc[0:0], tracks.iloc[0:0], qc.assign(n_objects=0), layout)
     assert (failing.profile["excluded_by"] != "").all()
     assert (failing.ledger["rule"] == "min_cells_per_well").sum() == 96
     good = [_plate_tables_of_seed(s, layout).profile for s in (2, 3)]

@@ -3,9 +3,10 @@
 import numpy as np
 import pandas as pd
 import pytest
+from conftest import plate_tables
 
 from plateloom.plate.exclusions import ExclusionRules
-from plateloom.plate.stage import PlateDesign, PlateSettings, WellTables, build_plate_tables
+from plateloom.plate.stage import PlateDesign, PlateSettings, WellTables
 from plateloom.setup.plate_formats import all_wells, is_edge_well, plate_format
 
 FMT = plate_format(96)
@@ -72,21 +73,11 @@ def _plate(edge_ratio=1.2, seed=0):
 
 def test_edge_effect_detected_and_removed_by_median_polish():
     cells, tracks, qc, layout = _plate()
-    plain = build_plate_tables(
-        cells,
-        WellTables(tracks, qc),
-        PlateDesign("P1", "d1", 96, layout),
-        PlateSettings.defaults(),
-        ExclusionRules.defaults(),
-    )
+    plain = plate_tables(cells, tracks, qc, layout)
     row = plain.edge.set_index("feature").loc["area_um2"]
     assert row["edge_shift"] == pytest.approx(np.log(1.2), abs=0.02) and row["p_value"] < 1e-6
-    corrected = build_plate_tables(
-        cells,
-        WellTables(tracks, qc),
-        PlateDesign("P1", "d1", 96, layout),
-        PlateSettings.defaults(positional_correction="median_polish"),
-        ExclusionRules.defaults(),
+    corrected = plate_tables(
+        cells, tracks, qc, layout, settings=PlateSettings.defaults(positional_correction="median_polish")
     )
     row = corrected.edge.set_index("feature").loc["area_um2"]
     assert abs(row["edge_shift_corrected"]) < 0.25 * np.log(1.2)
@@ -96,9 +87,7 @@ def test_edge_effect_detected_and_removed_by_median_polish():
 def test_every_exclusion_is_in_the_ledger_with_value_and_threshold():
     cells, tracks, qc, layout = _plate()
     rules = ExclusionRules.defaults(min_cells_per_well=5, max_saturated_fraction=0.05, min_plate_z_prime=0.99)
-    tables = build_plate_tables(
-        cells, WellTables(tracks, qc), PlateDesign("P1", "d1", 96, layout), PlateSettings.defaults(), rules
-    )
+    tables = plate_tables(cells, tracks, qc, layout, rules=rules)
     ledger = tables.ledger.sort_values("level").reset_index(drop=True)
     assert ledger[["level", "well", "rule"]].values.tolist() == [
         ["plate", "", "min_plate_z_prime (area_um2)"],
@@ -118,9 +107,7 @@ def test_percent_activity_puts_controls_at_0_and_100(method, negative_at, positi
     # normalized percent activity: 0 at the negative, 100 at the positive controls' median (common practice)
     cells, tracks, qc, layout = _plate(edge_ratio=1.0)
     settings = PlateSettings.defaults(normalization=method)
-    tables = build_plate_tables(
-        cells, WellTables(tracks, qc), PlateDesign("P1", "d1", 96, layout), settings, ExclusionRules.defaults()
-    )
+    tables = plate_tables(cells, tracks, qc, layout, settings=settings)
     profile = tables.profile[tables.profile["excluded_by"] == ""]
     neg = profile.loc[profile["role"] == "negative_control", f"area_um2_{method}"]
     pos = profile.loc[profile["role"] == "positive_control", f"area_um2_{method}"]
@@ -131,9 +118,7 @@ def test_percent_activity_puts_controls_at_0_and_100(method, negative_at, positi
 def test_percent_of_control_is_the_percentage_of_the_negative_controls_median():
     cells, tracks, qc, layout = _plate(edge_ratio=1.0)
     settings = PlateSettings.defaults(normalization="percent_of_control")
-    tables = build_plate_tables(
-        cells, WellTables(tracks, qc), PlateDesign("P1", "d1", 96, layout), settings, ExclusionRules.defaults()
-    )
+    tables = plate_tables(cells, tracks, qc, layout, settings=settings)
     profile = tables.profile[tables.profile["excluded_by"] == ""]
     neg = profile.loc[profile["role"] == "negative_control"]
     assert np.median(neg["area_um2_percent_of_control"]) == pytest.approx(100.0, abs=1e-9)
@@ -144,13 +129,7 @@ def test_percent_of_control_is_the_percentage_of_the_negative_controls_median():
 def test_single_well_treatment_and_image_qc_are_reported():
     cells, tracks, qc, layout = _plate(edge_ratio=1.0)
     layout.loc[layout["well"] == "A02", "treatment"] = "lonely 1 uM"
-    tables = build_plate_tables(
-        cells,
-        WellTables(tracks, qc),
-        PlateDesign("P1", "d1", 96, layout),
-        PlateSettings.defaults(),
-        ExclusionRules.defaults(),
-    )
+    tables = plate_tables(cells, tracks, qc, layout)
     assert "treatment 'lonely 1 uM' has a single kept well on this plate" in tables.warnings
     assert tables.site_summary["site_frames"] == 192 and tables.site_summary["saturated_fraction_max"] == pytest.approx(
         0.2
@@ -173,35 +152,15 @@ def test_collective_readouts_join_the_profile_as_features_and_their_counts_do_no
             "n_coupling_tests": 20,
         }
     )
-    tables = build_plate_tables(
-        cells,
-        WellTables(tracks, qc, collective),
-        PlateDesign("P1", "d1", 96, layout),
-        PlateSettings.defaults(),
-        ExclusionRules.defaults(),
-    )
+    tables = plate_tables(cells, tracks, qc, layout, collective=collective)
     profile = tables.profile.set_index("well")
     np.testing.assert_allclose(profile.loc[wells, "phase_order_rep"], np.linspace(0, 1, len(wells)))
     assert "phase_order_rep_robust_z" in profile and "spreading_index_robust_z" in profile
     assert "n_events_robust_z" not in profile and "spreading_p_value_robust_z" not in profile
     # no readout columns (collective readouts switched off): the profile is as without the table
     keys_only = collective[["plate", "well"]]
-    plain = build_plate_tables(
-        cells,
-        WellTables(tracks, qc, keys_only),
-        PlateDesign("P1", "d1", 96, layout),
-        PlateSettings.defaults(),
-        ExclusionRules.defaults(),
-    )
-    assert list(plain.profile.columns) == list(
-        build_plate_tables(
-            cells,
-            WellTables(tracks, qc),
-            PlateDesign("P1", "d1", 96, layout),
-            PlateSettings.defaults(),
-            ExclusionRules.defaults(),
-        ).profile.columns
-    )
+    plain = plate_tables(cells, tracks, qc, layout, collective=keys_only)
+    assert list(plain.profile.columns) == list(plate_tables(cells, tracks, qc, layout).profile.columns)
 
 
 def _write_cells_folders(tmp_path, cells: pd.DataFrame) -> list[str]:
@@ -264,9 +223,7 @@ def test_well_summaries_streamed_from_files_equal_pandas_and_the_in_memory_path(
     streamed = build_plate_tables_from_files(
         folders, WellTables(tracks, qc), PlateDesign("P1", "d1", 96, layout), settings, rules, 2
     )
-    whole = build_plate_tables(
-        read_plate_dataset(folders), WellTables(tracks, qc), PlateDesign("P1", "d1", 96, layout), settings, rules
-    )
+    whole = plate_tables(read_plate_dataset(folders), tracks, qc, layout, settings=settings, rules=rules)
     pd.testing.assert_frame_equal(streamed.profile, whole.profile, rtol=1e-12)
     pd.testing.assert_frame_equal(streamed.ledger, whole.ledger)
 

@@ -2,14 +2,13 @@
 
 import numpy as np
 import pandas as pd
+from conftest import plate_tables
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from test_plate_stage import _plate
 from test_screen_stage import _wells
 
-from plateloom.plate.exclusions import ExclusionRules
 from plateloom.plate.qc import robust_z, z_prime
-from plateloom.plate.stage import PlateDesign, PlateSettings, WellTables, build_plate_tables
 from plateloom.screen.effects import screen_effects
 from plateloom.screen.model_wells import build_model_wells, treatment_catalogue
 from plateloom.stats import bh_qvalues
@@ -73,21 +72,9 @@ def test_bh_q_values_are_at_least_p_monotone_and_order_free(p, seed):
 @given(seed=st.integers(0, 1000))
 def test_plate_tables_do_not_depend_on_the_order_of_cells(seed):
     cells, tracks, qc, layout = _plate(seed=3)
-    reference = build_plate_tables(
-        cells,
-        WellTables(tracks, qc),
-        PlateDesign("P1", "d1", 96, layout),
-        PlateSettings.defaults(),
-        ExclusionRules.defaults(),
-    )
+    reference = plate_tables(cells, tracks, qc, layout)
     shuffled = cells.sample(frac=1.0, random_state=seed).reset_index(drop=True)
-    tables = build_plate_tables(
-        shuffled,
-        WellTables(tracks.sample(frac=1.0, random_state=seed), qc),
-        PlateDesign("P1", "d1", 96, layout),
-        PlateSettings.defaults(),
-        ExclusionRules.defaults(),
-    )
+    tables = plate_tables(shuffled, tracks.sample(frac=1.0, random_state=seed), qc, layout)
     pd.testing.assert_frame_equal(tables.profile, reference.profile, check_exact=False, rtol=1e-9)
     pd.testing.assert_frame_equal(tables.qc, reference.qc, check_exact=False, rtol=1e-9)
 

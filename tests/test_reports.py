@@ -8,10 +8,10 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pytest
+from conftest import plate_tables
 from test_plate_stage import _plate
 
 from plateloom.plate.exclusions import ExclusionRules
-from plateloom.plate.stage import PlateDesign, PlateSettings, WellTables, build_plate_tables
 from plateloom.report.plate_page import PlatePage, build_plate_report
 from plateloom.setup.plate_formats import plate_format
 
@@ -22,9 +22,7 @@ def _report(tmp_path: Path, rules: ExclusionRules | None = None) -> Path:
     rules = rules or ExclusionRules.defaults()
     cells, tracks, qc, layout = _plate()
     layout.loc[layout["role"] == "test", "treatment"] = HOSTILE
-    tables = build_plate_tables(
-        cells, WellTables(tracks, qc), PlateDesign("P1", "d1", 96, layout), PlateSettings.defaults(), rules
-    )
+    tables = plate_tables(cells, tracks, qc, layout, rules=rules)
     tables.profile.loc[tables.profile["well"] == "D05", "treatment"] = HOSTILE
     tables.warnings.append(HOSTILE)
     html = build_plate_report(tables, PlatePage("P1", "d1", plate_format(96), "area_um2", {"config_sha256": "abc"}))
