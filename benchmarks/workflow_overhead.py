@@ -90,9 +90,9 @@ for path in list(sm.output) + list(sm.log):
 
 def _use_stand_ins(work: Path) -> None:
     """Point every rule's script: at the stand-in."""
-    (work / "scripts" / "steps" / "stand_in.py").write_text(STAND_IN)
+    (work / "workflow" / "scripts" / "stand_in.py").write_text(STAND_IN)
     for rules in (work / "workflow" / "rules").glob("*.smk"):
-        text = re.sub(r'"\.\./\.\./scripts/steps/\w+\.py"', '"../../scripts/steps/stand_in.py"', rules.read_text())
+        text = re.sub(r'"\.\./scripts/\w+\.py"', '"../scripts/stand_in.py"', rules.read_text())
         rules.write_text(text)
 
 
