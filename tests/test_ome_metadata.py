@@ -46,3 +46,11 @@ def test_plain_tiff_without_scale_in_config_is_an_error_naming_the_keys(tmp_path
         r"Fix: set images.pixel_size_um",
     ):
         image_scale({"pixel_size_um": None, "frame_interval_min": 1.0}, str(path))
+
+
+@pytest.mark.parametrize("unit", ["\u00b5m", "\u03bcm", "um"])
+def test_micrometres_written_with_the_micro_sign_or_the_greek_mu(tmp_path, unit):
+    # Unicode has two characters for micro: MICRO SIGN U+00B5 and GREEK SMALL LETTER MU U+03BC
+    # (Unicode standard, compatibility decomposition of U+00B5); OME writers use either.
+    path = _ome_file(tmp_path / "a.ome.tif", PhysicalSizeX=0.65, PhysicalSizeXUnit=unit)
+    assert read_ome_metadata(path).pixel_size_um == pytest.approx(0.65)

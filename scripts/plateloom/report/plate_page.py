@@ -9,11 +9,10 @@ import numpy as np
 import pandas as pd
 import seaborn as sns
 
+from plateloom.columns import ANALYSED_ROLES
 from plateloom.plate.stage import PlateTables
 from plateloom.report.html import escape, figure_tag, page, table_tag
 from plateloom.setup.plate_formats import PlateFormat, row_label, well_grid
-
-ROLE_ORDER = ["negative_control", "positive_control", "test"]
 
 
 def plate_heatmap(profile: pd.DataFrame, feature: str, fmt: PlateFormat) -> plt.Figure:
@@ -46,7 +45,7 @@ def control_distributions(profile: pd.DataFrame, features: list[str]) -> plt.Fig
         axis.set_visible(False)
     data = profile[profile["excluded_by"] == ""]
     for axis, feature in zip(axes[0], features):
-        order = [r for r in ROLE_ORDER if data.loc[data["role"] == r, feature].notna().any()]
+        order = [r for r in ANALYSED_ROLES if data.loc[data["role"] == r, feature].notna().any()]
         if not order:
             axis.text(0.5, 0.5, "no values", ha="center", va="center", transform=axis.transAxes)
             axis.set_title(feature, fontsize=9)

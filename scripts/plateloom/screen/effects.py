@@ -18,11 +18,12 @@ import numpy as np
 import pandas as pd
 from scipy import stats
 
+from plateloom.columns import REFERENCE_ROLE
 from plateloom.screen.model_wells import treatment_catalogue
 from plateloom.screen.nested_fit import FITTERS, fit_nested, fixed_plate_fit
 from plateloom.stats import bh_qvalues  # noqa: F401  (part of this module's interface)
 
-REFERENCE = "negative_control"
+REFERENCE = REFERENCE_ROLE
 
 
 def _codes(treatments: pd.Series) -> tuple[pd.Series, dict[str, str]]:
@@ -248,7 +249,7 @@ def _unfitted_table(
 def _treatment_catalogue(wells: pd.DataFrame, treatments: pd.DataFrame | None) -> pd.DataFrame:
     """One row per non-reference treatment (index: treatment), from ``treatments`` or from the wells."""
     catalogue = treatment_catalogue(treatments if treatments is not None else wells)
-    catalogue = catalogue[catalogue["role"].isin(["positive_control", "test"])]
+    catalogue = catalogue[catalogue["role"] != REFERENCE_ROLE]
     return catalogue.set_index("treatment")[["condition", "dose", "dose_unit", "role"]].sort_index()
 
 

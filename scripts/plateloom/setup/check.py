@@ -181,7 +181,7 @@ class _ScreenCheck:
         self._well_coverage(entry, layout, analysed, imaged)
         wells = sorted(analysed & imaged)
         self.totals["wells"] += len(wells)
-        self.totals["jobs"] += -(-len(analysed) // int(self.config.get("chunk_wells", 24))) + 2 + len(self.channels)
+        self.totals["jobs"] += -(-len(analysed) // int(self.config["chunk_wells"])) + 2 + len(self.channels)
         self._frames_and_headers(entry, index, wells)
 
     def _layout(self, entry):

@@ -50,20 +50,20 @@ class ScreenPlan:
         return analyse_wells_size(
             self.imaging[plate],
             len(self.chunks[plate][int(chunk)]),
-            float(self.sizing.get("seconds_per_megapixel_frame", 1.5)),
-            float(self.sizing.get("safety_factor", 2.0)),
+            float(self.sizing["seconds_per_megapixel_frame"]),
+            float(self.sizing["safety_factor"]),
         )
 
     def illumination_job_size(self, plate: str, n_planes: int) -> JobSize:
         """mem_mb of the flat-field job: the sampled planes of one channel held at once (float32)."""
         size = self.imaging[plate]
         planes_mb = n_planes * size.side_px**2 * 4 * 3 / 1e6  # planes, their scaled copy, the median's work
-        return JobSize(int(-(-(float(self.sizing.get("safety_factor", 2.0)) * (700 + planes_mb)) // 100) * 100), 30)
+        return JobSize(int(-(-(float(self.sizing["safety_factor"]) * (700 + planes_mb)) // 100) * 100), 30)
 
     def screen_job_size(self) -> JobSize:
         """mem_mb and runtime of a screen-level job, from the number of wells and features."""
         n_wells = sum(len(wells) for chunks in self.chunks.values() for wells in chunks)
-        return screen_size(n_wells, len(self.features), float(self.sizing.get("safety_factor", 2.0)))
+        return screen_size(n_wells, len(self.features), float(self.sizing["safety_factor"]))
 
 
 def channel_names(config: dict) -> dict[str, str]:
@@ -108,7 +108,7 @@ def plan_screen(config: dict) -> ScreenPlan:
     """
     channel_names(config)
     entries = load_screen_sheet(config["screen_sheet"])
-    demo = config.get("demo", {})
+    demo = config["demo"]
     scenario_path = demo.get("scenario") or str(demo_scenario())
     scenario = (
         load_scenario(scenario_path, demo.get("frames"), demo.get("image_size_px"))
@@ -117,11 +117,11 @@ def plan_screen(config: dict) -> ScreenPlan:
     )
     scenario_plates = demo_plates(scenario) if scenario else {}
     plan = ScreenPlan({}, {}, {})
-    plan.sizing = dict(config.get("job_sizing", {}))
+    plan.sizing = dict(config["job_sizing"])
     expected = ImagingSize(
-        int(plan.sizing.get("image_side_px", 1024)),
-        int(plan.sizing.get("frames_per_site", 100)),
-        int(plan.sizing.get("sites_per_well", 4)),
+        int(plan.sizing["image_side_px"]),
+        int(plan.sizing["frames_per_site"]),
+        int(plan.sizing["sites_per_well"]),
         len(config["channels"]),
     )
     layouts_by_path: dict[tuple[str, int], pd.DataFrame] = {}

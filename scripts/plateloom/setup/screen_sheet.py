@@ -12,10 +12,10 @@ from dataclasses import dataclass
 
 import pandas as pd
 
+from plateloom.columns import ROLES
 from plateloom.errors import InputError
 from plateloom.setup.plate_formats import canonical_well, parse_well, plate_format
 
-ROLES = ("negative_control", "positive_control", "test", "empty")
 SHEET_COLUMNS = ("plate", "batch", "plate_format", "layout", "image_folder")
 LAYOUT_COLUMNS = ("well", "role", "condition", "dose", "dose_unit")
 PLATE_ID_CHARS = set("abcdefghijklmnopqrstuvwxyzABCDEFGHIJKLMNOPQRSTUVWXYZ0123456789-_.")
