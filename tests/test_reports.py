@@ -105,3 +105,22 @@ def test_screen_report_escapes_hostile_treatment_names(tmp_path):
     html = build_screen_report(results, settings, {"packages": {}})
     assert "<b>x</b>" not in html
     assert "&lt;b&gt;x&lt;/b&gt; &quot;quoted&quot;, comma &amp; Ölsäure" in html
+
+
+def test_tex_like_names_are_drawn_as_text_not_parsed_as_math():
+    import matplotlib.pyplot as plt
+
+    from plateloom.report.html import figure_tag
+
+    figure, axis = plt.subplots()
+    axis.set_title("$\\notacommand{ batch $x^$")  # malformed math: mathtext would raise on drawing
+    assert figure_tag(figure, "t").startswith("<img")
+
+
+def test_plate_report_is_the_same_whatever_numpy_global_state(tmp_path):
+    (tmp_path / "a").mkdir()
+    (tmp_path / "b").mkdir()
+    first = _report(tmp_path / "a").read_bytes()
+    np.random.seed(12345)
+    np.random.random(17)
+    assert _report(tmp_path / "b").read_bytes() == first

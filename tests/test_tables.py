@@ -1,5 +1,6 @@
 """Outputs are written atomically: an interrupted write never leaves a readable partial file."""
 
+import io
 import os
 
 import pandas as pd
@@ -64,3 +65,14 @@ def test_a_results_tree_opens_as_one_arrow_dataset(tmp_path):
         )
     table = ds.dataset(str(tmp_path / "cells")).to_table().to_pandas().sort_values("area_um2")
     assert table[["plate", "well"]].values.tolist() == [["P1", "B02"], ["P1", "B03"], ["P2", "B02"]]
+
+
+def test_csv_text_writes_spreadsheet_formulas_as_text():
+    # OWASP "CSV injection": a cell starting with = + - @ is run as a formula by spreadsheets;
+    # the common remedy is a leading apostrophe, which spreadsheets show as text.
+    table = pd.DataFrame(
+        {"condition": ['=HYPERLINK("x")', "@SUM(A1)", "+1", "-cmd", "plain", None], "estimate": [-0.5] * 6}
+    )
+    back = pd.read_csv(io.StringIO(tables.csv_text(table)), keep_default_na=False)
+    assert back["condition"].tolist() == ['\'=HYPERLINK("x")', "'@SUM(A1)", "'+1", "'-cmd", "plain", ""]
+    assert (back["estimate"] == -0.5).all()

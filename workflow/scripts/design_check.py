@@ -3,7 +3,7 @@
 import pandas as pd
 
 from plateloom.io.job import run_step
-from plateloom.io.tables import write_parquet, write_text
+from plateloom.io.tables import csv_text, write_parquet, write_text
 from plateloom.screen.design_check import components_from_effects, design_check
 
 sm = snakemake  # noqa: F821  (injected by Snakemake's script directive)
@@ -31,7 +31,7 @@ def step() -> None:
         residual_variance=components.residual,
     )
     write_parquet(table, sm.output.parquet, dict(p))
-    write_text(table.to_csv(index=False, float_format="%.6g"), sm.output.csv)
+    write_text(csv_text(table), sm.output.csv)
 
 
 run_step(sm.log[0], step, "design_check")

@@ -3,7 +3,7 @@
 import pandas as pd
 
 from plateloom.io.job import run_step
-from plateloom.io.tables import read_extra, write_parquet, write_text
+from plateloom.io.tables import csv_text, read_extra, write_parquet, write_text
 from plateloom.screen.dose_response import dose_response_table
 
 sm = snakemake  # noqa: F821  (injected by Snakemake's script directive)
@@ -20,7 +20,7 @@ def step() -> None:
         model_wells, list(p["dose_response_features"]), scales, int(p["dose_response_min_doses"]), p["ci_level"]
     )
     write_parquet(fits, sm.output.parquet, dict(p))
-    write_text(fits.to_csv(index=False, float_format="%.6g"), sm.output.csv)
+    write_text(csv_text(fits), sm.output.csv)
     write_parquet(points, sm.output.points, dict(p))
 
 

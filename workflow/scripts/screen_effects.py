@@ -3,7 +3,7 @@
 import pandas as pd
 
 from plateloom.io.job import run_step
-from plateloom.io.tables import write_parquet, write_text
+from plateloom.io.tables import csv_text, write_parquet, write_text
 from plateloom.screen.effects import add_hit_calls
 
 sm = snakemake  # noqa: F821  (injected by Snakemake's script directive)
@@ -14,7 +14,7 @@ def step() -> None:
     p = sm.params.settings
     effects = add_hit_calls(table, p["hit_q_value"], p["hit_min_log_ratio"])
     write_parquet(effects, sm.output.parquet, dict(p))
-    write_text(effects.to_csv(index=False, float_format="%.6g"), sm.output.csv)
+    write_text(csv_text(effects), sm.output.csv)
 
 
 run_step(sm.log[0], step, "screen_effects")

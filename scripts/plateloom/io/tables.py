@@ -33,6 +33,22 @@ def provenance(settings: object) -> dict[str, object]:
     return {"config_sha256": config_digest(settings), "python": platform.python_version(), "packages": versions}
 
 
+# A spreadsheet runs a cell that starts with one of these as a formula (OWASP, "CSV injection").
+FORMULA_STARTS = ("=", "+", "-", "@", "\t", "\r")
+
+
+def csv_text(table: pd.DataFrame, float_format: str = "%.6g") -> str:
+    """``table`` as CSV for spreadsheets: a text cell that a spreadsheet would run as a formula
+    (``=HYPERLINK(...)``, ``@SUM(...)``) is written with a leading apostrophe, as text."""
+    safe = table.copy()
+    for column in safe.columns:
+        if pd.api.types.is_object_dtype(safe[column]) or pd.api.types.is_string_dtype(safe[column]):
+            safe[column] = safe[column].map(
+                lambda v: "'" + v if isinstance(v, str) and v.startswith(FORMULA_STARTS) else v
+            )
+    return safe.to_csv(index=False, float_format=float_format)
+
+
 def temporary_path(path: str) -> str:
     """A hidden temporary file beside ``path`` (same folder, so the final rename is atomic)."""
     folder = os.path.dirname(path) or "."

@@ -11,6 +11,8 @@ import os
 import matplotlib
 
 matplotlib.use("Agg")
+# Text from layouts and configs (condition, batch) is drawn as given: never parsed as TeX-like math.
+matplotlib.rcParams["text.parse_math"] = False
 import matplotlib.pyplot as plt  # noqa: E402
 import pandas as pd  # noqa: E402
 

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from contextlib import contextmanager
 from dataclasses import dataclass
 
 import matplotlib.pyplot as plt
@@ -38,6 +39,18 @@ def plate_heatmap(profile: pd.DataFrame, feature: str, fmt: PlateFormat) -> plt.
     return figure
 
 
+@contextmanager
+def _seeded_jitter(seed: int = 0):
+    """seaborn draws strip-plot jitter from numpy's global generator: seed it, so that identical
+    runs give identical reports, and give the caller's state back."""
+    state = np.random.get_state()
+    np.random.seed(seed)
+    try:
+        yield
+    finally:
+        np.random.set_state(state)
+
+
 def control_distributions(profile: pd.DataFrame, features: list[str]) -> plt.Figure:
     """Well values by role, one panel per feature (four to a row)."""
     figure, axes = plt.subplots(1, 4, figsize=(16.8, 3.6), squeeze=False)
@@ -50,7 +63,8 @@ def control_distributions(profile: pd.DataFrame, features: list[str]) -> plt.Fig
             axis.text(0.5, 0.5, "no values", ha="center", va="center", transform=axis.transAxes)
             axis.set_title(feature, fontsize=9)
             continue
-        sns.stripplot(data=data, x="role", y=feature, order=order, ax=axis, size=4, jitter=0.25)
+        with _seeded_jitter():
+            sns.stripplot(data=data, x="role", y=feature, order=order, ax=axis, size=4, jitter=0.25)
         sns.boxplot(
             data=data,
             x="role",
