@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import os
+import re
 import shutil
 import subprocess
 import sys
@@ -26,6 +27,13 @@ def copy_workflow(target: Path) -> Path:
             shutil.copytree(source, target / part, ignore=ignore)
         else:
             shutil.copy2(source, target / part)
+    # the copy simulates its demo from its own scenario file, so that a test may change it
+    config_path = target / "config" / "config.yaml"
+    text, replaced = re.subn(
+        r"(?m)^  scenario: null.*$", "  scenario: resources/demo/scenario.yaml", config_path.read_text()
+    )
+    assert replaced == 1, "config/config.yaml: the demo section's scenario line was not found"
+    config_path.write_text(text, encoding="utf-8")
     return target
 
 

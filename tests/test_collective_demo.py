@@ -67,5 +67,6 @@ def test_deaths_spread_under_the_spreading_compound(collective_screen):
     # Events cluster in space and time beyond chance (Knox test per well; combined by Fisher's method).
     p_values = spreading["spreading_p_value"].dropna().to_numpy()
     assert stats.combine_pvalues(p_values, method="fisher")[1] < 1e-3
-    assert spreading["spreading_index"].median() > control["spreading_index"].median()
+    # Wells with fewer than two events have an index of exactly 1, so compare means, not medians.
+    assert spreading["spreading_index"].mean() > control["spreading_index"].mean()
     assert spreading["n_events"].mean() > 2 * control["n_events"].mean()
