@@ -188,3 +188,37 @@ def _plate_tables_of_seed(seed, layout):
         PlateSettings.defaults(),
         ExclusionRules.defaults(),
     )
+
+
+@pytest.mark.parametrize(
+    ("content", "said"),
+    [
+        (b"well,role,condition,dose,dose_unit\nA01,negative_control,v\xe9hicle,,\n", "utf-8"),
+        (b"", "not a readable CSV"),
+        (b"wel,role,condition,dose,dose_unit\nA01,negative_control,v,,\n", "missing column(s) well"),
+    ],
+    ids=["latin-1", "zero bytes", "misspelt column"],
+)
+def test_check_reports_an_unreadable_layout_without_a_traceback(tmp_path, content, said):
+    from plateloom.settings import fill_defaults
+    from plateloom.setup.check import check_screen
+
+    (tmp_path / "images").mkdir()
+    (tmp_path / "layout.csv").write_bytes(content)
+    sheet = tmp_path / "plates.csv"
+    sheet.write_text(
+        f"plate,batch,plate_format,layout,image_folder\nP1,d1,96,{tmp_path}/layout.csv,{tmp_path}/images\n"
+    )
+    config = fill_defaults(
+        {
+            "screen_sheet": str(sheet),
+            "images": {
+                "filename_template": "{well}_s{site}_{channel}.tif",
+                "pixel_size_um": 1,
+                "frame_interval_min": 1,
+            },
+            "channels": [{"name": "dna", "role": "nuclei"}],
+        }
+    )
+    report = check_screen(config)
+    assert any(said in e.message and "layout.csv" in e.message for e in report.errors), report.text()

@@ -172,7 +172,7 @@ class _ScreenCheck:
     def plate(self, entry) -> None:
         layout = self._layout(entry)
         index = self._index(entry)
-        if index is None:
+        if index is None or layout is None:
             return
         self.totals["plates"] += 1
         self._unmatched(entry, index)
@@ -185,9 +185,13 @@ class _ScreenCheck:
         self._frames_and_headers(entry, index, wells)
 
     def _layout(self, entry):
+        """The plate's layout (problems reported); None when the file cannot be read at all."""
         key = (entry.layout, entry.plate_format)
         if key not in self.layouts:  # plates often share a layout
-            self.layouts[key] = check_layout(entry.layout, entry.plate_format)
+            try:
+                self.layouts[key] = check_layout(entry.layout, entry.plate_format)
+            except InputError as error:  # unreadable, empty, not UTF-8, or without its key columns
+                self.layouts[key] = (None, [error])
         layout, problems = self.layouts[key]
         for problem in problems:
             self.report.add("error", InputError(f"plate {entry.plate}: {problem.where}", problem.problem, problem.fix))
