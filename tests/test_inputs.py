@@ -3,6 +3,7 @@
 from pathlib import Path
 
 import numpy as np
+import pandas as pd
 import pytest
 import tifffile
 from conftest import run_snakemake, tiny_well_settings
@@ -131,3 +132,24 @@ def test_missing_image_folder_stops_the_workflow_naming_the_plate(workflow_dir):
     output = result.stdout + result.stderr
     assert result.returncode != 0
     assert "plate LAB-1, column image_folder: image folder '/nonexistent/plate1' does not exist" in output
+
+
+@pytest.mark.parametrize("batch", ["</script><img src=x onerror=document.title=42>", 'day1"}', "=cmd()"])
+def test_a_batch_with_markup_is_refused_before_it_reaches_job_parameters(tmp_path, batch):
+    # Snakemake's --report writes job parameters into an inline script unescaped; the batch is a
+    # job parameter, so it is kept to a plain set of characters.
+    layout = _layout(tmp_path, "A01,negative_control,vehicle,,\n")
+    sheet = tmp_path / "plates.csv"
+    pd.DataFrame([{"plate": "P1", "batch": batch, "plate_format": 96, "layout": layout, "image_folder": "img"}]).to_csv(
+        sheet, index=False
+    )
+    with pytest.raises(InputError, match=r"row 2, column batch: batch .* has characters other than"):
+        load_screen_sheet(str(sheet))
+
+
+@pytest.mark.parametrize("batch", ["2026-11-03", "day 1", "run_4.b", "2026/11/03 10:00", "A+B"])
+def test_plain_batch_labels_are_accepted(tmp_path, batch):
+    layout = _layout(tmp_path, "A01,negative_control,vehicle,,\n")
+    sheet = tmp_path / "plates.csv"
+    sheet.write_text(f"plate,batch,plate_format,layout,image_folder\nP1,{batch},96,{layout},img\n")
+    assert load_screen_sheet(str(sheet))[0].batch == batch

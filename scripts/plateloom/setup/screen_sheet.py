@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import math
 import os
+import re
 from dataclasses import dataclass
 
 import pandas as pd
@@ -16,6 +17,7 @@ from plateloom.columns import ROLES
 from plateloom.errors import InputError
 from plateloom.setup.plate_formats import canonical_well, parse_well, plate_format
 
+BATCH_PATTERN = re.compile(r"^[A-Za-z0-9][A-Za-z0-9 _.:/+-]*$")
 SHEET_COLUMNS = ("plate", "batch", "plate_format", "layout", "image_folder")
 LAYOUT_COLUMNS = ("well", "role", "condition", "dose", "dose_unit")
 PLATE_ID_CHARS = set("abcdefghijklmnopqrstuvwxyzABCDEFGHIJKLMNOPQRSTUVWXYZ0123456789-_.")
@@ -101,6 +103,13 @@ def _sheet_row(row: pd.Series, line: int, path: str, seen: dict[str, int]) -> Pl
             where + ", column batch",
             "batch is empty.",
             "give the imaging day (e.g. 2026-11-03) or another batch label.",
+        )
+    if not BATCH_PATTERN.match(row["batch"]):
+        # the batch reaches Snakemake's job parameters, which its --report writes into a script unescaped
+        raise InputError(
+            where + ", column batch",
+            f"batch {row['batch']!r} has characters other than letters, digits, space and - _ . : / +.",
+            "use a plain label such as 2026-11-03 or day1.",
         )
     try:
         fmt = plate_format(int(row["plate_format"]))
