@@ -35,6 +35,10 @@ class Column:
     scale: str = "linear"  # "log": strictly positive, modelled on the log scale by default
     description: str = ""
 
+    def __post_init__(self) -> None:
+        if self.kind not in KINDS or self.summary not in (*SUMMARIES, None) or self.scale not in ("linear", "log"):
+            raise ValueError(f"column {self.name}: kind, summary or scale not one of the registry's words")
+
 
 _C = ("cells",)
 _T = ("tracks",)

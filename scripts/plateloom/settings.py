@@ -10,7 +10,7 @@ from __future__ import annotations
 import copy
 import dataclasses
 from functools import lru_cache
-from typing import Any, TypeVar
+from typing import Any, ClassVar, TypeVar
 
 import yaml
 
@@ -67,11 +67,18 @@ def demo_config() -> dict:
 
 
 class FromSchema:
-    """Mixin of the settings dataclasses: ``defaults(**overrides)`` from the schema's defaults."""
+    """Mixin of the settings dataclasses: built by name from one config section (``SECTION``;
+    a class that reads several sections overrides ``from_config``), or from the schema's
+    defaults with ``defaults(**overrides)``."""
+
+    SECTION: ClassVar[str] = ""
 
     @classmethod
-    def from_config(cls: type[T], config: dict) -> T:  # pragma: no cover - each class defines it
-        raise NotImplementedError
+    def from_config(cls: type[T], config: dict) -> T:
+        """From the validated config's ``SECTION`` (every key filled by the schema); keys of the
+        section that are not fields of the class (e.g. plate.report_feature) are left out."""
+        fields = {f.name for f in dataclasses.fields(cls)}
+        return cls(**{k: v for k, v in config[cls.SECTION].items() if k in fields})
 
     @classmethod
     def defaults(cls: type[T], **overrides: Any) -> T:

@@ -21,16 +21,13 @@ LEDGER_COLUMNS = ["level", "plate", "well", "site", "frame", "rule", "value", "t
 class ExclusionRules(FromSchema):
     """Thresholds of the rules; None switches a rule off."""
 
+    SECTION = "exclusion_rules"
+
     min_cells_per_well: float | None
     min_focus_score: float | None
     max_saturated_fraction: float | None
     min_plate_z_prime: float | None
     z_prime_feature: str
-
-    @classmethod
-    def from_config(cls, config: dict) -> ExclusionRules:
-        """From the validated config's ``exclusion_rules`` section (every key filled by the schema)."""
-        return cls(**config["exclusion_rules"])
 
 
 def empty_ledger() -> pd.DataFrame:
@@ -160,6 +157,7 @@ def well_exclusions(profile: pd.DataFrame, rules: ExclusionRules) -> tuple[pd.Da
 
 def plate_exclusion(qc: pd.DataFrame, rules: ExclusionRules, plate: str) -> pd.DataFrame:
     """A ledger row when the plate's Z'-factor on the chosen feature is below the floor (or not computable)."""
+
     rows = []
     for rule, threshold in _rules_at("plate", rules):
         row = qc[qc["feature"] == rules.z_prime_feature]

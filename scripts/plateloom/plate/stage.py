@@ -33,15 +33,12 @@ from plateloom.stats import MAD_TO_SD, mad
 class PlateSettings(FromSchema):
     """Plate-stage choices from config."""
 
+    SECTION = "plate"
+
     normalization: str
     normalization_by_feature: dict[str, str]
     positional_correction: str
     well_summary: str
-
-    @classmethod
-    def from_config(cls, config: dict) -> PlateSettings:
-        """From the validated config's ``plate`` section (every key filled by the schema)."""
-        return cls(**{k: v for k, v in config["plate"].items() if k != "report_feature"})
 
 
 @dataclass
@@ -204,6 +201,7 @@ def _plate_tables(
     observed: _Observed, tables: WellTables, design: PlateDesign, settings: PlateSettings, rules: ExclusionRules
 ) -> PlateTables:
     """The plate tables from what the well folders held (see ``_Observed``)."""
+
     warnings = unusable_frame_notes(tables.site_qc)
     profile, well_ledger = well_exclusions(_well_profile(observed, tables, design, settings.well_summary), rules)
     features = well_features(list(profile.columns))

@@ -23,13 +23,11 @@ from plateloom.screen.model_wells import treatment_catalogue
 from plateloom.screen.nested_fit import FITTERS, fit_nested, fixed_plate_fit
 from plateloom.stats import bh_qvalues  # noqa: F401  (part of this module's interface)
 
-REFERENCE = REFERENCE_ROLE
-
 
 def _codes(treatments: pd.Series) -> tuple[pd.Series, dict[str, str]]:
     """Formula-safe codes for treatment names; the reference sorts first (t0000)."""
-    names = sorted(set(pd.unique(treatments)) - {REFERENCE})
-    mapping = {REFERENCE: "t0000", **{name: f"t{i + 1:04d}" for i, name in enumerate(names)}}
+    names = sorted(set(pd.unique(treatments)) - {REFERENCE_ROLE})
+    mapping = {REFERENCE_ROLE: "t0000", **{name: f"t{i + 1:04d}" for i, name in enumerate(names)}}
     return treatments.map(mapping), mapping
 
 
@@ -54,7 +52,7 @@ def _model_data(wells: pd.DataFrame, feature: str) -> tuple[pd.DataFrame, int]:
     """The wells with a finite value of ``feature`` (as y; negative controls as the reference
     treatment) and how many wells had none."""
     data = wells[["batch", "plate", "role", "treatment", "condition", "dose", "dose_unit", feature]].copy()
-    data["treatment"] = np.where(data["role"] == "negative_control", REFERENCE, data["treatment"])
+    data["treatment"] = np.where(data["role"] == REFERENCE_ROLE, REFERENCE_ROLE, data["treatment"])
     data["y"] = data[feature].to_numpy(float)
     finite = np.isfinite(data["y"])
     return data[finite], int((~finite).sum())
@@ -170,7 +168,7 @@ def fit_feature_effects(
             "collective.min_overlap_frames frames; see the README)"
         )
         return _unfitted_table(wells, treatments, feature, scale, note)
-    if (data["treatment"] == REFERENCE).sum() == 0:
+    if (data["treatment"] == REFERENCE_ROLE).sum() == 0:
         raise ValueError(
             f"feature {feature}: no negative-control wells are left in the model; "
             "check the layouts' role column and the exclusion ledger"

@@ -42,6 +42,8 @@ from plateloom.well.track_stats import (
 class CollectiveSettings(FromSchema):
     """Settings of the collective readouts (config section ``collective``; physical units)."""
 
+    SECTION = "collective"
+
     enabled: bool
     max_edge_um: float
     min_edge_fraction: float
@@ -55,11 +57,6 @@ class CollectiveSettings(FromSchema):
     event_window_frames: int
     n_permutations: int
     seed: int
-
-    @classmethod
-    def from_config(cls, config: dict) -> CollectiveSettings:
-        """From the validated config's ``collective`` section (every key filled by the schema)."""
-        return cls(**config["collective"])
 
 
 # ---------------------------------------------------------------------------------------------
@@ -340,6 +337,7 @@ def _channel_readouts(sums: dict[str, list], coupling_q_value: float) -> tuple[d
 
 def _spreading(events: pd.DataFrame, settings: CollectiveSettings, well: str, has_reporter: bool) -> dict[str, float]:
     """spreading_index and its permutation p-value from the Knox test of the well's events."""
+
     if not has_reporter:
         return {"spreading_index": np.nan, "spreading_p_value": np.nan}
     if len(events) < 2:

@@ -25,16 +25,13 @@ METHODS = ("none", "percentile_of_sites")
 class IlluminationSettings(FromSchema):
     """How to estimate the flat field (physical units where they apply)."""
 
+    SECTION = "illumination"
+
     method: str
     max_sites: int
     frames_per_site: int
     smoothing_sigma_um: float
     percentile: float
-
-    @classmethod
-    def from_config(cls, config: dict) -> IlluminationSettings:
-        """From the validated config's ``illumination`` section (every key filled by the schema)."""
-        return cls(**config["illumination"])
 
 
 def sampled_sites(index: ImageIndex, max_sites: int) -> list[tuple[str, int]]:
@@ -114,6 +111,7 @@ def estimate_flat_field(
 
 def apply_flat_field(planes: np.ndarray, profiles: np.ndarray | None) -> np.ndarray:
     """Divide (channels, y, x) planes by their profiles (channels, y, x); None leaves them as they are."""
+
     if profiles is None:
         return planes
     if profiles.shape != planes.shape:
