@@ -5,7 +5,7 @@ import pandas as pd
 import pytest
 from statsmodels.stats.multitest import multipletests
 
-from plateloom.screen.effects import fit_feature_effects
+from plateloom.screen.effects import HitRule, fit_feature_effects
 from plateloom.screen.model_wells import build_model_wells
 from plateloom.screen.nested_fit import fit_nested_random_intercepts
 from plateloom.screen.reml import fit_nested_exact
@@ -90,8 +90,10 @@ def test_planted_log_effect_recovered_as_ratio():
     assert row["converged"]
     assert row["ci_low"] < 0.3 < row["ci_high"]
     assert row["ratio"] == pytest.approx(np.exp(0.3), rel=0.03)
-    # between-within degrees of freedom: 144 wells - 6 plates - 1 treatment
-    assert row["df"] == 137
+    # A contrast within plates: its Satterthwaite df is close to the between-within rule's
+    # 144 wells - 6 plates - 1 treatment = 137 (common practice for balanced split-plot designs).
+    assert row["df"] == pytest.approx(137, rel=0.01)
+    assert row["df_method"] == "Satterthwaite"
 
 
 def test_plate_excluded_by_rule_leaves_the_screen_model():
@@ -101,7 +103,7 @@ def test_plate_excluded_by_rule_leaves_the_screen_model():
     wells["excluded_by"] = ""
     wells["plate_excluded_by"] = np.where(wells["plate"] == "d0p0", "min_plate_z_prime (value): -0.2 < 0", "")
     model = build_model_wells(wells, ["value"], {"value"}, "control_location")
-    effects = screen_effects(model.wells, ["value"], model.scales, 0.95, 0.05, 0.1)
+    effects = screen_effects(model.wells, ["value"], model.scales, 0.95, HitRule())
     assert effects.loc[0, "n_plates"] == 5 and effects.loc[0, "n_wells"] == 60
 
 

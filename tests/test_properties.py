@@ -9,7 +9,7 @@ from test_plate_stage import _plate
 from test_screen_stage import _wells
 
 from plateloom.plate.qc import robust_z, z_prime
-from plateloom.screen.effects import screen_effects
+from plateloom.screen.effects import HitRule, screen_effects
 from plateloom.screen.model_wells import build_model_wells, treatment_catalogue
 from plateloom.stats import bh_qvalues
 
@@ -19,7 +19,7 @@ FAST = settings(max_examples=15, deadline=None)
 def _effects(wells):
     model = build_model_wells(wells, ["value", "other"], {"value", "other"}, "control_location")
     table = screen_effects(
-        model.wells, ["value", "other"], model.scales, 0.95, 0.05, 0.1, "exact", treatment_catalogue(wells)
+        model.wells, ["value", "other"], model.scales, 0.95, HitRule(), "exact", treatment_catalogue(wells)
     )
     return table.sort_values(["feature", "treatment"]).reset_index(drop=True)
 

@@ -13,6 +13,7 @@ from test_plate_stage import _plate
 
 from plateloom.plate.exclusions import ExclusionRules
 from plateloom.report.plate_page import PlatePage, build_plate_report
+from plateloom.screen.effects import HitRule
 from plateloom.setup.plate_formats import plate_format
 
 HOSTILE = '<b>x</b> "quoted", comma & Ölsäure'
@@ -90,7 +91,7 @@ def test_screen_report_escapes_hostile_treatment_names(tmp_path):
     wells = _wells(seed=2)
     wells.loc[wells["condition"] == "X", "treatment"] = HOSTILE
     model = build_model_wells(wells, ["value"], {"value"}, "control_location")
-    effects = screen_effects(model.wells, ["value"], model.scales, 0.95, 0.05, 0.1, "exact")
+    effects = screen_effects(model.wells, ["value"], model.scales, 0.95, HitRule(), "exact")
     ledger = pd.DataFrame(columns=["level", "plate", "well", "site", "frame", "rule", "value", "threshold"])
     settings = {
         "ci_level": 0.95,

@@ -65,6 +65,8 @@ SCREEN_SETTINGS = {
     "ci_level": SCREEN["ci_level"],
     "hit_q_value": SCREEN["hit_q_value"],
     "hit_min_log_ratio": SCREEN["hit_min_log_ratio"],
+    "hit_min_standardized_effect": SCREEN["hit_min_standardized_effect"],
+    "model_on_corrected_values": SCREEN["model_on_corrected_values"],
     "dose_response_features": resolve_features(
         SCREEN["dose_response"]["features"], config
     ),

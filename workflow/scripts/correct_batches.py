@@ -1,4 +1,4 @@
-"""Rule correct_batches: wells in the model, features on their model scale, batch-corrected, with diagnostics."""
+"""Rule correct_batches: wells in the model, features on their model scale, batch-correction diagnostics."""
 
 import pandas as pd
 
@@ -12,8 +12,16 @@ sm = snakemake  # noqa: F821  (injected by Snakemake's script directive)
 def step() -> None:
     wells = pd.concat([pd.read_parquet(path) for path in sm.input.wells], ignore_index=True)
     p = sm.params.settings
-    model = build_model_wells(wells, list(p["features"]), set(p["log_features"]), p["batch_correction"])
-    write_parquet(model.wells, sm.output.model_wells, dict(p), extra={"scales": model.scales, "notes": model.notes})
+    model = build_model_wells(
+        wells, list(p["features"]), set(p["log_features"]), p["batch_correction"], p["model_on_corrected_values"]
+    )
+    extra = {
+        "scales": model.scales,
+        "notes": model.notes,
+        "feature_notes": model.feature_notes,
+        "design_warnings": model.design_warnings,
+    }
+    write_parquet(model.wells, sm.output.model_wells, dict(p), extra=extra)
     write_parquet(treatment_catalogue(wells), sm.output.treatments, dict(p))
     write_parquet(model.variance, sm.output.variance, dict(p))
     write_parquet(model.components, sm.output.components, dict(p))

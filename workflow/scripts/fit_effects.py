@@ -12,10 +12,13 @@ sm = snakemake  # noqa: F821  (injected by Snakemake's script directive)
 def step() -> None:
     model_wells = pd.read_parquet(sm.input.model_wells)
     treatments = pd.read_parquet(sm.input.treatments)
-    scales = read_extra(sm.input.model_wells)["scales"]
+    extra = read_extra(sm.input.model_wells)
+    scales, notes = extra["scales"], extra.get("feature_notes", {})
     p = sm.params.settings
     parts = [
-        fit_feature_effects(model_wells, feature, scales[feature], p["ci_level"], p["fitter"], treatments)
+        fit_feature_effects(
+            model_wells, feature, scales[feature], p["ci_level"], p["fitter"], treatments, notes.get(feature, "")
+        )
         for feature in sm.params.features
     ]
     write_parquet(pd.concat(parts, ignore_index=True), sm.output.part, dict(p))

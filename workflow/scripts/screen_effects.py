@@ -1,10 +1,10 @@
-"""Rule screen_effects: all feature chunks together, BH q-values over every (feature, treatment), hit calls."""
+"""Rule screen_effects: all feature chunks together, BH q-values over every (feature, test treatment), hit calls."""
 
 import pandas as pd
 
 from plateloom.io.job import run_step
 from plateloom.io.tables import csv_text, write_parquet, write_text
-from plateloom.screen.effects import add_hit_calls
+from plateloom.screen.effects import HitRule, add_hit_calls
 
 sm = snakemake  # noqa: F821  (injected by Snakemake's script directive)
 
@@ -12,7 +12,8 @@ sm = snakemake  # noqa: F821  (injected by Snakemake's script directive)
 def step() -> None:
     table = pd.concat([pd.read_parquet(path) for path in sm.input.parts], ignore_index=True)
     p = sm.params.settings
-    effects = add_hit_calls(table, p["hit_q_value"], p["hit_min_log_ratio"])
+    rule = HitRule(p["hit_q_value"], p["hit_min_log_ratio"], p["hit_min_standardized_effect"])
+    effects = add_hit_calls(table, rule)
     write_parquet(effects, sm.output.parquet, dict(p))
     write_text(csv_text(effects), sm.output.csv)
 

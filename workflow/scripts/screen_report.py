@@ -29,6 +29,7 @@ def step() -> None:
         components=pd.read_parquet(sm.input.components),
         design=pd.read_parquet(sm.input.design_check),
         correction_notes=read_extra(sm.input.model_wells).get("notes", []),
+        design_warnings=read_extra(sm.input.model_wells).get("design_warnings", []),
     )
     html = build_screen_report(results, dict(sm.params.settings), read_provenance(sm.input.effects))
     write_figure(volcano_plot(effects), sm.output.volcano)

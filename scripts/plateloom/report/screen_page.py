@@ -111,22 +111,35 @@ def _method_text(settings: dict, provenance: dict) -> str:
         "combat": "empirical-Bayes ComBat (Johnson, Li & Rabinovic 2007) with the treatments as protected covariates",
     }[settings["batch_correction"]]
     fitter = (
-        "statsmodels MixedLM"
+        "statsmodels MixedLM, cross-checked against the exact REML optimum"
         if settings["fitter"] == "statsmodels"
-        else "plateloom's exact nested REML (closed-form variance inverse; agrees with statsmodels)"
+        else "plateloom's exact nested REML, closed-form variance inverse"
+    )
+    values = (
+        f"batch-corrected values ({escape(correction)})"
+        if settings.get("model_on_corrected_values")
+        else "uncorrected values (the batch random intercept absorbs day shifts); the batch correction "
+        f"({escape(correction)}) feeds the pooled views and batch diagnostics only"
     )
     return (
-        "<p>Wells are the experimental units. Strictly positive features are modelled as natural logs, so effects "
-        "read as ratios to the negative control; the others as differences in their unit. "
-        f"Before pooling, on that scale: {escape(correction)}. Per feature, a linear mixed-effects model: treatment as "
-        "fixed effect against the pooled negative-control wells, a random intercept per batch (imaging day) and per "
-        f"plate within batch, fitted by REML ({escape(fitter)}). Confidence intervals are t intervals with "
-        "between-within degrees of freedom (wells - plates - (treatments - 1)); they assume the declared design "
-        "and a treatment effect that is the same on every day. Fits that do not converge are marked and fall back "
-        "to least squares with plate fixed effects. q-values: Benjamini-Hochberg over all feature-treatment pairs. "
+        "<p>Wells are the experimental units. Features declared log-scale are modelled as natural logs, so effects "
+        "read as ratios to the negative control; the others as differences in their unit. The cell count is "
+        "modelled as a count: log of (nuclei + 0.5) with Poisson precision weights, wells below the cell-count "
+        "floor kept. Per feature, a linear mixed-effects model on "
+        f"{values}: treatment as fixed effect against the pooled negative-control wells, a random intercept per "
+        f"batch (imaging day) and per plate within batch, fitted by REML ({escape(fitter)}). Standard errors come "
+        "from (X'V<sup>-1</sup>X)<sup>-1</sup> at the REML estimates; confidence intervals are t intervals with "
+        "Satterthwaite degrees of freedom for each treatment (column df): a treatment sharing plates with the "
+        "negative controls has about as many as there are wells, one applied to whole plates about as many as "
+        "its plates. They assume the declared design and a treatment effect that is the same on every day. "
+        "Fits that do not converge are marked and fall back to least squares with plate fixed effects. "
+        "q-values: Benjamini-Hochberg over the feature-treatment pairs of test treatments; positive controls "
+        "keep their own p-values outside that family and are never called hits. "
         "Dose-response: four-parameter logistic (Hill equation) on well values relative to their plate's negative-"
         "control median, controls at dose 0, EC50 interval from the asymptotic covariance of log10 EC50 (wells "
-        "treated as independent after plate centring). Design check: screens simulated on this design with this "
+        "treated as independent after plate centring); a fit is identifiable only with finite, moderate SEs, a "
+        "finite EC50 interval, a detected response and no lack of fit against the per-dose means (F test, "
+        "p &ge; 0.01). Design check: screens simulated on this design with this "
         "screen's fitted variance components and a planted effect, fitted by the same model.</p>"
         f'<p class="meta">Software: {escape(versions)}; Python {escape(provenance.get("python", ""))}.</p>'
     )
@@ -146,9 +159,22 @@ class ScreenResults:
     components: pd.DataFrame | None = None
     design: pd.DataFrame | None = None
     correction_notes: list[str] = field(default_factory=list)
+    design_warnings: list[str] = field(default_factory=list)
 
 
-EFFECT_COLUMNS = ["feature", "treatment", "scale", "estimate", "ci_low", "ci_high", "ratio", "q_value", "n_wells"]
+EFFECT_COLUMNS = [
+    "feature",
+    "treatment",
+    "scale",
+    "estimate",
+    "ci_low",
+    "ci_high",
+    "df",
+    "ratio",
+    "standardized_effect",
+    "q_value",
+    "n_wells",
+]
 COMPONENT_COLUMNS = [
     "feature",
     "scale",
@@ -186,12 +212,16 @@ def _summary_html(results: ScreenResults, settings: dict) -> str:
         .reset_index()
     )
     in_model = (wells["excluded_by"] == "") & (wells["plate_excluded_by"] == "")
+    family = int(effects["in_fdr_family"].sum()) if "in_fdr_family" in effects else len(effects)
+    warnings = "".join(f"<li>{escape(w)}</li>" for w in results.design_warnings)
     return (
-        f"<p>{wells['plate'].nunique()} plates in {wells['batch'].nunique()} batches, "
+        (f'<div class="caution"><p>Design warnings:</p><ul>{warnings}</ul></div>' if warnings else "")
+        + f"<p>{wells['plate'].nunique()} plates in {wells['batch'].nunique()} batches, "
         f"{int(in_model.sum())} wells in the model, {effects['treatment'].nunique()} treatments, "
         f"{effects['feature'].nunique()} features. Hits: q &lt; {settings['hit_q_value']:g} (Benjamini-Hochberg "
-        f"over all {len(effects)} feature-treatment pairs) and |effect| &ge; {settings['hit_min_log_ratio']:g} "
-        f"(natural-log ratio for log-scale features).</p>"
+        f"over the {family} feature-test-treatment pairs; positive controls outside the family) and an effect of "
+        f"at least {settings['hit_min_log_ratio']:g} natural-log ratio (log-scale features) or "
+        f"{settings.get('hit_min_standardized_effect', 1.0):g} negative-control well SDs (linear-scale features).</p>"
     ) + table_tag(plates)
 
 
@@ -277,6 +307,6 @@ def build_screen_report(results: ScreenResults, settings: dict, provenance: dict
         ("Variance components", _components_html(effects)),
         ("Design check", _design_html(results.design)),
         ("Exclusion ledger", _ledger_html(results.ledger)),
-        ("All effects", table_tag(effects[EFFECT_COLUMNS + ["p_value", "hit", "note"]])),
+        ("All effects", table_tag(effects[EFFECT_COLUMNS + ["p_value", "in_fdr_family", "hit", "note"]])),
     ]
     return page("plateloom screen report", sections, provenance)

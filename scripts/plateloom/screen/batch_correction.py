@@ -23,24 +23,50 @@ from collections.abc import Callable
 import numpy as np
 import pandas as pd
 
+COUNT_FEATURE = "cell_count"  # nuclei per site and frame; modelled as a count (see plateloom.screen.effects)
+MAX_NON_POSITIVE_SHARE = 0.01  # a declared log feature keeps its scale up to this share of values <= 0
+
 
 def model_scale(
     wells: pd.DataFrame, features: list[str], log_features: set[str]
-) -> tuple[pd.DataFrame, dict[str, str]]:
-    """Features on the scale they are modelled on: natural log where all finite values are > 0.
+) -> tuple[pd.DataFrame, dict[str, str], dict[str, str]]:
+    """Features on the scale they are modelled on, as declared by ``log_features``: natural log, or
+    linear. Returns the values (same index as ``wells``), the scale per feature and a note per
+    feature whose scale or values needed a decision.
 
-    Returns the values (same index as ``wells``) and the scale used per feature ("log"/"linear").
+    The declared scale is kept unless more than ``MAX_NON_POSITIVE_SHARE`` of a log feature's
+    finite values are <= 0: then the feature is modelled on the linear scale and the note says
+    why. Up to that share, those wells are left out of that feature's model, with a note. The
+    cell count is a count: log((count x sites + 0.5) / sites), so an empty well stays in the model.
     """
     values = pd.DataFrame(index=wells.index)
     scales: dict[str, str] = {}
+    notes: dict[str, str] = {}
     for feature in features:
         column = wells[feature].to_numpy(float)
-        finite = column[np.isfinite(column)]
-        use_log = feature in log_features and finite.size > 0 and bool(np.all(finite > 0))
+        finite = np.isfinite(column)
+        non_positive = int(np.sum(column[finite] <= 0))
+        use_log = feature in log_features
+        if use_log and feature == COUNT_FEATURE:
+            sites = wells["n_sites"].to_numpy(float) if "n_sites" in wells else np.ones(len(wells))
+            sites = np.where(sites > 0, sites, 1.0)
+            values[feature] = np.log((np.maximum(column, 0.0) * sites + 0.5) / sites)
+            scales[feature] = "log"
+            if non_positive:
+                notes[feature] = f"{non_positive} wells without cells kept as counts of 0 (log of count + 0.5)"
+            continue
+        if use_log and non_positive > MAX_NON_POSITIVE_SHARE * max(int(finite.sum()), 1):
+            use_log = False
+            notes[feature] = (
+                f"declared log scale, but {non_positive} of {int(finite.sum())} wells are <= 0: modelled on the "
+                "linear scale (effects are differences)"
+            )
+        elif use_log and non_positive:
+            notes[feature] = f"{non_positive} wells with a value <= 0 left out of this log-scale feature"
         with np.errstate(divide="ignore", invalid="ignore"):
-            values[feature] = np.log(column) if use_log else column
+            values[feature] = np.where(column > 0, np.log(column), np.nan) if use_log else column
         scales[feature] = "log" if use_log else "linear"
-    return values, scales
+    return values, scales, notes
 
 
 def batches_without_controls(batch: np.ndarray, is_control: np.ndarray) -> list[str]:

@@ -2,12 +2,12 @@
 
 well value ~ treatment (reference: the negative control)
              + random intercept per batch (imaging day) + random intercept per plate within batch,
-fitted by REML with statsmodels. Strictly positive features are modelled as natural logs, so an
-effect reads as a ratio to the negative control.
+fitted by REML (``plateloom.screen.nested_fit``). Features on the log scale are modelled as natural
+logs, so an effect reads as a ratio to the negative control.
 
-Degrees of freedom for the t-interval follow the between-within rule: treatments vary within
-plates, so their contrasts get the within-plate residual degrees of freedom
-N_wells - N_plates - (N_treatments - 1).
+Each treatment's t-interval has its own Satterthwaite degrees of freedom: a treatment that shares
+plates with negative controls gets about the within-plate residual df, one applied to whole plates
+about the number of its plates (``plateloom.screen.denominator_df``).
 """
 
 from __future__ import annotations
@@ -19,8 +19,9 @@ import pandas as pd
 from scipy import stats
 
 from plateloom.columns import REFERENCE_ROLE
+from plateloom.screen.batch_correction import COUNT_FEATURE
 from plateloom.screen.model_wells import treatment_catalogue
-from plateloom.screen.nested_fit import FITTERS, fit_nested, fixed_plate_fit
+from plateloom.screen.nested_fit import FITTERS, fit_nested, fixed_plate_fit, treatment_design
 from plateloom.stats import bh_qvalues  # noqa: F401  (part of this module's interface)
 
 
@@ -37,11 +38,14 @@ def _join(*notes: str) -> str:
 
 @dataclass
 class _Outcome:
-    """What the fit of one feature gave: coefficients and SEs by term name, variance components
-    (batch, plate, residual), whether the mixed model converged, its method and the note."""
+    """What the fit of one feature gave: coefficients, SEs and df by term name, how the df were
+    found, variance components (batch, plate, residual), whether the mixed model converged, its
+    method and the note."""
 
     params: pd.Series
     errors: pd.Series
+    df: pd.Series
+    df_method: str
     components: tuple[float, float, float]
     converged: bool
     method: str
@@ -50,8 +54,12 @@ class _Outcome:
 
 def _model_data(wells: pd.DataFrame, feature: str) -> tuple[pd.DataFrame, int]:
     """The wells with a finite value of ``feature`` (as y; negative controls as the reference
-    treatment) and how many wells had none."""
-    data = wells[["batch", "plate", "role", "treatment", "condition", "dose", "dose_unit", feature]].copy()
+    treatment) and how many wells had none. Wells kept for the cell count only are left out of
+    every other feature without being counted as missing."""
+    if "count_only" in wells.columns and feature != COUNT_FEATURE:
+        wells = wells[~wells["count_only"].to_numpy(bool)]
+    extra = [c for c in ("n_sites",) if c in wells.columns]
+    data = wells[["batch", "plate", "role", "treatment", "condition", "dose", "dose_unit", *extra, feature]].copy()
     data["treatment"] = np.where(data["role"] == REFERENCE_ROLE, REFERENCE_ROLE, data["treatment"])
     data["y"] = data[feature].to_numpy(float)
     finite = np.isfinite(data["y"])
@@ -70,26 +78,66 @@ def _design_note(data: pd.DataFrame, n_not_finite: int) -> str:
     )
 
 
-def _fit_outcome(data: pd.DataFrame, mapping: dict[str, str], fitter: str, note: str) -> _Outcome:
+COUNT_WEIGHT_ITERATIONS = 3
+
+
+def count_weights(data: pd.DataFrame, mapping: dict[str, str], fitter: str) -> np.ndarray:
+    """Precision weights for log cell counts: a log-linear model with overdispersion.
+
+    A well's log count varies by s2 (biology, between wells) plus about 1 / mu from Poisson
+    sampling of mu nuclei over its sites (delta method), so its weight relative to s2 is
+    w = s2 / (s2 + 1 / mu). mu comes from the fitted treatment means (not the well's own count,
+    which would tie the weight to the error), and s2 and the weights are iterated to agreement.
+    """
+    sites = data["n_sites"].to_numpy(float) if "n_sites" in data else np.ones(len(data))
+    design, names = treatment_design(data["code"])
+    weights = np.ones(len(data))
+    for _ in range(COUNT_WEIGHT_ITERATIONS):
+        fit = fit_nested(data, mapping, fitter, weights)
+        expected = np.exp(design @ fit.params.reindex(names).to_numpy(float)) * sites
+        biological = max(fit.residual_variance, 1e-12)
+        weights = biological / (biological + 1.0 / np.maximum(expected, 0.5))
+    return weights
+
+
+def _fit_outcome(
+    data: pd.DataFrame, mapping: dict[str, str], fitter: str, note: str, weights: np.ndarray | None = None
+) -> _Outcome:
     """The mixed model's outcome; OLS with plate fixed effects if it fails; nothing for a constant feature."""
     if np.nanstd(data["y"]) == 0:
         empty = pd.Series(dtype=float)
-        return _Outcome(empty, empty, (np.nan,) * 3, False, "not fitted",
+        return _Outcome(empty, empty, empty, "", (np.nan,) * 3, False, "not fitted",
                         _join(note, "feature is constant across wells: not fitted"))  # fmt: skip
     try:
-        fit = fit_nested(data, mapping, fitter)
+        fit = fit_nested(data, mapping, fitter, weights)
     except RuntimeError as error:
-        params, errors, residual = fixed_plate_fit(data)
+        params, errors, residual, residual_df = fixed_plate_fit(data)
         note = _join(note, f"mixed model failed ({error}); fallback used")
         return _Outcome(
-            params, errors, (np.nan, np.nan, residual), False, "fallback: OLS with plate fixed effects", note
+            params,
+            errors,
+            pd.Series(float(residual_df), index=params.index),
+            "OLS residual",
+            (np.nan, np.nan, residual),
+            False,
+            "fallback: OLS with plate fixed effects",
+            note,
         )
     if data["batch"].nunique() < 2:
         note = _join(note, "one batch only: random intercept per plate")
     if fit.boundary:
         note = _join(note, "a variance component was estimated at zero (singular fit)")
     components = (fit.batch_variance, fit.plate_variance, fit.residual_variance)
-    return _Outcome(fit.params, fit.std_errors, components, True, f"REML mixed model ({fit.method})", note)
+    return _Outcome(
+        fit.params,
+        fit.std_errors,
+        fit.df,
+        "Satterthwaite",
+        components,
+        True,
+        f"REML mixed model ({fit.method})",
+        _join(note, fit.note),
+    )
 
 
 def _treatment_counts(data: pd.DataFrame) -> pd.DataFrame:
@@ -113,20 +161,31 @@ def _row_note(count: pd.Series | None, n_batches: int, note: str) -> str:
     return note
 
 
-def _estimate_columns(outcome: _Outcome, code: str | None, df: float, t_quantile: float) -> dict[str, float]:
+def _estimate_columns(outcome: _Outcome, code: str | None, ci_level: float) -> dict[str, object]:
     term = f"C(code)[T.{code}]"
     estimate = float(outcome.params.get(term, np.nan)) if code else np.nan
     error = float(outcome.errors.get(term, np.nan)) if code else np.nan
+    df = float(outcome.df.get(term, np.nan)) if code else np.nan
     t_value = estimate / error if error > 0 else np.nan
+    t_quantile = stats.t.ppf(0.5 + ci_level / 2, df) if np.isfinite(df) else np.nan
     return {
         "estimate": estimate,
         "std_error": error,
-        "df": float(df),
+        "df": df,
+        "df_method": outcome.df_method if np.isfinite(df) else "",
         "ci_low": estimate - t_quantile * error,
         "ci_high": estimate + t_quantile * error,
         "t_value": t_value,
         "p_value": float(2 * stats.t.sf(abs(t_value), df)) if np.isfinite(t_value) else np.nan,
     }
+
+
+def control_well_sd(data: pd.DataFrame) -> float:
+    """Pooled within-plate SD of the negative-control wells (model-scale units), NaN if not estimable."""
+    controls = data[data["treatment"] == REFERENCE_ROLE]
+    deviations = controls["y"] - controls.groupby("plate")["y"].transform("mean")
+    dof = len(controls) - controls["plate"].nunique()
+    return float(np.sqrt(np.sum(deviations**2) / dof)) if dof > 0 else np.nan
 
 
 def _component_columns(outcome: _Outcome) -> dict[str, object]:
@@ -142,13 +201,28 @@ def _component_columns(outcome: _Outcome) -> dict[str, object]:
     }
 
 
+def _fit_feature(
+    data: pd.DataFrame, mapping: dict[str, str], fitter: str, note: str, feature: str, scale: str
+) -> _Outcome:
+    """The outcome of one feature's fit; the cell count on the log scale with Poisson precision weights."""
+    if feature != COUNT_FEATURE or scale != "log":
+        return _fit_outcome(data, mapping, fitter, note)
+    try:
+        weights = count_weights(data, mapping, fitter)
+    except RuntimeError:
+        return _fit_outcome(data, mapping, fitter, note)
+    note = _join(note, "cell count: log-linear model with overdispersion (Poisson precision weights)")
+    return _fit_outcome(data, mapping, fitter, note, weights)
+
+
 def fit_feature_effects(
     wells: pd.DataFrame,
     feature: str,
     scale: str,
     ci_level: float,
-    fitter: str = "statsmodels",
+    fitter: str = "exact",
     treatments: pd.DataFrame | None = None,
+    scale_note: str = "",
 ) -> pd.DataFrame:
     """Effects of every treatment on one feature against the pooled negative controls.
 
@@ -156,8 +230,11 @@ def fit_feature_effects(
     dose, dose_unit and the feature already on its model scale (``scale`` is "log" for natural
     logs, else "linear"). ``treatments`` (treatment, condition, dose, dose_unit, role), if given,
     lists every treatment of the screen, so one whose wells were all excluded still gets a row
-    saying so. Returns one row per non-reference treatment; the effect is in model-scale units
-    (a natural-log ratio or a difference in the feature's unit).
+    saying so; ``scale_note`` says how the feature's scale was decided. The cell count
+    (``COUNT_FEATURE`` on the log scale) gets precision weights from ``count_weights``. Returns one
+    row per non-reference treatment; the effect is in model-scale units (a natural-log ratio or a
+    difference in the feature's unit), with its standardized size (effect / the negative-control
+    well SD within plates).
     """
     if fitter not in FITTERS:
         raise ValueError(f"unknown fitter {fitter!r}; choose one of {', '.join(FITTERS)}")
@@ -176,10 +253,9 @@ def fit_feature_effects(
     data["code"], mapping = _codes(data["treatment"])
     data["plate_code"] = pd.factorize(data["plate"], sort=True)[0]
     data["batch_code"] = pd.factorize(data["batch"], sort=True)[0]
-    df = max(len(data) - data["plate"].nunique() - (len(mapping) - 1), 1)
-    outcome = _fit_outcome(data, mapping, fitter, _design_note(data, n_not_finite))
-    t_quantile = stats.t.ppf(0.5 + ci_level / 2, df)
+    outcome = _fit_feature(data, mapping, fitter, _join(_design_note(data, n_not_finite), scale_note), feature, scale)
     counts = _treatment_counts(data)
+    spread = control_well_sd(data)
     rows = []
     for name, first in _treatment_catalogue(wells, treatments).iterrows():
         code = mapping.get(name)
@@ -189,7 +265,8 @@ def fit_feature_effects(
         rows.append(
             keys
             | {"scale": scale}
-            | _estimate_columns(outcome, code, df, t_quantile)
+            | _estimate_columns(outcome, code, ci_level)
+            | {"control_well_sd": spread}
             | sizes
             | _component_columns(outcome)
             | {"note": _row_note(count, data["batch"].nunique(), outcome.note)}
@@ -202,6 +279,8 @@ def _with_ratios(table: pd.DataFrame, scale: str) -> pd.DataFrame:
     if not table.empty:
         for column, source in (("ratio", "estimate"), ("ratio_ci_low", "ci_low"), ("ratio_ci_high", "ci_high")):
             table[column] = np.exp(table[source]) if scale == "log" else np.nan
+        with np.errstate(divide="ignore", invalid="ignore"):
+            table["standardized_effect"] = table["estimate"] / table["control_well_sd"]
     return table
 
 
@@ -223,10 +302,12 @@ def _unfitted_table(
             "estimate": nan,
             "std_error": nan,
             "df": nan,
+            "df_method": "",
             "ci_low": nan,
             "ci_high": nan,
             "t_value": nan,
             "p_value": nan,
+            "control_well_sd": nan,
             "n_wells": 0,
             "n_plates": 0,
             "n_batches": 0,
@@ -239,7 +320,7 @@ def _unfitted_table(
             "note": note,
         }
     )
-    for column in ("ratio", "ratio_ci_low", "ratio_ci_high"):
+    for column in ("ratio", "ratio_ci_low", "ratio_ci_high", "standardized_effect"):
         table[column] = nan
     return table
 
@@ -251,11 +332,39 @@ def _treatment_catalogue(wells: pd.DataFrame, treatments: pd.DataFrame | None) -
     return catalogue.set_index("treatment")[["condition", "dose", "dose_unit", "role"]].sort_index()
 
 
-def add_hit_calls(table: pd.DataFrame, hit_q_value: float, hit_min_effect: float) -> pd.DataFrame:
-    """BH q-values over all (feature, treatment) pairs with a p-value, and the hit call."""
+FDR_FAMILY_ROLE = "test"  # controls are reported with their own p-values, outside the family
+
+
+@dataclass(frozen=True)
+class HitRule:
+    """When an effect is a hit: q-value below ``q_value`` and an effect at least ``min_log_ratio``
+    (natural-log ratio, log-scale features) or ``min_standardized_effect`` (negative-control well
+    SDs, linear-scale features)."""
+
+    q_value: float = 0.05
+    min_log_ratio: float = 0.1
+    min_standardized_effect: float = 1.0
+
+
+def add_hit_calls(table: pd.DataFrame, rule: HitRule) -> pd.DataFrame:
+    """BH q-values over the (feature, test treatment) pairs with a p-value, and the hit call.
+
+    Positive controls are outside the family (``in_fdr_family`` False, no q-value, never a hit):
+    they are expected to move, and counting them would loosen the threshold for test compounds.
+    A hit needs q below the rule's q-value and a large enough effect (``HitRule``).
+    """
     table = table.copy()
-    table["q_value"] = bh_qvalues(table["p_value"].to_numpy())
-    table["hit"] = (table["q_value"] < hit_q_value) & (table["estimate"].abs() >= hit_min_effect)
+    family = (table["role"] == FDR_FAMILY_ROLE).to_numpy() & np.isfinite(table["p_value"].to_numpy(float))
+    q_values = np.full(len(table), np.nan)
+    q_values[family] = bh_qvalues(table["p_value"].to_numpy(float)[family])
+    table["in_fdr_family"] = family
+    table["q_value"] = q_values
+    large = np.where(
+        table["scale"] == "log",
+        table["estimate"].abs() >= rule.min_log_ratio,
+        table["standardized_effect"].abs() >= rule.min_standardized_effect,
+    )
+    table["hit"] = family & (table["q_value"] < rule.q_value) & large
     return table
 
 
@@ -264,12 +373,12 @@ def screen_effects(
     features: list[str],
     scales: dict[str, str],
     ci_level: float,
-    hit_q_value: float,
-    hit_min_effect: float,
-    fitter: str = "statsmodels",
+    hit_rule: HitRule,
+    fitter: str = "exact",
     treatments: pd.DataFrame | None = None,
 ) -> pd.DataFrame:
-    """Effects of every treatment on every feature (model-scale values), BH q-values across all pairs, hit calls."""
+    """Effects of every treatment on every feature (model-scale values), BH q-values over the test
+    treatments, hit calls."""
     missing = [f for f in features if f not in model_wells.columns]
     if missing:
         raise ValueError(f"features {missing} are not columns of the well profiles; check screen.features in config")
@@ -277,4 +386,4 @@ def screen_effects(
         fit_feature_effects(model_wells, feature, scales[feature], ci_level, fitter, treatments) for feature in features
     ]
     table = pd.concat([p for p in parts if not p.empty], ignore_index=True)
-    return add_hit_calls(table, hit_q_value, hit_min_effect)
+    return add_hit_calls(table, hit_rule)

@@ -1,20 +1,25 @@
 """The nested random-intercept fit of one feature: y ~ treatment + (1 | batch) + (1 | plate in batch).
 
-Two fitters (config screen.fitter): statsmodels' MixedLM, or the exact REML of
-``plateloom.screen.reml``; a fit that fails falls back to OLS with a fixed effect per plate.
+Two fitters (config screen.fitter): the exact REML of ``plateloom.screen.reml`` (default), or
+statsmodels' MixedLM as a cross-check. Whichever finds the variance components, the standard
+errors are sqrt(diag(s2 (X'H^-1X)^-1)) at those components and each coefficient gets its
+Satterthwaite degrees of freedom (``plateloom.screen.denominator_df``); a statsmodels fit that
+stops short of the exact REML optimum says so in its note. A fit that fails falls back to OLS
+with a fixed effect per plate.
 """
 
 from __future__ import annotations
 
 import warnings
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 import pandas as pd
 import statsmodels.formula.api as smf
 from statsmodels.tools.sm_exceptions import ConvergenceWarning
 
-from plateloom.screen.reml import fit_nested_exact
+from plateloom.screen.denominator_df import satterthwaite_df
+from plateloom.screen.reml import ExactNestedFit, fit_nested_exact, fixed_covariance, restricted_deviance
 
 
 @dataclass(frozen=True)
@@ -28,6 +33,8 @@ class NestedFit:
     residual_variance: float
     method: str
     boundary: bool  # a variance component was estimated at zero (singular fit)
+    df: pd.Series | None = None  # Satterthwaite degrees of freedom per fixed effect
+    note: str = ""  # e.g. an optimiser that stopped short of the REML optimum
 
 
 # Warnings that only say a variance component sits at zero; the fixed effects are still valid.
@@ -79,16 +86,17 @@ def fit_nested_random_intercepts(
     raise RuntimeError("mixed model did not converge: " + " | ".join(problems))
 
 
-def fixed_plate_fit(data: pd.DataFrame) -> tuple[pd.Series, pd.Series, float]:
-    """Fallback: ordinary least squares with a fixed effect per plate (absorbs batch too)."""
+def fixed_plate_fit(data: pd.DataFrame) -> tuple[pd.Series, pd.Series, float, float]:
+    """Fallback: ordinary least squares with a fixed effect per plate (absorbs batch too); params,
+    SEs, residual variance and residual df."""
     result = smf.ols("y ~ C(code) + C(plate_code)", data).fit()
-    return result.params, result.bse, float(result.scale)
+    return result.params, result.bse, float(result.scale), float(result.df_resid)
 
 
-FITTERS = ("statsmodels", "exact")
+FITTERS = ("exact", "statsmodels")
 
 
-def _design(codes: pd.Series) -> tuple[np.ndarray, list[str]]:
+def treatment_design(codes: pd.Series) -> tuple[np.ndarray, list[str]]:
     """Intercept plus one indicator per non-reference treatment present, named as statsmodels names them."""
     index, levels = pd.factorize(codes, sort=True)
     levels = np.asarray(levels, dtype=str)
@@ -99,19 +107,31 @@ def _design(codes: pd.Series) -> tuple[np.ndarray, list[str]]:
     return matrix, ["Intercept"] + [f"C(code)[T.{code}]" for code in levels[keep]]
 
 
-def fit_nested(data: pd.DataFrame, mapping: dict[str, str], fitter: str) -> NestedFit:
-    """The nested fit of y on treatment codes; one batch only: a random intercept per plate."""
+OPTIMUM_GAP = 1e-3  # deviance units; a statsmodels fit further than this from the exact optimum is noted
+
+
+def fit_nested(
+    data: pd.DataFrame, mapping: dict[str, str], fitter: str, weights: np.ndarray | None = None
+) -> NestedFit:
+    """The nested fit of y on treatment codes; one batch only: a random intercept per plate.
+
+    ``weights``: known precision weights per row (residual variance s2 / w), exact fitter only.
+    """
     n_batches, n_plates = data["batch"].nunique(), data["plate"].nunique()
     groups, nested = (
         ("batch_code", "plate_code" if n_plates > n_batches else None) if n_batches >= 2 else ("plate_code", None)
     )
-    if fitter == "statsmodels":
-        fit = fit_nested_random_intercepts(data, "y ~ C(code)", groups, nested)
+    design, names = treatment_design(data["code"])
+    exact = fit_nested_exact(
+        data["y"].to_numpy(),
+        design,
+        data[groups].to_numpy(int),
+        data[nested].to_numpy(int) if nested else None,
+        weights=weights,
+    )
+    if fitter == "statsmodels" and weights is None:
+        fit = _cross_checked(fit_nested_random_intercepts(data, "y ~ C(code)", groups, nested), exact, names)
     else:
-        design, names = _design(data["code"])
-        exact = fit_nested_exact(
-            data["y"].to_numpy(), design, data[groups].to_numpy(int), data[nested].to_numpy(int) if nested else None
-        )
         if not exact.converged:
             raise RuntimeError("exact REML optimisation did not converge")
         total = exact.batch_variance + exact.plate_variance + exact.residual_variance
@@ -124,9 +144,33 @@ def fit_nested(data: pd.DataFrame, mapping: dict[str, str], fitter: str) -> Nest
             exact.residual_variance,
             "exact",
             boundary,
+            pd.Series(satterthwaite_df(exact.sums, exact.variance_parameters, np.eye(len(names))), index=names),
         )
     if n_batches < 2:
-        fit = NestedFit(
-            fit.params, fit.std_errors, 0.0, fit.batch_variance, fit.residual_variance, fit.method, fit.boundary
-        )
+        fit = replace(fit, batch_variance=0.0, plate_variance=fit.batch_variance)
     return fit
+
+
+def _cross_checked(fit: NestedFit, exact: ExactNestedFit, names: list[str]) -> NestedFit:
+    """A statsmodels fit with SEs and df recomputed at its variance components, and a note when its
+    REML deviance is above the exact optimum."""
+    sigma = np.sqrt(fit.residual_variance)
+    thetas = [np.sqrt(fit.batch_variance) / sigma]
+    if exact.sums.with_plate:
+        thetas.append(np.sqrt(fit.plate_variance) / sigma)
+    parameters = np.array([*thetas, sigma])
+    covariance = fixed_covariance(exact.sums, parameters)
+    gap = restricted_deviance(exact.sums, parameters) - restricted_deviance(exact.sums, exact.variance_parameters)
+    note = (
+        f"statsmodels stopped {gap:.3g} deviance units short of the REML optimum (the exact fitter reaches it)"
+        if gap > OPTIMUM_GAP
+        else ""
+    )
+    params = fit.params.reindex(names)
+    return replace(
+        fit,
+        params=params,
+        std_errors=pd.Series(np.sqrt(np.diag(covariance)), index=names),
+        df=pd.Series(satterthwaite_df(exact.sums, parameters, np.eye(len(names))), index=names),
+        note=note,
+    )

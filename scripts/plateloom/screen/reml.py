@@ -15,6 +15,14 @@ with S_p the plate column sums and T_k = sum_{p in k} a_p S_p. So once the plate
 number of wells. The variance ratios are optimised as g = theta^2 (unconstrained theta, so the
 boundary g = 0 is reachable), the scale s2 is profiled out, as in Bates et al. (2015, J Stat
 Softw 67(1)) for lme4. Fixed-effect standard errors are sqrt(diag(s2 (X' H^-1 X)^-1)).
+
+Known precision weights w (residual variance s2 / w_i, as lme4's ``weights``) enter by scaling
+each row by sqrt(w_i): the cross products become [X y]' W [X y], the plate sums weighted sums and
+the plate sizes n_p the sums of weights; log |H| gains -sum log w_i.
+
+Each contrast's degrees of freedom come from ``plateloom.screen.denominator_df`` (Satterthwaite),
+which differentiates ``restricted_deviance`` and ``fixed_covariance`` in the variance parameters
+(theta_batch, theta_plate, sigma) with theta = component SD / sigma, lme4's parameters.
 """
 
 from __future__ import annotations
@@ -37,10 +45,14 @@ class ExactNestedFit:
     residual_variance: float
     objective: float  # -2 x (restricted) log-likelihood, constants dropped
     converged: bool
+    sums: GroupSums  # what the derivatives for the degrees of freedom need
+    variance_parameters: np.ndarray  # theta_batch, [theta_plate,] sigma at the optimum
 
 
 @dataclass(frozen=True)
-class _GroupSums:
+class GroupSums:
+    """Sufficient statistics of the nested model: cross products and plate sums of [X y]."""
+
     cross: np.ndarray  # [X y]'[X y]
     plate_sums: np.ndarray  # plates x (q + 1)
     plate_sizes: np.ndarray  # plates
@@ -49,9 +61,20 @@ class _GroupSums:
     n_batches: int
     n_rows: int
     n_fixed: int
+    log_weights: float  # sum of log w_i (0 without weights)
+    with_plate: bool
 
 
-def _group_sums(y: np.ndarray, design: np.ndarray, batch: np.ndarray, plate: np.ndarray) -> _GroupSums:
+def group_sums(
+    y: np.ndarray, design: np.ndarray, batch: np.ndarray, plate: np.ndarray | None, weights: np.ndarray | None = None
+) -> GroupSums:
+    """The sums of the nested model ``y ~ design + (1 | batch) + (1 | plate in batch)``, with
+    precision ``weights`` (residual variance s2 / w) if given; ``plate=None``: batch intercept only."""
+    with_plate = plate is not None
+    y, design = np.asarray(y, float), np.asarray(design, float)
+    weights = np.ones(len(y)) if weights is None else np.asarray(weights, float)
+    batch = np.asarray(batch)
+    plate = np.asarray(plate) if with_plate else batch
     batch_index = pd.factorize(batch, sort=True)[0]
     plate_codes = pd.factorize(plate, sort=True)[0]
     plate_index, keys = pd.factorize(
@@ -62,23 +85,25 @@ def _group_sums(y: np.ndarray, design: np.ndarray, batch: np.ndarray, plate: np.
     )
     columns = np.column_stack([design, y])
     n_plates = len(pairs)
-    membership_rows = sparse.csr_matrix((np.ones(len(y)), (plate_index, np.arange(len(y)))), shape=(n_plates, len(y)))
+    membership_rows = sparse.csr_matrix((weights, (plate_index, np.arange(len(y)))), shape=(n_plates, len(y)))
     plate_sums = np.asarray(membership_rows @ columns)
     n_batches = int(batch_index.max()) + 1
     membership = (np.arange(n_batches)[:, None] == pairs[:, 0][None, :]).astype(float)
-    return _GroupSums(
-        columns.T @ columns,
+    return GroupSums(
+        columns.T @ (weights[:, None] * columns),
         plate_sums,
-        np.bincount(plate_index, minlength=n_plates).astype(float),
+        np.bincount(plate_index, weights=weights, minlength=n_plates),
         pairs[:, 0],
         membership,
         n_batches,
         len(y),
         design.shape[1],
+        float(np.sum(np.log(weights))),
+        with_plate,
     )
 
 
-def _weighted_cross(sums: _GroupSums, g_batch: float, g_plate: float) -> tuple[np.ndarray, float]:
+def _weighted_cross(sums: GroupSums, g_batch: float, g_plate: float) -> tuple[np.ndarray, float]:
     """[X y]' H^-1 [X y] and log |H| for the variance ratios g_batch, g_plate."""
     n_p = sums.plate_sizes
     c = g_plate / (1.0 + g_plate * n_p)
@@ -89,11 +114,11 @@ def _weighted_cross(sums: _GroupSums, g_batch: float, g_plate: float) -> tuple[n
     cross = (
         sums.cross - (sums.plate_sums * c[:, None]).T @ sums.plate_sums - (batch_totals * d[:, None]).T @ batch_totals
     )
-    log_det = float(np.sum(np.log1p(g_plate * n_p)) + np.sum(np.log1p(g_batch * s)))
+    log_det = float(np.sum(np.log1p(g_plate * n_p)) + np.sum(np.log1p(g_batch * s))) - sums.log_weights
     return cross, log_det
 
 
-def _objective(sums: _GroupSums, g_batch: float, g_plate: float, reml: bool) -> float:
+def _objective(sums: GroupSums, g_batch: float, g_plate: float, reml: bool) -> float:
     """-2 log L (restricted if ``reml``), profiled over beta and s2; constants dropped."""
     cross, log_det = _weighted_cross(sums, g_batch, g_plate)
     # The Cholesky factor of [X y]' H^-1 [X y] holds both log |X'H^-1X| and the residual sum of squares.
@@ -107,7 +132,7 @@ def _objective(sums: _GroupSums, g_batch: float, g_plate: float, reml: bool) -> 
     return float(value)
 
 
-def _solution(sums: _GroupSums, g_batch: float, g_plate: float, reml: bool) -> tuple[np.ndarray, np.ndarray, float]:
+def _solution(sums: GroupSums, g_batch: float, g_plate: float, reml: bool) -> tuple[np.ndarray, np.ndarray, float]:
     """beta, (X'H^-1X)^-1 and s2 at the given variance ratios."""
     cross, _ = _weighted_cross(sums, g_batch, g_plate)
     q = sums.n_fixed
@@ -115,6 +140,33 @@ def _solution(sums: _GroupSums, g_batch: float, g_plate: float, reml: bool) -> t
     beta = np.linalg.solve(xtx, xty)
     rss = max(float(yty - xty @ beta), 1e-300)
     return beta, np.linalg.inv(xtx), rss / (sums.n_rows - q if reml else sums.n_rows)
+
+
+def restricted_deviance(sums: GroupSums, parameters: np.ndarray) -> float:
+    """-2 log restricted likelihood (constants dropped) at variance parameters
+    (theta_batch, [theta_plate,] sigma), not profiled: the function whose curvature gives the
+    covariance of the variance parameters (lmerTest's ``devfun_vp``)."""
+    g_batch, g_plate, variance = _ratios(sums, parameters)
+    cross, log_det = _weighted_cross(sums, g_batch, g_plate)
+    chol = np.linalg.cholesky(cross)
+    q = sums.n_fixed
+    rss = chol[q, q] ** 2
+    value = (sums.n_rows - q) * np.log(variance) + log_det + rss / variance
+    return float(value + 2.0 * np.sum(np.log(np.diag(chol)[:q])))
+
+
+def fixed_covariance(sums: GroupSums, parameters: np.ndarray) -> np.ndarray:
+    """Covariance of the fixed effects, s2 (X' H^-1 X)^-1, at the variance parameters
+    (theta_batch, [theta_plate,] sigma)."""
+    g_batch, g_plate, variance = _ratios(sums, parameters)
+    cross, _ = _weighted_cross(sums, g_batch, g_plate)
+    q = sums.n_fixed
+    return variance * np.linalg.inv(cross[:q, :q])
+
+
+def _ratios(sums: GroupSums, parameters: np.ndarray) -> tuple[float, float, float]:
+    theta_plate = parameters[1] if sums.with_plate else 0.0
+    return float(parameters[0] ** 2), float(theta_plate**2), float(parameters[-1] ** 2)
 
 
 def _newton_polish(
@@ -152,17 +204,21 @@ def _newton_polish(
 
 
 def fit_nested_exact(
-    y: np.ndarray, design: np.ndarray, batch: np.ndarray, plate: np.ndarray | None, reml: bool = True
+    y: np.ndarray,
+    design: np.ndarray,
+    batch: np.ndarray,
+    plate: np.ndarray | None,
+    reml: bool = True,
+    weights: np.ndarray | None = None,
 ) -> ExactNestedFit:
     """REML (or ML) fit of ``y ~ design`` with random intercepts per batch and per plate within batch.
 
     ``batch`` and ``plate`` are labels per row (plate labels may repeat across batches; a plate
     is the pair batch, plate). With ``plate=None`` the model has the batch intercept only.
+    ``weights``: known precision weights (residual variance s2 / w), or None for equal weights.
     """
-    y = np.asarray(y, float)
-    design = np.asarray(design, float)
     with_plate = plate is not None
-    sums = _group_sums(y, design, np.asarray(batch), np.asarray(plate) if with_plate else np.asarray(batch))
+    sums = group_sums(y, design, batch, plate, weights)
 
     def objective(theta: np.ndarray) -> float:
         return _objective(sums, theta[0] ** 2, theta[1] ** 2 if with_plate else 0.0, reml)
@@ -184,4 +240,6 @@ def fit_nested_exact(
         scale,
         value,
         bool(np.isfinite(value)),
+        sums,
+        np.array([*np.abs(theta), np.sqrt(scale)]),
     )

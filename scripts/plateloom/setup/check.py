@@ -10,6 +10,7 @@ from __future__ import annotations
 import os
 from dataclasses import dataclass, field
 
+import pandas as pd
 import tifffile
 
 from plateloom.errors import InputError
@@ -168,10 +169,13 @@ class _ScreenCheck:
         self.indexes: dict[tuple[str, int], ImageIndex] = {}
         self.series: dict[tuple, tuple[list[InputError], int]] = {}
         self.imaged: dict[tuple[str, int], set[str]] = {}
+        self.plate_layouts: list[pd.DataFrame] = []
 
     def plate(self, entry) -> None:
         layout = self._layout(entry)
         index = self._index(entry)
+        if layout is not None:
+            self.plate_layouts.append(layout.assign(plate=entry.plate))
         if index is None or layout is None:
             return
         self.totals["plates"] += 1
@@ -297,6 +301,7 @@ def check_screen(config: dict, read_headers: bool = True, assumed_objects_per_fr
     header is read (image sizes, page counts); without, only names are checked (fast enough
     for every workflow start). Demo plates whose images are not simulated yet are skipped.
     """
+    from plateloom.screen.design_warnings import design_warnings
     from plateloom.setup.plan import channel_names
 
     check = _ScreenCheck(config, read_headers)
@@ -313,6 +318,9 @@ def check_screen(config: dict, read_headers: bool = True, assumed_objects_per_fr
         check.report.add("error", problem)
     for entry in entries:
         check.plate(entry)
+    if check.plate_layouts:
+        for warning in design_warnings(pd.concat(check.plate_layouts, ignore_index=True)):
+            check.report.add("warning", InputError(config["screen_sheet"], warning))
     if entries:
         check.image_scale()
     check.report.estimate = check.estimate(assumed_objects_per_frame)
