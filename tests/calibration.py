@@ -96,7 +96,7 @@ TRUE_ICC = (BATCH_SD**2 + PLATE_SD**2) / (BATCH_SD**2 + PLATE_SD**2 + RESIDUAL_S
 
 
 def count_screen(rng: np.random.Generator, control_count: float, log_ratio: float, n_sites: int = 4) -> pd.DataFrame:
-    """Well profiles of a planted count screen: 3 days x 2 plates, 12 control and 12 treated wells
+    """Well profiles of a planted count screen: 3 days x 2 plates, 16 control and 4 treated wells
     per plate; nuclei per site ~ Poisson(mu x lognormal well factor), mu = ``control_count`` x
     exp(``log_ratio``) for the treated wells and batch/plate factors as above. The
     min_cells_per_well rule (5 nuclei per site) is applied as the plate stage would."""
@@ -105,8 +105,8 @@ def count_screen(rng: np.random.Generator, control_count: float, log_ratio: floa
         u_batch = rng.normal(0, BATCH_SD)
         for p in range(2):
             u_plate = rng.normal(0, PLATE_SD)
-            for w in range(24):
-                treated = w % 2 == 1
+            for w in range(20):
+                treated = w % 5 == 4
                 mu = control_count * np.exp(u_batch + u_plate + rng.normal(0, RESIDUAL_SD) + log_ratio * treated)
                 count = rng.poisson(mu, n_sites).mean()
                 rows.append(

@@ -22,7 +22,8 @@ from calibration import (
 )
 
 from plateloom.screen.design_check import VarianceComponents, simulate_design
-from plateloom.screen.effects import HitRule, add_hit_calls, fit_feature_effects
+from plateloom.screen.effects import fit_feature_effects
+from plateloom.screen.hits import HitRule, add_hit_calls
 from plateloom.screen.model_wells import build_model_wells
 
 pytestmark = pytest.mark.slow

@@ -111,3 +111,24 @@ def test_satterthwaite_df_and_se_on_a_whole_plate_design_equal_lmertest(fitter):
         assert effects.loc[code, "df"] == pytest.approx(expected["df"], rel=1e-3)
     # The whole-plate treatment has df near its 3 plates, the within-plate one near the residual df.
     assert effects.loc["t0002", "df"] < 10 < 100 < effects.loc["t0001", "df"]
+
+
+def _unbalanced_whole_plate_design() -> pd.DataFrame:
+    """The whole-plate design with 40% of wells missing at random and most of one plate lost."""
+    rng = np.random.default_rng(7)
+    data = _whole_plate_design(rng).sample(frac=0.6, random_state=3).sort_index()
+    return data[(data["plate"] != "d2p3") | (rng.random(len(data)) < 0.3)]
+
+
+@pytest.mark.parametrize("df_method, ddf", [("satterthwaite", "Satterthwaite"), ("kenward_roger", "Kenward-Roger")])
+def test_df_and_se_on_an_unbalanced_design_equal_lmertest(df_method, ddf):
+    # lmerTest's Kenward-Roger option calls pbkrtest (Halekoh & Hojsgaard 2014, J Stat Softw 59(9)).
+    data = _unbalanced_whole_plate_design()
+    reference = _lmertest(data, "y ~ code + (1 | batch) + (1 | batch:plate)", ddf)
+    effects = fit_feature_effects(_as_wells(data), "value", "linear", 0.95, df_method=df_method)
+    effects = effects.set_index("treatment")
+    for code in ("t0001", "t0002"):
+        expected = reference.loc[f"code{code}"]
+        assert effects.loc[code, "std_error"] == pytest.approx(expected["se"], rel=1e-3)
+        assert effects.loc[code, "df"] == pytest.approx(expected["df"], rel=1e-3)
+    assert (effects["df_method"] == ddf).all()

@@ -5,7 +5,8 @@ import pandas as pd
 import pytest
 from statsmodels.stats.multitest import multipletests
 
-from plateloom.screen.effects import HitRule, fit_feature_effects
+from plateloom.screen.effects import fit_feature_effects
+from plateloom.screen.hits import HitRule
 from plateloom.screen.model_wells import build_model_wells
 from plateloom.screen.nested_fit import fit_nested_random_intercepts
 from plateloom.screen.reml import fit_nested_exact

@@ -9,7 +9,8 @@ from test_plate_stage import _plate
 from test_screen_stage import _wells
 
 from plateloom.plate.qc import robust_z, z_prime
-from plateloom.screen.effects import HitRule, screen_effects
+from plateloom.screen.effects import screen_effects
+from plateloom.screen.hits import HitRule
 from plateloom.screen.model_wells import build_model_wells, treatment_catalogue
 from plateloom.stats import bh_qvalues
 

@@ -13,7 +13,7 @@ from test_plate_stage import _plate
 
 from plateloom.plate.exclusions import ExclusionRules
 from plateloom.report.plate_page import PlatePage, build_plate_report
-from plateloom.screen.effects import HitRule
+from plateloom.screen.hits import HitRule
 from plateloom.setup.plate_formats import plate_format
 
 HOSTILE = '<b>x</b> "quoted", comma & Ölsäure'

@@ -12,7 +12,8 @@ from plateloom.screen.design_check import (
     simulate_design,
 )
 from plateloom.screen.dose_response import dose_response_table, fit_hill, hill_curve
-from plateloom.screen.effects import HitRule, screen_effects
+from plateloom.screen.effects import screen_effects
+from plateloom.screen.hits import HitRule
 from plateloom.screen.model_wells import (
     build_model_wells,
     feature_chunks,
@@ -307,3 +308,26 @@ def test_a_fit_with_an_undetermined_ec50_is_not_identifiable():
     response = np.where(doses >= 10, 0.5, 1.0) + rng.normal(0, 0.02, len(doses))
     fit = fit_hill(doses, response)
     assert not fit["identifiable"]
+
+
+def test_design_warnings_name_whole_plate_treatments_and_a_single_layout():
+    from plateloom.screen.design_warnings import design_warnings
+
+    rows = []
+    for plate in ("p1", "p2", "p3"):
+        for w in range(8):
+            whole = plate == "p3"
+            treatment = "W" if whole else ("vehicle" if w < 4 else "A")
+            role = "test" if whole or w >= 4 else "negative_control"
+            rows.append((plate, f"A{w + 1:02d}", role, treatment))
+    wells = pd.DataFrame(rows, columns=["plate", "well", "role", "treatment"])
+    warnings = design_warnings(wells)
+    assert len(warnings) == 1 and "treatment W never shares a plate" in warnings[0] and "p3" in warnings[0]
+    same_layout = wells[wells["plate"] != "p3"]
+    warnings = design_warnings(same_layout)
+    assert len(warnings) == 1 and "every plate uses the same layout" in warnings[0]
+    rotated = same_layout.copy()
+    rotated.loc[rotated["plate"] == "p2", "treatment"] = rotated.loc[rotated["plate"] == "p2", "treatment"].to_numpy()[
+        ::-1
+    ]
+    assert design_warnings(rotated) == []

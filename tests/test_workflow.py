@@ -80,8 +80,13 @@ def test_effects_table_is_complete(finished_screen):
     assert effects.loc[effects["feature"] == "spreading_index", "note"].str.contains("constant across wells").all()
     assert not effects.loc[short, "hit"].any()
     fitted = effects[~short]
-    for column in ("estimate", "ci_low", "ci_high", "q_value", "std_error"):
+    for column in ("estimate", "ci_low", "ci_high", "std_error", "df"):
         assert fitted[column].notna().all(), column
+    # the FDR family is the test treatments: positive controls keep their p-values, without q-values
+    tests = fitted["role"] == "test"
+    assert fitted.loc[tests, "q_value"].notna().all() and fitted.loc[tests, "in_fdr_family"].all()
+    assert fitted.loc[~tests, "q_value"].isna().all() and fitted.loc[~tests, "p_value"].notna().all()
+    assert (fitted["df_method"] == "Satterthwaite").all()
     assert fitted["converged"].all()
     csv = pd.read_csv(finished_screen / "results/effects.csv")
     assert len(csv) == len(effects)

@@ -62,6 +62,7 @@ SCREEN_SETTINGS = {
     "log_features": PLAN.log_features,
     "batch_correction": SCREEN["batch_correction"],
     "fitter": SCREEN["fitter"],
+    "df_method": SCREEN["df_method"],
     "ci_level": SCREEN["ci_level"],
     "hit_q_value": SCREEN["hit_q_value"],
     "hit_min_log_ratio": SCREEN["hit_min_log_ratio"],

@@ -17,7 +17,14 @@ def step() -> None:
     p = sm.params.settings
     parts = [
         fit_feature_effects(
-            model_wells, feature, scales[feature], p["ci_level"], p["fitter"], treatments, notes.get(feature, "")
+            model_wells,
+            feature,
+            scales[feature],
+            p["ci_level"],
+            p["fitter"],
+            treatments,
+            notes.get(feature, ""),
+            p["df_method"],
         )
         for feature in sm.params.features
     ]

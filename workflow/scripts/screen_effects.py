@@ -4,7 +4,7 @@ import pandas as pd
 
 from plateloom.io.job import run_step
 from plateloom.io.tables import csv_text, write_parquet, write_text
-from plateloom.screen.effects import HitRule, add_hit_calls
+from plateloom.screen.hits import HitRule, add_hit_calls
 
 sm = snakemake  # noqa: F821  (injected by Snakemake's script directive)
 

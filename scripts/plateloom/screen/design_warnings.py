@@ -38,7 +38,8 @@ def design_warnings(wells: pd.DataFrame) -> list[str]:
         warnings.append(
             f"treatment {treatment} never shares a plate with negative controls (plates {shown}): its effect "
             "rests on plate-to-plate differences, so its interval has about as many degrees of freedom as it "
-            "has plates; put negative controls on its plates where you can"
+            "has plates; put negative controls on its plates where you can, and with few such plates prefer "
+            "screen.df_method: kenward_roger (closer to nominal coverage)"
         )
     if single_layout(wells):
         warnings.append(

@@ -20,9 +20,9 @@ from scipy import stats
 
 from plateloom.columns import REFERENCE_ROLE
 from plateloom.screen.batch_correction import COUNT_FEATURE
+from plateloom.screen.hits import HitRule, add_hit_calls
 from plateloom.screen.model_wells import treatment_catalogue
 from plateloom.screen.nested_fit import FITTERS, fit_nested, fixed_plate_fit, treatment_design
-from plateloom.stats import bh_qvalues  # noqa: F401  (part of this module's interface)
 
 
 def _codes(treatments: pd.Series) -> tuple[pd.Series, dict[str, str]]:
@@ -101,7 +101,12 @@ def count_weights(data: pd.DataFrame, mapping: dict[str, str], fitter: str) -> n
 
 
 def _fit_outcome(
-    data: pd.DataFrame, mapping: dict[str, str], fitter: str, note: str, weights: np.ndarray | None = None
+    data: pd.DataFrame,
+    mapping: dict[str, str],
+    fitter: str,
+    note: str,
+    weights: np.ndarray | None = None,
+    df_method: str = "satterthwaite",
 ) -> _Outcome:
     """The mixed model's outcome; OLS with plate fixed effects if it fails; nothing for a constant feature."""
     if np.nanstd(data["y"]) == 0:
@@ -109,7 +114,7 @@ def _fit_outcome(
         return _Outcome(empty, empty, empty, "", (np.nan,) * 3, False, "not fitted",
                         _join(note, "feature is constant across wells: not fitted"))  # fmt: skip
     try:
-        fit = fit_nested(data, mapping, fitter, weights)
+        fit = fit_nested(data, mapping, fitter, weights, df_method)
     except RuntimeError as error:
         params, errors, residual, residual_df = fixed_plate_fit(data)
         note = _join(note, f"mixed model failed ({error}); fallback used")
@@ -132,7 +137,7 @@ def _fit_outcome(
         fit.params,
         fit.std_errors,
         fit.df,
-        "Satterthwaite",
+        DF_METHOD_NAMES[df_method],
         components,
         True,
         f"REML mixed model ({fit.method})",
@@ -201,18 +206,23 @@ def _component_columns(outcome: _Outcome) -> dict[str, object]:
     }
 
 
+DF_METHOD_NAMES = {"satterthwaite": "Satterthwaite", "kenward_roger": "Kenward-Roger"}
+
+
 def _fit_feature(
-    data: pd.DataFrame, mapping: dict[str, str], fitter: str, note: str, feature: str, scale: str
+    data: pd.DataFrame, mapping: dict[str, str], settings: tuple[str, str], note: str, feature: str, scale: str
 ) -> _Outcome:
-    """The outcome of one feature's fit; the cell count on the log scale with Poisson precision weights."""
+    """The outcome of one feature's fit (``settings``: fitter, df method); the cell count on the
+    log scale with Poisson precision weights."""
+    fitter, df_method = settings
     if feature != COUNT_FEATURE or scale != "log":
-        return _fit_outcome(data, mapping, fitter, note)
+        return _fit_outcome(data, mapping, fitter, note, None, df_method)
     try:
         weights = count_weights(data, mapping, fitter)
     except RuntimeError:
-        return _fit_outcome(data, mapping, fitter, note)
+        return _fit_outcome(data, mapping, fitter, note, None, df_method)
     note = _join(note, "cell count: log-linear model with overdispersion (Poisson precision weights)")
-    return _fit_outcome(data, mapping, fitter, note, weights)
+    return _fit_outcome(data, mapping, fitter, note, weights, df_method)
 
 
 def fit_feature_effects(
@@ -223,6 +233,7 @@ def fit_feature_effects(
     fitter: str = "exact",
     treatments: pd.DataFrame | None = None,
     scale_note: str = "",
+    df_method: str = "satterthwaite",
 ) -> pd.DataFrame:
     """Effects of every treatment on one feature against the pooled negative controls.
 
@@ -234,10 +245,9 @@ def fit_feature_effects(
     (``COUNT_FEATURE`` on the log scale) gets precision weights from ``count_weights``. Returns one
     row per non-reference treatment; the effect is in model-scale units (a natural-log ratio or a
     difference in the feature's unit), with its standardized size (effect / the negative-control
-    well SD within plates).
+    well SD within plates). ``df_method``: "satterthwaite" or "kenward_roger" (adjusted SEs too).
     """
-    if fitter not in FITTERS:
-        raise ValueError(f"unknown fitter {fitter!r}; choose one of {', '.join(FITTERS)}")
+    _check_choices(fitter, df_method)
     data, n_not_finite = _model_data(wells, feature)
     if data.empty:
         note = (
@@ -253,11 +263,28 @@ def fit_feature_effects(
     data["code"], mapping = _codes(data["treatment"])
     data["plate_code"] = pd.factorize(data["plate"], sort=True)[0]
     data["batch_code"] = pd.factorize(data["batch"], sort=True)[0]
-    outcome = _fit_feature(data, mapping, fitter, _join(_design_note(data, n_not_finite), scale_note), feature, scale)
+    note = _join(_design_note(data, n_not_finite), scale_note)
+    outcome = _fit_feature(data, mapping, (fitter, df_method), note, feature, scale)
+    data.attrs.update(feature=feature, scale=scale)
+    return _with_ratios(_effect_rows(data, mapping, outcome, _treatment_catalogue(wells, treatments), ci_level), scale)
+
+
+def _check_choices(fitter: str, df_method: str) -> None:
+    if fitter not in FITTERS:
+        raise ValueError(f"unknown fitter {fitter!r}; choose one of {', '.join(FITTERS)}")
+    if df_method not in DF_METHOD_NAMES:
+        raise ValueError(f"unknown df method {df_method!r}; choose one of {', '.join(DF_METHOD_NAMES)}")
+
+
+def _effect_rows(
+    data: pd.DataFrame, mapping: dict[str, str], outcome: _Outcome, catalogue: pd.DataFrame, ci_level: float
+) -> pd.DataFrame:
+    """One row per treatment of the catalogue: estimate, interval, sizes, components and note."""
+    feature, scale = data.attrs["feature"], data.attrs["scale"]
     counts = _treatment_counts(data)
     spread = control_well_sd(data)
     rows = []
-    for name, first in _treatment_catalogue(wells, treatments).iterrows():
+    for name, first in catalogue.iterrows():
         code = mapping.get(name)
         count = counts.loc[code] if code in counts.index else None
         keys = {"feature": feature, "treatment": name, **first[["condition", "dose", "dose_unit", "role"]].to_dict()}
@@ -271,7 +298,7 @@ def fit_feature_effects(
             | _component_columns(outcome)
             | {"note": _row_note(count, data["batch"].nunique(), outcome.note)}
         )
-    return _with_ratios(pd.DataFrame(rows), scale)
+    return pd.DataFrame(rows)
 
 
 def _with_ratios(table: pd.DataFrame, scale: str) -> pd.DataFrame:
@@ -330,42 +357,6 @@ def _treatment_catalogue(wells: pd.DataFrame, treatments: pd.DataFrame | None) -
     catalogue = treatment_catalogue(treatments if treatments is not None else wells)
     catalogue = catalogue[catalogue["role"] != REFERENCE_ROLE]
     return catalogue.set_index("treatment")[["condition", "dose", "dose_unit", "role"]].sort_index()
-
-
-FDR_FAMILY_ROLE = "test"  # controls are reported with their own p-values, outside the family
-
-
-@dataclass(frozen=True)
-class HitRule:
-    """When an effect is a hit: q-value below ``q_value`` and an effect at least ``min_log_ratio``
-    (natural-log ratio, log-scale features) or ``min_standardized_effect`` (negative-control well
-    SDs, linear-scale features)."""
-
-    q_value: float = 0.05
-    min_log_ratio: float = 0.1
-    min_standardized_effect: float = 1.0
-
-
-def add_hit_calls(table: pd.DataFrame, rule: HitRule) -> pd.DataFrame:
-    """BH q-values over the (feature, test treatment) pairs with a p-value, and the hit call.
-
-    Positive controls are outside the family (``in_fdr_family`` False, no q-value, never a hit):
-    they are expected to move, and counting them would loosen the threshold for test compounds.
-    A hit needs q below the rule's q-value and a large enough effect (``HitRule``).
-    """
-    table = table.copy()
-    family = (table["role"] == FDR_FAMILY_ROLE).to_numpy() & np.isfinite(table["p_value"].to_numpy(float))
-    q_values = np.full(len(table), np.nan)
-    q_values[family] = bh_qvalues(table["p_value"].to_numpy(float)[family])
-    table["in_fdr_family"] = family
-    table["q_value"] = q_values
-    large = np.where(
-        table["scale"] == "log",
-        table["estimate"].abs() >= rule.min_log_ratio,
-        table["standardized_effect"].abs() >= rule.min_standardized_effect,
-    )
-    table["hit"] = family & (table["q_value"] < rule.q_value) & large
-    return table
 
 
 def screen_effects(

@@ -18,7 +18,7 @@ import pandas as pd
 import statsmodels.formula.api as smf
 from statsmodels.tools.sm_exceptions import ConvergenceWarning
 
-from plateloom.screen.denominator_df import satterthwaite_df
+from plateloom.screen.denominator_df import kenward_roger, satterthwaite_df
 from plateloom.screen.reml import ExactNestedFit, fit_nested_exact, fixed_covariance, restricted_deviance
 
 
@@ -110,12 +110,20 @@ def treatment_design(codes: pd.Series) -> tuple[np.ndarray, list[str]]:
 OPTIMUM_GAP = 1e-3  # deviance units; a statsmodels fit further than this from the exact optimum is noted
 
 
+DF_METHODS = ("satterthwaite", "kenward_roger")
+
+
 def fit_nested(
-    data: pd.DataFrame, mapping: dict[str, str], fitter: str, weights: np.ndarray | None = None
+    data: pd.DataFrame,
+    mapping: dict[str, str],
+    fitter: str,
+    weights: np.ndarray | None = None,
+    df_method: str = "satterthwaite",
 ) -> NestedFit:
     """The nested fit of y on treatment codes; one batch only: a random intercept per plate.
 
     ``weights``: known precision weights per row (residual variance s2 / w), exact fitter only.
+    ``df_method``: Satterthwaite df, or Kenward-Roger (adjusted SEs and df).
     """
     n_batches, n_plates = data["batch"].nunique(), data["plate"].nunique()
     groups, nested = (
@@ -146,9 +154,23 @@ def fit_nested(
             boundary,
             pd.Series(satterthwaite_df(exact.sums, exact.variance_parameters, np.eye(len(names))), index=names),
         )
+    if df_method == "kenward_roger":
+        fit = _kenward_roger_adjusted(
+            fit, design, data[groups].to_numpy(int), data[nested].to_numpy(int) if nested else None, weights
+        )
     if n_batches < 2:
         fit = replace(fit, batch_variance=0.0, plate_variance=fit.batch_variance)
     return fit
+
+
+def _kenward_roger_adjusted(
+    fit: NestedFit, design: np.ndarray, groups: np.ndarray, nested: np.ndarray | None, weights: np.ndarray | None
+) -> NestedFit:
+    """The fit with Kenward-Roger adjusted standard errors and df (same variance components)."""
+    variances = [fit.batch_variance, *([fit.plate_variance] if nested is not None else []), fit.residual_variance]
+    adjusted, df = kenward_roger(design, groups, nested, np.array(variances), weights)
+    names = fit.params.index
+    return replace(fit, std_errors=pd.Series(np.sqrt(np.diag(adjusted)), index=names), df=pd.Series(df, index=names))
 
 
 def _cross_checked(fit: NestedFit, exact: ExactNestedFit, names: list[str]) -> NestedFit:
