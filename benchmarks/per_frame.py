@@ -33,6 +33,7 @@ from plateloom.io.images import index_plate_images
 from plateloom.well.cell_bodies import grow_cell_bodies
 from plateloom.well.features import convex_areas, perimeters
 from plateloom.well.image_qc import background_levels
+from plateloom.well.nuclei import segment_nuclei_on_edges
 from plateloom.well.object_pixels import ObjectPixels
 from plateloom.well.segment import segment_smoothed
 from plateloom.well.stage import WellSettings, analyse_well, measure_frame
@@ -92,8 +93,10 @@ def breakdown(folder: Path, settings: WellSettings) -> dict[str, float]:
         return result
 
     smooth = best("smoothing", lambda: smooth_image(planes[0], sigma))
+    best("nuclei, half-maximum path", lambda: segment_smoothed(smooth, settings.pixel_size_um, 30.0, 7.0))
     labels, _ = best(
-        "nuclei (threshold, split, half maximum)", lambda: segment_smoothed(smooth, settings.pixel_size_um, 30.0, 7.0)
+        "nuclei, edges path (default)",
+        lambda: segment_nuclei_on_edges(smooth, settings.pixel_size_um, 30.0, 7.0, settings.nucleus_diameter_um),
     )
     bodies = best("cell bodies", lambda: grow_cell_bodies(labels, planes[1], settings.pixel_size_um, 2.0))
     best("background", lambda: background_levels(planes, bodies))

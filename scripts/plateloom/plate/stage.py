@@ -82,6 +82,26 @@ def unusable_frame_notes(site_qc: pd.DataFrame, shown: int = 5) -> list[str]:
     ] + problems[:shown]
 
 
+def segmentation_jump_notes(site_qc: pd.DataFrame, shown: int = 5) -> list[str]:
+    """Plate-report warnings for site-frames whose threshold or object count jumped from the
+    previous frame of their site (a segmentation that changed between frames, not the cells)."""
+    flags = [c for c in ("threshold_jump", "count_jump") if c in site_qc.columns]
+    if not flags:
+        return []
+    jumped = site_qc[site_qc[flags].fillna(False).astype(bool).any(axis=1)]
+    if jumped.empty:
+        return []
+    sites = jumped.groupby(["well", "site"])["frame"].apply(lambda f: ", ".join(str(int(x)) for x in f))
+    listed = "; ".join(f"well {w} site {s}: frames {frames}" for (w, s), frames in list(sites.items())[:shown])
+    more = f" (and {len(sites) - shown} more sites)" if len(sites) > shown else ""
+    return [
+        f"segmentation jumped between frames at {len(jumped)} site-frame(s): the foreground threshold "
+        f"or the object count changed by more than 1.3x / 1.5x from the frame before ({listed}{more}); "
+        "counts and growth rates of these sites are suspect: look at the images, or try "
+        "segmentation.threshold_method: log_otsu"
+    ]
+
+
 @dataclass(frozen=True)
 class PlateDesign:
     """Which plate: its id, batch (imaging day), format (number of wells) and layout."""
@@ -202,7 +222,7 @@ def _plate_tables(
 ) -> PlateTables:
     """The plate tables from what the well folders held (see ``_Observed``)."""
 
-    warnings = unusable_frame_notes(tables.site_qc)
+    warnings = unusable_frame_notes(tables.site_qc) + segmentation_jump_notes(tables.site_qc)
     profile, well_ledger = well_exclusions(_well_profile(observed, tables, design, settings.well_summary), rules)
     features = well_features(list(profile.columns))
     kept = (profile["excluded_by"] == "").to_numpy()

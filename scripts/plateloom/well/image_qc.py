@@ -1,8 +1,10 @@
-"""Per-frame image measures for site QC: background level per channel and a focus score."""
+"""Per-frame image measures for site QC: background level per channel, a focus score, and jumps of
+the segmentation between the frames of a site."""
 
 from __future__ import annotations
 
 import numpy as np
+import pandas as pd
 from scipy import ndimage
 
 from plateloom.well.thresholds import BACKGROUND_STRIDE, block_reduce
@@ -45,3 +47,38 @@ def focus_score(smooth: np.ndarray) -> float:
     centre = smooth[rows]
     laplacian = smooth[rows - 1, 1:-1] + smooth[rows + 1, 1:-1] + centre[:, :-2] + centre[:, 2:] - 4 * centre[:, 1:-1]
     return float(laplacian.var(dtype=np.float64) / mean**2)
+
+
+# A frame whose foreground threshold differs from the previous usable frame of its site by more
+# than this factor, or whose object count differs by more than COUNT_JUMP_RATIO (and by at least
+# COUNT_JUMP_MIN objects), is flagged: between two frames minutes apart the cells barely change,
+# so such a jump is the segmentation changing.
+THRESHOLD_JUMP_RATIO = 1.3
+COUNT_JUMP_RATIO = 1.5
+COUNT_JUMP_MIN = 5
+
+
+def segmentation_jumps(qc: pd.DataFrame) -> pd.DataFrame:
+    """``qc`` (site QC rows of one or more sites: site, frame, threshold, n_objects) with boolean
+    columns threshold_jump and count_jump: the frame differs from the previous usable frame of its
+    site by more than the factors above."""
+    out = qc.copy()
+    usable = (
+        out["frame_problem"].fillna("").to_numpy(str) == ""
+        if "frame_problem" in out.columns
+        else np.ones(len(out), bool)
+    )
+    ordered = out[usable].sort_values(["site", "frame"])
+    with np.errstate(divide="ignore", invalid="ignore"):
+        log_threshold = np.log(ordered["threshold"].where(ordered["threshold"] > 0))
+    threshold_step = log_threshold.groupby(ordered["site"]).diff().abs()
+    counts = ordered["n_objects"].astype(float)
+    previous = counts.groupby(ordered["site"]).shift()
+    count_step = np.abs(np.log((counts + 1) / (previous + 1)))
+    out["threshold_jump"] = False
+    out["count_jump"] = False
+    out.loc[ordered.index, "threshold_jump"] = (threshold_step > np.log(THRESHOLD_JUMP_RATIO)).to_numpy()
+    out.loc[ordered.index, "count_jump"] = (
+        (count_step > np.log(COUNT_JUMP_RATIO)) & ((counts - previous).abs() >= COUNT_JUMP_MIN)
+    ).to_numpy()
+    return out

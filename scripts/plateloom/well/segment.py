@@ -80,21 +80,44 @@ def _component_shapes(
     return area[1:], area[1:] / ellipse_area[1:]
 
 
+def _strip(masks: list[np.ndarray], gap: int) -> tuple[np.ndarray, np.ndarray]:
+    """The masks laid side by side, ``gap`` background pixels apart (and around), as one image of
+    mask numbers 1..n; and the first column of each."""
+    height = max(m.shape[0] for m in masks) + 2 * gap
+    starts = np.cumsum([gap] + [m.shape[1] + gap for m in masks])
+    piece = np.zeros((height, int(starts[-1])), np.int32)
+    for number, (mask, start) in enumerate(zip(masks, starts), start=1):
+        piece[gap : gap + mask.shape[0], start : start + mask.shape[1]][mask] = number
+    return piece, starts
+
+
 def _split_components(masks: list[np.ndarray], min_distance_px: int) -> list[np.ndarray]:
     """Watershed split of components on their distance transform, all in one pass.
 
-    ``masks`` are the components' bounding-box masks; they are laid side by side, one
-    background pixel apart, in one strip image, so every whole-image step runs once. Seeds are
-    the distance maxima at least ``min_distance_px`` apart that rise SEED_DEPTH_PX above the
-    saddle to the next one, so the long ridge of an elongated nucleus gives one seed. Returns,
-    per mask, its parts numbered 1..k in raster order (all 1 when it is not split); the
-    image edge counts as background for the distance transform.
+    ``masks`` are the components' bounding-box masks; they are laid side by side in one strip
+    image, so every whole-image step runs once. Seeds are the distance maxima at least
+    ``min_distance_px`` apart that rise SEED_DEPTH_PX above the saddle to the next one, so the
+    long ridge of an elongated nucleus gives one seed; only the masks with two or more distance
+    maxima (most have one) go on to that depth test. Returns, per mask, its parts numbered 1..k
+    in raster order (all 1 when it is not split); the image edge counts as background.
     """
-    height = max(m.shape[0] for m in masks) + 2
-    starts = np.cumsum([1] + [m.shape[1] + 1 for m in masks])
-    piece = np.zeros((height, int(starts[-1])), np.int32)
-    for number, (mask, start) in enumerate(zip(masks, starts), start=1):
-        piece[1 : 1 + mask.shape[0], start : start + mask.shape[1]][mask] = number
+    gap = min_distance_px + 1  # maxima of neighbouring masks never suppress each other
+    piece, _ = _strip(masks, gap)
+    distance = ndimage.distance_transform_edt(piece > 0)
+    peaks = peak_local_max(distance, min_distance=min_distance_px, exclude_border=False)
+    maxima = np.bincount(piece[tuple(peaks.T)], minlength=len(masks) + 1)
+    several = np.flatnonzero(maxima[1:] >= 2)
+    out = [mask.astype(np.int32) for mask in masks]
+    if len(several) == 0:
+        return out
+    for number, parts in zip(several, _split_by_depth([masks[i] for i in several], min_distance_px)):
+        out[number] = parts
+    return out
+
+
+def _split_by_depth(masks: list[np.ndarray], min_distance_px: int) -> list[np.ndarray]:
+    """The split of masks that have several distance maxima: seeds as in ``_split_components``."""
+    piece, starts = _strip(masks, 1)
     strip = piece > 0
     distance = ndimage.distance_transform_edt(strip)
     peaks = peak_local_max(distance, min_distance=min_distance_px, labels=piece, exclude_border=False)
@@ -126,21 +149,25 @@ def _split_components(masks: list[np.ndarray], min_distance_px: int) -> list[np.
 
 
 def split_touching(
-    components: np.ndarray, count: int, min_distance_px: int, index: np.ndarray | None = None
+    components: np.ndarray,
+    count: int,
+    min_distance_px: int,
+    index: np.ndarray | None = None,
+    area_factor: float = SPLIT_AREA_FACTOR,
+    min_fill: float = SPLIT_ELLIPSE_FILL,
 ) -> np.ndarray:
     """Labels after splitting the components that may hold touching nuclei; the rest are kept whole.
 
     ``components`` holds ids 1..count, some of which may be unused (area 0); ``index``, if
-    given, holds the flat indices of every component pixel (maybe more).
+    given, holds the flat indices of every component pixel (maybe more). A component is a
+    candidate when its area is above ``area_factor`` x the median or it fills less than
+    ``min_fill`` of its moment ellipse.
     """
     area, fill = _component_shapes(components, count, index)
     present = area > 0
     if not present.any():
         return components
-    candidates = (
-        np.flatnonzero(present & ((area > SPLIT_AREA_FACTOR * np.median(area[present])) | (fill < SPLIT_ELLIPSE_FILL)))
-        + 1
-    )
+    candidates = np.flatnonzero(present & ((area > area_factor * np.median(area[present])) | (fill < min_fill))) + 1
     labels = components.astype(np.int32, copy=True)
     if len(candidates) == 0:
         return labels

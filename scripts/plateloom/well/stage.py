@@ -16,7 +16,8 @@ from plateloom.well.cell_bodies import grow_cell_bodies
 from plateloom.well.collective import CollectiveSettings, well_collective_readouts
 from plateloom.well.features import measure_objects, neighbourhood
 from plateloom.well.illumination import apply_flat_field
-from plateloom.well.image_qc import background_levels, focus_score
+from plateloom.well.image_qc import background_levels, focus_score, segmentation_jumps
+from plateloom.well.nuclei import segment_nuclei_on_edges
 from plateloom.well.segment import segment_label_free, segment_smoothed
 from plateloom.well.texture import TextureSettings
 from plateloom.well.thresholds import smooth_image
@@ -51,6 +52,9 @@ class WellSettings(FromSchema):
     division_max_distance_um: float | None
     neighbour_radius_um: float
     threshold_method: str
+    segmentation_method: str
+    nucleus_diameter_um: float
+    cell_body_threshold_method: str
     label_free: bool
     label_free_window_um: float
     cell_body_channel: str | None
@@ -77,6 +81,9 @@ class WellSettings(FromSchema):
             min_nucleus_area_um2=seg["min_nucleus_area_um2"],
             split_min_distance_um=seg["split_min_distance_um"],
             threshold_method=seg["threshold_method"],
+            segmentation_method=seg["method"],
+            nucleus_diameter_um=float(seg["nucleus_diameter_um"]),
+            cell_body_threshold_method=seg["cell_body_threshold_method"],
             label_free=any(role == "label_free" for role in roles.values()),
             label_free_window_um=float(seg["label_free_window_um"]),
             cell_body_channel=next((c for c in channels if roles[c] == "cell_body"), None),
@@ -114,6 +121,15 @@ def segment_frame(
             settings.split_min_distance_um,
             settings.threshold_method,
         )
+    elif settings.segmentation_method == "edges":
+        labels, threshold = segment_nuclei_on_edges(
+            smooth,
+            settings.pixel_size_um,
+            settings.min_nucleus_area_um2,
+            settings.split_min_distance_um,
+            settings.nucleus_diameter_um,
+            settings.threshold_method,
+        )
     else:
         labels, threshold = segment_smoothed(
             smooth,
@@ -129,7 +145,7 @@ def segment_frame(
             planes[channels.index(settings.cell_body_channel)],
             settings.pixel_size_um,
             settings.cell_body_smoothing_sigma_um,
-            settings.threshold_method,
+            settings.cell_body_threshold_method,
         )
     return labels, bodies, threshold, smooth
 
@@ -249,7 +265,7 @@ def analyse_site(
         )
     cells = pd.concat(observations, ignore_index=True)
     cells.insert(0, "site", site)
-    return _close_gaps_and_divisions(cells, settings), pd.DataFrame(qc_rows)
+    return _close_gaps_and_divisions(cells, settings), segmentation_jumps(pd.DataFrame(qc_rows))
 
 
 def track_table(cells: pd.DataFrame, settings: WellSettings) -> pd.DataFrame:

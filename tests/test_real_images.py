@@ -1,0 +1,129 @@
+"""Nuclear segmentation on realistic widefield fields (plateloom.demo.realistic, planted truth).
+
+Average precision at IoU 0.5 as defined by Caicedo et al. 2019 (Nat. Methods 16:1247; see
+tests/segmentation_accuracy.py). The fields have nuclear brightness over more than a 10x range,
+chromatin spots, saturated rounded cells with glow, dim out-of-focus nuclei, touching unequal
+pairs and a dense cluster, an uneven background and Poisson-Gaussian noise.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from scipy import ndimage
+from segmentation_accuracy import iou_matrix, pooled_average_precision
+from skimage.measure import label as connected_regions
+
+from plateloom.demo.realistic import simulate_field
+from plateloom.well.nuclei import segment_nuclei_on_edges
+from plateloom.well.segment import segment_smoothed
+from plateloom.well.thresholds import smooth_image
+
+PIXEL_UM = 0.65
+SEEDS = range(200, 216)  # not the seeds the method was tuned on
+
+
+@pytest.fixture(scope="module")
+def fields():
+    found = []
+    for seed in SEEDS:
+        image, truth, nuclei = simulate_field(seed)
+        smooth = smooth_image(image, 1.0 / PIXEL_UM)
+        labels, _ = segment_nuclei_on_edges(smooth, PIXEL_UM, 20.0, 5.0, 12.0)
+        found.append((image, truth, nuclei, labels))
+    return found
+
+
+def test_average_precision_at_iou_05_is_at_least_090(fields):
+    # measured 0.908-0.918 on three held-out seed sets; most remaining errors are dim nuclei merged
+    # into a brighter touching neighbour
+    ap = pooled_average_precision([(truth, labels) for _, truth, _, labels in fields])
+    assert ap[0.5] >= 0.90, ap[0.5]
+
+
+def test_the_earlier_default_fails_these_fields():
+    # Otsu's threshold with half-maximum trimming, the earlier default, on the same kind of field:
+    # the saturated cells capture the threshold (the failure these fields were built to show).
+    pairs = []
+    for seed in SEEDS[:4]:
+        image, truth, _ = simulate_field(seed)
+        labels, _ = segment_smoothed(smooth_image(image, 1.0 / PIXEL_UM), PIXEL_UM, 20.0, 5.0, "otsu")
+        pairs.append((truth, labels))
+    assert pooled_average_precision(pairs)[0.5] < 0.5
+
+
+def test_matched_nuclei_keep_their_area(fields):
+    ratios = []
+    for _, truth, _, labels in fields:
+        true_index, found_index = np.nonzero(iou_matrix(truth, labels) > 0.5)
+        true_area = np.bincount(truth.ravel())[1:]
+        found_area = np.bincount(labels.ravel(), minlength=labels.max() + 1)[1:]
+        ratios.extend(found_area[found_index] / true_area[true_index])
+    assert abs(np.median(ratios) - 1.0) <= 0.05, np.median(ratios)
+
+
+def test_every_label_is_one_connected_region(fields):
+    for _, _, _, labels in fields:
+        pieces = connected_regions(labels, background=0, connectivity=1)
+        assert pieces.max() == len(np.unique(labels)) - 1
+
+
+def test_nuclei_touching_a_saturated_cell_are_found(fields):
+    touching = found = 0
+    for _, truth, nuclei, labels in fields:
+        iou = iou_matrix(truth, labels)
+        saturated = np.flatnonzero(nuclei.kind == 1) + 1
+        near = ndimage.binary_dilation(np.isin(truth, saturated), iterations=2)
+        neighbours = np.setdiff1d(np.unique(truth[near]), np.concatenate([[0], saturated]))
+        touching += len(neighbours)
+        found += int((iou[neighbours - 1] > 0.5).any(axis=1).sum())
+    assert touching >= 10, touching  # the fields do hold such neighbours
+    assert found / touching >= 0.9, (found, touching)
+
+
+def test_an_empty_field_gives_no_nuclei():
+    rng = np.random.default_rng(3)
+    noise = rng.poisson(300, (256, 256)).astype(np.float32)
+    labels, threshold = segment_nuclei_on_edges(smooth_image(noise, 1.5), PIXEL_UM, 20.0, 5.0, 12.0)
+    assert labels.max() == 0 and np.isnan(threshold)
+
+
+def _site_with_flashes(folder, frames: int = 6):
+    """Planted truth: one field imaged ``frames`` times; every other frame also holds a large
+    saturated blob (a flash, or a bright rounded cell drifting in and out of view)."""
+    import tifffile
+
+    image, _, _ = simulate_field(11)
+    stack = np.repeat(image[None], frames, axis=0)
+    stack[1::2, 10:60, 10:60] = 4095
+    tifffile.imwrite(folder / "B02_s1_nuclear.tif", stack, photometric="minisblack")
+
+
+@pytest.mark.parametrize("method, threshold, flagged", [("half_maximum", "otsu", True), ("edges", "log_otsu", False)])
+def test_a_threshold_that_flips_between_frames_is_flagged_in_site_qc(tmp_path, method, threshold, flagged):
+    from plateloom.io.images import index_plate_images
+    from plateloom.plate.stage import segmentation_jump_notes
+    from plateloom.well.stage import WellSettings, analyse_well
+
+    _site_with_flashes(tmp_path)
+    index = index_plate_images(str(tmp_path), "{well}_s{site}_{channel}.tif", 96, ["nuclear"])
+    settings = WellSettings.of_demo(
+        channels=("nuclear",),
+        nuclei_channel="nuclear",
+        reporter_channels=(),
+        texture_channels=None,
+        pixel_size_um=PIXEL_UM,
+        segmentation_method=method,
+        threshold_method=threshold,
+        min_nucleus_area_um2=20.0,
+        split_min_distance_um=5.0,
+    )
+    _, _, qc = analyse_well(index, "B02", settings)
+    jumps = qc[qc["threshold_jump"] | qc["count_jump"]]
+    if flagged:
+        # Otsu's split moves to the blob: the threshold jumps and most nuclei vanish on those frames
+        assert sorted(jumps["frame"]) == [1, 2, 3, 4, 5]  # every frame jumps from the one before
+        notes = segmentation_jump_notes(qc.assign(well="B02"))
+        assert len(notes) == 1 and "well B02 site 1: frames 1, 2, 3, 4, 5" in notes[0]
+    else:
+        assert jumps.empty  # the log-intensity threshold holds, and so does the count
