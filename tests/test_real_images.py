@@ -127,3 +127,31 @@ def test_a_threshold_that_flips_between_frames_is_flagged_in_site_qc(tmp_path, m
         assert len(notes) == 1 and "well B02 site 1: frames 1, 2, 3, 4, 5" in notes[0]
     else:
         assert jumps.empty  # the log-intensity threshold holds, and so does the count
+
+
+def test_saturated_nuclei_are_kept_and_flagged(fields):
+    from plateloom.io.planes import saturation_masks
+    from plateloom.well.features import measure_objects
+
+    kept = flagged = 0
+    for image, truth, nuclei, labels in fields:
+        raw = image[None].astype(np.float32)
+        table = measure_objects(labels, raw, ["nuclear"], np.array([300.0]), PIXEL_UM, saturated=saturation_masks(raw))
+        iou = iou_matrix(truth, labels)
+        for true_label in np.flatnonzero(nuclei.kind == 1) + 1:
+            match = np.flatnonzero(iou[true_label - 1] > 0.5)
+            kept += len(match) == 1
+            flagged += len(match) == 1 and table.loc[match[0], "saturated_fraction_nuclear"] > 0.1
+    assert kept >= 10 and flagged == kept  # every saturated cell found is found whole and flagged
+
+
+def test_saturation_is_read_from_the_raw_ceiling():
+    from plateloom.io.planes import saturation_masks
+
+    plane = np.full((1, 32, 32), 500.0, np.float32)
+    assert saturation_masks(plane) is None
+    plane[0, :2, :3] = 4095.0  # a 12-bit camera's ceiling in a 16-bit file
+    masks = saturation_masks(plane)
+    assert masks is not None and masks.sum() == 6
+    plane[0, :2, :3] = 3000.0  # bright, but not at any ceiling
+    assert saturation_masks(plane) is None

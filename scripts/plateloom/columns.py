@@ -81,6 +81,9 @@ REGISTRY: tuple[Column, ...] = (
     Column("mean_intensity_{channel}", _CW, "measure", "grey level", "observations", "log"),
     Column("integrated_intensity_{channel}", _CW, "measure", "grey level x px", "observations", "log"),
     Column("std_intensity_{channel}", _CW, "measure", "grey level", "observations"),
+    Column(
+        "saturated_fraction_{channel}", _C, "flag", description="share of the object's pixels at the camera's ceiling"
+    ),
     Column("glcm_contrast_{channel}", _CW, "measure", "", "observations"),
     Column("glcm_homogeneity_{channel}", _CW, "measure", "", "observations"),
     Column("glcm_correlation_{channel}", _CW, "measure", "", "observations"),

@@ -46,6 +46,26 @@ def saturated_fraction(plane: np.ndarray) -> float:
     return float(np.count_nonzero(plane == top) / plane.size)
 
 
+CAMERA_CEILINGS = (255.0, 1023.0, 4095.0, 16383.0, 65535.0)  # 8-, 10-, 12-, 14- and 16-bit cameras
+MIN_SATURATED_PIXELS = 3  # fewer pixels at a ceiling is chance, not saturation
+
+
+def saturation_masks(planes: np.ndarray) -> np.ndarray | None:
+    """Per channel, the pixels at the camera's ceiling (the plane's maximum when it is the largest
+    value of an 8- to 16-bit camera and at least MIN_SATURATED_PIXELS pixels reach it); None when
+    no channel is saturated. ``planes``: (channels, y, x) raw grey levels, before any correction."""
+    maxima = planes.reshape(len(planes), -1).max(axis=1)
+    if not np.isin(maxima, CAMERA_CEILINGS).any():
+        return None
+    masks = np.zeros(planes.shape, bool)
+    for channel, top in enumerate(maxima):
+        if top in CAMERA_CEILINGS:
+            at_top = planes[channel] == top
+            if np.count_nonzero(at_top) >= MIN_SATURATED_PIXELS:
+                masks[channel] = at_top
+    return masks if masks.any() else None
+
+
 def check_plane(plane: np.ndarray, path: str, shape: tuple[int, ...] | None) -> np.ndarray:
     if plane.ndim != 2:
         raise InputError(

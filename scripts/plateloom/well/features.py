@@ -181,9 +181,16 @@ def _shape_measures(
 
 
 def _intensity_measures(
-    planes: np.ndarray, channels: list[str], background: np.ndarray, pixels: ObjectPixels, area: np.ndarray
+    planes: np.ndarray,
+    channels: list[str],
+    background: np.ndarray,
+    pixels: ObjectPixels,
+    area: np.ndarray,
+    saturated: np.ndarray | None = None,
 ) -> dict[str, np.ndarray]:
-    """Per channel: mean and integrated intensity above background, SD of intensity (``area`` in pixels)."""
+    """Per channel: mean and integrated intensity above background, SD of intensity (``area`` in
+    pixels), and the fraction of the object's pixels at the camera's ceiling (``saturated``:
+    per-channel masks of the raw frame, or None when nothing is saturated)."""
     safe_area = np.where(area > 0, area, 1.0)
     table = {}
     for index, channel in enumerate(channels):
@@ -193,6 +200,10 @@ def _intensity_measures(
         table[f"mean_intensity_{channel}"] = mean - background[index]
         table[f"integrated_intensity_{channel}"] = (mean - background[index]) * area
         table[f"std_intensity_{channel}"] = np.sqrt(variance)
+        at_ceiling = saturated[index].ravel()[pixels.index] if saturated is not None else None
+        table[f"saturated_fraction_{channel}"] = (
+            pixels.sums(at_ceiling.astype(np.float64)) / safe_area if at_ceiling is not None else np.zeros(len(area))
+        )
     return table
 
 
@@ -204,6 +215,7 @@ def measure_objects(
     pixel_size_um: float,
     cells: np.ndarray | None = None,
     texture: TextureSettings | None = None,
+    saturated: np.ndarray | None = None,
 ) -> pd.DataFrame:
     """Measure every labelled nucleus of one frame.
 
@@ -212,7 +224,9 @@ def measure_objects(
     solidity, major_axis_um, minor_axis_um, isoperimetric_quotient (4 pi area / perimeter^2, 1 for a
     disk), centroid_x_um, centroid_y_um, touches_border, and per channel c mean_intensity_<c>
     (grey levels above background), integrated_intensity_<c> (mean above background x area in
-    pixels) and std_intensity_<c> (grey levels). Per channel of ``texture.channels``:
+    pixels), std_intensity_<c> (grey levels) and saturated_fraction_<c> (share of the object's
+    pixels at the camera's ceiling, from ``saturated``: per-channel masks of the raw frame). Per
+    channel of ``texture.channels``:
     glcm_contrast_<c>, glcm_homogeneity_<c>, glcm_correlation_<c>, glcm_asm_<c> (unitless).
     With ``cells`` (cell-body labels, same ids as the nuclei): cell_area_um2,
     cytoplasm_area_um2, cytoplasm_mean_intensity_<c> (grey levels above background) and
@@ -225,7 +239,7 @@ def measure_objects(
     pixels = ObjectPixels.of(labels)
     area = pixels.sums()
     table = _shape_measures(labels, pixels, area, pixel_size_um)
-    table.update(_intensity_measures(planes, channels, background, pixels, area))
+    table.update(_intensity_measures(planes, channels, background, pixels, area, saturated))
     for channel in texture.channels:
         measures = glcm_measures(planes[channels.index(channel)], labels, pixels, texture.distance_px, texture.levels)
         for prop in GLCM_PROPERTIES:
@@ -295,6 +309,7 @@ def object_columns(channels: list[str], texture_channels: list[str], with_cells:
             "touches_border",
         ]
         + [f"{kind}_intensity_{c}" for c in channels for kind in ("mean", "integrated", "std")]
+        + [f"saturated_fraction_{c}" for c in channels]
         + [f"glcm_{p}_{c}" for c in texture_channels for p in GLCM_PROPERTIES]
     )
     if with_cells:

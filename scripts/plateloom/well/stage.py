@@ -10,6 +10,7 @@ import pandas as pd
 
 from plateloom.errors import InputError
 from plateloom.io.images import ImageIndex, SiteFrame, stream_site
+from plateloom.io.planes import saturation_masks
 from plateloom.io.tables import well_part_path, write_parquet
 from plateloom.settings import FromSchema
 from plateloom.well.cell_bodies import grow_cell_bodies
@@ -151,14 +152,18 @@ def segment_frame(
 
 
 def measure_frame(
-    planes: np.ndarray, labels: np.ndarray, bodies: np.ndarray | None, settings: WellSettings
+    planes: np.ndarray,
+    labels: np.ndarray,
+    bodies: np.ndarray | None,
+    settings: WellSettings,
+    saturated: np.ndarray | None = None,
 ) -> tuple[pd.DataFrame, np.ndarray]:
-    """Per-object table of one frame (shape, intensity, texture, cytoplasm, neighbours) and the channel backgrounds."""
+    """Per-object table of one frame (``saturated``: ceiling masks of the raw planes) and the backgrounds."""
     channels = list(settings.channels)
     background = background_levels(planes, labels if bodies is None else bodies)
     distance_px = max(1, int(round(settings.texture_distance_um / settings.pixel_size_um)))
     texture = TextureSettings(tuple(settings.measured_texture_channels), distance_px, settings.texture_levels)
-    table = measure_objects(labels, planes, channels, background, settings.pixel_size_um, bodies, texture)
+    table = measure_objects(labels, planes, channels, background, settings.pixel_size_um, bodies, texture, saturated)
     xy = table[["centroid_x_um", "centroid_y_um"]].to_numpy()
     table["neighbours"], table["nearest_neighbour_um"] = neighbourhood(xy, settings.neighbour_radius_um)
     return table, background
@@ -248,9 +253,10 @@ def analyse_site(
             qc_rows.append(_unusable_frame_qc(site, item.frame, item.problem, channels))
             linker.break_links()
             continue
+        saturated = saturation_masks(item.planes)  # before the flat field moves the ceiling
         planes = apply_flat_field(item.planes, flat_field)
         labels, bodies, threshold, smooth = segment_frame(planes, settings)
-        table, background = measure_frame(planes, labels, bodies, settings)
+        table, background = measure_frame(planes, labels, bodies, settings, saturated)
         tracks = linker.tracks_of(table[["centroid_x_um", "centroid_y_um"]].to_numpy())
         table.insert(0, "frame", item.frame)
         table.insert(1, "track", tracks)
