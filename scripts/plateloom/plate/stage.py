@@ -102,6 +102,36 @@ def segmentation_jump_notes(site_qc: pd.DataFrame, shown: int = 5) -> list[str]:
     ]
 
 
+NEAR_CUTOFF_SHARE = 0.05  # a site with more links than this near the linking cutoff ...
+CUT_OFF_SHARE = 0.02  # ... or more forbidden links than this share of its links: the cutoff binds
+
+
+def linking_notes(site_qc: pd.DataFrame, shown: int = 5) -> list[str]:
+    """Plate-report warnings for sites where the linking distance binds: many links close to it, or
+    plausible links it forbade (tracks broken, speeds biased low)."""
+    needed = ["links", "links_near_cutoff", "links_cut_off"]
+    if not set(needed) <= set(site_qc.columns):
+        return []
+    per_site = site_qc.groupby(["well", "site"])[needed + ["linking_distance_um"]].agg(
+        {"links": "sum", "links_near_cutoff": "sum", "links_cut_off": "sum", "linking_distance_um": "max"}
+    )
+    links = per_site["links"].clip(lower=1)
+    near, cut = per_site["links_near_cutoff"] / links, per_site["links_cut_off"] / links
+    binding = per_site[(near > NEAR_CUTOFF_SHARE) | (cut > CUT_OFF_SHARE)]
+    if binding.empty:
+        return []
+    listed = "; ".join(
+        f"well {w} site {s}: {near[(w, s)]:.0%} of links near the {row.linking_distance_um:.3g} um cutoff, "
+        f"{int(row.links_cut_off)} links cut off"
+        for (w, s), row in list(binding.iterrows())[:shown]
+    )
+    more = f" (and {len(binding) - shown} more sites)" if len(binding) > shown else ""
+    return [
+        f"the linking distance binds at {len(binding)} site(s) ({listed}{more}): tracks break and speeds "
+        "read low; raise tracking.max_displacement_um, or set it to null to estimate it from the data"
+    ]
+
+
 @dataclass(frozen=True)
 class PlateDesign:
     """Which plate: its id, batch (imaging day), format (number of wells) and layout."""
@@ -222,7 +252,9 @@ def _plate_tables(
 ) -> PlateTables:
     """The plate tables from what the well folders held (see ``_Observed``)."""
 
-    warnings = unusable_frame_notes(tables.site_qc) + segmentation_jump_notes(tables.site_qc)
+    warnings = (
+        unusable_frame_notes(tables.site_qc) + segmentation_jump_notes(tables.site_qc) + linking_notes(tables.site_qc)
+    )
     profile, well_ledger = well_exclusions(_well_profile(observed, tables, design, settings.well_summary), rules)
     features = well_features(list(profile.columns))
     kept = (profile["excluded_by"] == "").to_numpy()

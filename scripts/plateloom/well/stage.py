@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import os
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 import pandas as pd
@@ -18,6 +18,7 @@ from plateloom.well.collective import CollectiveSettings, well_collective_readou
 from plateloom.well.features import measure_objects, neighbourhood
 from plateloom.well.illumination import apply_flat_field
 from plateloom.well.image_qc import background_levels, focus_score, segmentation_jumps
+from plateloom.well.linking import FrameLinker
 from plateloom.well.nuclei import segment_nuclei_on_edges
 from plateloom.well.segment import segment_label_free, segment_smoothed
 from plateloom.well.texture import TextureSettings
@@ -31,7 +32,6 @@ from plateloom.well.track_stats import (
 from plateloom.well.tracking import (
     close_gaps,
     find_divisions,
-    link_frames,
     track_features,
 )
 
@@ -47,7 +47,7 @@ class WellSettings(FromSchema):
     smoothing_sigma_um: float
     min_nucleus_area_um2: float
     split_min_distance_um: float
-    max_displacement_um: float
+    max_displacement_um: float | None  # None: estimated per site from the data
     min_track_frames: int
     max_gap_frames: int
     division_max_distance_um: float | None
@@ -197,30 +197,6 @@ def _frame_qc(
     return qc
 
 
-class _FrameLinker:
-    """Frame-to-frame linking along a site: each frame's objects get the track of the object they
-    link to in the previous usable frame, or a new track id; an unusable frame breaks every link
-    (gap closing bridges it later)."""
-
-    def __init__(self, max_displacement_um: float):
-        self.max_displacement_um = max_displacement_um
-        self.break_links()
-        self.next_track = 0
-
-    def break_links(self) -> None:
-        self.previous_xy, self.previous_tracks = np.empty((0, 2)), np.empty(0, dtype=np.int64)
-
-    def tracks_of(self, xy: np.ndarray) -> np.ndarray:
-        links = link_frames(self.previous_xy, xy, self.max_displacement_um)
-        previous = self.previous_tracks
-        tracks = np.where(links >= 0, previous[np.clip(links, 0, None)] if len(previous) else -1, -1)
-        new = tracks < 0
-        tracks[new] = self.next_track + np.arange(new.sum())
-        self.next_track += int(new.sum())
-        self.previous_xy, self.previous_tracks = xy, tracks.astype(np.int64)
-        return self.previous_tracks
-
-
 def _close_gaps_and_divisions(cells: pd.DataFrame, settings: WellSettings) -> pd.DataFrame:
     """Join track segments across missed frames and, if switched on, record divisions (parent_track)."""
     cells["parent_track"] = -1
@@ -247,7 +223,7 @@ def analyse_site(
     """
     channels = list(settings.channels)
     observations, qc_rows = [], []
-    linker = _FrameLinker(settings.max_displacement_um)
+    linker = FrameLinker(settings.max_displacement_um)
     for item in stream_site(index, well, site, channels):
         if item.problem:
             qc_rows.append(_unusable_frame_qc(site, item.frame, item.problem, channels))
@@ -261,7 +237,7 @@ def analyse_site(
         table.insert(0, "frame", item.frame)
         table.insert(1, "track", tracks)
         observations.append(table)
-        qc_rows.append(_frame_qc(site, item, table, labels, threshold, smooth, background, channels))
+        qc_rows.append(_frame_qc(site, item, table, labels, threshold, smooth, background, channels) | linker.last)
     if not observations:
         first = qc_rows[0]["frame_problem"] if qc_rows else f"well {well}, site {site}: no frames"
         raise InputError(
@@ -271,7 +247,8 @@ def analyse_site(
         )
     cells = pd.concat(observations, ignore_index=True)
     cells.insert(0, "site", site)
-    return _close_gaps_and_divisions(cells, settings), segmentation_jumps(pd.DataFrame(qc_rows))
+    linked = replace(settings, max_displacement_um=linker.max_displacement_um or 0.0)
+    return _close_gaps_and_divisions(cells, linked), segmentation_jumps(pd.DataFrame(qc_rows))
 
 
 def track_table(cells: pd.DataFrame, settings: WellSettings) -> pd.DataFrame:
