@@ -129,3 +129,11 @@ def test_a_well_failing_two_rules_names_both(monkeypatch):
     marked, ledger = well_exclusions(profile, ExclusionRules.defaults(min_cells_per_well=5))
     assert marked["excluded_by"].tolist() == ["min_cells_per_well: 2.0 < 5; min_cells_per_well: 1.0 < 5", ""]
     assert len(ledger) == 2 and set(ledger["well"]) == {"A01"}
+
+
+def test_a_screen_without_a_reporter_models_each_feature_once():
+    from plateloom.setup.plan import resolve_features
+
+    config = {"channels": [{"name": "dapi", "role": "nuclei"}]}
+    names = ["cell_count", "mean_intensity_{nuclei}", "mean_intensity_{reporter}", "area_um2"]
+    assert resolve_features(names, config) == ["cell_count", "mean_intensity_dapi", "area_um2"]

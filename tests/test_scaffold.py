@@ -264,3 +264,16 @@ def test_config_reference_is_current_and_lists_every_key():
         "`exclusion_rules.min_cells_per_well`",
     ):
         assert key in text
+
+
+def test_survey_says_where_each_batch_came_from_and_check_warns_on_one_batch(tmp_path):
+    # the invented plate's OME metadata has no AcquisitionDate: the batch is the file date, and the survey says so
+    _write_plate(tmp_path / "one_plate", "stacks", 3, time.mktime((2026, 11, 2, 12, 0, 0, 0, 0, -1)))
+    text = survey_folder(str(tmp_path / "one_plate")).text()
+    assert "one_plate [batch 2026-11-02 from file modification time" in text
+    assert "a copy changes it" in text
+    write_scaffold(survey_folder(str(tmp_path / "one_plate")), str(tmp_path / "screen"))
+    sheet = pd.read_csv(tmp_path / "screen" / "plates.csv")
+    pd.concat([sheet, sheet.assign(plate="copy")]).to_csv(tmp_path / "screen" / "plates.csv", index=False)
+    report = check_screen(load_config(str(tmp_path / "screen" / "config.yaml")), read_headers=False)
+    assert any("every plate is in batch 2026-11-02" in problem.message for problem in report.problems)

@@ -318,6 +318,17 @@ def check_screen(config: dict, read_headers: bool = True, assumed_objects_per_fr
         check.report.add("error", problem)
     for entry in entries:
         check.plate(entry)
+    batches = {entry.batch for entry in entries}
+    if len(entries) > 1 and len(batches) == 1:
+        check.report.add(
+            "warning",
+            InputError(
+                config["screen_sheet"],
+                f"every plate is in batch {next(iter(batches))}: day-to-day variation cannot be estimated, "
+                "and intervals hold for this imaging day only",
+                "give each imaging day its own batch value (the scaffold prints where each came from)",
+            ),
+        )
     if check.plate_layouts:
         for warning in design_warnings(pd.concat(check.plate_layouts, ignore_index=True)):
             check.report.add("warning", InputError(config["screen_sheet"], warning))

@@ -96,9 +96,11 @@ def channel_names(config: dict) -> dict[str, str]:
 
 
 def resolve_features(names: list[str], config: dict) -> list[str]:
-    """Replace {nuclei} and {reporter} in feature names by the channel names."""
+    """Replace {nuclei} and {reporter} in feature names by the channel names, each feature once
+    (without a reporter channel {reporter} falls back to the nuclear channel, and a feature named
+    both ways must not be modelled, and counted in the FDR family, twice)."""
     roles = channel_names(config)
-    return [name.format(nuclei=roles["nuclei"], reporter=roles["reporter"]) for name in names]
+    return list(dict.fromkeys(name.format(nuclei=roles["nuclei"], reporter=roles["reporter"]) for name in names))
 
 
 def plan_screen(config: dict) -> ScreenPlan:

@@ -46,6 +46,7 @@ class PlateFolder:
     folder: str
     files: tuple[str, ...]
     batch: str
+    batch_source: str = "OME AcquisitionDate"  # or "file modification time"
 
 
 def _split(name: str) -> tuple[list[str], str] | None:
@@ -143,7 +144,7 @@ def find_plates(folder: str) -> list[PlateFolder]:
         files = images_in(path)
         if files:
             plate = re.sub(r"[^A-Za-z0-9._-]", "-", os.path.basename(os.path.normpath(path)))
-            plates.append(PlateFolder(plate, path, tuple(files), _imaging_date(os.path.join(path, files[0]))))
+            plates.append(PlateFolder(plate, path, tuple(files), *_imaging_date(os.path.join(path, files[0]))))
     if not plates:
         raise InputError(
             folder, "no .tif/.tiff files in it or in its sub-folders.", "point the scaffold at the image folder."
@@ -151,17 +152,21 @@ def find_plates(folder: str) -> list[PlateFolder]:
     return plates
 
 
-def _imaging_date(path: str) -> str:
-    """The acquisition date from OME metadata, else the file's modification date (YYYY-MM-DD)."""
+MODIFICATION_TIME = "file modification time"
+
+
+def _imaging_date(path: str) -> tuple[str, str]:
+    """The acquisition date (YYYY-MM-DD) and where it came from: OME metadata, else the file's
+    modification date (which a copy changes: the scaffold says so)."""
     try:
         with tifffile.TiffFile(path) as tif:
             xml = tif.ome_metadata or ""
         found = re.search(r"<AcquisitionDate>(\d{4}-\d{2}-\d{2})", xml)
         if found:
-            return found.group(1)
+            return found.group(1), "OME AcquisitionDate"
     except Exception:  # an unreadable file is reported by the check; the date falls back to the file's
         pass
-    return dt.date.fromtimestamp(os.path.getmtime(path)).isoformat()
+    return dt.date.fromtimestamp(os.path.getmtime(path)).isoformat(), MODIFICATION_TIME
 
 
 def _smallest_format(wells: list[str]) -> int:
@@ -193,8 +198,7 @@ class ScreenSurvey:
     def text(self) -> str:
         lines = [
             f"filename template: {self.template}",
-            f"plates: {len(self.plates)} "
-            f"({', '.join(f'{p.plate} [{p.batch}, {self.plate_formats[p.plate]} wells]' for p in self.plates)})",
+            f"plates: {len(self.plates)} ({', '.join(self._plate_text(p) for p in self.plates)})",
             f"wells with images: {sum(len(w) for w in self.wells.values())} "
             f"({', '.join(f'{p}: {len(w)}' for p, w in self.wells.items())})",
             f"sites per well: {self.sites}; frames per site: {self.frames}",
@@ -205,7 +209,15 @@ class ScreenSurvey:
             "frame interval: "
             + (f"{self.frame_interval_min:g} min (OME metadata)" if self.frame_interval_min else "not in the metadata"),
         ]
+        if any(p.batch_source == MODIFICATION_TIME for p in self.plates):
+            lines.append(
+                "batch: the imaging date of some plates comes from the file modification time (no OME "
+                "AcquisitionDate); a copy changes it: check the batch column of the screen sheet"
+            )
         return "\n".join(lines)
+
+    def _plate_text(self, plate: PlateFolder) -> str:
+        return f"{plate.plate} [batch {plate.batch} from {plate.batch_source}, {self.plate_formats[plate.plate]} wells]"
 
 
 def _survey_channels(plates: list[PlateFolder], template: str) -> list[str]:
