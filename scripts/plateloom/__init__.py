@@ -7,4 +7,4 @@ One subpackage per stage of the workflow: ``setup`` (screen sheet, layouts, plan
 here; the package itself holds no Snakemake object.
 """
 
-__version__ = "0.2.0"
+__version__ = "0.3.0"
