@@ -9,6 +9,7 @@ pairs and a dense cluster, an uneven background and Poisson-Gaussian noise.
 from __future__ import annotations
 
 import numpy as np
+import pandas as pd
 import pytest
 from scipy import ndimage
 from segmentation_accuracy import iou_matrix, pooled_average_precision
@@ -155,3 +156,24 @@ def test_saturation_is_read_from_the_raw_ceiling():
     assert masks is not None and masks.sum() == 6
     plane[0, :2, :3] = 3000.0  # bright, but not at any ceiling
     assert saturation_masks(plane) is None
+
+
+def test_a_steady_fall_in_count_is_biology_and_a_dip_is_not():
+    from plateloom.well.image_qc import segmentation_jumps
+
+    # planted counts: a wave of deaths (28 falling to 0) and, on another site, one frame that loses
+    # most nuclei and recovers; the threshold holds on both
+    falling = [28, 28, 27, 25, 22, 16, 10, 6, 3, 2, 0, 0]
+    dipping = [30, 31, 30, 12, 31, 32, 31, 30, 31, 30, 31, 30]
+    qc = pd.DataFrame(
+        {
+            "site": [1] * 12 + [2] * 12,
+            "frame": list(range(12)) * 2,
+            "n_objects": falling + dipping,
+            "threshold": 200.0,
+        }
+    )
+    flagged = segmentation_jumps(qc)
+    assert not flagged.loc[flagged["site"] == 1, "count_jump"].any()
+    assert flagged.loc[flagged["count_jump"], "frame"].tolist() == [3]
+    assert not flagged["threshold_jump"].any()

@@ -83,8 +83,9 @@ def unusable_frame_notes(site_qc: pd.DataFrame, shown: int = 5) -> list[str]:
 
 
 def segmentation_jump_notes(site_qc: pd.DataFrame, shown: int = 5) -> list[str]:
-    """Plate-report warnings for site-frames whose threshold or object count jumped from the
-    previous frame of their site (a segmentation that changed between frames, not the cells)."""
+    """Plate-report warnings for site-frames whose threshold jumped from the previous frame, or whose
+    object count spiked or dipped against both neighbouring frames (the segmentation changed, not
+    the cells)."""
     flags = [c for c in ("threshold_jump", "count_jump") if c in site_qc.columns]
     if not flags:
         return []
@@ -96,9 +97,10 @@ def segmentation_jump_notes(site_qc: pd.DataFrame, shown: int = 5) -> list[str]:
     more = f" (and {len(sites) - shown} more sites)" if len(sites) > shown else ""
     return [
         f"segmentation jumped between frames at {len(jumped)} site-frame(s): the foreground threshold "
-        f"or the object count changed by more than 1.3x / 1.5x from the frame before ({listed}{more}); "
-        "counts and growth rates of these sites are suspect: look at the images, or try "
-        "segmentation.threshold_method: log_otsu"
+        "changed by more than 1.3x from the frame before, or the object count spiked or dipped by more than "
+        f"1.5x against both neighbouring frames ({listed}{more}); counts and growth rates of these sites are "
+        "suspect: look at the images (a threshold captured by a few very bright objects, a focus or "
+        "illumination change)"
     ]
 
 

@@ -50,9 +50,10 @@ def focus_score(smooth: np.ndarray) -> float:
 
 
 # A frame whose foreground threshold differs from the previous usable frame of its site by more
-# than this factor, or whose object count differs by more than COUNT_JUMP_RATIO (and by at least
-# COUNT_JUMP_MIN objects), is flagged: between two frames minutes apart the cells barely change,
-# so such a jump is the segmentation changing.
+# than THRESHOLD_JUMP_RATIO is flagged; so is a frame whose object count is a spike or a dip: it
+# differs from both the previous and the next usable frame, in the same direction, by more than
+# COUNT_JUMP_RATIO and COUNT_JUMP_MIN objects. Cells barely change between frames minutes apart,
+# so such a jump is the segmentation changing; a steady rise or fall (growth, a wave of deaths) is not.
 THRESHOLD_JUMP_RATIO = 1.3
 COUNT_JUMP_RATIO = 1.5
 COUNT_JUMP_MIN = 5
@@ -60,8 +61,7 @@ COUNT_JUMP_MIN = 5
 
 def segmentation_jumps(qc: pd.DataFrame) -> pd.DataFrame:
     """``qc`` (site QC rows of one or more sites: site, frame, threshold, n_objects) with boolean
-    columns threshold_jump and count_jump: the frame differs from the previous usable frame of its
-    site by more than the factors above."""
+    columns threshold_jump and count_jump (see the rules above)."""
     out = qc.copy()
     usable = (
         out["frame_problem"].fillna("").to_numpy(str) == ""
@@ -73,12 +73,18 @@ def segmentation_jumps(qc: pd.DataFrame) -> pd.DataFrame:
         log_threshold = np.log(ordered["threshold"].where(ordered["threshold"] > 0))
     threshold_step = log_threshold.groupby(ordered["site"]).diff().abs()
     counts = ordered["n_objects"].astype(float)
-    previous = counts.groupby(ordered["site"]).shift()
-    count_step = np.abs(np.log((counts + 1) / (previous + 1)))
+    by_site = counts.groupby(ordered["site"])
+    before, after = by_site.shift(1), by_site.shift(-1)
     out["threshold_jump"] = False
     out["count_jump"] = False
     out.loc[ordered.index, "threshold_jump"] = (threshold_step > np.log(THRESHOLD_JUMP_RATIO)).to_numpy()
-    out.loc[ordered.index, "count_jump"] = (
-        (count_step > np.log(COUNT_JUMP_RATIO)) & ((counts - previous).abs() >= COUNT_JUMP_MIN)
-    ).to_numpy()
+    up = _jumps(counts, before, 1) & _jumps(counts, after, 1)
+    down = _jumps(counts, before, -1) & _jumps(counts, after, -1)
+    out.loc[ordered.index, "count_jump"] = (up | down).to_numpy()
     return out
+
+
+def _jumps(counts: pd.Series, other: pd.Series, sign: int) -> pd.Series:
+    """Counts above (sign 1) or below (sign -1) ``other`` by more than COUNT_JUMP_RATIO and COUNT_JUMP_MIN."""
+    ratio = sign * np.log((counts + 1) / (other + 1))
+    return (ratio > np.log(COUNT_JUMP_RATIO)) & (sign * (counts - other) >= COUNT_JUMP_MIN)
