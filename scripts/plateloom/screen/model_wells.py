@@ -47,8 +47,9 @@ class ModelWells:
     design_warnings: list[str]  # what the design itself cannot tell (plateloom.screen.design_warnings)
 
 
-def _selected_wells(wells: pd.DataFrame, features: list[str]) -> pd.DataFrame:
-    """The wells of the model (and, with the cell count among the features, those kept for it alone)."""
+def _selected_wells(wells: pd.DataFrame, features: list[str]) -> tuple[pd.DataFrame, np.ndarray]:
+    """The wells of the model (and, with the cell count among the features, those kept for it
+    alone), and which of them are kept for the cell count only."""
     missing = [f for f in features if f not in wells.columns]
     if missing:
         raise ValueError(f"features {missing} are not columns of the well profiles; check screen.features in config")
@@ -57,7 +58,8 @@ def _selected_wells(wells: pd.DataFrame, features: list[str]) -> pd.DataFrame:
         raise ValueError(f"well profiles lack columns {required}")
     counted = count_only(wells) if COUNT_FEATURE in features else pd.Series(False, index=wells.index)
     kept = wells[in_model(wells) | counted].sort_values(["batch", "plate", "well"]).reset_index(drop=True)
-    analysed = kept[~count_only(kept)] if COUNT_FEATURE in features else kept
+    only_counts = count_only(kept).to_numpy() if COUNT_FEATURE in features else np.zeros(len(kept), bool)
+    analysed = kept[~only_counts]
     if analysed.empty:
         raise ValueError(
             "no well is left in the screen model: every well or plate was excluded "
@@ -68,7 +70,7 @@ def _selected_wells(wells: pd.DataFrame, features: list[str]) -> pd.DataFrame:
             "no negative-control well is left in the screen model; check the layouts' role column "
             "and the exclusion ledger"
         )
-    return kept
+    return kept, only_counts
 
 
 def _diagnostics(values: pd.DataFrame, corrected: pd.DataFrame, analysed: pd.DataFrame, treatment: np.ndarray):
@@ -100,8 +102,7 @@ def build_model_wells(
     excluded only by the min_cells_per_well rule stay in the table for the cell count alone
     (``count_only``): leaving them out would truncate the very feature the rule is built on.
     """
-    kept = _selected_wells(wells, features)
-    only_counts = (count_only(kept) if COUNT_FEATURE in features else pd.Series(False, index=kept.index)).to_numpy()
+    kept, only_counts = _selected_wells(wells, features)
     values, scales, feature_notes = model_scale(kept, features, log_features)
     values.loc[only_counts, [f for f in features if f != COUNT_FEATURE]] = np.nan
     if only_counts.any():

@@ -191,16 +191,13 @@ def _drop_shallow_edges(labels: np.ndarray, steepness: np.ndarray, valid: np.nda
     """Labels whose edge towards the background rises less steeply than MIN_EDGE_STEEPNESS (median
     over the edge pixels) removed: glow and haze, not nuclei."""
     edge = (labels > 0) & ndimage.binary_dilation((labels == 0) & valid)
-    owner = labels[edge]
-    if owner.size == 0:
+    if not edge.any():
         return labels
-    order = np.lexsort((steepness[edge], owner))
-    owner, value = owner[order], steepness[edge][order]
-    starts = np.flatnonzero(np.diff(owner, prepend=-1))
-    ends = np.append(starts[1:], len(owner))
-    median = value[(starts + ends - 1) // 2]
-    shallow = np.zeros(int(labels.max()) + 1, bool)
-    shallow[owner[starts[median < MIN_EDGE_STEEPNESS]]] = True
+    n_labels = int(labels.max())
+    edge_labels = np.where(edge, labels, 0)
+    has_edge = np.bincount(edge_labels.ravel(), minlength=n_labels + 1) > 0
+    shallow = has_edge & (_label_medians(edge_labels, steepness, n_labels) < MIN_EDGE_STEEPNESS)
+    shallow[0] = False
     out = labels.copy()
     out[shallow[labels]] = 0
     return out
