@@ -20,6 +20,7 @@ from plateloom.demo.scenario import QUANTITIES, load_scenario
 from plateloom.demo.simulate import simulate_site
 from plateloom.errors import InputError
 from plateloom.setup.check import check_screen, load_config
+from plateloom.setup.plan import resolve_features
 from plateloom.setup.scaffold import infer_template, survey_folder, write_scaffold
 
 WELLS = [f"{row}{col:02d}" for row in "BC" for col in range(2, 8)]  # 12 wells
@@ -43,6 +44,12 @@ OME = {"PhysicalSizeX": 0.8, "PhysicalSizeXUnit": "µm", "TimeIncrement": 300.0,
             ],
             "exp7_{well}_site{site}_T{frame}_{channel}.ome.tif",
         ),
+        # a single-channel folder: the one stain's name is the channel
+        (
+            ["B03_s1_t000_dapi.tif", "B03_s2_t001_dapi.tif", "C11_s1_t000_dapi.tif"],
+            "{well}_s{site}_t{frame}_{channel}.tif",
+        ),
+        (["run_B03_s1_H2B.tif", "run_C04_s2_H2B.tif"], "run_{well}_s{site}_{channel}.tif"),
     ],
 )
 def test_filename_templates_are_inferred(names, template):
@@ -277,3 +284,18 @@ def test_survey_says_where_each_batch_came_from_and_check_warns_on_one_batch(tmp
     pd.concat([sheet, sheet.assign(plate="copy")]).to_csv(tmp_path / "screen" / "plates.csv", index=False)
     report = check_screen(load_config(str(tmp_path / "screen" / "config.yaml")), read_headers=False)
     assert any("every plate is in batch 2026-11-02" in problem.message for problem in report.problems)
+
+
+def test_a_single_channel_folder_is_surveyed_with_its_stain_as_the_channel(tmp_path):
+    folder = tmp_path / "plate"
+    _write_plate(folder, "stacks", 5, time.time())
+    for path in folder.glob("*-ktr.tiff"):
+        path.unlink()
+    survey = survey_folder(str(folder))
+    assert survey.template == "{well}-pos{site}-{channel}.tiff" and survey.channels == ["hoechst"]
+    write_scaffold(survey, str(tmp_path / "screen"))
+    config = yaml.safe_load((tmp_path / "screen" / "config.yaml").read_text())
+    assert config["channels"] == [{"name": "hoechst", "role": "nuclei"}]
+    # without a reporter, {reporter} falls back to the nuclear stain: each feature modelled once
+    resolved = resolve_features(config["screen"]["features"], config)
+    assert "mean_intensity_hoechst" in resolved and len(resolved) == len(set(resolved))

@@ -91,13 +91,25 @@ def _name_unprefixed_numbers(fields: list[str], numbered: list[tuple[int, str]])
             fields[index] = fields[index].replace("{numbered}", "{" + chosen + "}")
 
 
+def _name_a_single_channel(fields: list[str]) -> None:
+    """A single-channel folder (B02_s1_dapi.tif everywhere): the last constant word after the well
+    is the channel's name, so the template gets {channel} (in place)."""
+    if "{channel}" in fields or "{well}" not in fields:
+        return
+    after_well = range(fields.index("{well}") + 1, len(fields))
+    words = [i for i in after_well if "{" not in fields[i] and re.search("[A-Za-z]", fields[i])]
+    if words:
+        fields[words[-1]] = "{channel}"
+
+
 def infer_template(names: list[str]) -> str:
     """The filename template (fields {well}, {site}, {frame}, {channel}) that fits most of ``names``.
 
     Names are cut at '_', '-', '.' and ' '; the most common cut pattern is used. Across the
     files, a part that always looks like a well (B03) is {well}; a part of constant letters
     and varying digits is {site} or {frame} by its letters (s, site, f, field, p, pos; t, tp,
-    time, frame); a varying word is {channel}; a constant part is kept as it is.
+    time, frame); a varying word is {channel}, and so is the last constant word after the well
+    when no word varies (a single-channel folder); any other constant part is kept as it is.
     """
     parts = [p for p in (_split(n) for n in names) if p is not None]
     if not parts:
@@ -115,6 +127,7 @@ def infer_template(names: list[str]) -> str:
             numbered.append((len(fields), kind))
         fields.append(field)
     _name_unprefixed_numbers(fields, numbered)
+    _name_a_single_channel(fields)
     template = "".join(f + (separators[i] if i < len(separators) else "") for i, f in enumerate(fields)) + extension
     if "{site}" not in template:  # one site per well: the template needs the field, so none is inferred
         raise InputError(
