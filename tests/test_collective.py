@@ -203,7 +203,8 @@ def test_planted_neighbour_coupling_raises_coupled_fraction_and_correlation():
 
 
 def test_collective_table_has_no_readouts_without_a_reporter_or_when_switched_off():
-    from plateloom.well.stage import WellSettings, collective_table
+    from plateloom.well.chunk import collective_table
+    from plateloom.well.stage import WellSettings
 
     cells = _lattice_well(0.5, np.random.default_rng(0))
     plain = WellSettings.of_demo(channels=("dna", "rep"), nuclei_channel="dna", reporter_channels=(), max_gap_frames=0)

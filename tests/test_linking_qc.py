@@ -52,9 +52,12 @@ def test_the_estimated_cutoff_covers_the_movement_and_does_not_warn():
     tracks, qc, linker = _link_all(positions, None)
     steps = np.hypot(*np.diff(positions, axis=0).reshape(-1, 2).T)
     assert linker.max_displacement_um > np.percentile(steps, 99)
-    # as good as a generous cutoff: the remaining errors are walks that cross (no cutoff helps)
+    # as good as a generous cutoff: the remaining errors are walks that cross (no cutoff helps);
+    # this walk has no persistence, so the constant-velocity candidate of the linker costs about 1%
+    # of links here (0.961 with it, 0.97 without), while it gains on persistent movers
+    # (tests/test_tracking_real.py)
     generous, _, _ = _link_all(positions, 30.0)
-    assert _correct_links(tracks) == _correct_links(generous) > 0.97
+    assert _correct_links(tracks) == _correct_links(generous) > 0.95
     assert linking_notes(qc) == []
 
 

@@ -35,6 +35,7 @@ rule plate_report:
     input:
         **PLATE_TABLES,
         flat_fields=get_flat_fields,
+        thumbnails=get_chunk_folders("thumbnails"),
     output:
         report=report(
             f"{RESULTS}/reports/plates/{{plate}}.html",

@@ -37,6 +37,7 @@ rule analyse_wells:
         tracks=directory(f"{RESULTS}/tracks/plate={{plate}}/chunk={{chunk}}"),
         site_qc=directory(f"{RESULTS}/site_qc/plate={{plate}}/chunk={{chunk}}"),
         collective=directory(f"{RESULTS}/collective/plate={{plate}}/chunk={{chunk}}"),
+        thumbnails=directory(f"{RESULTS}/thumbnails/plate={{plate}}/chunk={{chunk}}"),
     log:
         f"{RESULTS}/logs/analyse_wells/{{plate}}_{{chunk}}.log",
     benchmark:

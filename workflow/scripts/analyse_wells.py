@@ -5,8 +5,9 @@ import tifffile
 
 from plateloom.io.images import index_plate_images
 from plateloom.io.job import run_step
+from plateloom.well.chunk import ChunkOutputs, analyse_chunk
 from plateloom.well.collective import CollectiveSettings
-from plateloom.well.stage import ChunkOutputs, WellSettings, analyse_chunk
+from plateloom.well.stage import WellSettings
 
 sm = snakemake  # noqa: F821  (injected by Snakemake's script directive)
 
@@ -21,7 +22,7 @@ def step() -> None:
         sm.wildcards.plate,
         list(sm.params.wells),
         settings,
-        ChunkOutputs(sm.output.cells, sm.output.tracks, sm.output.site_qc, sm.output.collective),
+        ChunkOutputs(sm.output.cells, sm.output.tracks, sm.output.site_qc, sm.output.collective, sm.output.thumbnails),
         dict(sm.params.settings),
         flat_field,
         CollectiveSettings(**sm.params.collective),

@@ -6,7 +6,7 @@ from plateloom.io.images import unmatched_note
 from plateloom.io.job import run_step
 from plateloom.io.tables import write_parquet, write_text
 from plateloom.plate.exclusions import ExclusionRules
-from plateloom.plate.stage import PlateDesign, PlateSettings, WellTables, build_plate_tables_from_files
+from plateloom.plate.stage import PlateDesign, PlateSettings, WellTables, build_plate_tables_from_files, well_flags
 from plateloom.plate.summaries import read_plate_dataset
 from plateloom.setup.screen_sheet import load_layout
 
@@ -37,7 +37,15 @@ def step() -> None:
     write_parquet(tables.ledger, sm.output.ledger, settings)
     write_parquet(tables.edge, sm.output.edge, settings)
     write_text(
-        json.dumps({"plate": sm.wildcards.plate, "warnings": warnings, "site_qc": tables.site_summary}, indent=1),
+        json.dumps(
+            {
+                "plate": sm.wildcards.plate,
+                "warnings": warnings,
+                "site_qc": tables.site_summary,
+                "flagged_wells": well_flags(well_tables.site_qc),
+            },
+            indent=1,
+        ),
         sm.output.notes,
     )
 

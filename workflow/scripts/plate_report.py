@@ -1,6 +1,7 @@
 """Rule plate_report: the self-contained HTML report of one plate."""
 
 import json
+import os
 
 import pandas as pd
 import tifffile
@@ -12,6 +13,17 @@ from plateloom.report.plate_page import PlatePage, build_plate_report
 from plateloom.setup.plate_formats import plate_format
 
 sm = snakemake  # noqa: F821  (injected by Snakemake's script directive)
+
+
+def read_thumbnails(folders: list[str]) -> dict[str, bytes]:
+    """The PNG of every well in the chunk folders, by well."""
+    found = {}
+    for folder in folders:
+        for name in sorted(os.listdir(folder)):
+            if name.endswith(".png"):
+                with open(os.path.join(folder, name), "rb") as handle:
+                    found[name[: -len(".png")]] = handle.read()
+    return found
 
 
 def step() -> None:
@@ -33,6 +45,8 @@ def step() -> None:
         sm.params.report_feature,
         read_provenance(sm.input.wells),
         flat_fields,
+        read_thumbnails(list(sm.input.thumbnails)),
+        notes.get("flagged_wells", {}),
     )
     html = build_plate_report(tables, page_info)
     write_text(html, sm.output.report)

@@ -51,6 +51,7 @@ class Nuclei:
     angle: np.ndarray
     level: np.ndarray
     kind: np.ndarray  # 0 normal, 1 rounded (saturated, glow), 2 out of focus
+    wobble: np.ndarray | None = None  # (n, 4) outline irregularity; None: drawn afresh at rendering
 
 
 def _free(y: np.ndarray, x: np.ndarray, r: np.ndarray, placed: np.ndarray, py: float, px: float, pr: float) -> bool:
@@ -135,7 +136,11 @@ def render_field(rng: np.random.Generator, settings: FieldSettings, nuclei: Nucl
         y0, y1 = max(0, int(nuclei.y[i]) - reach), min(size, int(nuclei.y[i]) + reach + 1)
         x0, x1 = max(0, int(nuclei.x[i]) - reach), min(size, int(nuclei.x[i]) + reach + 1)
         yy, xx = np.mgrid[y0:y1, x0:x1]
-        wobble = [rng.uniform(0, 0.08), rng.uniform(0, 2 * np.pi), rng.uniform(0, 0.05), rng.uniform(0, 2 * np.pi)]
+        wobble = (
+            [rng.uniform(0, 0.08), rng.uniform(0, 2 * np.pi), rng.uniform(0, 0.05), rng.uniform(0, 2 * np.pi)]
+            if nuclei.wobble is None
+            else nuclei.wobble[i]
+        )
         distance = _normalised_distance(nuclei, i, yy, xx, wobble)
         inside = distance < 1
         box = (slice(y0, y1), slice(x0, x1))

@@ -97,6 +97,14 @@ def write_profile_tiff(image, path: str, description: dict) -> None:
     os.replace(tmp, path)
 
 
+def write_bytes(data: bytes, path: str) -> None:
+    """Write a binary file (an image) atomically."""
+    tmp = temporary_path(path)
+    with open(tmp, "wb") as handle:
+        handle.write(data)
+    os.replace(tmp, path)
+
+
 def write_text(text: str, path: str) -> None:
     """Write a text file (report, CSV) atomically."""
     tmp = temporary_path(path)

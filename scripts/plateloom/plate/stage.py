@@ -108,20 +108,45 @@ NEAR_CUTOFF_SHARE = 0.05  # a site with more links than this near the linking cu
 CUT_OFF_SHARE = 0.02  # ... or more forbidden links than this share of its links: the cutoff binds
 
 
-def linking_notes(site_qc: pd.DataFrame, shown: int = 5) -> list[str]:
-    """Plate-report warnings for sites where the linking distance binds: many links close to it, or
-    plausible links it forbade (tracks broken, speeds biased low)."""
+def binding_sites(site_qc: pd.DataFrame) -> pd.DataFrame:
+    """Per (well, site) link counts of the sites where the linking distance binds (empty if none)."""
     needed = ["links", "links_near_cutoff", "links_cut_off"]
     if not set(needed) <= set(site_qc.columns):
-        return []
+        return pd.DataFrame(columns=needed)
     per_site = site_qc.groupby(["well", "site"])[needed + ["linking_distance_um"]].agg(
         {"links": "sum", "links_near_cutoff": "sum", "links_cut_off": "sum", "linking_distance_um": "max"}
     )
     links = per_site["links"].clip(lower=1)
     near, cut = per_site["links_near_cutoff"] / links, per_site["links_cut_off"] / links
-    binding = per_site[(near > NEAR_CUTOFF_SHARE) | (cut > CUT_OFF_SHARE)]
+    return per_site[(near > NEAR_CUTOFF_SHARE) | (cut > CUT_OFF_SHARE)]
+
+
+def well_flags(site_qc: pd.DataFrame) -> dict[str, list[str]]:
+    """Short site-QC flags per well (wells without a flag left out), for the plate report's thumbnails."""
+    flags: dict[str, list[str]] = {}
+    jumps = [c for c in ("threshold_jump", "count_jump") if c in site_qc.columns]
+    if jumps:
+        jumped = site_qc[site_qc[jumps].fillna(False).astype(bool).any(axis=1)]
+        for (well, site), frames in jumped.groupby(["well", "site"])["frame"]:
+            flags.setdefault(well, []).append(
+                f"site {site}: segmentation jump at frame(s) {', '.join(map(str, frames))}"
+            )
+    for well, site in binding_sites(site_qc).index:
+        flags.setdefault(well, []).append(f"site {site}: linking distance binds")
+    if "frame_problem" in site_qc.columns:
+        unusable = site_qc[site_qc["frame_problem"].fillna("") != ""]
+        for (well, site), frames in unusable.groupby(["well", "site"])["frame"]:
+            flags.setdefault(well, []).append(f"site {site}: {len(frames)} unusable frame(s)")
+    return {well: flags[well] for well in sorted(flags)}
+
+
+def linking_notes(site_qc: pd.DataFrame, shown: int = 5) -> list[str]:
+    """Plate-report warnings for sites where the linking distance binds: many links close to it, or
+    plausible links it forbade (tracks broken, speeds biased low)."""
+    binding = binding_sites(site_qc)
     if binding.empty:
         return []
+    near = binding["links_near_cutoff"] / binding["links"].clip(lower=1)
     listed = "; ".join(
         f"well {w} site {s}: {near[(w, s)]:.0%} of links near the {row.linking_distance_um:.3g} um cutoff, "
         f"{int(row.links_cut_off)} links cut off"

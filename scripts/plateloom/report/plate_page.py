@@ -13,6 +13,7 @@ import seaborn as sns
 from plateloom.columns import ANALYSED_ROLES
 from plateloom.plate.stage import PlateTables
 from plateloom.report.html import escape, figure_tag, page, table_tag
+from plateloom.report.thumbnails import thumbnails_html
 from plateloom.setup.plate_formats import PlateFormat, row_label, well_grid
 
 
@@ -149,6 +150,8 @@ class PlatePage:
     report_feature: str
     provenance: dict
     flat_fields: dict[str, np.ndarray] | None = None
+    thumbnails: dict[str, bytes] | None = None  # PNG per well (plateloom.well.snapshot)
+    flagged_wells: dict[str, list[str]] | None = None  # site-QC flags per well
 
 
 def _summary_html(tables: PlateTables, page_info: PlatePage) -> str:
@@ -198,6 +201,7 @@ def build_plate_report(tables: PlateTables, page_info: PlatePage) -> str:
         ("Z'-factor and SSMD per feature", QC_TEXT + table_tag(qc[QC_COLUMNS])),
         ("Edge effect", EDGE_TEXT + table_tag(tables.edge)),
         ("Image QC", IMAGE_QC_TEXT + table_tag(pd.DataFrame([tables.site_summary]))),
+        ("Segmentation and tracks", thumbnails_html(profile, page_info.thumbnails, page_info.flagged_wells)),
         ("Illumination", illumination_html(page_info.flat_fields)),
         ("Exclusion ledger", ledger_html),
     ]

@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import os
 from dataclasses import dataclass, replace
 
 import numpy as np
@@ -11,10 +10,8 @@ import pandas as pd
 from plateloom.errors import InputError
 from plateloom.io.images import ImageIndex, SiteFrame, stream_site
 from plateloom.io.planes import saturation_masks
-from plateloom.io.tables import well_part_path, write_parquet
 from plateloom.settings import FromSchema
 from plateloom.well.cell_bodies import grow_cell_bodies
-from plateloom.well.collective import CollectiveSettings, well_collective_readouts
 from plateloom.well.features import measure_objects, neighbourhood
 from plateloom.well.illumination import apply_flat_field
 from plateloom.well.image_qc import background_levels, focus_score, segmentation_jumps
@@ -323,55 +320,8 @@ def analyse_well(
     return cells, tracks, pd.concat(qc_parts, ignore_index=True)
 
 
-def _with_keys(frame: pd.DataFrame, plate: str, well: str) -> pd.DataFrame:
+def with_keys(frame: pd.DataFrame, plate: str, well: str) -> pd.DataFrame:
     frame = frame.copy()
     frame.insert(0, "plate", plate)
     frame.insert(1, "well", well)
     return frame
-
-
-def collective_table(
-    cells: pd.DataFrame, settings: WellSettings, collective: CollectiveSettings, well: str
-) -> pd.DataFrame:
-    """One row of collective readouts of a well (see plateloom.well.collective); no columns when switched off
-    or when no channel has the role reporter."""
-    if not collective.enabled or not settings.reporter_channels:
-        return pd.DataFrame(index=[0])
-    row = well_collective_readouts(
-        cells, list(settings.reporter_channels), collective, settings.frame_interval_min, well
-    )
-    return pd.DataFrame([row])
-
-
-@dataclass(frozen=True)
-class ChunkOutputs:
-    """The Hive folders a chunk job writes one Parquet file per well into (collective: optional)."""
-
-    cells: str
-    tracks: str
-    site_qc: str
-    collective: str | None = None
-
-
-def analyse_chunk(
-    index: ImageIndex,
-    plate: str,
-    wells: list[str],
-    settings: WellSettings,
-    outputs: ChunkOutputs,
-    config_for_provenance: object,
-    flat_field: np.ndarray | None = None,
-    collective: CollectiveSettings | None = None,
-) -> None:
-    """Analyse the wells of one chunk; one Parquet file per well in each folder of ``outputs``
-    (cells, tracks, site QC and, with a collective folder, the well's collective readouts)."""
-    folders = [outputs.cells, outputs.tracks, outputs.site_qc] + ([outputs.collective] if outputs.collective else [])
-    for folder in folders:
-        os.makedirs(folder, exist_ok=True)
-    for well in wells:
-        cells, tracks, site_qc = analyse_well(index, well, settings, flat_field)
-        tables = [cells, tracks, site_qc]
-        if outputs.collective:
-            tables.append(collective_table(cells, settings, collective or CollectiveSettings.defaults(), well))
-        for table, folder in zip(tables, folders):
-            write_parquet(_with_keys(table, plate, well), well_part_path(folder, well), config_for_provenance)

@@ -11,6 +11,10 @@ from skimage.filters import threshold_li, threshold_otsu, threshold_triangle
 # Objects brighter than the background by fewer than this many robust noise SDs mean the field
 # holds no objects (Otsu always finds a threshold, even in pure noise).
 MIN_CONTRAST_NOISE_SDS = 5.0
+# The log-intensity threshold is never below the background median plus this many robust noise
+# SDs: in a sparse field (a few percent of pixels in nuclei) Otsu's split on log intensity can
+# fall inside a background made bimodal by uneven illumination.
+LOG_THRESHOLD_FLOOR_SDS = 3.0
 
 
 # Automatic thresholds are computed from at most this many pixels (a regular grid sample of larger
@@ -100,6 +104,8 @@ def object_threshold(smooth: np.ndarray, method: str = "otsu") -> float:
     noise_sd = 1.4826 * float(np.median(np.abs(below - below_median)))  # robust SD: 1.4826 x MAD
     if np.median(above) - below_median < MIN_CONTRAST_NOISE_SDS * max(noise_sd, 1e-6):
         return float("nan")
+    if method == "log_otsu":
+        return max(threshold, below_median + LOG_THRESHOLD_FLOOR_SDS * noise_sd)
     return threshold
 
 

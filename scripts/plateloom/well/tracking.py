@@ -38,24 +38,56 @@ def _sparse_assignment(
     return np.where(chosen < n_cols, chosen, -1)
 
 
-def link_frames(previous_um: np.ndarray, current_um: np.ndarray, max_displacement_um: float) -> np.ndarray:
+def _candidate_links(
+    previous_um: np.ndarray, current_um: np.ndarray, reach_um: float
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """(previous index, current index, distance um) of every pair closer than ``reach_um``, zero
+    distances included."""
+    pairs = cKDTree(previous_um).sparse_distance_matrix(cKDTree(current_um), reach_um, output_type="ndarray")
+    return pairs["i"].astype(np.int64), pairs["j"].astype(np.int64), pairs["v"]
+
+
+def _smallest_per_pair(
+    rows: np.ndarray, cols: np.ndarray, distance: np.ndarray
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """The smallest distance of every (row, col) pair listed more than once."""
+    order = np.lexsort((distance, cols, rows))
+    rows, cols, distance = rows[order], cols[order], distance[order]
+    first = np.ones(len(rows), bool)
+    first[1:] = (rows[1:] != rows[:-1]) | (cols[1:] != cols[:-1])
+    return rows[first], cols[first], distance[first]
+
+
+def link_frames(
+    previous_um: np.ndarray,
+    current_um: np.ndarray,
+    max_displacement_um: float,
+    predicted_um: np.ndarray | None = None,
+) -> np.ndarray:
     """Match objects of two consecutive frames.
 
-    ``previous_um`` (n, 2) and ``current_um`` (m, 2) are centroids in micrometres. Returns an
-    int array of length m: for each current object the index of the previous object it
-    continues, or -1 when it starts a new track.
+    ``previous_um`` (n, 2) and ``current_um`` (m, 2) are centroids in micrometres. With
+    ``predicted_um`` (n, 2), each previous object's expected position this frame (its last
+    position plus its last step, a constant-velocity prediction), a link costs the smaller of the
+    squared distances to the last and to the predicted position, so persistent movers keep their
+    track while a cell that turns or stops is no worse off. Returns an int array of length m: for
+    each current object the index of the previous object it continues, or -1 when it starts a new
+    track.
     """
     n, m = len(previous_um), len(current_um)
     links = np.full(m, -1, dtype=np.int64)
     if n == 0 or m == 0:
         return links
-    pairs = cKDTree(previous_um).sparse_distance_matrix(
-        cKDTree(current_um), max_displacement_um, output_type="coo_matrix"
-    )
-    if pairs.nnz == 0:
+    rows, cols, distance = _candidate_links(previous_um, current_um, max_displacement_um)
+    if predicted_um is not None:
+        ahead = _candidate_links(predicted_um, current_um, max_displacement_um)
+        rows, cols, distance = _smallest_per_pair(
+            np.concatenate([rows, ahead[0]]), np.concatenate([cols, ahead[1]]), np.concatenate([distance, ahead[2]])
+        )
+    if len(rows) == 0:
         return links
     # Any allowed link (cost d^2 <= max_displacement^2) beats ending one track plus starting another.
-    successor = _sparse_assignment(n, m, pairs.row, pairs.col, pairs.data**2, max_displacement_um**2)
+    successor = _sparse_assignment(n, m, rows, cols, distance**2, max_displacement_um**2)
     linked = successor >= 0
     links[successor[linked]] = np.nonzero(linked)[0]
     return links

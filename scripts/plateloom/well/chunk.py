@@ -1,0 +1,89 @@
+"""The per-well job: analyse a chunk of wells of one plate and write one file per well and table."""
+
+from __future__ import annotations
+
+import os
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+
+from plateloom.io.images import ImageIndex
+from plateloom.io.tables import well_part_path, write_bytes, write_parquet
+from plateloom.well.collective import CollectiveSettings, well_collective_readouts
+from plateloom.well.illumination import apply_flat_field
+from plateloom.well.snapshot import overlay_rgb, png_bytes, read_frame, snapshot_frame, track_tails
+from plateloom.well.stage import WellSettings, analyse_well, segment_frame, with_keys
+
+
+def collective_table(
+    cells: pd.DataFrame, settings: WellSettings, collective: CollectiveSettings, well: str
+) -> pd.DataFrame:
+    """One row of collective readouts of a well (see plateloom.well.collective); no columns when switched off
+    or when no channel has the role reporter."""
+    if not collective.enabled or not settings.reporter_channels:
+        return pd.DataFrame(index=[0])
+    row = well_collective_readouts(
+        cells, list(settings.reporter_channels), collective, settings.frame_interval_min, well
+    )
+    return pd.DataFrame([row])
+
+
+@dataclass(frozen=True)
+class ChunkOutputs:
+    """The Hive folders a chunk job writes one Parquet file per well into (collective: optional)."""
+
+    cells: str
+    tracks: str
+    site_qc: str
+    collective: str | None = None
+    thumbnails: str | None = None  # one <well>.png per well (plateloom.well.snapshot)
+
+
+def well_thumbnail(
+    index: ImageIndex,
+    well: str,
+    settings: WellSettings,
+    flat_field: np.ndarray | None,
+    cells: pd.DataFrame,
+    site_qc: pd.DataFrame,
+) -> bytes | None:
+    """PNG of the well's first site on its first flagged (else last usable) frame, with nuclear
+    outlines and track tails; None when no frame of that site can be read."""
+    site = int(site_qc["site"].min())
+    frame = snapshot_frame(site_qc, site)
+    planes = None if frame is None else read_frame(index, well, site, list(settings.channels), frame)
+    if planes is None:
+        return None
+    planes = apply_flat_field(planes, flat_field)
+    labels = segment_frame(planes, settings)[0]
+    nuclear = planes[list(settings.channels).index(settings.nuclei_channel)]
+    return png_bytes(overlay_rgb(nuclear, labels, track_tails(cells, site, frame, settings.pixel_size_um)))
+
+
+def analyse_chunk(
+    index: ImageIndex,
+    plate: str,
+    wells: list[str],
+    settings: WellSettings,
+    outputs: ChunkOutputs,
+    config_for_provenance: object,
+    flat_field: np.ndarray | None = None,
+    collective: CollectiveSettings | None = None,
+) -> None:
+    """Analyse the wells of one chunk; one Parquet file per well in each folder of ``outputs``
+    (cells, tracks, site QC and, with a collective folder, the well's collective readouts) and,
+    with a thumbnails folder, one PNG per well."""
+    folders = [outputs.cells, outputs.tracks, outputs.site_qc] + ([outputs.collective] if outputs.collective else [])
+    for folder in folders + ([outputs.thumbnails] if outputs.thumbnails else []):
+        os.makedirs(folder, exist_ok=True)
+    for well in wells:
+        cells, tracks, site_qc = analyse_well(index, well, settings, flat_field)
+        tables = [cells, tracks, site_qc]
+        if outputs.collective:
+            tables.append(collective_table(cells, settings, collective or CollectiveSettings.defaults(), well))
+        for table, folder in zip(tables, folders):
+            write_parquet(with_keys(table, plate, well), well_part_path(folder, well), config_for_provenance)
+        thumbnail = well_thumbnail(index, well, settings, flat_field, cells, site_qc) if outputs.thumbnails else None
+        if thumbnail is not None:
+            write_bytes(thumbnail, os.path.join(outputs.thumbnails, f"{well}.png"))

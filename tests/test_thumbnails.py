@@ -1,0 +1,135 @@
+"""Thumbnails of segmentation and tracks: what the plate report shows of the images.
+
+Planted truth: a realistic field (plateloom.demo.realistic) and hand-made tracks; the PNG is read
+back with matplotlib's reader and, in the report, rendered by headless Chromium.
+"""
+
+from __future__ import annotations
+
+import base64
+import io
+import os
+import subprocess
+
+import numpy as np
+import pandas as pd
+import pytest
+from matplotlib import image as mpl_image
+
+from plateloom.demo.realistic import simulate_field
+from plateloom.report.thumbnails import choose_thumbnail_wells, thumbnails_html
+from plateloom.well.nuclei import segment_nuclei_on_edges
+from plateloom.well.snapshot import OUTLINE_RGB, TAIL_RGB, overlay_rgb, png_bytes, snapshot_frame, track_tails
+from plateloom.well.thresholds import smooth_image
+
+PIXEL_UM = 0.65
+
+
+@pytest.fixture(scope="module")
+def field():
+    image, _, _ = simulate_field(201)
+    labels, _ = segment_nuclei_on_edges(smooth_image(image, 1 / PIXEL_UM), PIXEL_UM, 20.0, 5.0, 12.0)
+    return image, labels
+
+
+def _is(rgb: np.ndarray, colour: np.ndarray) -> np.ndarray:
+    return np.all(rgb == colour, axis=-1)
+
+
+def test_every_nucleus_gets_an_outline_and_tracks_a_tail(field):
+    image, labels = field[0][:256, :256], field[1][:256, :256]
+    labels = np.unique(labels, return_inverse=True)[1].reshape(labels.shape)  # labels 1..n again
+    tail = np.array([[40.0, 40.0], [60.0, 80.0], [100.0, 120.0]])  # (y, x) px
+    rgb = overlay_rgb(image, labels, [tail])
+    assert rgb.dtype == np.uint8 and rgb.shape == (*image.shape, 3)  # 256 px: no shrinking
+    outlined = labels[_is(rgb, OUTLINE_RGB)]
+    assert set(np.unique(outlined[outlined > 0])) == set(range(1, labels.max() + 1))
+    yellow = np.argwhere(_is(rgb, TAIL_RGB))
+    assert len(yellow) >= 80 and yellow.min(axis=0).tolist() == [40, 40] and yellow.max(axis=0).tolist() == [100, 120]
+
+
+def test_a_large_frame_is_shrunk_and_the_png_reads_back_the_same(field):
+    image, labels = field
+    big_image, big_labels = np.tile(image, (3, 3)), np.tile(labels, (3, 3))
+    rgb = overlay_rgb(big_image, big_labels, [])
+    assert max(rgb.shape[:2]) <= 256 and _is(rgb, OUTLINE_RGB).sum() > 1000
+    data = png_bytes(rgb)
+    assert data == png_bytes(rgb)  # deterministic bytes
+    back = (mpl_image.imread(io.BytesIO(data))[..., :3] * 255).round().astype(np.uint8)
+    assert np.array_equal(back, rgb)
+
+
+def test_the_flagged_frame_is_shown_else_the_last_usable_one():
+    qc = pd.DataFrame(
+        {
+            "site": [1, 1, 1, 1, 2],
+            "frame": [0, 1, 2, 3, 0],
+            "threshold_jump": [False, False, True, False, False],
+            "count_jump": [False, False, False, True, False],
+            "frame_problem": ["", "", "", "", ""],
+        }
+    )
+    assert snapshot_frame(qc, 1) == 2
+    qc["threshold_jump"] = qc["count_jump"] = False
+    qc.loc[3, "frame_problem"] = "truncated file"
+    assert snapshot_frame(qc, 1) == 2 and snapshot_frame(qc, 3) is None
+
+
+def test_tails_are_the_recent_positions_of_tracks_on_the_frame():
+    cells = pd.DataFrame(
+        {
+            "site": 1,
+            "frame": [0, 1, 2, 0, 1],
+            "track": [7, 7, 7, 8, 8],  # track 8 ends before frame 2: no tail
+            "centroid_y_um": [0.0, 6.5, 13.0, 50.0, 50.0],
+            "centroid_x_um": [0.0, 0.0, 6.5, 50.0, 51.0],
+        }
+    )
+    tails = track_tails(cells, 1, 2, PIXEL_UM)
+    assert len(tails) == 1 and np.allclose(tails[0], [[0, 0], [10, 0], [20, 10]])
+
+
+def _profile():
+    wells = [f"B{c:02d}" for c in range(1, 13)] + [f"C{c:02d}" for c in range(1, 13)]
+    roles = ["negative_control"] * 6 + ["positive_control"] * 4 + ["test"] * 14
+    return pd.DataFrame({"well": wells, "role": roles, "condition": ["vehicle"] * 6 + ["pos"] * 4 + ["LOOM-7"] * 14})
+
+
+def test_flagged_wells_are_always_shown_and_the_sample_is_fixed():
+    profile = _profile()
+    available = set(profile["well"]) - {"B02"}
+    chosen = choose_thumbnail_wells(profile, {"C11": ["site 1: linking distance binds"]}, available)
+    assert chosen[0] == "C11" and len(chosen) == len(set(chosen)) == 1 + 3 + 3 + 6
+    assert "B02" not in chosen and chosen == choose_thumbnail_wells(profile, {"C11": ["x"]}, available)
+    roles = profile.set_index("well").loc[chosen[1:], "role"].tolist()
+    assert roles == ["negative_control"] * 3 + ["positive_control"] * 3 + ["test"] * 6
+
+
+def test_thumbnails_load_in_headless_chromium(tmp_path, field):
+    from skimage.io import imread
+    from test_reports import _chromium
+
+    if _chromium() is None:
+        if os.environ.get("PLATELOOM_REQUIRE_CHROMIUM"):
+            pytest.fail("chromium is required here (PLATELOOM_REQUIRE_CHROMIUM is set) but not installed")
+        pytest.skip("Debian package chromium not installed (.ci/run installs it)")
+    image, labels = field
+    png = png_bytes(overlay_rgb(image, labels, []))
+    profile = _profile()
+    html = "<html><body style='margin:0'>" + thumbnails_html(profile, {"B01": png, "C12": png}, {"C12": ["<flag>"]})
+    page = tmp_path / "thumbs.html"
+    page.write_text(html + "</body></html>", encoding="utf-8")
+    assert "&lt;flag&gt;" in html and base64.b64encode(png).decode() in html
+    shot = tmp_path / "shot.png"
+    command = [_chromium(), "--headless", "--no-sandbox", "--disable-gpu", "--no-first-run"]
+    command += [
+        f"--user-data-dir={tmp_path / 'profile'}",
+        "--window-size=800,900",
+        f"--screenshot={shot}",
+        page.as_uri(),
+    ]
+    subprocess.run(command, check=True, capture_output=True, timeout=120)
+    pixels = imread(shot)[..., :3].astype(int)
+    # the outlines' cyan shows only if the images were decoded and drawn
+    cyan = (np.abs(pixels - OUTLINE_RGB.astype(int)).sum(axis=-1) < 60).sum()
+    assert cyan > 500, cyan
