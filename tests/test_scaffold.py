@@ -299,3 +299,19 @@ def test_a_single_channel_folder_is_surveyed_with_its_stain_as_the_channel(tmp_p
     # without a reporter, {reporter} falls back to the nuclear stain: each feature modelled once
     resolved = resolve_features(config["screen"]["features"], config)
     assert "mean_intensity_hoechst" in resolved and len(resolved) == len(set(resolved))
+
+
+def test_upper_case_channel_names_in_file_names_are_kept_and_match_the_files(tmp_path):
+    from plateloom.io.images import index_plate_images
+
+    folder = tmp_path / "plate"
+    _write_plate(folder, "stacks", 6, time.time())
+    for path in folder.glob("*.tiff"):
+        path.rename(path.with_name(path.name.replace("hoechst", "DAPI").replace("ktr", "KTR")))
+    survey = survey_folder(str(folder))
+    assert survey.channels == ["DAPI", "KTR"]
+    write_scaffold(survey, str(tmp_path / "screen"))
+    config = load_config(str(tmp_path / "screen" / "config.yaml"))  # the schema accepts the names
+    assert [c["name"] for c in config["channels"]] == ["DAPI", "KTR"]
+    index = index_plate_images(str(folder), survey.template, 96, ["DAPI", "KTR"])
+    assert len(index.table) == 2 * len(WELLS)

@@ -37,8 +37,30 @@ def test_a_write_stopped_before_the_rename_leaves_no_file_at_the_final_path(tmp_
     with pytest.raises(KeyboardInterrupt):
         tables.write_text("<html>complete</html>", str(path))
     assert not path.exists()
-    leftovers = [p.name for p in tmp_path.iterdir()]
-    assert leftovers and all(name.startswith(".report.html.") and name.endswith(".tmp") for name in leftovers)
+    assert list(tmp_path.iterdir()) == []  # the temporary file is removed as well
+
+
+def test_a_full_disk_ends_the_job_with_one_line_naming_the_output_and_the_fix(tmp_path, monkeypatch, capsys):
+    import errno
+
+    from plateloom.io.job import run_step
+
+    path = tmp_path / "wells" / "part-0.parquet"
+
+    def full(table, where, **kwargs):
+        with open(where, "wb") as handle:
+            handle.write(b"PAR1 partial")
+        raise OSError(errno.ENOSPC, "No space left on device", where)
+
+    monkeypatch.setattr(pq, "write_table", full)
+    with pytest.raises(SystemExit) as stopped:
+        run_step(None, lambda: tables.write_parquet(pd.DataFrame({"a": [1]}), str(path), {}), "plate_profiles P1")
+    assert stopped.value.code == 1
+    message = [line for line in capsys.readouterr().err.splitlines() if " ERROR " in line]
+    assert len(message) == 1
+    assert "No space left on device" in message[0] and "Fix: free space on that disk" in message[0]
+    assert "part-0.parquet" in message[0] and "Traceback" not in message[0]
+    assert list((tmp_path / "wells").iterdir()) == []  # neither the output nor a hidden temporary file
 
 
 def test_provenance_is_stored_and_read_back(tmp_path):

@@ -25,6 +25,7 @@ import tifffile
 from scipy import ndimage
 
 from plateloom.demo.scenario import QUANTITIES, WITHOUT_NUISANCE, treatment_ratios
+from plateloom.io.tables import atomic_path
 from plateloom.setup.plate_formats import is_edge_well, plate_format
 
 
@@ -301,8 +302,7 @@ def write_demo_plate(scenario: dict, layout: pd.DataFrame, plate: str, batch: st
             stack = simulate_site(scenario, factor, rng)
             for channel, name in enumerate(names):
                 path = os.path.join(folder, f"{row['well']}_s{site}_{name}.tif")
-                tmp = path + ".part"
-                tifffile.imwrite(tmp, stack[:, channel], compression="zlib", photometric="minisblack")
-                os.replace(tmp, path)
+                with atomic_path(path) as tmp:
+                    tifffile.imwrite(tmp, stack[:, channel], compression="zlib", photometric="minisblack")
                 written += 1
     return written

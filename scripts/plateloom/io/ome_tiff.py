@@ -132,9 +132,10 @@ def index_multichannel_stacks(folder: str, regex: re.Pattern[str], wells: int, c
                 "names no channels in OME metadata, and the template has no {channel} field.",
                 "add {channel} to images.filename_template, or export OME-TIFF with channel names.",
             )
+        wanted = {channel_key(c): c for c in channels}  # OME names match config names in any case
         for position, channel in enumerate(channel_key(n) for n in names):
-            if channel in channels:
-                rows.append((well, int(match.group("site")), -1, channel, f"{path}::{position}"))
+            if channel in wanted:
+                rows.append((well, int(match.group("site")), -1, wanted[channel], f"{path}::{position}"))
             else:
                 unmatched.append(f"{name} channel {channel!r}")
     table = pd.DataFrame(rows, columns=["well", "site", "frame", "channel", "path"])

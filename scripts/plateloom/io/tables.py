@@ -6,6 +6,8 @@ import hashlib
 import json
 import os
 import platform
+from collections.abc import Iterator
+from contextlib import contextmanager
 from importlib import metadata
 
 import pandas as pd
@@ -56,6 +58,19 @@ def temporary_path(path: str) -> str:
     return os.path.join(folder, f".{os.path.basename(path)}.{os.getpid()}.tmp")
 
 
+@contextmanager
+def atomic_path(path: str) -> Iterator[str]:
+    """A temporary path beside ``path`` to write to; renamed to ``path`` when the block ends
+    without an error, removed when it fails (no half-written file, visible or hidden, is left)."""
+    tmp = temporary_path(path)
+    try:
+        yield tmp
+        os.replace(tmp, path)
+    finally:
+        if os.path.exists(tmp):
+            os.remove(tmp)
+
+
 def write_parquet(frame: pd.DataFrame, path: str, settings: object, extra: dict | None = None) -> None:
     """Write ``frame`` to ``path`` atomically (temporary file in the same folder, then rename).
 
@@ -63,7 +78,6 @@ def write_parquet(frame: pd.DataFrame, path: str, settings: object, extra: dict 
     is stored in the file metadata and read back by ``read_extra``. Text and categorical
     columns are dictionary-encoded, numbers are not; Snappy compression.
     """
-    tmp = temporary_path(path)
     table = pa.Table.from_pandas(frame, preserve_index=False)
     meta = dict(table.schema.metadata or {})
     meta[PROVENANCE_KEY] = json.dumps(provenance(settings), sort_keys=True).encode()
@@ -77,8 +91,8 @@ def write_parquet(frame: pd.DataFrame, path: str, settings: object, extra: dict 
         for f in table.schema
         if pa.types.is_string(f.type) or pa.types.is_large_string(f.type) or pa.types.is_dictionary(f.type)
     ]
-    pq.write_table(table, tmp, use_dictionary=keys)
-    os.replace(tmp, path)
+    with atomic_path(path) as tmp:
+        pq.write_table(table, tmp, use_dictionary=keys)
 
 
 def write_profile_tiff(image, path: str, description: dict) -> None:
@@ -86,31 +100,26 @@ def write_profile_tiff(image, path: str, description: dict) -> None:
     import numpy as np
     import tifffile
 
-    tmp = temporary_path(path)
-    tifffile.imwrite(
-        tmp,
-        np.asarray(image, np.float32),
-        photometric="minisblack",
-        description=json.dumps(description, sort_keys=True),
-        metadata=None,
-    )
-    os.replace(tmp, path)
+    with atomic_path(path) as tmp:
+        tifffile.imwrite(
+            tmp,
+            np.asarray(image, np.float32),
+            photometric="minisblack",
+            description=json.dumps(description, sort_keys=True),
+            metadata=None,
+        )
 
 
 def write_bytes(data: bytes, path: str) -> None:
     """Write a binary file (an image) atomically."""
-    tmp = temporary_path(path)
-    with open(tmp, "wb") as handle:
+    with atomic_path(path) as tmp, open(tmp, "wb") as handle:
         handle.write(data)
-    os.replace(tmp, path)
 
 
 def write_text(text: str, path: str) -> None:
     """Write a text file (report, CSV) atomically."""
-    tmp = temporary_path(path)
-    with open(tmp, "w", encoding="utf-8") as handle:
+    with atomic_path(path) as tmp, open(tmp, "w", encoding="utf-8") as handle:
         handle.write(text)
-    os.replace(tmp, path)
 
 
 def read_provenance(path: str) -> dict[str, object]:

@@ -6,7 +6,6 @@ import base64
 import html
 import io
 import json
-import os
 
 import matplotlib
 
@@ -44,12 +43,13 @@ def figure_tag(figure: plt.Figure, alt: str) -> str:
 
 def write_figure(figure: plt.Figure, path: str) -> None:
     """Save a figure as PNG atomically (temporary file, then rename) and close it."""
-    from plateloom.io.tables import temporary_path
+    from plateloom.io.tables import atomic_path
 
-    tmp = temporary_path(path)
-    figure.savefig(tmp, format="png", dpi=110, bbox_inches="tight", metadata={"Software": None})
-    plt.close(figure)
-    os.replace(tmp, path)
+    try:
+        with atomic_path(path) as tmp:
+            figure.savefig(tmp, format="png", dpi=110, bbox_inches="tight", metadata={"Software": None})
+    finally:
+        plt.close(figure)
 
 
 def table_tag(frame: pd.DataFrame, float_format: str = "{:.4g}") -> str:
