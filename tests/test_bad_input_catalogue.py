@@ -62,11 +62,32 @@ def test_rgb_page_is_named_with_its_shape(tmp_path):
         "A01_s1_dna.tif: expected one 2-D plane per page, found shape (32, 32, 3). Fix: save one channel per file "
         "(and one page per frame for stacks)."
     )
-    # every frame of the site is unusable: that is no glitch of one frame, so the well job stops and says so
-    with pytest.raises(
-        InputError, match=r"well A01, site 1: no frame of this site can be used.*found shape \(32, 32, 3\)"
-    ):
-        analyse_well(_index(tmp_path), "A01", _settings())
+    # every frame of the site is unusable: the site comes back empty with every frame flagged (the
+    # ledger's unusable_frame rows), and the chunk's other wells are not lost
+    cells, tracks, qc = analyse_well(_index(tmp_path), "A01", _settings())
+    assert len(cells) == 0 and len(tracks) == 0 and "area_um2" in cells.columns
+    assert qc["frame_problem"].str.contains(r"found shape \(32, 32, 3\)").all()
+
+
+def test_a_wrong_size_first_frame_is_flagged_and_the_rest_of_the_site_analysed(tmp_path):
+    good = _nuclei_stack(frames=4, size=64)
+    dna = [good[0][:48, :48]] + list(good[1:])  # frame 0 of the first channel read has another size
+    for frame in range(4):
+        tifffile.imwrite(tmp_path / f"A01_s1_t{frame}_dna.tif", dna[frame])
+        tifffile.imwrite(tmp_path / f"A01_s1_t{frame}_gfp.tif", good[frame])
+    index = index_plate_images(str(tmp_path), "{well}_s{site}_t{frame}_{channel}.tif", 96, ["dna", "gfp"])
+    cells, _, qc = analyse_well(index, "A01", _settings(channels=("dna", "gfp")))
+    problem = qc.set_index("frame")["frame_problem"].fillna("")
+    assert "A01_s1_t0_dna.tif: plane shape (48, 48) differs from the expected (64, 64)" in problem[0]
+    assert (problem[[1, 2, 3]] == "").all() and sorted(cells["frame"].unique()) == [1, 2, 3]
+
+
+def test_a_site_of_another_size_than_the_plate_is_flagged_not_fatal(tmp_path):
+    tifffile.imwrite(tmp_path / "A01_s1_dna.tif", _nuclei_stack(frames=3, size=48), photometric="minisblack")
+    flat_field = np.ones((1, 64, 64), np.float32)  # the plate's size, from its illumination profile
+    cells, _, qc = analyse_well(_index(tmp_path), "A01", _settings(), flat_field)
+    assert len(cells) == 0
+    assert qc["frame_problem"].str.contains(r"plane shape \(48, 48\) differs from the expected \(64, 64\)").all()
 
 
 def test_channels_of_different_sizes_are_named(tmp_path):

@@ -66,3 +66,39 @@ def test_unreadable_sampled_site_is_skipped_and_named(tmp_path):
     assert n_planes == 5 and len(skipped) == 1
     assert skipped[0].startswith("well A03, site 1:") and "cannot be read as TIFF" in skipped[0]
     assert profile.shape == planes.shape[1:] and np.isfinite(profile).all()
+
+
+def test_black_wrong_size_and_negative_sites_are_left_out_and_named(tmp_path):
+    import tifffile
+
+    from plateloom.io.images import index_plate_images
+    from plateloom.well.illumination import IlluminationSettings, estimate_flat_field
+
+    planes = _sites(n=8)
+    for i, plane in enumerate(planes):
+        tifffile.imwrite(tmp_path / f"A{i + 1:02d}_s1_dna.tif", plane[None].astype(np.uint16), photometric="minisblack")
+    tifffile.imwrite(tmp_path / "A02_s1_dna.tif", np.zeros((1, *planes.shape[1:]), np.uint16))  # black
+    tifffile.imwrite(tmp_path / "A05_s1_dna.tif", planes[4][None, :40, :50].astype(np.uint16))  # another size
+    tifffile.imwrite(tmp_path / "A07_s1_dna.tif", np.full((1, *planes.shape[1:]), -20, np.int16))  # int16, negative
+    index = index_plate_images(str(tmp_path), "{well}_s{site}_{channel}.tif", 96, ["dna"])
+    profile, n_planes, skipped = estimate_flat_field(index, "dna", ["dna"], IlluminationSettings.defaults(), 0.8)
+    assert n_planes == 5 and profile.shape == planes.shape[1:] and np.isfinite(profile).all()
+    said = " | ".join(skipped)
+    assert "well A02, site 1: black" in said and "well A07, site 1: black or non-positive median" in said
+    assert f"well A05, site 1: image size (40, 50) differs from the plate's {planes.shape[1:]}" in said
+
+
+def test_too_few_usable_sites_stop_with_the_sites_named(tmp_path):
+    import tifffile
+
+    from plateloom.errors import InputError
+    from plateloom.io.images import index_plate_images
+    from plateloom.well.illumination import IlluminationSettings, estimate_flat_field
+
+    planes = _sites(n=3)
+    for i, plane in enumerate(planes):
+        tifffile.imwrite(tmp_path / f"A{i + 1:02d}_s1_dna.tif", plane[None].astype(np.uint16), photometric="minisblack")
+    tifffile.imwrite(tmp_path / "A02_s1_dna.tif", np.zeros((1, *planes.shape[1:]), np.uint16))
+    index = index_plate_images(str(tmp_path), "{well}_s{site}_{channel}.tif", 96, ["dna"])
+    with pytest.raises(InputError, match=r"only 2 usable image\(s\).*well A02, site 1: black"):
+        estimate_flat_field(index, "dna", ["dna"], IlluminationSettings.defaults(), 0.8)

@@ -15,6 +15,13 @@ from plateloom.setup.plate_formats import plate_format
 sm = snakemake  # noqa: F821  (injected by Snakemake's script directive)
 
 
+def read_profile(path: str) -> tuple:
+    """An illumination profile and the sampled sites left out of it (from its description)."""
+    with tifffile.TiffFile(path) as tif:
+        description = json.loads(tif.pages[0].description or "{}")
+        return tif.asarray(), description.get("skipped_sites", [])
+
+
 def read_thumbnails(folders: list[str]) -> dict[str, bytes]:
     """The PNG of every well in the chunk folders, by well."""
     found = {}
@@ -37,7 +44,8 @@ def step() -> None:
         notes["warnings"],
         notes["site_qc"],
     )
-    flat_fields = {c: tifffile.imread(p) for c, p in zip(sm.params.channels, sm.input.flat_fields)}
+    profiles = {c: read_profile(p) for c, p in zip(sm.params.channels, sm.input.flat_fields)}
+    flat_fields = {c: image for c, (image, _) in profiles.items()}
     page_info = PlatePage(
         sm.wildcards.plate,
         sm.params.batch,
@@ -47,6 +55,7 @@ def step() -> None:
         flat_fields,
         read_thumbnails(list(sm.input.thumbnails)),
         notes.get("flagged_wells", {}),
+        {c: skipped for c, (_, skipped) in profiles.items() if skipped},
     )
     html = build_plate_report(tables, page_info)
     write_text(html, sm.output.report)

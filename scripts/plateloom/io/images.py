@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import os
 import re
+from collections import Counter
 from collections.abc import Iterator
 from contextlib import ExitStack
 
@@ -159,13 +160,17 @@ def site_frame_count(index: ImageIndex, well: str, site: int, channels: list[str
     return max(n for n, _ in site_frame_counts(index, well, site, channels).values())
 
 
-def stream_site(index: ImageIndex, well: str, site: int, channels: list[str]) -> Iterator[SiteFrame]:
+def stream_site(
+    index: ImageIndex, well: str, site: int, channels: list[str], shape: tuple[int, ...] | None = None
+) -> Iterator[SiteFrame]:
     """Yield the frames of one site in order, one at a time (only one frame of every channel is in memory).
 
     A frame that cannot be used (its file missing from a per-frame series, a stack shorter
     than the other channels', a page of another shape or pixel type, NaN pixels, an unreadable
     page) comes with ``problem`` set and no planes, so the rest of the site is still analysed.
     A file that cannot be opened at all, or a channel without any image, stops with an error.
+    Planes must have ``shape`` (the plate's image size, e.g. the flat field's); when it is not
+    given, the size of most of the first pages of the site's channels.
     """
     if index.source == "zarr":
         yield from stream_zarr_site(index, well, site, channels)
@@ -173,7 +178,7 @@ def stream_site(index: ImageIndex, well: str, site: int, channels: list[str]) ->
     if index.source == "ome_tiff":
         yield from stream_multichannel_site(index, well, site, channels)
         return
-    yield from _stream_tiff_site(index, well, site, channels)
+    yield from _stream_tiff_site(index, well, site, channels, shape)
 
 
 class _TiffSite:
@@ -191,6 +196,27 @@ class _TiffSite:
         self.stack_paths = {c: t["path"].iloc[0] for c, t in by_channel.items()} if index.stacks else {}
         self.opened = {c: stack.enter_context(open_tiff(p)) for c, p in self.stack_paths.items()}
         self.paths = {c: dict(zip(t["frame"], t["path"])) for c, t in by_channel.items()}
+
+    def usual_shape(self, channels: list[str], frames: int = 3) -> tuple[int, ...] | None:
+        """The most common page shape among the first ``frames`` frames of every channel (read
+        from the page headers; None if none can be read)."""
+        shapes = []
+        for channel in channels:
+            for frame in range(min(frames, self.counts[channel][0])):
+                try:
+                    shapes.append(self._page_shape(channel, frame))
+                except (InputError, OSError, ValueError, IndexError):
+                    continue
+        return Counter(shapes).most_common(1)[0][0] if shapes else None
+
+    def _page_shape(self, channel: str, frame: int) -> tuple[int, ...]:
+        if self.stacks:
+            return tuple(self.opened[channel].pages[frame].shape)
+        path = self.paths[channel].get(self.start + frame)
+        if path is None:
+            raise InputError(path, "missing", "")
+        with open_tiff(path) as tif:
+            return tuple(tif.pages[0].shape)
 
     def raw_plane(self, channel: str, frame: int) -> tuple[np.ndarray, str]:
         """(plane as stored, its file) of frame number ``frame`` counted from the site's first frame."""
@@ -215,10 +241,12 @@ class _TiffSite:
             return read_page(tif, path, 0), path
 
 
-def _stream_tiff_site(index: ImageIndex, well: str, site: int, channels: list[str]) -> Iterator[SiteFrame]:
-    shape: tuple[int, ...] | None = None
+def _stream_tiff_site(
+    index: ImageIndex, well: str, site: int, channels: list[str], shape: tuple[int, ...] | None
+) -> Iterator[SiteFrame]:
     with ExitStack() as stack:
         files = _TiffSite(index, well, site, channels, stack)
+        shape = shape or files.usual_shape(channels)
         for frame in range(files.n_frames):
             planes, saturated, problem = [], [], ""
             for channel in channels:
@@ -229,7 +257,6 @@ def _stream_tiff_site(index: ImageIndex, well: str, site: int, channels: list[st
                 except InputError as error:
                     problem = f"{files.where}, frame {files.start + frame}: {error}"
                     break
-                shape = plane.shape
                 planes.append(plane)
             if problem:
                 yield SiteFrame(files.start + frame, None, np.full(len(channels), np.nan), problem)

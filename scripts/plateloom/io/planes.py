@@ -76,8 +76,9 @@ def check_plane(plane: np.ndarray, path: str, shape: tuple[int, ...] | None) -> 
     if shape is not None and plane.shape != shape:
         raise InputError(
             path,
-            f"plane shape {plane.shape} differs from the other channels/frames {shape}.",
-            "all images of a site must have the same size.",
+            f"plane shape {plane.shape} differs from the expected {shape} (the plate's image size, or that of "
+            "most images of this site).",
+            "re-export this image at the plate's size; the other frames and sites are analysed.",
         )
     if not (np.issubdtype(plane.dtype, np.integer) or np.issubdtype(plane.dtype, np.floating)):
         raise InputError(

@@ -95,15 +95,25 @@ def flat_field_figure(flat_fields: dict[str, np.ndarray]) -> plt.Figure:
     return figure
 
 
-def illumination_html(flat_fields: dict[str, np.ndarray] | None) -> str:
-    """The report section on illumination correction."""
+def illumination_html(flat_fields: dict[str, np.ndarray] | None, skipped: dict[str, list[str]] | None = None) -> str:
+    """The report section on illumination correction (with the sampled sites left out, per channel)."""
     if not flat_fields:
         return "<p>No illumination correction (illumination.method: none).</p>"
+    left_out = "".join(
+        f"<li>{escape(channel)}: {escape(reason)}</li>"
+        for channel, reasons in (skipped or {}).items()
+        for reason in reasons
+    )
     return (
         "<p>Flat-field profiles estimated from this plate's own sites (a low per-pixel percentile of images scaled by "
         "their medians, smoothed, mean 1); every image was divided by its channel's profile before "
         "segmentation and measurement. Title: lowest to highest relative illumination.</p>"
         + figure_tag(flat_field_figure(flat_fields), "illumination profiles")
+        + (
+            f'<div class="caution">Sampled sites left out of the flat field:<ul>{left_out}</ul></div>'
+            if left_out
+            else ""
+        )
     )
 
 
@@ -152,6 +162,7 @@ class PlatePage:
     flat_fields: dict[str, np.ndarray] | None = None
     thumbnails: dict[str, bytes] | None = None  # PNG per well (plateloom.well.snapshot)
     flagged_wells: dict[str, list[str]] | None = None  # site-QC flags per well
+    flat_field_skipped: dict[str, list[str]] | None = None  # per channel: sampled sites left out, with why
 
 
 def _summary_html(tables: PlateTables, page_info: PlatePage) -> str:
@@ -202,7 +213,7 @@ def build_plate_report(tables: PlateTables, page_info: PlatePage) -> str:
         ("Edge effect", EDGE_TEXT + table_tag(tables.edge)),
         ("Image QC", IMAGE_QC_TEXT + table_tag(pd.DataFrame([tables.site_summary]))),
         ("Segmentation and tracks", thumbnails_html(profile, page_info.thumbnails, page_info.flagged_wells)),
-        ("Illumination", illumination_html(page_info.flat_fields)),
+        ("Illumination", illumination_html(page_info.flat_fields, page_info.flat_field_skipped)),
         ("Exclusion ledger", ledger_html),
     ]
     return page(f"plateloom plate report: {page_info.plate}", sections, page_info.provenance)

@@ -9,6 +9,7 @@ divided by it before segmentation and measurement, so intensities keep their uni
 
 from __future__ import annotations
 
+from collections import Counter
 from dataclasses import dataclass
 
 import numpy as np
@@ -60,13 +61,58 @@ def flat_field_from_planes(planes: np.ndarray, sigma_px: float, percentile: floa
     return (profile / profile.mean()).astype(np.float32)
 
 
+def _sampled_planes(
+    index: ImageIndex, well: str, site: int, channel: str, frames_per_site: int
+) -> tuple[list[np.ndarray], list[str]]:
+    """Up to ``frames_per_site`` planes of one channel of a site, spread over its frames, and the
+    problems of the frames that could not be read."""
+    # only this channel is read; the per-well jobs check that all channels of a site agree
+    n_frames = site_frame_count(index, well, site, [channel])
+    wanted = set(np.linspace(0, n_frames - 1, min(frames_per_site, n_frames)).round().astype(int).tolist())
+    planes, problems = [], []
+    frames = stream_site(index, well, site, [channel])
+    try:
+        for position, item in enumerate(frames):
+            if position in wanted:
+                if item.problem:
+                    problems.append(item.problem)
+                else:
+                    planes.append(item.planes[0])
+            if position >= max(wanted):
+                break
+    finally:
+        frames.close()
+    return planes, problems
+
+
+def _usable_planes(by_site: dict[tuple[str, int], list[np.ndarray]], skipped: list[str]) -> list[np.ndarray]:
+    """The planes of the sites fit for a flat field; the others named in ``skipped`` (in place):
+    a site whose image size is not the plate's (the size of most sampled sites), or that is
+    black or has a non-positive median (no brightness scale)."""
+    sizes = Counter(planes[0].shape for planes in by_site.values())
+    plate_size = max(sizes, key=lambda size: (sizes[size], size)) if sizes else None
+    usable = []
+    for (well, site), planes in by_site.items():
+        if planes[0].shape != plate_size:
+            skipped.append(
+                f"well {well}, site {site}: image size {planes[0].shape} differs from the plate's {plate_size} "
+                "(the size of most sampled sites)"
+            )
+        elif np.median(np.stack(planes)) <= 0:
+            skipped.append(f"well {well}, site {site}: black or non-positive median, no brightness to scale by")
+        else:
+            usable += planes
+    return usable
+
+
 def estimate_flat_field(
     index: ImageIndex, channel: str, channels: list[str], settings: IlluminationSettings, pixel_size_um: float
 ) -> tuple[np.ndarray, int, list[str]]:
     """Profile of one channel of one plate, the number of planes used, and the sites skipped (with why).
 
-    A sampled site that cannot be read is skipped and named (its own per-well job reports it as an
-    error); the estimate fails only when fewer than 3 planes are left.
+    A sampled site that cannot be read, is black, has a non-positive median or is not of the
+    plate's image size is skipped and named (its own per-well job flags it); the estimate fails
+    only when fewer than 3 planes are left.
     """
     if channel not in channels:
         raise InputError(
@@ -74,35 +120,23 @@ def estimate_flat_field(
             f"channel {channel!r} is not in config channels {channels}.",
             "use a channel name from config channels.",
         )
-    planes, skipped = [], []
+    by_site, skipped = {}, []
     for well, site in sampled_sites(index, settings.max_sites):
-        site_planes = []
         try:
-            # only this channel is read; the per-well jobs check that all channels of a site agree
-            n_frames = site_frame_count(index, well, site, [channel])
-            wanted = set(
-                np.linspace(0, n_frames - 1, min(settings.frames_per_site, n_frames)).round().astype(int).tolist()
-            )
-            frames = stream_site(index, well, site, [channel])
-            try:
-                for position, item in enumerate(frames):
-                    if position in wanted:
-                        if item.problem:
-                            skipped.append(item.problem)
-                        else:
-                            site_planes.append(item.planes[0])
-                    if position >= max(wanted):
-                        break
-            finally:
-                frames.close()
+            site_planes, problems = _sampled_planes(index, well, site, channel, settings.frames_per_site)
         except InputError as error:
             skipped.append(f"well {well}, site {site}: {error}")
             continue
-        planes += site_planes
+        skipped += problems
+        if site_planes:
+            by_site[(well, site)] = site_planes
+    planes = _usable_planes(by_site, skipped)
     if len(planes) < 3:
         raise InputError(
             f"illumination of channel {channel}",
-            f"only {len(planes)} readable image(s) to estimate it from.",
+            f"only {len(planes)} usable image(s) to estimate it from"
+            + (f"; left out: {'; '.join(skipped[:5])}" if skipped else "")
+            + ".",
             "a flat field needs many sites: set illumination.method: none for plates this small.",
         )
     profile = flat_field_from_planes(np.stack(planes), settings.smoothing_sigma_um / pixel_size_um, settings.percentile)

@@ -166,6 +166,17 @@ def measure_frame(
     return table, background
 
 
+def _no_objects(settings: WellSettings) -> pd.DataFrame:
+    """An observations table with every column and no row (a site none of whose frames is usable)."""
+    planes = np.zeros((len(settings.channels), 8, 8), np.float32)
+    labels = np.zeros((8, 8), np.int32)
+    bodies = labels if settings.cell_body_channel else None
+    table, _ = measure_frame(planes, labels, bodies, settings)
+    table.insert(0, "frame", np.empty(0, np.int64))
+    table.insert(1, "track", np.empty(0, np.int64))
+    return table
+
+
 def _unusable_frame_qc(site: int, frame: int, problem: str, channels: list[str]) -> dict:
     """The QC row of a frame that could not be used: no measures, the problem named."""
     qc = {"site": site, "frame": frame, "n_objects": 0, "foreground_fraction": np.nan, "threshold": np.nan}
@@ -221,7 +232,8 @@ def analyse_site(
     channels = list(settings.channels)
     observations, qc_rows = [], []
     linker = FrameLinker(settings.max_displacement_um)
-    for item in stream_site(index, well, site, channels):
+    shape = flat_field.shape[1:] if flat_field is not None else None
+    for item in stream_site(index, well, site, channels, shape):
         if item.problem:
             qc_rows.append(_unusable_frame_qc(site, item.frame, item.problem, channels))
             linker.break_links()
@@ -235,13 +247,8 @@ def analyse_site(
         table.insert(1, "track", tracks)
         observations.append(table)
         qc_rows.append(_frame_qc(site, item, table, labels, threshold, smooth, background, channels) | linker.last)
-    if not observations:
-        first = qc_rows[0]["frame_problem"] if qc_rows else f"well {well}, site {site}: no frames"
-        raise InputError(
-            f"well {well}, site {site}",
-            f"no frame of this site can be used; the first problem: {first}",
-            "fix the files of this site (every frame is affected, so this is not a glitch of one frame).",
-        )
+    if not observations:  # no usable frame: an empty site, every frame flagged in site QC (and the ledger)
+        observations.append(_no_objects(settings))
     cells = pd.concat(observations, ignore_index=True)
     cells.insert(0, "site", site)
     linked = replace(settings, max_displacement_um=linker.max_displacement_um or 0.0)
