@@ -243,3 +243,35 @@ def test_check_reports_an_unreadable_layout_without_a_traceback(tmp_path, conten
     )
     report = check_screen(config)
     assert any(said in e.message and "layout.csv" in e.message for e in report.errors), report.text()
+
+
+def test_check_names_an_8_bit_site_in_a_16_bit_plate_and_a_possible_z_stack(tmp_path):
+    from plateloom.settings import fill_defaults
+    from plateloom.setup.check import check_screen
+
+    images = tmp_path / "images"
+    images.mkdir()
+    for well in ("A01", "A02", "A03", "A04", "A05"):
+        stack = _nuclei_stack(frames=3)
+        if well == "A02":
+            stack = (stack // 16).astype(np.uint8)  # one site exported as 8-bit
+        if well == "A03":
+            stack = np.concatenate([stack, stack])  # 2 z planes per frame saved as pages
+        tifffile.imwrite(images / f"{well}_s1_dna.tif", stack, photometric="minisblack")
+    layout = tmp_path / "layout.csv"
+    layout.write_text(
+        "well,role,condition,dose,dose_unit\nA01,negative_control,vehicle,,\n"
+        + "".join(f"A0{i},test,X,1,uM\n" for i in range(2, 6))
+    )
+    sheet = tmp_path / "plates.csv"
+    sheet.write_text(f"plate,batch,plate_format,layout,image_folder\nP1,d1,96,{layout},{images}\n")
+    config = fill_defaults(
+        {
+            "screen_sheet": str(sheet),
+            "images": {"filename_template": TEMPLATE, "pixel_size_um": 1, "frame_interval_min": 1},
+            "channels": [{"name": "dna", "role": "nuclei"}],
+        }
+    )
+    text = check_screen(config).text()
+    assert "A02_s1_dna.tif: pixel type uint8 differs from the plate's uint16" in text
+    assert "well A03, site 1, channel dna: has 6 pages, 2 times the plate's usual 3: possibly a z-stack" in text

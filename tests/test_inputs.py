@@ -36,6 +36,14 @@ def _layout(tmp_path: Path, body: str) -> str:
         ("A01,negative_control,vehicle,,\nA02,treated,X,1,uM\n", "row 3, column role: unknown role 'treated'"),
         ("A01,negative_control,vehicle,,\nA02,test,X,1,\n", "row 3, column dose_unit: well A02 has a dose but no unit"),
         ("A01,test,X,1,uM\n", "the layout has no negative_control wells"),
+        (
+            "A01,negative_control,vehicle,,\nA02,test,negative_control,,\n",
+            "row 3, column condition: condition 'negative_control' is the name of a role",
+        ),
+        (
+            "A01,negative_control,vehicle,,\nA02,test,X,300,nM\nA03,test,X,1,uM\n",
+            "condition 'X' is dosed in nM and uM",
+        ),
     ],
 )
 def test_bad_layouts_are_named(tmp_path, body, needle):
@@ -65,6 +73,56 @@ def test_bad_screen_sheets_are_named(tmp_path):
     sheet.write_text(f"plate,batch,plate_format,layout,image_folder\nP1,d1,95,{layout},img\n")
     with pytest.raises(InputError, match=r"column plate_format: '95' is not a plate format"):
         load_screen_sheet(str(sheet))
+
+
+def test_two_plates_on_one_image_folder_are_refused(tmp_path):
+    layout = _layout(tmp_path, "A01,negative_control,vehicle,,\n")
+    (tmp_path / "img").mkdir()
+    sheet = tmp_path / "plates.csv"
+    sheet.write_text(
+        f"plate,batch,plate_format,layout,image_folder\nP1,d1,96,{layout},{tmp_path}/img\nP2,d1,96,{layout},{tmp_path}/img/\n"
+    )
+    with pytest.raises(InputError, match=r"plate P2, column image_folder: .* is also the image folder of plate P1"):
+        load_screen_sheet(str(sheet))
+
+
+def test_a_compound_dosed_in_two_units_across_layouts_stops_the_plan(tmp_path):
+    from plateloom.settings import fill_defaults
+    from plateloom.setup.plan import plan_screen
+
+    first = tmp_path / "a.csv"
+    first.write_text(HEADER + "A01,negative_control,vehicle,,\nA02,test,X,300,nM\n")
+    second = tmp_path / "b.csv"
+    second.write_text(HEADER + "A01,negative_control,vehicle,,\nA02,test,X,0.3,uM\n")
+    for plate in ("P1", "P2"):
+        (tmp_path / plate).mkdir()
+    sheet = tmp_path / "plates.csv"
+    sheet.write_text(
+        "plate,batch,plate_format,layout,image_folder\n"
+        f"P1,d1,96,{first},{tmp_path}/P1\nP2,d1,96,{second},{tmp_path}/P2\n"
+    )
+    config = fill_defaults(
+        {
+            "screen_sheet": str(sheet),
+            "images": {
+                "filename_template": "{well}_s{site}_{channel}.tif",
+                "pixel_size_um": 1,
+                "frame_interval_min": 1,
+            },
+            "channels": [{"name": "dna", "role": "nuclei"}],
+        }
+    )
+    with pytest.raises(InputError, match=r"condition 'X' is dosed in nM and uM"):
+        plan_screen(config)
+
+
+def test_two_spellings_of_one_well_are_refused_naming_both_files(tmp_path):
+    for name in ("A7_s1_dna.tif", "A07_s1_dna.tif"):
+        (tmp_path / name).write_bytes(b"II*\x00")
+    with pytest.raises(InputError) as caught:
+        index_plate_images(str(tmp_path), "{well}_s{site}_{channel}.tif", 96, ["dna"])
+    said = str(caught.value)
+    assert "A07_s1_dna.tif" in said and "A7_s1_dna.tif" in said and "spelt another way" in said
 
 
 def test_template_needs_its_fields():

@@ -106,7 +106,22 @@ def index_plate_images(folder: str, template: str, wells: int, channels: list[st
         frame = -1 if stacks else int(match.group("frame"))
         rows.append((well, int(match.group("site")), frame, match.group("channel"), os.path.join(folder, name)))
     table = pd.DataFrame(rows, columns=["well", "site", "frame", "channel", "path"])
+    _refuse_two_spellings(table)
     return ImageIndex(table, stacks, tuple(unmatched))
+
+
+def _refuse_two_spellings(table: pd.DataFrame) -> None:
+    """Stop when two files are the same image (A7_s1_dna.tif and A07_s1_dna.tif): one would be dropped."""
+    twice = table[table.duplicated(["well", "site", "frame", "channel"], keep=False)]
+    if twice.empty:
+        return
+    first = twice.sort_values("path").groupby(["well", "site", "frame", "channel"])["path"].apply(list).iloc[0]
+    raise InputError(
+        first[0],
+        f"{os.path.basename(first[1])} is the same well, site, frame and channel spelt another way "
+        f"({len(twice)} files in {len(twice) // 2 or 1} such pair(s) or more).",
+        "keep one file per image (remove or rename the copy).",
+    )
 
 
 def unmatched_note(folder: str, template: str, wells: int, channels: list[str], shown: int = 5) -> str | None:

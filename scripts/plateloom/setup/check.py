@@ -8,6 +8,7 @@ wells imaged but not in the layout). Each problem names the file (and row, well,
 from __future__ import annotations
 
 import os
+from collections import Counter
 from dataclasses import dataclass, field
 
 import pandas as pd
@@ -111,10 +112,12 @@ def _header_problems(
     table = index.table[index.table["well"].isin(wells)]
     problems: list[InputError] = []
     pages: dict[tuple[str, int], dict[str, int]] = {}
+    dtypes: dict[str, str] = {}
     for row in table.itertuples():
         try:
             with tifffile.TiffFile(row.path) as tif:
                 shape = tuple(tif.pages[0].shape)
+                dtypes[row.path] = str(tif.pages[0].dtype)
                 if index.stacks:
                     pages.setdefault((row.well, row.site), {})[row.channel] = len(tif.pages)
         except Exception as error:  # tifffile raises many kinds for corrupt files
@@ -146,7 +149,41 @@ def _header_problems(
                     "re-copy the shorter stack (a run would flag the missing frames).",
                 )
             )
+    problems += _pixel_type_problems(dtypes) + _z_stack_problems(pages)
     return problems, sum(max(c.values()) for c in pages.values())
+
+
+def _pixel_type_problems(dtypes: dict[str, str]) -> list[InputError]:
+    """Files whose pixel type is not the plate's (that of most of its files): an 8-bit export in a
+    16-bit plate would be analysed at another intensity scale."""
+    if not dtypes:
+        return []
+    usual, _ = Counter(dtypes.values()).most_common(1)[0]
+    return [
+        InputError(path, f"pixel type {dtype} differs from the plate's {usual}.", "re-export it as the other images.")
+        for path, dtype in dtypes.items()
+        if dtype != usual
+    ]
+
+
+def _z_stack_problems(pages: dict[tuple[str, int], dict[str, int]]) -> list[InputError]:
+    """Sites whose stacks hold a whole multiple (2x or more) of the plate's usual page count: z planes
+    saved as pages would be read as time frames."""
+    counts = [n for by_channel in pages.values() for n in by_channel.values()]
+    if not counts:
+        return []
+    usual, _ = Counter(counts).most_common(1)[0]
+    return [
+        InputError(
+            f"well {well}, site {site}, channel {channel}",
+            f"has {n} pages, {n // usual} times the plate's usual {usual}: possibly a z-stack saved as pages, which "
+            "would be read as time frames.",
+            "save a maximum projection (or one plane) per frame.",
+        )
+        for (well, site), by_channel in pages.items()
+        for channel, n in by_channel.items()
+        if usual > 0 and n > usual and n % usual == 0
+    ]
 
 
 def _shown(names: list[str], at_most: int, quote: bool = False) -> str:

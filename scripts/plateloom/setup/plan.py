@@ -22,6 +22,7 @@ from plateloom.setup.screen_sheet import (
     chunk_wells,
     load_layout,
     load_screen_sheet,
+    mixed_dose_units,
 )
 from plateloom.setup.sizing import ImagingSize, JobSize, analyse_wells_size, screen_size
 
@@ -156,6 +157,9 @@ def plan_screen(config: dict) -> ScreenPlan:
                 int(scenario["sites_per_well"]),
                 len(config["channels"]),
             )
+    across = mixed_dose_units(pd.concat(layouts_by_path.values()), "the layouts of the screen sheet")
+    if across:
+        raise across[0]
     plan.features = resolve_features(config["screen"]["features"], config)
     plan.log_features = resolve_features(config["screen"]["log_scale_features"], config)
     return plan

@@ -81,7 +81,26 @@ def check_screen_sheet(path: str) -> tuple[list[PlateEntry], list[InputError]]:
             entries.append(_sheet_row(row, int(index) + 2, path, seen))
         except InputError as error:
             problems.append(error)
-    return entries, problems
+    return entries, problems + _shared_image_folders(entries, path)
+
+
+def _shared_image_folders(entries: list[PlateEntry], path: str) -> list[InputError]:
+    """A problem per plate whose image folder is another plate's (its images would be counted twice)."""
+    owner: dict[str, str] = {}
+    problems = []
+    for entry in entries:
+        folder = os.path.realpath(entry.image_folder)
+        if folder in owner:
+            problems.append(
+                InputError(
+                    f"{path}, plate {entry.plate}, column image_folder",
+                    f"{entry.image_folder!r} is also the image folder of plate {owner[folder]}; the same images would "
+                    "be counted as two plates.",
+                    "point every plate at its own folder.",
+                )
+            )
+        owner.setdefault(folder, entry.plate)
+    return problems
 
 
 def _sheet_row(row: pd.Series, line: int, path: str, seen: dict[str, int]) -> PlateEntry:
@@ -165,6 +184,7 @@ def check_layout(path: str, wells: int) -> tuple[pd.DataFrame, list[InputError]]
         except InputError as error:
             problems.append(error)
     layout = pd.DataFrame.from_records(records, columns=["well", "role", "condition", "dose", "dose_unit", "treatment"])
+    problems += mixed_dose_units(layout, path)
     if not (layout["role"] == "negative_control").any():
         problems.append(
             InputError(
@@ -193,6 +213,12 @@ def _layout_row(row: pd.Series, line: int, path: str, fmt, seen: dict[str, int])
     if role not in ROLES:
         raise InputError(where + ", column role", f"unknown role {role!r}.", f"use one of {', '.join(ROLES)}.")
     condition = row["condition"]
+    if condition.strip().lower() in ROLES:
+        raise InputError(
+            where + ", column condition",
+            f"condition {condition!r} is the name of a role; the role column says what a well is for.",
+            "name what is in the well (e.g. vehicle, DMSO, the compound) and keep the role in the role column.",
+        )
     if role != "empty" and not condition:
         raise InputError(
             where + ", column condition",
@@ -230,6 +256,22 @@ def _layout_row(row: pd.Series, line: int, path: str, fmt, seen: dict[str, int])
         "dose_unit": row["dose_unit"],
         "treatment": label,
     }
+
+
+def mixed_dose_units(layout: pd.DataFrame, path: str) -> list[InputError]:
+    """A problem per condition dosed in more than one unit (its doses would not form one series)."""
+    dosed = layout[layout["dose_unit"].fillna("") != ""]
+    units = dosed.groupby("condition")["dose_unit"].unique()
+    return [
+        InputError(
+            f"{path}, column dose_unit",
+            f"condition {condition!r} is dosed in {' and '.join(sorted(found))}; its doses would be split into "
+            "series that are not compared.",
+            f"write every dose of {condition} in one unit.",
+        )
+        for condition, found in units.items()
+        if len(found) > 1
+    ]
 
 
 def analysed_wells(layout: pd.DataFrame) -> list[str]:
