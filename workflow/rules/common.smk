@@ -7,6 +7,7 @@ from snakemake.exceptions import WorkflowError
 
 from plateloom.assets import demo_scenario
 from plateloom.errors import InputError
+from plateloom.setup.image_inputs import ImageInputs
 from plateloom.setup.plan import (
     DEMO_IMAGE_ROOT,
     plan_screen,
@@ -20,9 +21,18 @@ from plateloom.well.collective import CollectiveSettings
 from plateloom.well.illumination import IlluminationSettings
 from plateloom.well.stage import WellSettings
 
+CHANNELS = [c["name"] for c in config["channels"]]
 try:
     PLAN = plan_screen(config)
     config["images"].update(resolve_image_scale(config, PLAN))
+    IMAGE_INPUTS = ImageInputs(
+        config["images"]["filename_template"],
+        CHANNELS,
+        IlluminationSettings.from_config(config).max_sites,
+        PLAN.demo_plates,
+    )
+    for entry in PLAN.plates.values():
+        IMAGE_INPUTS.index(entry)
 except InputError as error:
     raise WorkflowError(f"plateloom could not start: {error}")
 
@@ -42,7 +52,6 @@ if config["check_images_on_start"] and workflow.is_main_process:
         )
 
 RESULTS = config["results_dir"]
-CHANNELS = [c["name"] for c in config["channels"]]
 DEMO = config["demo"]
 DEMO_SCENARIO = DEMO.get("scenario") or str(demo_scenario())
 
@@ -117,6 +126,20 @@ def get_layout(wildcards):
 
 def get_image_folder(wildcards):
     return PLAN.plates[wildcards.plate].image_folder
+
+
+def get_chunk_images(wildcards):
+    """The image files of one chunk's wells (a generated demo plate: its folder)."""
+    return IMAGE_INPUTS.chunk_files(
+        PLAN.plates[wildcards.plate], get_chunk_wells(wildcards)
+    )
+
+
+def get_illumination_images(wildcards):
+    """The files of one channel at the sites its flat field samples (a demo plate: its folder)."""
+    return IMAGE_INPUTS.illumination_files(
+        PLAN.plates[wildcards.plate], wildcards.channel
+    )
 
 
 def get_batch(wildcards):

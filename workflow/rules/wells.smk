@@ -3,7 +3,7 @@
 
 rule estimate_illumination:
     input:
-        images=get_image_folder,
+        images=get_illumination_images,
     output:
         profile=f"{RESULTS}/illumination/plate={{plate}}/{{channel}}.tif",
     log:
@@ -19,6 +19,7 @@ rule estimate_illumination:
         mem_mb=get_illumination_mem_mb,
         runtime=30,
     params:
+        image_folder=get_image_folder,
         plate_format=get_plate_format,
         template=get_filename_template,
         channels=CHANNELS,
@@ -30,7 +31,7 @@ rule estimate_illumination:
 
 rule analyse_wells:
     input:
-        images=get_image_folder,
+        images=get_chunk_images,
         flat_fields=get_flat_fields,
     output:
         cells=directory(f"{RESULTS}/cells/plate={{plate}}/chunk={{chunk}}"),
@@ -51,6 +52,7 @@ rule analyse_wells:
         mem_mb=get_well_job_mem_mb,
         runtime=get_well_job_runtime,
     params:
+        image_folder=get_image_folder,
         wells=get_chunk_wells,
         plate_format=get_plate_format,
         template=get_filename_template,

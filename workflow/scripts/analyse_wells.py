@@ -14,7 +14,9 @@ sm = snakemake  # noqa: F821  (injected by Snakemake's script directive)
 
 def step() -> None:
     settings = WellSettings(**sm.params.settings)
-    index = index_plate_images(sm.input.images, sm.params.template, sm.params.plate_format, list(settings.channels))
+    index = index_plate_images(
+        sm.params.image_folder, sm.params.template, sm.params.plate_format, list(settings.channels)
+    )
     profiles = list(sm.input.flat_fields)
     flat_field = np.stack([tifffile.imread(path) for path in profiles]) if profiles else None
     analyse_chunk(

@@ -13,7 +13,7 @@ sm = snakemake  # noqa: F821  (injected by Snakemake's script directive)
 def step() -> None:
     settings = IlluminationSettings(**sm.params.settings)
     channels = list(sm.params.channels)
-    index = index_plate_images(sm.input.images, sm.params.template, sm.params.plate_format, channels)
+    index = index_plate_images(sm.params.image_folder, sm.params.template, sm.params.plate_format, channels)
     profile, n_planes, skipped = estimate_flat_field(
         index, sm.wildcards.channel, channels, settings, sm.params.pixel_size_um
     )
