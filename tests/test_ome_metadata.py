@@ -54,3 +54,11 @@ def test_micrometres_written_with_the_micro_sign_or_the_greek_mu(tmp_path, unit)
     # (Unicode standard, compatibility decomposition of U+00B5); OME writers use either.
     path = _ome_file(tmp_path / "a.ome.tif", PhysicalSizeX=0.65, PhysicalSizeXUnit=unit)
     assert read_ome_metadata(path).pixel_size_um == pytest.approx(0.65)
+
+
+@pytest.mark.parametrize("key, name", [("PhysicalSizeX", "pixel_size_um"), ("TimeIncrement", "frame_interval_min")])
+def test_a_zero_scale_in_the_metadata_is_an_error_naming_the_key(tmp_path, key, name):
+    scale = {"PhysicalSizeX": 0.65, "TimeIncrement": 300} | {key: 0}
+    path = _ome_file(tmp_path / "a.ome.tif", **scale)
+    with pytest.raises(InputError, match=rf"a.ome.tif.*gives {name} = 0, not a positive number.*set images.{name}"):
+        image_scale({"pixel_size_um": None, "frame_interval_min": None}, path)

@@ -210,6 +210,9 @@ def test_hard_stop_during_per_well_stage_then_resume_gives_identical_tables(fini
         pd.testing.assert_frame_equal(
             pd.read_parquet(workdir / "results" / table), pd.read_parquet(finished_screen / "results" / table)
         )
+    for plate in ("WV-D1-P1", "WV-D2-P2", "WV-D3-P1"):  # the plate reports too, to the byte
+        report = f"results/reports/plates/{plate}.html"
+        assert (workdir / report).read_bytes() == (finished_screen / report).read_bytes(), report
 
 
 @pytest.mark.slow

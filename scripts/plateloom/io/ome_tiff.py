@@ -3,6 +3,7 @@
 
 from __future__ import annotations
 
+import math
 import os
 import re
 from collections.abc import Iterator
@@ -106,6 +107,13 @@ def image_scale(config_images: dict, first_image: str | None) -> tuple[float, fl
             f"{' and '.join(missing)} not set and not in the image's OME metadata.",
             f"set images.{' and images.'.join(missing)} in config/config.yaml.",
         )
+    for name, value in (("pixel_size_um", pixel), ("frame_interval_min", interval)):
+        if not (math.isfinite(float(value)) and float(value) > 0):
+            raise InputError(
+                f"config images ({first_image})",
+                f"the image's OME metadata gives {name} = {value:g}, not a positive number.",
+                f"set images.{name} in the config.",
+            )
     return float(pixel), float(interval), f"OME metadata of {first_image}"
 
 

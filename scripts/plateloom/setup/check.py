@@ -307,6 +307,16 @@ class _ScreenCheck:
         metadata = read_ome_metadata(first) if first else None
         keys = ("pixel_size_um", "frame_interval_min")
         missing = [k for k in keys if images.get(k) is None and (metadata is None or getattr(metadata, k) is None)]
+        zero = [k for k in keys if images.get(k) is None and k not in missing and not getattr(metadata, k) > 0]
+        if zero:
+            self.report.add(
+                "error",
+                InputError(
+                    f"config images ({first})",
+                    f"the OME metadata gives {' and '.join(zero)} as zero or negative.",
+                    f"set images.{' and images.'.join(zero)} in the config.",
+                ),
+            )
         if missing:
             self.report.add(
                 "error",
