@@ -4,6 +4,7 @@ what reads it (invented demo images, moved into a folder of the user's own)."""
 import os
 import re
 import shutil
+import subprocess
 import time
 
 import numpy as np
@@ -18,6 +19,7 @@ from plateloom.well.illumination import sampled_sites
 
 PLATE = "WV-D1-P1"
 TEMPLATE = "{well}_s{site}_{channel}.tif"
+HOSTILE = 'LOOM-104</script><img src=x onerror=document.title=42>, "x"'
 
 
 def _jobs(output: str) -> dict[str, int]:
@@ -38,6 +40,8 @@ def own_plate(tmp_path_factory):
     folder = workdir / "own_images" / PLATE
     shutil.move(workdir / "demo_images" / PLATE, folder)
     (folder / ".snakemake_timestamp").unlink(missing_ok=True)
+    layout = workdir / "config" / "layouts" / "demo_96.csv"  # a condition name that is markup
+    layout.write_text(layout.read_text().replace("LOOM-104", f'"{HOSTILE}"'))
     sheet = workdir / "config" / "plates.csv"
     sheet.write_text(
         f"plate,batch,plate_format,layout,image_folder\n{PLATE},day1,96,config/layouts/demo_96.csv,own_images/{PLATE}\n"
@@ -91,3 +95,28 @@ def test_a_re_copied_image_reruns_its_chunk_and_the_fan_ins_only(own_plate):
     imaged = sorted(layout.loc[layout["role"] != "empty", "well"], key=lambda w: (w[0], int(w[1:])))
     assert int(chunk) == imaged.index(well) // chunks
     os.remove(folder / "notes.txt")
+
+
+@pytest.mark.slow
+def test_snakemake_report_runs_no_script_from_a_condition_name(own_plate, tmp_path):
+    from test_reports import _chromium
+
+    if _chromium() is None:
+        if os.environ.get("PLATELOOM_REQUIRE_CHROMIUM"):
+            pytest.fail("chromium is required here (PLATELOOM_REQUIRE_CHROMIUM is set) but not installed")
+        pytest.skip("Debian package chromium not installed (.ci/run installs it)")
+    report = tmp_path / "report.html"
+    run_snakemake(own_plate, "--report", str(report))
+    plate = (own_plate / f"results/reports/plates/{PLATE}.html").read_text(encoding="utf-8")
+    assert "LOOM-104&lt;/script&gt;&lt;img" in plate and "<img src=x" not in plate
+    for page in (report, own_plate / f"results/reports/plates/{PLATE}.html"):
+        command = [_chromium(), "--headless", "--no-sandbox", "--disable-gpu", "--no-first-run"]
+        command += [
+            f"--user-data-dir={tmp_path / 'profile'}",
+            "--virtual-time-budget=3000",
+            "--dump-dom",
+            page.as_uri(),
+        ]
+        dom = subprocess.run(command, check=True, capture_output=True, text=True, timeout=120).stdout
+        title = re.search(r"<title>(.*?)</title>", dom, flags=re.S)
+        assert title is None or title.group(1).strip() != "42", page  # the onerror handler never ran
