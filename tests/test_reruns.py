@@ -120,3 +120,30 @@ def test_snakemake_report_runs_no_script_from_a_condition_name(own_plate, tmp_pa
         dom = subprocess.run(command, check=True, capture_output=True, text=True, timeout=120).stdout
         title = re.search(r"<title>(.*?)</title>", dom, flags=re.S)
         assert title is None or title.group(1).strip() != "42", page  # the onerror handler never ran
+
+
+@pytest.mark.slow
+def test_a_minimal_config_runs_with_the_schema_defaults_not_the_demo_values(own_plate):
+    from dataclasses import asdict
+
+    from plateloom.io.tables import config_digest, read_provenance
+    from plateloom.settings import fill_defaults
+    from plateloom.well.stage import WellSettings
+
+    minimal = {
+        "screen_sheet": "config/plates.csv",
+        "results_dir": "results_minimal",
+        "images": {"filename_template": TEMPLATE, "pixel_size_um": 0.8, "frame_interval_min": 5.0},
+        "channels": [{"name": "nuclear", "role": "nuclei"}, {"name": "reporter", "role": "reporter"}],
+        "only_plates": [PLATE],
+    }
+    (own_plate / "minimal.yaml").write_text(yaml.safe_dump(minimal))
+    target = f"results_minimal/cells/plate={PLATE}/chunk=000"
+    run_snakemake(own_plate, target, "--configfile", "minimal.yaml")
+    used = read_provenance(str(next((own_plate / target).glob("well=*/part-0.parquet"))))["config_sha256"]
+    defaults = asdict(WellSettings.from_config(fill_defaults(minimal)))
+    demo = asdict(
+        WellSettings.from_config(fill_defaults(yaml.safe_load((own_plate / "config" / "config.yaml").read_text())))
+    )
+    assert defaults["min_nucleus_area_um2"] != demo["min_nucleus_area_um2"]  # the two differ ...
+    assert used == config_digest(defaults) != config_digest(demo)  # ... and the job ran with the schema's
