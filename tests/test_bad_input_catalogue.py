@@ -275,3 +275,21 @@ def test_check_names_an_8_bit_site_in_a_16_bit_plate_and_a_possible_z_stack(tmp_
     text = check_screen(config).text()
     assert "A02_s1_dna.tif: pixel type uint8 differs from the plate's uint16" in text
     assert "well A03, site 1, channel dna: has 6 pages, 2 times the plate's usual 3: possibly a z-stack" in text
+
+
+@pytest.mark.parametrize(
+    ("text", "said"),
+    [
+        ("screen_sheet: [unclosed\n", "is not valid YAML at line 2, column 1"),
+        ("- a list\n- not a mapping\n", "is not a mapping of keys to values"),
+    ],
+    ids=["yaml syntax", "not a mapping"],
+)
+def test_a_config_that_is_not_yaml_is_named_without_a_traceback(tmp_path, text, said):
+    from plateloom.setup.check import load_config
+
+    path = tmp_path / "config.yaml"
+    path.write_text(text)
+    with pytest.raises(InputError) as caught:
+        load_config(str(path))
+    assert said in str(caught.value) and "config.yaml" in str(caught.value) and "Fix:" in str(caught.value)

@@ -394,8 +394,22 @@ def load_config(path: str) -> dict:
 
     from plateloom.setup.config import SCHEMA as schema_path
 
-    with open(path, encoding="utf-8") as handle:
-        config = yaml.safe_load(handle) or {}
+    try:
+        with open(path, encoding="utf-8") as handle:
+            config = yaml.safe_load(handle) or {}
+    except yaml.YAMLError as error:
+        mark = getattr(error, "problem_mark", None)
+        where = f" at line {mark.line + 1}, column {mark.column + 1}" if mark else ""
+        problem = getattr(error, "problem", None) or "not valid YAML"
+        raise InputError(
+            f"config {path}", f"is not valid YAML{where}: {problem}.", "fix that line (quotes, brackets, indentation)."
+        ) from None
+    except (OSError, UnicodeDecodeError) as error:
+        raise InputError(
+            f"config {path}", f"cannot be read ({error}).", "give the path of a UTF-8 YAML config."
+        ) from None
+    if not isinstance(config, dict):
+        raise InputError(f"config {path}", "is not a mapping of keys to values.", "start from config/config.yaml.")
     with open(schema_path, encoding="utf-8") as handle:
         schema = yaml.safe_load(handle)
     errors = sorted(jsonschema.Draft202012Validator(schema).iter_errors(config), key=lambda e: list(e.path))
