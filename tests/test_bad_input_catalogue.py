@@ -293,3 +293,29 @@ def test_a_config_that_is_not_yaml_is_named_without_a_traceback(tmp_path, text, 
     with pytest.raises(InputError) as caught:
         load_config(str(path))
     assert said in str(caught.value) and "config.yaml" in str(caught.value) and "Fix:" in str(caught.value)
+
+
+def test_an_8_bit_site_in_a_16_bit_plate_is_flagged_not_measured(tmp_path):
+    from plateloom.io.images import usual_pixel_type
+    from plateloom.well.chunk import ChunkOutputs, analyse_chunk
+
+    images = tmp_path / "images"
+    images.mkdir()
+    for well in ("A01", "A02", "A03", "A04"):
+        stack = _nuclei_stack(frames=3)
+        if well == "A03":
+            stack = (stack // 16).astype(np.uint8)  # exported at another bit depth
+        tifffile.imwrite(images / f"{well}_s1_dna.tif", stack, photometric="minisblack")
+    index = _index(images)
+    assert usual_pixel_type(index) == "uint16"
+    out = tmp_path / "out"
+    folders = ChunkOutputs(str(out / "cells"), str(out / "tracks"), str(out / "site_qc"))
+    analyse_chunk(index, "P1", ["A01", "A02", "A03", "A04"], _settings(), folders, {})
+    qc = pd.concat(pd.read_parquet(p) for p in sorted((out / "site_qc").glob("well=*/part-0.parquet")))
+    flagged = qc[qc["frame_problem"].fillna("") != ""]
+    assert set(flagged["well"]) == {"A03"} and len(flagged) == 3
+    assert (
+        flagged["frame_problem"].str.contains("A03_s1_dna.tif: pixel type uint8 differs from the plate's uint16").all()
+    )
+    cells = pd.concat(pd.read_parquet(p) for p in sorted((out / "cells").glob("well=*/part-0.parquet")))
+    assert set(cells["well"]) == {"A01", "A02", "A04"}

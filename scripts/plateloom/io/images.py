@@ -124,6 +124,23 @@ def _refuse_two_spellings(table: pd.DataFrame) -> None:
     )
 
 
+def usual_pixel_type(index: ImageIndex, at_most: int = 48) -> str | None:
+    """The pixel type of most of a plate's TIFF files (first-page headers of up to ``at_most`` files
+    spread over the plate); None for other sources or when none can be read."""
+    if index.source != "tiff" or index.table.empty:
+        return None
+    files = sorted(index.table["path"].unique())
+    picks = sorted(set(np.linspace(0, len(files) - 1, min(at_most, len(files))).round().astype(int).tolist()))
+    found = []
+    for i in picks:
+        try:
+            with open_tiff(files[i]) as tif:
+                found.append(str(tif.pages[0].dtype))
+        except (InputError, OSError, ValueError, IndexError):
+            continue
+    return Counter(found).most_common(1)[0][0] if found else None
+
+
 def unmatched_note(folder: str, template: str, wells: int, channels: list[str], shown: int = 5) -> str | None:
     """A plate-report warning listing files of the image folder that were not analysed, or None."""
     index = index_plate_images(folder, template, wells, channels)
@@ -176,7 +193,12 @@ def site_frame_count(index: ImageIndex, well: str, site: int, channels: list[str
 
 
 def stream_site(
-    index: ImageIndex, well: str, site: int, channels: list[str], shape: tuple[int, ...] | None = None
+    index: ImageIndex,
+    well: str,
+    site: int,
+    channels: list[str],
+    shape: tuple[int, ...] | None = None,
+    pixel_type: str | None = None,
 ) -> Iterator[SiteFrame]:
     """Yield the frames of one site in order, one at a time (only one frame of every channel is in memory).
 
@@ -185,7 +207,8 @@ def stream_site(
     page) comes with ``problem`` set and no planes, so the rest of the site is still analysed.
     A file that cannot be opened at all, or a channel without any image, stops with an error.
     Planes must have ``shape`` (the plate's image size, e.g. the flat field's); when it is not
-    given, the size of most of the first pages of the site's channels.
+    given, the size of most of the first pages of the site's channels. With ``pixel_type`` (the
+    plate's, see ``usual_pixel_type``) a page of another type is flagged.
     """
     if index.source == "zarr":
         yield from stream_zarr_site(index, well, site, channels)
@@ -193,7 +216,7 @@ def stream_site(
     if index.source == "ome_tiff":
         yield from stream_multichannel_site(index, well, site, channels)
         return
-    yield from _stream_tiff_site(index, well, site, channels, shape)
+    yield from _stream_tiff_site(index, well, site, channels, shape, pixel_type)
 
 
 class _TiffSite:
@@ -257,7 +280,12 @@ class _TiffSite:
 
 
 def _stream_tiff_site(
-    index: ImageIndex, well: str, site: int, channels: list[str], shape: tuple[int, ...] | None
+    index: ImageIndex,
+    well: str,
+    site: int,
+    channels: list[str],
+    shape: tuple[int, ...] | None,
+    pixel_type: str | None,
 ) -> Iterator[SiteFrame]:
     with ExitStack() as stack:
         files = _TiffSite(index, well, site, channels, stack)
@@ -268,7 +296,7 @@ def _stream_tiff_site(
                 try:
                     plane, path = files.raw_plane(channel, frame)
                     saturated.append(saturated_fraction(plane))
-                    plane = check_plane(plane, path, shape)
+                    plane = check_plane(plane, path, shape, pixel_type)
                 except InputError as error:
                     problem = f"{files.where}, frame {files.start + frame}: {error}"
                     break

@@ -66,7 +66,9 @@ def saturation_masks(planes: np.ndarray) -> np.ndarray | None:
     return masks if masks.any() else None
 
 
-def check_plane(plane: np.ndarray, path: str, shape: tuple[int, ...] | None) -> np.ndarray:
+def check_plane(
+    plane: np.ndarray, path: str, shape: tuple[int, ...] | None, pixel_type: str | None = None
+) -> np.ndarray:
     if plane.ndim != 2:
         raise InputError(
             path,
@@ -79,6 +81,13 @@ def check_plane(plane: np.ndarray, path: str, shape: tuple[int, ...] | None) -> 
             f"plane shape {plane.shape} differs from the expected {shape} (the plate's image size, or that of "
             "most images of this site).",
             "re-export this image at the plate's size; the other frames and sites are analysed.",
+        )
+    if pixel_type is not None and str(plane.dtype) != pixel_type:
+        raise InputError(
+            path,
+            f"pixel type {plane.dtype} differs from the plate's {pixel_type}: it would be measured on another "
+            "intensity scale.",
+            "re-export it as the plate's other images; the rest of the plate is analysed.",
         )
     if not (np.issubdtype(plane.dtype, np.integer) or np.issubdtype(plane.dtype, np.floating)):
         raise InputError(

@@ -8,7 +8,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from plateloom.io.images import ImageIndex
+from plateloom.io.images import ImageIndex, usual_pixel_type
 from plateloom.io.tables import well_part_path, write_bytes, write_parquet
 from plateloom.well.collective import CollectiveSettings, well_collective_readouts
 from plateloom.well.illumination import apply_flat_field
@@ -77,8 +77,9 @@ def analyse_chunk(
     folders = [outputs.cells, outputs.tracks, outputs.site_qc] + ([outputs.collective] if outputs.collective else [])
     for folder in folders + ([outputs.thumbnails] if outputs.thumbnails else []):
         os.makedirs(folder, exist_ok=True)
+    pixel_type = usual_pixel_type(index)  # a site exported at another bit depth is flagged, not measured
     for well in wells:
-        cells, tracks, site_qc = analyse_well(index, well, settings, flat_field)
+        cells, tracks, site_qc = analyse_well(index, well, settings, flat_field, pixel_type)
         tables = [cells, tracks, site_qc]
         if outputs.collective:
             tables.append(collective_table(cells, settings, collective or CollectiveSettings.defaults(), well))

@@ -221,7 +221,12 @@ def _close_gaps_and_divisions(cells: pd.DataFrame, settings: WellSettings) -> pd
 
 
 def analyse_site(
-    index: ImageIndex, well: str, site: int, settings: WellSettings, flat_field: np.ndarray | None = None
+    index: ImageIndex,
+    well: str,
+    site: int,
+    settings: WellSettings,
+    flat_field: np.ndarray | None = None,
+    pixel_type: str | None = None,
 ) -> tuple[pd.DataFrame, pd.DataFrame]:
     """Observations (with track ids local to the site) and per-frame QC of one site.
 
@@ -233,7 +238,7 @@ def analyse_site(
     observations, qc_rows = [], []
     linker = FrameLinker(settings.max_displacement_um)
     shape = flat_field.shape[1:] if flat_field is not None else None
-    for item in stream_site(index, well, site, channels, shape):
+    for item in stream_site(index, well, site, channels, shape, pixel_type):
         if item.problem:
             qc_rows.append(_unusable_frame_qc(site, item.frame, item.problem, channels))
             linker.break_links()
@@ -295,7 +300,11 @@ def track_table(cells: pd.DataFrame, settings: WellSettings) -> pd.DataFrame:
 
 
 def analyse_well(
-    index: ImageIndex, well: str, settings: WellSettings, flat_field: np.ndarray | None = None
+    index: ImageIndex,
+    well: str,
+    settings: WellSettings,
+    flat_field: np.ndarray | None = None,
+    pixel_type: str | None = None,
 ) -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame]:
     """Cells, tracks and site QC of one well over all its sites.
 
@@ -310,7 +319,7 @@ def analyse_well(
         )
     cell_parts, qc_parts, offset = [], [], 0
     for site in sites:
-        cells, qc = analyse_site(index, well, int(site), settings, flat_field)
+        cells, qc = analyse_site(index, well, int(site), settings, flat_field, pixel_type)
         cells["track"] += offset
         cells.loc[cells["parent_track"] >= 0, "parent_track"] += offset
         offset = int(cells["track"].max()) + 1 if len(cells) else offset
