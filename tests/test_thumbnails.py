@@ -133,3 +133,25 @@ def test_thumbnails_load_in_headless_chromium(tmp_path, field):
     # the outlines' cyan shows only if the images were decoded and drawn
     cyan = (np.abs(pixels - OUTLINE_RGB.astype(int)).sum(axis=-1) < 60).sum()
     assert cyan > 500, cyan
+
+
+@pytest.mark.parametrize("per_frame", [False, True])
+def test_one_frame_read_alone_equals_the_streamed_frame(tmp_path, per_frame):
+    import tifffile
+
+    from plateloom.io.images import index_plate_images, read_site_frame, stream_site
+
+    rng = np.random.default_rng(0)
+    stacks = {c: rng.integers(0, 4000, (4, 32, 40)).astype(np.uint16) for c in ("dna", "rep")}
+    for channel, stack in stacks.items():
+        if per_frame:
+            for frame, plane in enumerate(stack):
+                tifffile.imwrite(tmp_path / f"A01_s1_t{frame}_{channel}.tif", plane)
+        else:
+            tifffile.imwrite(tmp_path / f"A01_s1_{channel}.tif", stack, photometric="minisblack")
+    template = "{well}_s{site}_t{frame}_{channel}.tif" if per_frame else "{well}_s{site}_{channel}.tif"
+    index = index_plate_images(str(tmp_path), template, 96, ["dna", "rep"])
+    streamed = {item.frame: item.planes for item in stream_site(index, "A01", 1, ["dna", "rep"])}
+    for frame in (0, 3):
+        assert np.array_equal(read_site_frame(index, "A01", 1, ["dna", "rep"], frame), streamed[frame])
+    assert read_site_frame(index, "A01", 1, ["dna", "rep"], 9) is None

@@ -279,6 +279,23 @@ class _TiffSite:
             return read_page(tif, path, 0), path
 
 
+def read_site_frame(index: ImageIndex, well: str, site: int, channels: list[str], frame: int) -> np.ndarray | None:
+    """The planes (channels, y, x; float32) of one frame of a site, reading only that frame's pages
+    where the source allows it; None if the frame cannot be read."""
+    if index.source != "tiff":
+        for item in stream_site(index, well, site, channels):
+            if item.frame == frame:
+                return None if item.problem else item.planes
+        return None
+    with ExitStack() as stack:
+        files = _TiffSite(index, well, site, channels, stack)
+        try:
+            planes = [check_plane(files.raw_plane(c, frame - files.start)[0], "", None) for c in channels]
+            return np.stack(planes).astype(np.float32)
+        except (InputError, ValueError):
+            return None
+
+
 def _stream_tiff_site(
     index: ImageIndex,
     well: str,

@@ -8,11 +8,11 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from plateloom.io.images import ImageIndex, usual_pixel_type
+from plateloom.io.images import ImageIndex, read_site_frame, usual_pixel_type
 from plateloom.io.tables import well_part_path, write_bytes, write_parquet
 from plateloom.well.collective import CollectiveSettings, well_collective_readouts
 from plateloom.well.illumination import apply_flat_field
-from plateloom.well.snapshot import overlay_rgb, png_bytes, read_frame, snapshot_frame, track_tails
+from plateloom.well.snapshot import overlay_rgb, png_bytes, snapshot_frame, track_tails
 from plateloom.well.stage import WellSettings, analyse_well, segment_frame, with_keys
 
 
@@ -52,7 +52,7 @@ def well_thumbnail(
     outlines and track tails; None when no frame of that site can be read."""
     site = int(site_qc["site"].min())
     frame = snapshot_frame(site_qc, site)
-    planes = None if frame is None else read_frame(index, well, site, list(settings.channels), frame)
+    planes = None if frame is None else read_site_frame(index, well, site, list(settings.channels), frame)
     if planes is None:
         return None
     planes = apply_flat_field(planes, flat_field)

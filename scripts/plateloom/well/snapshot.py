@@ -17,8 +17,6 @@ from matplotlib import image as mpl_image
 from skimage.draw import line
 from skimage.segmentation import find_boundaries
 
-from plateloom.io.images import ImageIndex, stream_site
-
 THUMBNAIL_PX = 256  # longest side of a thumbnail
 TAIL_FRAMES = 6
 OUTLINE_RGB = np.array([0, 230, 255], np.uint8)
@@ -35,14 +33,6 @@ def snapshot_frame(site_qc: pd.DataFrame, site: int) -> int | None:
     flags = [c for c in ("threshold_jump", "count_jump") if c in rows.columns]
     flagged = rows[rows[flags].fillna(False).astype(bool).any(axis=1)] if flags else rows.iloc[:0]
     return int(flagged["frame"].min() if len(flagged) else rows["frame"].max())
-
-
-def read_frame(index: ImageIndex, well: str, site: int, channels: list[str], frame: int) -> np.ndarray | None:
-    """The planes (channels, y, x) of one frame of a site, or None if that frame cannot be read."""
-    for item in stream_site(index, well, site, channels):
-        if item.frame == frame:
-            return None if item.problem else item.planes
-    return None
 
 
 def _log_grey(image: np.ndarray) -> np.ndarray:
