@@ -8,14 +8,13 @@ wells imaged but not in the layout). Each problem names the file (and row, well,
 from __future__ import annotations
 
 import os
-from collections import Counter
 from dataclasses import dataclass, field
 
 import pandas as pd
-import tifffile
 
 from plateloom.errors import InputError
 from plateloom.io.images import ImageIndex, index_plate_images, read_ome_metadata
+from plateloom.setup.image_checks import header_problems
 from plateloom.setup.screen_sheet import check_layout, check_screen_sheet
 
 OUTPUT_BYTES_PER_OBSERVATION = 60 * 8  # about 60 columns of 8 bytes in the cells table, before compression
@@ -105,87 +104,6 @@ def _series_problems(index: ImageIndex, wells: list[str], channels: list[str]) -
     return problems, int(counts.groupby(level=["well", "site"]).max().sum())
 
 
-def _header_problems(
-    index: ImageIndex, wells: list[str], shapes: dict[tuple[int, ...], str]
-) -> tuple[list[InputError], int]:
-    """Unreadable files, image sizes that differ, stacks of different page counts; and the site-frames of stacks."""
-    table = index.table[index.table["well"].isin(wells)]
-    problems: list[InputError] = []
-    pages: dict[tuple[str, int], dict[str, int]] = {}
-    dtypes: dict[str, str] = {}
-    for row in table.itertuples():
-        try:
-            with tifffile.TiffFile(row.path) as tif:
-                shape = tuple(tif.pages[0].shape)
-                dtypes[row.path] = str(tif.pages[0].dtype)
-                if index.stacks:
-                    pages.setdefault((row.well, row.site), {})[row.channel] = len(tif.pages)
-        except Exception as error:  # tifffile raises many kinds for corrupt files
-            problems.append(
-                InputError(
-                    row.path,
-                    f"cannot be read as TIFF ({type(error).__name__}).",
-                    "re-copy the file from the microscope.",
-                )
-            )
-            continue
-        reference = shapes.setdefault(shape, row.path)
-        if len(shapes) > 1 and reference == row.path:
-            first_shape, first_path = next(iter(shapes.items()))
-            problems.append(
-                InputError(
-                    row.path,
-                    f"image size {shape} differs from {first_shape} ({os.path.basename(first_path)}).",
-                    "all images of a screen must have the same size; re-export at one size.",
-                )
-            )
-    for (well, site), counts in pages.items():
-        if len(set(counts.values())) > 1:
-            detail = ", ".join(f"{c}: {n}" for c, n in counts.items())
-            problems.append(
-                InputError(
-                    f"well {well}, site {site}",
-                    f"channels have different frame counts ({detail}).",
-                    "re-copy the shorter stack (a run would flag the missing frames).",
-                )
-            )
-    problems += _pixel_type_problems(dtypes) + _z_stack_problems(pages)
-    return problems, sum(max(c.values()) for c in pages.values())
-
-
-def _pixel_type_problems(dtypes: dict[str, str]) -> list[InputError]:
-    """Files whose pixel type is not the plate's (that of most of its files): an 8-bit export in a
-    16-bit plate would be analysed at another intensity scale."""
-    if not dtypes:
-        return []
-    usual, _ = Counter(dtypes.values()).most_common(1)[0]
-    return [
-        InputError(path, f"pixel type {dtype} differs from the plate's {usual}.", "re-export it as the other images.")
-        for path, dtype in dtypes.items()
-        if dtype != usual
-    ]
-
-
-def _z_stack_problems(pages: dict[tuple[str, int], dict[str, int]]) -> list[InputError]:
-    """Sites whose stacks hold a whole multiple (2x or more) of the plate's usual page count: z planes
-    saved as pages would be read as time frames."""
-    counts = [n for by_channel in pages.values() for n in by_channel.values()]
-    if not counts:
-        return []
-    usual, _ = Counter(counts).most_common(1)[0]
-    return [
-        InputError(
-            f"well {well}, site {site}, channel {channel}",
-            f"has {n} pages, {n // usual} times the plate's usual {usual}: possibly a z-stack saved as pages, which "
-            "would be read as time frames.",
-            "save a maximum projection (or one plane) per frame.",
-        )
-        for (well, site), by_channel in pages.items()
-        for channel, n in by_channel.items()
-        if usual > 0 and n > usual and n % usual == 0
-    ]
-
-
 def _shown(names: list[str], at_most: int, quote: bool = False) -> str:
     listed = ", ".join(repr(n) if quote else n for n in names[:at_most])
     return listed + (f" and {len(names) - at_most} more" if quote and len(names) > at_most else "")
@@ -201,7 +119,6 @@ class _ScreenCheck:
         self.channels = [c["name"] for c in config["channels"]]
         self.template = config["images"]["filename_template"]
         self.totals = {"plates": 0, "wells": 0, "images": 0, "image_bytes": 0, "site_frames": 0, "jobs": 0}
-        self.shapes: dict[tuple[int, ...], str] = {}
         self.layouts: dict[tuple[str, int], tuple] = {}
         self.indexes: dict[tuple[str, int], ImageIndex] = {}
         self.series: dict[tuple, tuple[list[InputError], int]] = {}
@@ -288,7 +205,7 @@ class _ScreenCheck:
             self.series[series_key] = _series_problems(index, wells, self.channels)
         series, site_frames = self.series[series_key]
         with_headers = self.read_headers and index.source == "tiff"
-        headers, stack_frames = _header_problems(index, wells, self.shapes) if with_headers else ([], 0)
+        headers, stack_frames = header_problems(index, wells) if with_headers else ([], 0)
         for problem in series + headers:
             severity = "warning" if "missing" in problem.problem or "frame counts" in problem.problem else "error"
             self.report.add(severity, InputError(f"plate {entry.plate}: {problem.where}", problem.problem, problem.fix))
@@ -299,33 +216,13 @@ class _ScreenCheck:
             self.totals["image_bytes"] += sum(os.path.getsize(p) for p in index.table["path"].to_numpy()[in_wells])
 
     def image_scale(self) -> None:
-        """An error when pixel size or frame interval is neither in config nor in the first image's metadata."""
-        images = self.config["images"]
-        if images.get("pixel_size_um") is not None and images.get("frame_interval_min") is not None:
-            return
-        first = next((sorted(index.table["path"])[0] for index in self.indexes.values() if len(index.table)), None)
-        metadata = read_ome_metadata(first) if first else None
-        keys = ("pixel_size_um", "frame_interval_min")
-        missing = [k for k in keys if images.get(k) is None and (metadata is None or getattr(metadata, k) is None)]
-        zero = [k for k in keys if images.get(k) is None and k not in missing and not getattr(metadata, k) > 0]
-        if zero:
-            self.report.add(
-                "error",
-                InputError(
-                    f"config images ({first})",
-                    f"the OME metadata gives {' and '.join(zero)} as zero or negative.",
-                    f"set images.{' and images.'.join(zero)} in the config.",
-                ),
-            )
-        if missing:
-            self.report.add(
-                "error",
-                InputError(
-                    f"config images ({first or 'no image'})",
-                    f"{' and '.join(missing)} not set and not in the images' OME metadata.",
-                    f"set images.{' and images.'.join(missing)} in the config.",
-                ),
-            )
+        """An error when pixel size or frame interval is neither in config nor in the first image's
+        metadata, or the metadata gives zero or less."""
+        unset = [k for k in ("pixel_size_um", "frame_interval_min") if self.config["images"].get(k) is None]
+        if unset:
+            first = next((sorted(i.table["path"])[0] for i in self.indexes.values() if len(i.table)), None)
+            for problem in _scale_problems(unset, first):
+                self.report.add("error", problem)
 
     def estimate(self, assumed_objects_per_frame: int) -> dict:
         totals = self.totals
@@ -339,6 +236,26 @@ class _ScreenCheck:
             "output_gb": observations * OUTPUT_BYTES_PER_OBSERVATION / 1e9,
             "assumed_objects_per_frame": assumed_objects_per_frame,
         }
+
+
+def _scale_problems(unset: list[str], first: str | None) -> list[InputError]:
+    """Problems with the scale keys that config leaves to the first image's OME metadata."""
+    metadata = read_ome_metadata(first) if first else None
+    found = {k: getattr(metadata, k) if metadata else None for k in unset}
+    missing = [k for k, value in found.items() if value is None]
+    not_positive = [k for k, value in found.items() if value is not None and not value > 0]
+    return [
+        InputError(
+            f"config images ({first or 'no image'})",
+            f"{' and '.join(keys)} {problem}",
+            f"set images.{' and images.'.join(keys)} in the config.",
+        )
+        for keys, problem in (
+            (missing, "not set and not in the images' OME metadata."),
+            (not_positive, "set to zero or less in the images' OME metadata."),
+        )
+        if keys
+    ]
 
 
 def check_screen(config: dict, read_headers: bool = True, assumed_objects_per_frame: int = 200) -> CheckReport:
