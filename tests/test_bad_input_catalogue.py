@@ -319,3 +319,15 @@ def test_an_8_bit_site_in_a_16_bit_plate_is_flagged_not_measured(tmp_path):
     )
     cells = pd.concat(pd.read_parquet(p) for p in sorted((out / "cells").glob("well=*/part-0.parquet")))
     assert set(cells["well"]) == {"A01", "A02", "A04"}
+
+
+def test_an_empty_image_file_costs_only_its_site(tmp_path):
+    tifffile.imwrite(tmp_path / "A01_s1_dna.tif", _nuclei_stack(), photometric="minisblack")
+    (tmp_path / "A01_s2_dna.tif").write_bytes(b"")  # an interrupted copy
+    cells, _, qc = analyse_well(_index(tmp_path), "A01", _settings())
+    assert set(cells["site"]) == {1} and len(cells) > 0
+    flagged = qc[qc["frame_problem"].fillna("") != ""]
+    assert flagged["site"].tolist() == [2]
+    assert (
+        "well A01, site 2:" in flagged["frame_problem"].iloc[0] and "A01_s2_dna.tif" in flagged["frame_problem"].iloc[0]
+    )

@@ -296,9 +296,10 @@ def test_new_plate_schedules_only_its_own_jobs_and_the_fan_ins(finished_screen):
 
 
 @pytest.mark.slow
-def test_keep_going_finishes_the_good_plate_when_one_image_is_corrupt(tmp_path):
-    # Two plates of the demo, one with a truncated TIFF: with --keep-going the good plate's report is
-    # written, the bad chunk's log names the file and the fix, and the failed job leaves no output behind.
+def test_a_truncated_and_an_empty_image_cost_only_their_own_sites(tmp_path):
+    # Two plates of the demo, one with a truncated TIFF and one with an empty one (interrupted
+    # copies): every plate is analysed to its report; the bad sites' frames are in site QC with the
+    # file and the fix, and in the ledger; their wells are left out of the model for want of cells.
     workdir = copy_workflow(tmp_path / "screen")
     sheet = workdir / "config" / "plates.csv"
     lines = sheet.read_text().splitlines()
@@ -310,16 +311,18 @@ def test_keep_going_finishes_the_good_plate_when_one_image_is_corrupt(tmp_path):
     config["demo"]["frames"] = 3
     config_path.write_text(yaml.safe_dump(config, sort_keys=False))
     run_snakemake(workdir, "demo_images/WV-D1-P1", "demo_images/WV-D2-P1")
-    bad = workdir / "demo_images" / "WV-D2-P1" / "A01_s1_nuclear.tif"
-    bad.write_bytes(bad.read_bytes()[:200])
-    result = run_snakemake(workdir, "--keep-going", check=False)
-    assert result.returncode != 0
-    assert (workdir / "results/reports/plates/WV-D1-P1.html").exists()
-    assert not (workdir / "results/reports/plates/WV-D2-P1.html").exists()
-    assert not (workdir / "results/reports/screen.html").exists()
-    log = (workdir / "results/logs/analyse_wells/WV-D2-P1_000.log").read_text()
-    # a truncated stack is either unreadable or short of frames; either way the file and the fix are named
-    assert "A01_s1_nuclear.tif" in log and "re-copy" in log
-    assert "cannot be read as TIFF" in log or "different frame counts (nuclear: 1 in A01_s1_nuclear.tif" in log
-    assert not (workdir / "results/cells/plate=WV-D2-P1/chunk=000").exists()
-    assert (workdir / "results/cells/plate=WV-D2-P1/chunk=001").exists()  # the other chunk of that plate is kept
+    truncated = workdir / "demo_images" / "WV-D2-P1" / "A01_s1_nuclear.tif"
+    truncated.write_bytes(truncated.read_bytes()[:200])
+    (workdir / "demo_images" / "WV-D1-P1" / "B04_s1_reporter.tif").write_bytes(b"")
+    run_snakemake(workdir, "--keep-going")
+    assert (workdir / "results/reports/screen.html").exists()
+    for plate, well, name in (("WV-D2-P1", "A01", "A01_s1_nuclear.tif"), ("WV-D1-P1", "B04", "B04_s1_reporter.tif")):
+        assert (workdir / f"results/reports/plates/{plate}.html").exists()
+        qc = pd.read_parquet(
+            next((workdir / f"results/site_qc/plate={plate}").glob(f"chunk=*/well={well}/part-0.parquet"))
+        )
+        problems = qc["frame_problem"].fillna("")
+        assert (problems != "").all() and problems.str.contains(name).all() and problems.str.contains("re-").all()
+        ledger = pd.read_parquet(workdir / f"results/exclusions/plate={plate}/part-0.parquet")
+        rules = set(ledger.loc[ledger["well"] == well, "rule"])
+        assert rules == {"unusable_frame", "min_cells_per_well"}, rules

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from collections.abc import Iterator
 from dataclasses import dataclass, replace
 
 import numpy as np
@@ -166,6 +167,19 @@ def measure_frame(
     return table, background
 
 
+def _site_frames(frames: Iterator[SiteFrame], well: str, site: int, n_channels: int) -> Iterator[SiteFrame]:
+    """The frames of a site; a file that cannot be opened at all (an empty or cut-off copy, a
+    missing channel) ends the site with one flagged frame instead of stopping the job, so the bad
+    site costs only itself."""
+    next_frame = 0
+    try:
+        for item in frames:
+            next_frame = item.frame + 1
+            yield item
+    except InputError as error:
+        yield SiteFrame(next_frame, None, np.full(n_channels, np.nan), f"well {well}, site {site}: {error}")
+
+
 def _no_objects(settings: WellSettings) -> pd.DataFrame:
     """An observations table with every column and no row (a site none of whose frames is usable)."""
     planes = np.zeros((len(settings.channels), 8, 8), np.float32)
@@ -238,7 +252,7 @@ def analyse_site(
     observations, qc_rows = [], []
     linker = FrameLinker(settings.max_displacement_um)
     shape = flat_field.shape[1:] if flat_field is not None else None
-    for item in stream_site(index, well, site, channels, shape, pixel_type):
+    for item in _site_frames(stream_site(index, well, site, channels, shape, pixel_type), well, site, len(channels)):
         if item.problem:
             qc_rows.append(_unusable_frame_qc(site, item.frame, item.problem, channels))
             linker.break_links()
