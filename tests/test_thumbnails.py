@@ -155,3 +155,14 @@ def test_one_frame_read_alone_equals_the_streamed_frame(tmp_path, per_frame):
     for frame in (0, 3):
         assert np.array_equal(read_site_frame(index, "A01", 1, ["dna", "rep"], frame), streamed[frame])
     assert read_site_frame(index, "A01", 1, ["dna", "rep"], 9) is None
+
+
+def test_beyond_the_shown_flagged_wells_the_rest_are_named():
+    from plateloom.report.thumbnails import MAX_FLAGGED
+
+    wells = [f"{row}{col:02d}" for row in "ABCDEFGH" for col in range(1, 13)]
+    profile = pd.DataFrame({"well": wells, "role": "test", "condition": "LOOM-7"})
+    flagged = {w: ["site 1: linking distance binds"] for w in wells[: MAX_FLAGGED + 2]}
+    html = thumbnails_html(profile, {w: b"png" for w in wells}, flagged)
+    assert html.count('class="thumb"') == MAX_FLAGGED + 6  # every shown flagged well, and six test wells
+    assert f"2 more flagged well(s) not shown: {wells[MAX_FLAGGED]}, {wells[MAX_FLAGGED + 1]}." in html

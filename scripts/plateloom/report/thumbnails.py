@@ -1,7 +1,8 @@
 """The plate report's look at the images: thumbnails of segmentation and tracks for a sample of wells.
 
-Every well that site QC flagged is shown (up to MAX_FLAGGED), then an evenly spaced, deterministic
-sample of the negative controls, positive controls and test wells in plate order.
+Every well that site QC flagged is shown (beyond MAX_FLAGGED of them, the others are listed by
+name), then an evenly spaced, deterministic sample of the negative controls, positive controls and
+test wells in plate order.
 """
 
 from __future__ import annotations
@@ -12,7 +13,7 @@ import pandas as pd
 
 from plateloom.report.html import escape
 
-MAX_FLAGGED = 12
+MAX_FLAGGED = 48  # beyond this many flagged wells, the rest are listed by name
 PER_ROLE = {"negative_control": 3, "positive_control": 3, "test": 6}
 THUMBNAIL_TEXT = (
     "<p>One site per well, on its first frame flagged by site QC (else its last usable frame): the nuclear "
@@ -55,4 +56,10 @@ def thumbnails_html(
             f'<figure class="thumb"><img src="data:image/png;base64,{encoded}" alt="well {escape(well)}">'
             f"<figcaption><b>{escape(well)}</b> {escape(role)} {escape(condition)}{flags}</figcaption></figure>"
         )
-    return THUMBNAIL_TEXT + '<div class="thumbs">' + "".join(cells) + "</div>"
+    unshown = [w for w in sorted(flagged) if w in thumbnails][MAX_FLAGGED:]
+    more = (
+        f'<p class="caution">{len(unshown)} more flagged well(s) not shown: {escape(", ".join(unshown))}.</p>'
+        if unshown
+        else ""
+    )
+    return THUMBNAIL_TEXT + '<div class="thumbs">' + "".join(cells) + "</div>" + more
