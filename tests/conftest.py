@@ -60,6 +60,33 @@ def workflow_dir(tmp_path: Path) -> Path:
     return copy_workflow(tmp_path / "screen")
 
 
+def minimal_config(sheet, template: str = "{well}_s{site}_{channel}.tif") -> dict:
+    """The smallest config of a one-channel (dna) screen from ``sheet``, schema defaults filled."""
+    from plateloom.settings import fill_defaults
+
+    return fill_defaults(
+        {
+            "screen_sheet": str(sheet),
+            "images": {"filename_template": template, "pixel_size_um": 1, "frame_interval_min": 1},
+            "channels": [{"name": "dna", "role": "nuclei"}],
+        }
+    )
+
+
+def nuclear_only_settings(pixel_size_um: float, **overrides) -> WellSettings:
+    """Per-well settings for one channel "nuclear" with no reporter (the realistic fields and time-lapses)."""
+    return WellSettings.of_demo(
+        channels=("nuclear",),
+        nuclei_channel="nuclear",
+        reporter_channels=(),
+        texture_channels=None,
+        pixel_size_um=pixel_size_um,
+        min_nucleus_area_um2=20.0,
+        split_min_distance_um=5.0,
+        **overrides,
+    )
+
+
 def tiny_well_settings(channels) -> WellSettings:
     """Per-well settings for the small synthetic images of the bad-input tests (1 um pixels,
     1 min frames, nuclei of at least 10 um2, no gap closing)."""

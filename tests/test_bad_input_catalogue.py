@@ -11,7 +11,7 @@ import numpy as np
 import pandas as pd
 import pytest
 import tifffile
-from conftest import plate_tables, run_snakemake, tiny_well_settings
+from conftest import minimal_config, plate_tables, run_snakemake, tiny_well_settings
 from test_plate_stage import _plate
 
 from plateloom.errors import InputError
@@ -221,7 +221,6 @@ def _plate_tables_of_seed(seed, layout):
     ids=["latin-1", "zero bytes", "misspelt column"],
 )
 def test_check_reports_an_unreadable_layout_without_a_traceback(tmp_path, content, said):
-    from plateloom.settings import fill_defaults
     from plateloom.setup.check import check_screen
 
     (tmp_path / "images").mkdir()
@@ -230,23 +229,12 @@ def test_check_reports_an_unreadable_layout_without_a_traceback(tmp_path, conten
     sheet.write_text(
         f"plate,batch,plate_format,layout,image_folder\nP1,d1,96,{tmp_path}/layout.csv,{tmp_path}/images\n"
     )
-    config = fill_defaults(
-        {
-            "screen_sheet": str(sheet),
-            "images": {
-                "filename_template": "{well}_s{site}_{channel}.tif",
-                "pixel_size_um": 1,
-                "frame_interval_min": 1,
-            },
-            "channels": [{"name": "dna", "role": "nuclei"}],
-        }
-    )
+    config = minimal_config(sheet)
     report = check_screen(config)
     assert any(said in e.message and "layout.csv" in e.message for e in report.errors), report.text()
 
 
 def test_check_names_an_8_bit_site_in_a_16_bit_plate_and_a_possible_z_stack(tmp_path):
-    from plateloom.settings import fill_defaults
     from plateloom.setup.check import check_screen
 
     images = tmp_path / "images"
@@ -265,14 +253,7 @@ def test_check_names_an_8_bit_site_in_a_16_bit_plate_and_a_possible_z_stack(tmp_
     )
     sheet = tmp_path / "plates.csv"
     sheet.write_text(f"plate,batch,plate_format,layout,image_folder\nP1,d1,96,{layout},{images}\n")
-    config = fill_defaults(
-        {
-            "screen_sheet": str(sheet),
-            "images": {"filename_template": TEMPLATE, "pixel_size_um": 1, "frame_interval_min": 1},
-            "channels": [{"name": "dna", "role": "nuclei"}],
-        }
-    )
-    text = check_screen(config).text()
+    text = check_screen(minimal_config(sheet, TEMPLATE)).text()
     assert "A02_s1_dna.tif: pixel type uint8 differs from the plate's uint16" in text
     assert "well A03, site 1, channel dna: has 6 pages, 2 times the plate's usual 3: possibly a z-stack" in text
 

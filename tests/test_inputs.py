@@ -6,7 +6,7 @@ import numpy as np
 import pandas as pd
 import pytest
 import tifffile
-from conftest import run_snakemake, tiny_well_settings
+from conftest import minimal_config, run_snakemake, tiny_well_settings
 
 from plateloom.errors import InputError
 from plateloom.io.images import index_plate_images, stream_site, template_regex
@@ -87,7 +87,6 @@ def test_two_plates_on_one_image_folder_are_refused(tmp_path):
 
 
 def test_a_compound_dosed_in_two_units_across_layouts_stops_the_plan(tmp_path):
-    from plateloom.settings import fill_defaults
     from plateloom.setup.plan import plan_screen
 
     first = tmp_path / "a.csv"
@@ -101,17 +100,7 @@ def test_a_compound_dosed_in_two_units_across_layouts_stops_the_plan(tmp_path):
         "plate,batch,plate_format,layout,image_folder\n"
         f"P1,d1,96,{first},{tmp_path}/P1\nP2,d1,96,{second},{tmp_path}/P2\n"
     )
-    config = fill_defaults(
-        {
-            "screen_sheet": str(sheet),
-            "images": {
-                "filename_template": "{well}_s{site}_{channel}.tif",
-                "pixel_size_um": 1,
-                "frame_interval_min": 1,
-            },
-            "channels": [{"name": "dna", "role": "nuclei"}],
-        }
-    )
+    config = minimal_config(sheet)
     with pytest.raises(InputError, match=r"condition 'X' is dosed in nM and uM"):
         plan_screen(config)
 

@@ -11,6 +11,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 import pytest
+from conftest import nuclear_only_settings
 from scipy import ndimage
 from segmentation_accuracy import iou_matrix, pooled_average_precision
 from skimage.measure import label as connected_regions
@@ -104,21 +105,11 @@ def _site_with_flashes(folder, frames: int = 6):
 def test_a_threshold_that_flips_between_frames_is_flagged_in_site_qc(tmp_path, method, threshold, flagged):
     from plateloom.io.images import index_plate_images
     from plateloom.plate.stage import segmentation_jump_notes
-    from plateloom.well.stage import WellSettings, analyse_well
+    from plateloom.well.stage import analyse_well
 
     _site_with_flashes(tmp_path)
     index = index_plate_images(str(tmp_path), "{well}_s{site}_{channel}.tif", 96, ["nuclear"])
-    settings = WellSettings.of_demo(
-        channels=("nuclear",),
-        nuclei_channel="nuclear",
-        reporter_channels=(),
-        texture_channels=None,
-        pixel_size_um=PIXEL_UM,
-        segmentation_method=method,
-        threshold_method=threshold,
-        min_nucleus_area_um2=20.0,
-        split_min_distance_um=5.0,
-    )
+    settings = nuclear_only_settings(PIXEL_UM, segmentation_method=method, threshold_method=threshold)
     _, _, qc = analyse_well(index, "B02", settings)
     jumps = qc[qc["threshold_jump"] | qc["count_jump"]]
     if flagged:

@@ -16,11 +16,12 @@ import numpy as np
 import pandas as pd
 import pytest
 import tifffile
+from conftest import nuclear_only_settings
 
 from plateloom.demo.realistic_timelapse import TimeLapseSettings, simulate_time_lapse
 from plateloom.io.images import index_plate_images
 from plateloom.plate.stage import linking_notes
-from plateloom.well.stage import WellSettings, analyse_well
+from plateloom.well.stage import analyse_well
 
 PIXEL_UM, INTERVAL_MIN, MATCH_UM = 0.65, 5.0, 5.0
 SEEDS = (1, 3, 5)
@@ -31,17 +32,7 @@ def _analyse(tmp_path, lapse, max_displacement_um=None):
     folder.mkdir()
     tifffile.imwrite(folder / "B02_s1_nuclear.tif", lapse.images, photometric="minisblack")
     index = index_plate_images(str(folder), "{well}_s{site}_{channel}.tif", 96, ["nuclear"])
-    settings = WellSettings.of_demo(
-        channels=("nuclear",),
-        nuclei_channel="nuclear",
-        reporter_channels=(),
-        texture_channels=None,
-        pixel_size_um=PIXEL_UM,
-        frame_interval_min=INTERVAL_MIN,
-        max_displacement_um=max_displacement_um,
-        min_nucleus_area_um2=20.0,
-        split_min_distance_um=5.0,
-    )
+    settings = nuclear_only_settings(PIXEL_UM, frame_interval_min=INTERVAL_MIN, max_displacement_um=max_displacement_um)
     return analyse_well(index, "B02", settings)
 
 

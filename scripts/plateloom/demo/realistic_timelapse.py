@@ -11,7 +11,7 @@ and a table of true positions and events.
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass, field, fields, replace
 
 import numpy as np
 import pandas as pd
@@ -60,7 +60,7 @@ class _Cells:
 
     def take(self, keep: np.ndarray) -> _Cells:
         n = self.nuclei
-        taken = Nuclei(*(getattr(n, f)[keep] for f in ("y", "x", "major", "minor", "angle", "level", "kind", "wobble")))
+        taken = Nuclei(*(getattr(n, f.name)[keep] for f in fields(Nuclei)))
         return _Cells(
             taken, self.ids[keep], self.velocity[keep], self.speed_sd[keep], self.divide_at[keep], self.die_at[keep]
         )
@@ -181,8 +181,7 @@ def _events(
 
 
 def _concat(parts: list[_Cells]) -> _Cells:
-    fields = ("y", "x", "major", "minor", "angle", "level", "kind", "wobble")
-    nuclei = Nuclei(*(np.concatenate([getattr(p.nuclei, f) for p in parts]) for f in fields))
+    nuclei = Nuclei(*(np.concatenate([getattr(p.nuclei, f.name) for p in parts]) for f in fields(Nuclei)))
     arrays = [
         np.concatenate([getattr(p, f) for p in parts]) for f in ("ids", "velocity", "speed_sd", "divide_at", "die_at")
     ]

@@ -27,6 +27,7 @@ from plateloom.plate.summaries import (
 )
 from plateloom.settings import FromSchema
 from plateloom.stats import MAD_TO_SD, mad
+from plateloom.well.image_qc import jumped_frames
 
 
 @dataclass(frozen=True)
@@ -86,10 +87,7 @@ def segmentation_jump_notes(site_qc: pd.DataFrame, shown: int = 5) -> list[str]:
     """Plate-report warnings for site-frames whose threshold jumped from the previous frame, or whose
     object count spiked or dipped against both neighbouring frames (the segmentation changed, not
     the cells)."""
-    flags = [c for c in ("threshold_jump", "count_jump") if c in site_qc.columns]
-    if not flags:
-        return []
-    jumped = site_qc[site_qc[flags].fillna(False).astype(bool).any(axis=1)]
+    jumped = jumped_frames(site_qc)
     if jumped.empty:
         return []
     sites = jumped.groupby(["well", "site"])["frame"].apply(lambda f: ", ".join(str(int(x)) for x in f))
@@ -124,13 +122,8 @@ def binding_sites(site_qc: pd.DataFrame) -> pd.DataFrame:
 def well_flags(site_qc: pd.DataFrame) -> dict[str, list[str]]:
     """Short site-QC flags per well (wells without a flag left out), for the plate report's thumbnails."""
     flags: dict[str, list[str]] = {}
-    jumps = [c for c in ("threshold_jump", "count_jump") if c in site_qc.columns]
-    if jumps:
-        jumped = site_qc[site_qc[jumps].fillna(False).astype(bool).any(axis=1)]
-        for (well, site), frames in jumped.groupby(["well", "site"])["frame"]:
-            flags.setdefault(well, []).append(
-                f"site {site}: segmentation jump at frame(s) {', '.join(map(str, frames))}"
-            )
+    for (well, site), frames in jumped_frames(site_qc).groupby(["well", "site"])["frame"]:
+        flags.setdefault(well, []).append(f"site {site}: segmentation jump at frame(s) {', '.join(map(str, frames))}")
     for well, site in binding_sites(site_qc).index:
         flags.setdefault(well, []).append(f"site {site}: linking distance binds")
     if "frame_problem" in site_qc.columns:

@@ -88,3 +88,11 @@ def _jumps(counts: pd.Series, other: pd.Series, sign: int) -> pd.Series:
     """Counts above (sign 1) or below (sign -1) ``other`` by more than COUNT_JUMP_RATIO and COUNT_JUMP_MIN."""
     ratio = sign * np.log((counts + 1) / (other + 1))
     return (ratio > np.log(COUNT_JUMP_RATIO)) & (sign * (counts - other) >= COUNT_JUMP_MIN)
+
+
+def jumped_frames(site_qc: pd.DataFrame) -> pd.DataFrame:
+    """The site-QC rows flagged with a threshold or count jump (none when the columns are absent)."""
+    flags = [c for c in ("threshold_jump", "count_jump") if c in site_qc.columns]
+    if not flags:
+        return site_qc.iloc[:0]
+    return site_qc[site_qc[flags].fillna(False).astype(bool).any(axis=1)]

@@ -17,6 +17,8 @@ from matplotlib import image as mpl_image
 from skimage.draw import line
 from skimage.segmentation import find_boundaries
 
+from plateloom.well.image_qc import jumped_frames
+
 THUMBNAIL_PX = 256  # longest side of a thumbnail
 TAIL_FRAMES = 6
 OUTLINE_RGB = np.array([0, 230, 255], np.uint8)
@@ -30,8 +32,7 @@ def snapshot_frame(site_qc: pd.DataFrame, site: int) -> int | None:
         rows = rows[rows["frame_problem"].fillna("") == ""]
     if rows.empty:
         return None
-    flags = [c for c in ("threshold_jump", "count_jump") if c in rows.columns]
-    flagged = rows[rows[flags].fillna(False).astype(bool).any(axis=1)] if flags else rows.iloc[:0]
+    flagged = jumped_frames(rows)
     return int(flagged["frame"].min() if len(flagged) else rows["frame"].max())
 
 
