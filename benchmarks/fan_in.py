@@ -46,7 +46,7 @@ tracks = pd.read_parquet(sys.argv[3])
 no_exclusions = pd.DataFrame({"well": [], "site": [], "frame": []})
 baseline = rss("VmRSS:")
 start = time.perf_counter()
-summaries, counts = summarise_observation_files([folder], no_exclusions, "median", threads=2)
+summaries, counts, _ = summarise_observation_files([folder], no_exclusions, "median", threads=2)
 profile = summarise_wells(counts, summaries, tracks, layout, "P1", "d1", 384)
 seconds = time.perf_counter() - start
 # the columns read, as one table in memory: well (category codes), site, frame, time_min, touches_border, features

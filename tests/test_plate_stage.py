@@ -197,7 +197,7 @@ def test_well_summaries_streamed_from_files_equal_pandas_and_the_in_memory_path(
     rules = ExclusionRules.defaults(min_focus_score=0.5)
     folders = _write_cells_folders(tmp_path, cells)
     excluded = pd.DataFrame({"well": ["E02"], "site": [1], "frame": [0]})
-    summaries, counts = summarise_observation_files(folders, excluded, statistic, threads=2)
+    summaries, counts, _ = summarise_observation_files(folders, excluded, statistic, threads=2)
     kept = cells[~cells["touches_border"] & ~((cells["well"] == "E02") & (cells["frame"] == 0))]
     features = ["area_um2", "glcm_correlation_nuclear", "nearest_neighbour_um"]
     if statistic == "median":

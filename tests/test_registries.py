@@ -13,6 +13,7 @@ from plateloom.plate.exclusions import EXCLUSION_RULES, ExclusionRule, Exclusion
 from plateloom.plate.normalization import NORMALIZATIONS
 from plateloom.plate.stage import PlateSettings
 from plateloom.screen.batch_correction import BATCH_CORRECTIONS
+from plateloom.screen.kinetics import KineticSettings
 from plateloom.screen.nested_fit import FITTERS
 from plateloom.settings import load_schema, schema_defaults
 from plateloom.setup.plan import resolve_features
@@ -104,6 +105,7 @@ def _schema_default(section: str, key: str):
         (IlluminationSettings, "illumination"),
         (ExclusionRules, "exclusion_rules"),
         (PlateSettings, "plate"),
+        (KineticSettings, "kinetics"),
     ],
 )
 def test_settings_defaults_are_the_schema_defaults(settings, section):

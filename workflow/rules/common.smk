@@ -16,6 +16,7 @@ from plateloom.setup.plan import (
 )
 from plateloom.plate.exclusions import ExclusionRules
 from plateloom.plate.stage import PlateSettings
+from plateloom.screen.kinetics import KineticSettings
 from plateloom.screen.model_wells import feature_chunks
 from plateloom.well.collective import CollectiveSettings
 from plateloom.well.illumination import IlluminationSettings
@@ -60,9 +61,15 @@ DEMO_SCENARIO = DEMO.get("scenario") or str(demo_scenario())
 WELL_SETTINGS = asdict(WellSettings.from_config(config))
 COLLECTIVE = asdict(CollectiveSettings.from_config(config))
 ILLUMINATION = IlluminationSettings.from_config(config)
+KINETICS = KineticSettings.from_config(config)
 PLATE_SETTINGS = {
     "plate": asdict(PlateSettings.from_config(config)),
     "exclusion_rules": asdict(ExclusionRules.from_config(config)),
+    "kinetics": {
+        "enabled": KINETICS.enabled,
+        "window_min": KINETICS.window_min,
+        "max_control_drift": KINETICS.max_control_drift,
+    },
 }
 SCREEN = config["screen"]
 FEATURE_CHUNKS = feature_chunks(PLAN.features, int(SCREEN["features_per_job"]))
@@ -82,6 +89,22 @@ SCREEN_SETTINGS = {
     ),
     "dose_response_min_doses": SCREEN["dose_response"]["min_doses"],
     "design_check": SCREEN["design_check"],
+}
+KINETIC_SETTINGS = {
+    key: SCREEN_SETTINGS[key]
+    for key in (
+        "features",
+        "ci_level",
+        "fitter",
+        "df_method",
+        "hit_q_value",
+        "hit_min_log_ratio",
+        "hit_min_standardized_effect",
+    )
+} | {
+    "kinetic_features": PLAN.kinetic_features,
+    "window_min": KINETICS.window_min,
+    "onset_windows": KINETICS.onset_windows,
 }
 SCREEN_JOB = PLAN.screen_job_size()
 
@@ -105,6 +128,17 @@ PLATE_TABLES = {
     "edge": f"{RESULTS}/edge_effects/plate={{plate}}/part-0.parquet",
     "notes": f"{RESULTS}/plate_notes/{{plate}}.json",
 }
+if KINETICS.enabled:
+    PLATE_TABLES["time_courses"] = (
+        f"{RESULTS}/time_courses/plate={{plate}}/part-0.parquet"
+    )
+ALL_TIME_COURSES = (
+    expand(PLATE_TABLES["time_courses"], plate=sorted(PLAN.plates))
+    if KINETICS.enabled
+    else []
+)
+KINETIC_SUMMARY = f"{RESULTS}/kinetic_summary.parquet"
+EFFECTS_OVER_TIME = f"{RESULTS}/effects_over_time.parquet"
 ALL_WELL_TABLES = expand(PLATE_TABLES["wells"], plate=sorted(PLAN.plates))
 ALL_LEDGERS = expand(PLATE_TABLES["ledger"], plate=sorted(PLAN.plates))
 EFFECT_PARTS = expand(
@@ -140,6 +174,11 @@ def get_illumination_images(wildcards):
     return IMAGE_INPUTS.illumination_files(
         PLAN.plates[wildcards.plate], wildcards.channel
     )
+
+
+def get_treatment_time(wildcards):
+    """Minutes from the plate's first frame to its treatment (None: not given)."""
+    return PLAN.plates[wildcards.plate].treatment_time_min
 
 
 def get_batch(wildcards):

@@ -23,6 +23,7 @@ rule plate_profiles:
     params:
         batch=get_batch,
         plate_format=get_plate_format,
+        treatment_time_min=get_treatment_time,
         image_folder=get_image_folder,
         template=get_filename_template,
         channels=CHANNELS,
@@ -58,5 +59,6 @@ rule plate_report:
         plate_format=get_plate_format,
         report_feature=config["plate"]["report_feature"],
         channels=CHANNELS,
+        max_control_drift=KINETICS.max_control_drift,
     script:
         "../scripts/plate_report.py"

@@ -78,6 +78,40 @@ rule screen_effects:
         "../scripts/screen_effects.py"
 
 
+rule effects_over_time:
+    input:
+        time_courses=ALL_TIME_COURSES,
+        model_wells=MODEL_WELLS,
+        treatments=TREATMENTS,
+    output:
+        effects=EFFECTS_OVER_TIME,
+        effects_csv=report(
+            f"{RESULTS}/effects_over_time.csv",
+            caption="../report/effects_over_time.rst",
+            category="Screen",
+        ),
+        summary=KINETIC_SUMMARY,
+        summary_csv=report(
+            f"{RESULTS}/kinetic_summary.csv",
+            caption="../report/kinetic_summary.rst",
+            category="Screen",
+        ),
+    log:
+        f"{RESULTS}/logs/effects_over_time.log",
+    benchmark:
+        f"{RESULTS}/benchmarks/effects_over_time.tsv"
+    conda:
+        "../envs/plateloom.yaml"
+    threads: 1
+    resources:
+        mem_mb=SCREEN_JOB.mem_mb,
+        runtime=SCREEN_JOB.runtime_min,
+    params:
+        settings=KINETIC_SETTINGS,
+    script:
+        "../scripts/effects_over_time.py"
+
+
 rule dose_response:
     input:
         model_wells=MODEL_WELLS,
@@ -143,6 +177,7 @@ rule screen_report:
         components=f"{RESULTS}/screen/batch_principal_components.parquet",
         design_check=f"{RESULTS}/design_check.parquet",
         model_wells=MODEL_WELLS,
+        kinetics=[EFFECTS_OVER_TIME, KINETIC_SUMMARY] if KINETICS.enabled else [],
     output:
         report=report(
             f"{RESULTS}/reports/screen.html",
@@ -171,5 +206,6 @@ rule screen_report:
         runtime=SCREEN_JOB.runtime_min,
     params:
         settings=SCREEN_SETTINGS,
+        onset_windows=KINETICS.onset_windows,
     script:
         "../scripts/screen_report.py"

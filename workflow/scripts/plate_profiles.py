@@ -8,6 +8,7 @@ from plateloom.io.tables import write_parquet, write_text
 from plateloom.plate.exclusions import ExclusionRules
 from plateloom.plate.stage import PlateDesign, PlateSettings, WellTables, build_plate_tables_from_files, well_flags
 from plateloom.plate.summaries import read_plate_dataset
+from plateloom.plate.time_courses import TimeWindows
 from plateloom.setup.screen_sheet import load_layout
 
 sm = snakemake  # noqa: F821  (injected by Snakemake's script directive)
@@ -22,6 +23,18 @@ def step() -> None:
         read_plate_dataset(list(sm.input.collective)),
     )
     design = PlateDesign(sm.wildcards.plate, sm.params.batch, sm.params.plate_format, layout)
+    kinetics = settings["kinetics"]
+    treated = sm.params.treatment_time_min
+    windows = (
+        TimeWindows(
+            kinetics["window_min"],
+            treated if treated is not None else 0.0,
+            "treatment" if treated is not None else "first_frame",
+            kinetics["max_control_drift"],
+        )
+        if kinetics["enabled"]
+        else None
+    )
     tables = build_plate_tables_from_files(
         list(sm.input.cells),
         well_tables,
@@ -29,6 +42,7 @@ def step() -> None:
         PlateSettings(**settings["plate"]),
         ExclusionRules(**settings["exclusion_rules"]),
         sm.threads,
+        windows,
     )
     note = unmatched_note(sm.params.image_folder, sm.params.template, sm.params.plate_format, list(sm.params.channels))
     warnings = tables.warnings + ([note] if note else [])
@@ -36,6 +50,8 @@ def step() -> None:
     write_parquet(tables.qc, sm.output.qc, settings)
     write_parquet(tables.ledger, sm.output.ledger, settings)
     write_parquet(tables.edge, sm.output.edge, settings)
+    if tables.time_course is not None:
+        write_parquet(tables.time_course, sm.output.time_courses, settings)
     write_text(
         json.dumps(
             {

@@ -43,6 +43,7 @@ def step() -> None:
         pd.read_parquet(sm.input.edge),
         notes["warnings"],
         notes["site_qc"],
+        pd.read_parquet(sm.input.time_courses) if "time_courses" in sm.input.keys() else None,
     )
     profiles = {c: read_profile(p) for c, p in zip(sm.params.channels, sm.input.flat_fields)}
     flat_fields = {c: image for c, (image, _) in profiles.items()}
@@ -56,6 +57,7 @@ def step() -> None:
         read_thumbnails(list(sm.input.thumbnails)),
         notes.get("flagged_wells", {}),
         {c: skipped for c, (_, skipped) in profiles.items() if skipped},
+        sm.params.max_control_drift,
     )
     html = build_plate_report(tables, page_info)
     write_text(html, sm.output.report)

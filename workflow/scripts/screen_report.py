@@ -30,8 +30,11 @@ def step() -> None:
         design=pd.read_parquet(sm.input.design_check),
         correction_notes=read_extra(sm.input.model_wells).get("notes", []),
         design_warnings=read_extra(sm.input.model_wells).get("design_warnings", []),
+        effects_over_time=pd.read_parquet(sm.input.kinetics[0]) if sm.input.kinetics else None,
+        kinetic_summary=pd.read_parquet(sm.input.kinetics[1]) if sm.input.kinetics else None,
     )
-    html = build_screen_report(results, dict(sm.params.settings), read_provenance(sm.input.effects))
+    settings = dict(sm.params.settings) | {"onset_windows": sm.params.onset_windows}
+    html = build_screen_report(results, settings, read_provenance(sm.input.effects))
     write_figure(volcano_plot(effects), sm.output.volcano)
     write_figure(batch_components_plot(pd.read_parquet(sm.input.components)), sm.output.batch_pca)
     write_text(html, sm.output.report)

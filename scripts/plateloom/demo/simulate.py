@@ -24,7 +24,7 @@ import pandas as pd
 import tifffile
 from scipy import ndimage
 
-from plateloom.demo.scenario import QUANTITIES, WITHOUT_NUISANCE, treatment_ratios
+from plateloom.demo.scenario import QUANTITIES, WITHOUT_NUISANCE, reporter_course, treatment_ratios
 from plateloom.io.tables import atomic_path
 from plateloom.setup.plate_formats import is_edge_well, plate_format
 
@@ -199,6 +199,25 @@ def _render_labels(cells: _Cells, size: int) -> np.ndarray:
     return labels
 
 
+def _truth_rows(cells: _Cells, frame: int, pixel_um: float, dying: np.ndarray) -> pd.DataFrame:
+    return pd.DataFrame(
+        {
+            "frame": frame,
+            "cell": cells.identity,
+            "x_um": cells.position[:, 1] * pixel_um,
+            "y_um": cells.position[:, 0] * pixel_um,
+            "dies": dying,
+        }
+    )
+
+
+def _camera_image(drawn: np.ndarray, illumination: np.ndarray, imaging: dict, rng: np.random.Generator) -> np.ndarray:
+    """A drawn channel through the microscope: blur, background, vignetting, Gaussian noise, 16 bits."""
+    signal = ndimage.gaussian_filter(drawn, imaging["blur_sigma_px"])
+    image = (signal + imaging["background"]) * illumination + rng.normal(0, imaging["noise_sd"], drawn.shape)
+    return np.clip(np.rint(image), 0, 65535).astype(np.uint16)
+
+
 @dataclass
 class SiteTruth:
     """Planted truth of one simulated site: label images (frames, y, x) with cell i as label i + 1,
@@ -209,12 +228,17 @@ class SiteTruth:
 
 
 def simulate_site(
-    scenario: dict, factor: dict[str, float], rng: np.random.Generator, with_truth: bool = False
+    scenario: dict,
+    factor: dict[str, float],
+    rng: np.random.Generator,
+    with_truth: bool = False,
+    reporter_course: np.ndarray | None = None,
 ) -> np.ndarray | tuple[np.ndarray, SiteTruth]:
     """Images of one site: array (frames, 2 channels, y, x) uint16, nuclei then reporter.
 
-    With ``with_truth`` also the planted truth (the images are the same either way); its
-    positions table has a ``dies`` column (True in a cell's last frame when it dies).
+    ``reporter_course`` (one ratio per frame) scales the reporter over time. With ``with_truth``
+    also the planted truth (the images are the same either way); its positions table has a
+    ``dies`` column (True in a cell's last frame when it dies).
     """
     size, frames = scenario["image_size_px"], scenario["frames"]
     imaging, cell = scenario["imaging"], scenario["cell"]
@@ -235,24 +259,13 @@ def simulate_site(
         )
         oscillation = 1 + cell["reporter_oscillation_amplitude"] * np.sin(cells.phase) + cells.fluctuation
         reporter = cells.reporter * np.clip(oscillation, 0.05, None) * np.where(dying, cell["death_reporter_jump"], 1.0)
+        if reporter_course is not None:
+            reporter = reporter * reporter_course[frame]
         for channel, levels in enumerate((cells.nuclear, reporter)):
-            signal = ndimage.gaussian_filter(_render(cells, levels, size), imaging["blur_sigma_px"])
-            image = (signal + imaging["background"]) * illumination + rng.normal(0, imaging["noise_sd"], (size, size))
-            stack[frame, channel] = np.clip(np.rint(image), 0, 65535).astype(np.uint16)
+            stack[frame, channel] = _camera_image(_render(cells, levels, size), illumination, imaging, rng)
         if with_truth:
             truth_labels[frame] = _render_labels(cells, size)
-            pixel = scenario["pixel_size_um"]
-            positions.append(
-                pd.DataFrame(
-                    {
-                        "frame": frame,
-                        "cell": cells.identity,
-                        "x_um": cells.position[:, 1] * pixel,
-                        "y_um": cells.position[:, 0] * pixel,
-                        "dies": dying,
-                    }
-                )
-            )
+            positions.append(_truth_rows(cells, frame, scenario["pixel_size_um"], dying))
         recent_deaths.append(cells.position[dying].copy())
         cells = cells.keep(~dying)
         _advance_reporter(rng, cells, scenario, factor.get("coupling", 1.0))
@@ -297,9 +310,10 @@ def write_demo_plate(scenario: dict, layout: pd.DataFrame, plate: str, batch: st
     for _, row in layout[layout["role"] != "empty"].iterrows():
         dose = 0.0 if np.isnan(row["dose"]) else float(row["dose"])
         factor = well_factors(scenario, plate, batch, row["well"], row["condition"], dose)
+        course = reporter_course(scenario, row["condition"], dose)
         for site in range(1, scenario["sites_per_well"] + 1):
             rng = _stable_rng(scenario["seed"], "site", plate, row["well"], str(site))
-            stack = simulate_site(scenario, factor, rng)
+            stack = simulate_site(scenario, factor, rng, reporter_course=course)
             for channel, name in enumerate(names):
                 path = os.path.join(folder, f"{row['well']}_s{site}_{name}.tif")
                 with atomic_path(path) as tmp:

@@ -71,6 +71,25 @@ def atomic_path(path: str) -> Iterator[str]:
             os.remove(tmp)
 
 
+def hive_keys(path: str) -> list[str]:
+    """The key names of the ``key=value`` folders of ``path`` (e.g. plate, chunk, well)."""
+    return [part.split("=", 1)[0] for part in os.path.normpath(path).split(os.sep)[:-1] if "=" in part]
+
+
+def _keys_as_partitions(table: pa.Table, path: str) -> pa.Table:
+    """Columns named like a ``key=value`` folder of ``path`` stored as dictionary<int32, string>:
+    the type pyarrow (and so pandas) gives a Hive partition key, so that a folder of these files
+    opens as one dataset whether the key is read from the files or from the folder names."""
+    for key in hive_keys(path):
+        if key in table.column_names:
+            column = table.column(key).cast(pa.string())
+            index = table.column_names.index(key)
+            table = table.set_column(
+                index, key, column.dictionary_encode().cast(pa.dictionary(pa.int32(), pa.string()))
+            )
+    return table
+
+
 def write_parquet(frame: pd.DataFrame, path: str, settings: object, extra: dict | None = None) -> None:
     """Write ``frame`` to ``path`` atomically (temporary file in the same folder, then rename).
 
@@ -78,7 +97,7 @@ def write_parquet(frame: pd.DataFrame, path: str, settings: object, extra: dict 
     is stored in the file metadata and read back by ``read_extra``. Text and categorical
     columns are dictionary-encoded, numbers are not; Snappy compression.
     """
-    table = pa.Table.from_pandas(frame, preserve_index=False)
+    table = _keys_as_partitions(pa.Table.from_pandas(frame, preserve_index=False), path)
     meta = dict(table.schema.metadata or {})
     meta[PROVENANCE_KEY] = json.dumps(provenance(settings), sort_keys=True).encode()
     if extra is not None:

@@ -25,6 +25,13 @@ from plateloom.plate.summaries import (
     observation_summaries,
     summarise_wells,
 )
+from plateloom.plate.time_courses import (
+    TimeWindows,
+    drift_notes,
+    observation_windows,
+    time_course_table,
+    window_cell_counts,
+)
 from plateloom.settings import FromSchema
 from plateloom.stats import MAD_TO_SD, mad
 from plateloom.well.image_qc import jumped_frames
@@ -50,6 +57,7 @@ class PlateTables:
     edge: pd.DataFrame
     warnings: list[str]
     site_summary: dict[str, float]
+    time_course: pd.DataFrame | None = None
 
 
 def summarise_site_qc(site_qc: pd.DataFrame) -> dict[str, float]:
@@ -173,17 +181,25 @@ class WellTables:
 
 
 def build_plate_tables(
-    cells: pd.DataFrame, tables: WellTables, design: PlateDesign, settings: PlateSettings, rules: ExclusionRules
+    cells: pd.DataFrame,
+    tables: WellTables,
+    design: PlateDesign,
+    settings: PlateSettings,
+    rules: ExclusionRules,
+    windows: TimeWindows | None = None,
 ) -> PlateTables:
     """Everything the plate stage writes, from the per-well tables of one plate held in memory.
 
-    The collective readouts, if given, join the well profiles as features.
-    ``build_plate_tables_from_files`` (what the rule runs) gives the same tables without holding
-    the cells table.
+    The collective readouts, if given, join the well profiles as features; with ``windows`` the
+    well time courses are made too. ``build_plate_tables_from_files`` (what the rule runs) gives
+    the same tables without holding the cells table.
     """
     excluded = site_frame_exclusions(tables.site_qc, rules, design.plate)
-    summaries = observation_summaries(drop_excluded_site_frames(cells, excluded), settings.well_summary)
-    return _plate_tables(_Observed(observation_counts(cells), summaries, excluded), tables, design, settings, rules)
+    kept = drop_excluded_site_frames(cells, excluded)
+    summaries = observation_summaries(kept, settings.well_summary)
+    window_values = observation_windows(kept, list(summaries.columns), windows) if windows else None
+    observed = _Observed(observation_counts(cells), summaries, excluded, window_values)
+    return _plate_tables(observed, tables, design, settings, rules, windows)
 
 
 def build_plate_tables_from_files(
@@ -193,16 +209,19 @@ def build_plate_tables_from_files(
     settings: PlateSettings,
     rules: ExclusionRules,
     threads: int = 1,
+    windows: TimeWindows | None = None,
 ) -> PlateTables:
     """``build_plate_tables`` reading the cells tables well folder by well folder on ``threads``
     threads: the observation features are summarised per well as each folder is read
     (``summarise_observation_files``) and only the observation counts per site and frame are held
     for the whole plate. Same tables."""
     excluded = site_frame_exclusions(tables.site_qc, rules, design.plate)
-    summaries, counts = summarise_observation_files(
-        cell_folders, excluded_site_frames(excluded), settings.well_summary, threads
+    window = (windows.window_min, windows.origin_min) if windows else None
+    streamed = summarise_observation_files(
+        cell_folders, excluded_site_frames(excluded), settings.well_summary, threads, window
     )
-    return _plate_tables(_Observed(counts, summaries, excluded), tables, design, settings, rules)
+    observed = _Observed(streamed.counts, streamed.summaries, excluded, streamed.windows)
+    return _plate_tables(observed, tables, design, settings, rules, windows)
 
 
 @dataclass(frozen=True)
@@ -213,6 +232,7 @@ class _Observed:
     counts: pd.DataFrame
     summaries: pd.DataFrame
     site_frame_ledger: pd.DataFrame
+    windows: pd.DataFrame | None = None  # per (well, time window) medians, when asked for
 
 
 def _well_profile(observed: _Observed, tables: WellTables, design: PlateDesign, statistic: str) -> pd.DataFrame:
@@ -267,8 +287,23 @@ def _cell_count_outliers(profile: pd.DataFrame, kept: np.ndarray) -> np.ndarray:
     return np.abs(z) > 3.5
 
 
+def _time_course(observed: _Observed, profile: pd.DataFrame, windows: TimeWindows) -> tuple[pd.DataFrame, list[str]]:
+    """The plate's time-course table and the warnings about its negative controls' drift."""
+    kept_counts = drop_excluded_site_frames(observed.counts, observed.site_frame_ledger)
+    cell_counts = window_cell_counts(kept_counts, windows.window_min, windows.origin_min)
+    table = time_course_table(
+        observed.windows, cell_counts, profile, windows.window_min, (windows.origin_min, windows.origin_name)
+    )
+    return table, drift_notes(table, list(observed.summaries.columns), windows)
+
+
 def _plate_tables(
-    observed: _Observed, tables: WellTables, design: PlateDesign, settings: PlateSettings, rules: ExclusionRules
+    observed: _Observed,
+    tables: WellTables,
+    design: PlateDesign,
+    settings: PlateSettings,
+    rules: ExclusionRules,
+    windows: TimeWindows | None = None,
 ) -> PlateTables:
     """The plate tables from what the well folders held (see ``_Observed``)."""
 
@@ -294,4 +329,8 @@ def _plate_tables(
         else ""
     )
     edge = pd.DataFrame(edge_rows)
-    return PlateTables(profile, qc, ledger_table, edge, warnings, summarise_site_qc(tables.site_qc))
+    time_course = None
+    if windows is not None and observed.windows is not None:
+        time_course, notes = _time_course(observed, profile, windows)
+        warnings += notes
+    return PlateTables(profile, qc, ledger_table, edge, warnings, summarise_site_qc(tables.site_qc), time_course)

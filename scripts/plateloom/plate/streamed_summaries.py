@@ -6,6 +6,7 @@ from __future__ import annotations
 
 import os
 from concurrent.futures import ThreadPoolExecutor
+from typing import NamedTuple
 
 import numpy as np
 import pandas as pd
@@ -15,6 +16,7 @@ import pyarrow.parquet as pq
 from plateloom.columns import observation_features
 from plateloom.errors import InputError
 from plateloom.plate.summaries import COUNT_COLUMNS_OF_OBSERVATIONS, block_summaries, check_statistic, well_files
+from plateloom.plate.time_courses import window_medians, window_table
 
 # Columns of the cells table that the plate stage needs besides the features.
 KEY_COLUMNS_FOR_PROFILES = ("site", "frame", "time_min", "touches_border")
@@ -72,11 +74,16 @@ def _lowest_values(columns: list[np.ndarray], rows: np.ndarray) -> list[float]:
 
 
 def _summarise_well_folder(
-    paths: list[str], features: list[str], excluded: dict[str, np.ndarray], with_log: bool
+    paths: list[str],
+    features: list[str],
+    excluded: dict[str, np.ndarray],
+    with_log: bool,
+    window: tuple[float, float] | None = None,
 ) -> dict[str, object]:
     """Read the files of one well folder and summarise every feature per well over its kept rows
     (not touching the border, site-frame not in ``excluded``: well -> site * 2**32 + frame keys);
-    count its observations per site and frame."""
+    count its observations per site and frame; with ``window`` (length and origin in minutes),
+    also the medians per time window (``plateloom.plate.time_courses``)."""
     tables = [
         pq.ParquetFile(path, read_dictionary=["well"]).read(
             columns=features + list(KEY_COLUMNS_FOR_PROFILES) + ["well"], use_threads=False
@@ -91,7 +98,7 @@ def _summarise_well_folder(
     lowest = np.full((len(names), len(features)), np.inf)
     whole = ~keys["touches_border"].astype(bool)
     site_frame = _site_frame_key(keys["site"], keys["frame"])
-    counts = []
+    counts, windows = [], []
     for code, name in enumerate(names):
         rows = codes == code
         where = f"well {name} ({os.path.dirname(paths[0])})"
@@ -108,10 +115,19 @@ def _summarise_well_folder(
         block = np.empty((len(features), n_kept))
         for j, column in enumerate(columns):
             np.compress(kept, column, out=block[j])
+        if window is not None:
+            windows.append((name, *window_medians(block, keys["time_min"][kept], *window)))
         median[code] = block_summaries(block, np.zeros(len(features), bool))
         if with_log:
             mean_log[code] = block_summaries(block, np.ones(len(features), bool))
-    return {"names": names, "counts": counts, "median": median, "mean_log": mean_log, "lowest": lowest}
+    return {
+        "names": names,
+        "counts": counts,
+        "median": median,
+        "mean_log": mean_log,
+        "lowest": lowest,
+        "windows": windows,
+    }
 
 
 def _cells_features(path: str) -> list[str]:
@@ -156,16 +172,30 @@ def _joined_counts(parts: list[dict]) -> pd.DataFrame:
     return counts.astype({"site": np.int64, "frame": np.int64, "observations": np.int64, "whole": np.int64})
 
 
+class StreamedSummaries(NamedTuple):
+    """What one pass over a plate's cells files gives (see ``summarise_observation_files``)."""
+
+    summaries: pd.DataFrame
+    counts: pd.DataFrame
+    windows: pd.DataFrame | None
+
+
 def summarise_observation_files(
-    folders: list[str], excluded_site_frames: pd.DataFrame, statistic: str = "median", threads: int = 1
-) -> tuple[pd.DataFrame, pd.DataFrame]:
+    folders: list[str],
+    excluded_site_frames: pd.DataFrame,
+    statistic: str = "median",
+    threads: int = 1,
+    window: tuple[float, float] | None = None,
+) -> StreamedSummaries:
     """Stream the per-well cells files of a plate once, a well folder per task on ``threads`` threads.
 
     Returns (summaries, counts). summaries: one row per well (index ``well``), the summary of
     every observation feature over the observations kept (not touching the image border, not in
     a site-frame of ``excluded_site_frames``: columns well, site, frame), as
     ``observation_summaries`` computes it from the whole table. counts: the
-    ``observation_counts`` of every observation. No plate-wide table of observations is made:
+    ``observation_counts`` of every observation. windows (with ``window``: length and origin
+    in minutes): one row per (well, time window), the medians of the same kept observations in
+    it (``plateloom.plate.time_courses.window_table``). No plate-wide table of observations is made:
     peak memory is about one well per thread.
     """
     check_statistic(statistic)
@@ -180,8 +210,9 @@ def summarise_observation_files(
     with ThreadPoolExecutor(max(1, threads)) as pool:
         parts = list(
             pool.map(
-                lambda group: _summarise_well_folder(group, features, excluded, statistic == "mean_log"),
+                lambda group: _summarise_well_folder(group, features, excluded, statistic == "mean_log", window),
                 [groups[name] for name in sorted(groups)],
             )
         )
-    return _joined_summaries(parts, features, statistic, folders), _joined_counts(parts)
+    windows = window_table([w for part in parts for w in part["windows"]], features) if window else None
+    return StreamedSummaries(_joined_summaries(parts, features, statistic, folders), _joined_counts(parts), windows)

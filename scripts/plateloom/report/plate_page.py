@@ -14,6 +14,7 @@ from plateloom.columns import ANALYSED_ROLES
 from plateloom.plate.stage import PlateTables
 from plateloom.report.html import escape, figure_tag, page, table_tag
 from plateloom.report.thumbnails import thumbnails_html
+from plateloom.report.time_panels import control_time_course_html
 from plateloom.setup.plate_formats import PlateFormat, row_label, well_grid
 
 
@@ -163,6 +164,7 @@ class PlatePage:
     thumbnails: dict[str, bytes] | None = None  # PNG per well (plateloom.well.snapshot)
     flagged_wells: dict[str, list[str]] | None = None  # site-QC flags per well
     flat_field_skipped: dict[str, list[str]] | None = None  # per channel: sampled sites left out, with why
+    max_control_drift: float = 0.2  # kinetics.max_control_drift (natural-log ratio)
 
 
 def _summary_html(tables: PlateTables, page_info: PlatePage) -> str:
@@ -196,6 +198,14 @@ def _maps_html(profile: pd.DataFrame, report_feature: str, fmt: PlateFormat) -> 
     return heatmaps
 
 
+def _controls_over_time(tables: PlateTables, page_info: PlatePage) -> str:
+    course = tables.time_course
+    intensity = [c for c in course.columns if c.startswith("mean_intensity_")] if course is not None else []
+    features = list(dict.fromkeys(["cell_count", page_info.report_feature, *intensity]))
+    drift = f"{page_info.max_control_drift:g} natural-log ratio (kinetics.max_control_drift)"
+    return control_time_course_html(course, features, drift)
+
+
 def build_plate_report(tables: PlateTables, page_info: PlatePage) -> str:
     """The self-contained HTML report of one plate from its plate-stage tables."""
     profile, qc = tables.profile, tables.qc
@@ -212,6 +222,7 @@ def build_plate_report(tables: PlateTables, page_info: PlatePage) -> str:
         ("Z'-factor and SSMD per feature", QC_TEXT + table_tag(qc[QC_COLUMNS])),
         ("Edge effect", EDGE_TEXT + table_tag(tables.edge)),
         ("Image QC", IMAGE_QC_TEXT + table_tag(pd.DataFrame([tables.site_summary]))),
+        ("Controls over time", _controls_over_time(tables, page_info)),
         ("Segmentation and tracks", thumbnails_html(profile, page_info.thumbnails, page_info.flagged_wells)),
         ("Illumination", illumination_html(page_info.flat_fields, page_info.flat_field_skipped)),
         ("Exclusion ledger", ledger_html),

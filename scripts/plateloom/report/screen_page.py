@@ -10,6 +10,7 @@ import pandas as pd
 from matplotlib.ticker import FormatStrFormatter
 
 from plateloom.report.html import escape, figure_tag, page, table_tag
+from plateloom.report.time_panels import kinetics_html
 from plateloom.screen.dose_response import hill_curve
 
 
@@ -160,6 +161,8 @@ class ScreenResults:
     design: pd.DataFrame | None = None
     correction_notes: list[str] = field(default_factory=list)
     design_warnings: list[str] = field(default_factory=list)
+    effects_over_time: pd.DataFrame | None = None
+    kinetic_summary: pd.DataFrame | None = None
 
 
 EFFECT_COLUMNS = [
@@ -303,6 +306,7 @@ def build_screen_report(results: ScreenResults, settings: dict, provenance: dict
         ("Volcano plot", figure_tag(volcano_plot(effects), "volcano plot")),
         ("Effects with confidence intervals", forest),
         ("Dose-response", _dose_html(results.dose_fits, results.dose_points)),
+        ("Effects over time", kinetics_html(results.effects_over_time, results.kinetic_summary, settings)),
         ("Batch diagnostics", _batch_html(results)),
         ("Variance components", _components_html(effects)),
         ("Design check", _design_html(results.design)),

@@ -23,6 +23,7 @@ from plateloom.setup.screen_sheet import (
     load_layout,
     load_screen_sheet,
     mixed_dose_units,
+    treatment_times,
 )
 from plateloom.setup.sizing import ImagingSize, JobSize, analyse_wells_size, screen_size
 
@@ -40,6 +41,8 @@ class ScreenPlan:
     features: list[str] = field(default_factory=list)
     log_features: list[str] = field(default_factory=list)
     imaging: dict[str, ImagingSize] = field(default_factory=dict)
+    kinetic_features: list[str] | None = None  # None: the screen features measured per cell and frame
+    treatment_times: dict[str, float] | None = None  # plate -> minutes from first frame to treatment
     sizing: dict = field(default_factory=dict)
 
     def chunk_ids(self, plate: str) -> list[str]:
@@ -160,9 +163,17 @@ def plan_screen(config: dict) -> ScreenPlan:
     across = mixed_dose_units(pd.concat(layouts_by_path.values()), "the layouts of the screen sheet")
     if across:
         raise across[0]
+    _plan_features(plan, config)
+    plan.treatment_times = treatment_times(entries, config["screen_sheet"])
+    return plan
+
+
+def _plan_features(plan: ScreenPlan, config: dict) -> None:
+    """The screen's features, those on the log scale and those modelled over time (names resolved)."""
     plan.features = resolve_features(config["screen"]["features"], config)
     plan.log_features = resolve_features(config["screen"]["log_scale_features"], config)
-    return plan
+    kinetic = config.get("kinetics", {}).get("features")
+    plan.kinetic_features = resolve_features(kinetic, config) if kinetic is not None else None
 
 
 def resolve_image_scale(config: dict, plan: ScreenPlan) -> dict[str, float]:

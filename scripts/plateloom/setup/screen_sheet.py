@@ -11,6 +11,7 @@ import os
 import re
 from dataclasses import dataclass
 
+import numpy as np
 import pandas as pd
 
 from plateloom.columns import ROLES
@@ -32,6 +33,7 @@ class PlateEntry:
     plate_format: int
     layout: str
     image_folder: str
+    treatment_time_min: float | None = None  # minutes from the first frame to the treatment (optional column)
 
 
 def _read_csv(path: str, what: str) -> pd.DataFrame:
@@ -146,7 +148,43 @@ def _sheet_row(row: pd.Series, line: int, path: str, seen: dict[str, int]) -> Pl
         raise InputError(
             where + ", column image_folder", "image_folder is empty.", "give the folder holding this plate's images."
         )
-    return PlateEntry(plate, row["batch"], fmt.wells, row["layout"], row["image_folder"])
+    treated = _treatment_time(row, where)
+    return PlateEntry(plate, row["batch"], fmt.wells, row["layout"], row["image_folder"], treated)
+
+
+def _treatment_time(row: pd.Series, where: str) -> float | None:
+    """The optional treatment_time_min of a sheet row (None when the column is absent or empty)."""
+    text = row.get("treatment_time_min", "")
+    if not text:
+        return None
+    try:
+        value = float(text)
+    except ValueError:
+        value = float("nan")
+    if not np.isfinite(value):
+        raise InputError(
+            where + ", column treatment_time_min",
+            f"{text!r} is not a number of minutes.",
+            "give the minutes from the first frame to the treatment (negative if treated before imaging), "
+            "or leave it empty.",
+        )
+    return value
+
+
+def treatment_times(entries: list[PlateEntry], path: str) -> dict[str, float] | None:
+    """Treatment time (minutes since the first frame) per plate; None when no plate gives one.
+    Raises when only some plates give one: time after treatment must mean the same on every plate."""
+    given = {e.plate: e.treatment_time_min for e in entries if e.treatment_time_min is not None}
+    if not given:
+        return None
+    missing = [e.plate for e in entries if e.treatment_time_min is None]
+    if missing:
+        raise InputError(
+            path + ", column treatment_time_min",
+            f"plates {', '.join(missing)} give no treatment time while others do.",
+            "give treatment_time_min for every plate, or for none (time then runs from each plate's first frame).",
+        )
+    return given
 
 
 def treatment_label(condition: str, dose: float | None, dose_unit: str) -> str:

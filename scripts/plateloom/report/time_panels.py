@@ -1,0 +1,137 @@
+"""Figures and sections over time: control time courses (plate report) and effect curves with
+their bands and the kinetic summary (screen report)."""
+
+from __future__ import annotations
+
+import matplotlib.pyplot as plt
+import numpy as np
+import pandas as pd
+
+from plateloom.report.html import escape, figure_tag, table_tag
+from plateloom.screen.kinetics import BAND_METHOD
+
+MAX_CURVES_PER_FEATURE = 12
+PANEL_COLUMNS = 4
+SUMMARY_COLUMNS = [
+    "feature",
+    "treatment",
+    "onset_min",
+    "half_max_time_min",
+    "peak_effect",
+    "peak_ci_low",
+    "peak_ci_high",
+    "peak_time_min",
+    "auc",
+    "auc_ci_low",
+    "auc_ci_high",
+    "auc_q_value",
+    "significant_windows",
+    "n_windows",
+]
+
+
+def time_axis_label(origin: str) -> str:
+    return "time after treatment (min)" if origin == "treatment" else "time since first frame (min)"
+
+
+def _midpoints(table: pd.DataFrame) -> np.ndarray:
+    return ((table["window_start_min"] + table["window_end_min"]) / 2).to_numpy(float)
+
+
+def control_time_course_figure(time_course: pd.DataFrame, features: list[str]) -> plt.Figure:
+    """Per feature, each kept negative-control well's window values (thin) and their median (thick)."""
+    kept = time_course["excluded_by"].fillna("") == ""
+    controls = time_course[(time_course["role"] == "negative_control") & kept]
+    figure, axes = plt.subplots(1, len(features), figsize=(3.3 * len(features), 2.8), squeeze=False)
+    for axis, feature in zip(axes[0], features):
+        for _, well in controls.groupby("well", observed=True):
+            axis.plot(_midpoints(well), well[feature], color="#8a9aa8", linewidth=0.8, alpha=0.7)
+        median = controls.groupby("window_start_min")[feature].median()
+        ends = controls.groupby("window_start_min")["window_end_min"].first()
+        axis.plot((median.index + ends) / 2, median.to_numpy(), color="#33546e", linewidth=2.2, label="median")
+        axis.set_title(feature, fontsize=9)
+        axis.set_xlabel(time_axis_label(str(time_course["time_origin"].iloc[0])), fontsize=8)
+        axis.tick_params(labelsize=7)
+    axes[0][0].legend(fontsize=7)
+    figure.tight_layout()
+    return figure
+
+
+def control_time_course_html(time_course: pd.DataFrame | None, features: list[str], max_drift: str) -> str:
+    """The plate report's section on the negative controls over time."""
+    if time_course is None or time_course.empty:
+        return "<p>No time courses (kinetics.enabled is false).</p>"
+    shown = [f for f in features if f in time_course.columns][:4]
+    return (
+        "<p>Negative-control wells per time window (thin: each well; thick: their median). Controls should be "
+        "flat over the run apart from the cell count, which grows with proliferation; a drift of a feature by "
+        f"more than {escape(max_drift)} is listed under warnings in the summary.</p>"
+        + figure_tag(control_time_course_figure(time_course, shown), "negative controls over time")
+    )
+
+
+def effect_curves_figure(curves: pd.DataFrame, feature: str) -> plt.Figure:
+    """Small multiples, one per treatment: the effect per window with its pointwise interval (bars)
+    and the simultaneous band (shaded); zero = no effect."""
+    treatments = list(dict.fromkeys(curves["treatment"]))
+    columns = min(PANEL_COLUMNS, len(treatments))
+    rows = int(np.ceil(len(treatments) / columns))
+    figure, axes = plt.subplots(rows, columns, figsize=(3.2 * columns, 2.5 * rows), squeeze=False, sharey=True)
+    log_scale = (curves["scale"] == "log").all()
+    for axis, treatment in zip(axes.ravel(), treatments):
+        curve = curves[curves["treatment"] == treatment].sort_values("window")
+        t = _midpoints(curve)
+        axis.fill_between(t, curve["band_low"], curve["band_high"], color="#b8322a", alpha=0.15, linewidth=0)
+        estimate = curve["estimate"].to_numpy(float)
+        bars = [estimate - curve["ci_low"].to_numpy(float), curve["ci_high"].to_numpy(float) - estimate]
+        axis.errorbar(t, estimate, yerr=bars, color="#33546e", marker="o", markersize=3, linewidth=1.2, capsize=2)
+        axis.axhline(0.0, color="grey", linestyle="--", linewidth=0.8)
+        axis.set_title(str(treatment), fontsize=8)
+        axis.tick_params(labelsize=7)
+        axis.set_xlabel(time_axis_label(str(curve["time_origin"].iloc[0])), fontsize=7)
+    for axis in axes.ravel()[len(treatments) :]:
+        axis.set_visible(False)
+    unit = "natural-log ratio to controls" if log_scale else "difference from controls"
+    for axis in axes[:, 0]:
+        axis.set_ylabel(f"{feature}\n{unit}", fontsize=7)
+    figure.tight_layout()
+    return figure
+
+
+def _moving(effects: pd.DataFrame, feature: str, threshold: float) -> pd.DataFrame:
+    """The curves of one feature worth showing: treatments with a significant window (q-value at most
+    ``threshold``; positive controls by p-value), most significant windows first, at most MAX_CURVES_PER_FEATURE."""
+    rows = effects[effects["feature"] == feature]
+    significant = (rows["q_value"] <= threshold) | ((rows["role"] != "test") & (rows["p_value"] <= threshold))
+    counts = rows.assign(_s=significant).groupby("treatment")["_s"].sum()
+    chosen = counts[counts > 0].sort_values(ascending=False).index[:MAX_CURVES_PER_FEATURE]
+    return rows[rows["treatment"].isin(chosen)]
+
+
+def kinetics_html(effects: pd.DataFrame | None, summary: pd.DataFrame | None, settings: dict) -> str:
+    """The screen report's section on effects over time."""
+    if effects is None or summary is None or effects.empty:
+        return "<p>Not run (kinetics.enabled is false).</p>"
+    origin = str(effects["time_origin"].iloc[0])
+    text = (
+        f"<p>Each time window ({escape(time_axis_label(origin))}) is fitted with the endpoint model; bars are "
+        f"pointwise {settings['ci_level']:.0%} intervals, the shaded band is simultaneous over each curve "
+        f"({escape(BAND_METHOD)}). A window is significant at a q-value of at most "
+        f"{settings['hit_q_value']:g} (Benjamini-Hochberg over every feature, test treatment and window; "
+        "positive controls, outside the family, by their p-value). "
+        f"Onset: the start of the first window from which {settings.get('onset_windows', 2)} consecutive windows are "
+        "significant (or every remaining window). Time to half maximum: interpolated between window midpoints. "
+        "The area under the effect curve (model-scale units x min) is fitted on each well's own area, wells "
+        "with every window only. Shown per feature: treatments with a significant window.</p>"
+    )
+    panels = ""
+    for feature in effects["feature"].unique():
+        moving = _moving(effects, feature, settings["hit_q_value"])
+        if not moving.empty:
+            panels += f"<h3>{escape(feature)}</h3>" + figure_tag(
+                effect_curves_figure(moving, feature), f"effects over time {feature}"
+            )
+    ordered = summary.sort_values(["onset_min", "feature", "treatment"], na_position="last")
+    acting = ordered[ordered["significant_windows"] > 0]
+    table = table_tag(acting[SUMMARY_COLUMNS]) if not acting.empty else "<p>No treatment acts in any window.</p>"
+    return text + (panels or "<p>No curve has a significant window.</p>") + "<p>Kinetic summary (by onset):</p>" + table

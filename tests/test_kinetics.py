@@ -1,0 +1,125 @@
+"""Effects over time: windows, time courses, bands, onset and half-maximum rules, the kinetic summary."""
+
+import numpy as np
+import pandas as pd
+import pytest
+from scipy import stats
+
+from plateloom.plate.time_courses import (
+    TimeWindows,
+    control_drift,
+    drift_notes,
+    window_index,
+    window_medians,
+)
+from plateloom.screen.kinetics import (
+    BAND_METHOD,
+    add_simultaneous_band,
+    half_maximum_time,
+    kinetic_features,
+    onset_window,
+    well_areas,
+)
+
+
+def test_window_index_counts_whole_windows_from_the_origin():
+    times = np.array([0.0, 5.0, 29.9, 30.0, 59.0, 60.0, np.nan, -5.0])
+    assert window_index(times, 30.0).tolist() == [0, 0, 0, 1, 1, 2, -1, -1]
+    # from a treatment 10 min after the first frame: the frames before it belong to no window
+    assert window_index(times, 30.0, origin_min=10.0).tolist() == [-1, -1, 0, 0, 1, 1, -1, -1]
+    with pytest.raises(ValueError, match="window_min"):
+        window_index(times, 0.0)
+
+
+def test_window_medians_equal_pandas_groupby_medians():
+    # Reference: pandas groupby median (NaN skipped) per window of floor(t / 20).
+    rng = np.random.default_rng(3)
+    times = rng.choice(np.arange(0, 120, 5.0), 500)
+    values = rng.lognormal(0, 1, (2, 500))
+    values[1, rng.random(500) < 0.2] = np.nan
+    before = values.copy()
+    numbers, medians, counts = window_medians(values, times, 20.0)
+    frame = pd.DataFrame({"w": np.floor(times / 20).astype(int), "a": values[0], "b": values[1]})
+    expected = frame.groupby("w")[["a", "b"]].median()
+    assert numbers.tolist() == expected.index.tolist() == list(range(6))
+    np.testing.assert_allclose(medians, expected.to_numpy(), rtol=1e-12)
+    assert counts.tolist() == frame.groupby("w").size().tolist()
+    np.testing.assert_array_equal(values, before)  # the block is not reordered
+
+
+def test_onset_needs_the_stated_run_of_significant_windows():
+    assert onset_window(np.array([False, True, False, True, True, True]), 2) == 3
+    assert onset_window(np.array([False, True, False, True, True, True]), 1) == 1
+    assert onset_window(np.array([False, False, False, False, True]), 2) == 4  # the last window: all that remain
+    assert onset_window(np.array([False, False]), 2) == -1
+
+
+def test_half_maximum_time_is_interpolated_between_window_midpoints():
+    midpoints = np.array([15.0, 45.0, 75.0, 105.0])
+    # peak -0.8 at 105 min; half is -0.4, reached between -0.2 (45 min) and -0.6 (75 min): at 60 min
+    assert half_maximum_time(midpoints, np.array([0.0, -0.2, -0.6, -0.8]), 3) == pytest.approx(60.0)
+    assert half_maximum_time(midpoints, np.array([0.5, 0.6, 0.2, 0.1]), 1) == 15.0
+    assert np.isnan(half_maximum_time(midpoints, np.array([0.0, 0.0, 0.0, 0.0]), 0))
+
+
+def test_simultaneous_band_is_the_bonferroni_t_interval_over_the_curve():
+    # Reference: Bonferroni's inequality with the t quantile from scipy: t_{df}(1 - 0.05 / (2 W)).
+    table = pd.DataFrame(
+        {
+            "feature": "f",
+            "treatment": ["a"] * 4 + ["b"] * 2,
+            "estimate": [0.1, 0.2, np.nan, 0.3, 1.0, 2.0],
+            "std_error": [0.1, 0.1, np.nan, 0.2, 0.5, 0.5],
+            "df": [10.0, 12.0, np.nan, 8.0, 30.0, 3.0],
+        }
+    )
+    band = add_simultaneous_band(table, 0.95)
+    quantile = stats.t.ppf(1 - 0.05 / (2 * 3), 8.0)  # treatment a has 3 windows with an estimate
+    assert band.loc[3, "band_high"] == pytest.approx(0.3 + quantile * 0.2, rel=1e-12)
+    assert band.loc[5, "band_low"] == pytest.approx(2.0 - stats.t.ppf(1 - 0.05 / 4, 3.0) * 0.5, rel=1e-12)
+    assert band["band_windows"].tolist() == [3, 3, 3, 3, 2, 2]
+    assert band.loc[0, "band_method"] == BAND_METHOD and band.loc[2, "band_method"] == ""
+    pointwise = stats.t.ppf(0.975, 10.0) * 0.1
+    assert band.loc[0, "band_high"] - 0.1 > pointwise  # wider than the pointwise interval
+
+
+def test_kinetic_features_default_to_the_screen_features_measured_per_window():
+    columns = ["well", "window", "cell_count", "area_um2", "mean_intensity_reporter"]
+    assert kinetic_features(None, ["cell_count", "area_um2", "speed_um_per_min"], columns) == ["cell_count", "area_um2"]
+    with pytest.raises(ValueError, match="speed_um_per_min"):
+        kinetic_features(["speed_um_per_min"], [], columns)
+
+
+def test_well_area_is_value_times_window_length_and_missing_for_an_incomplete_well():
+    rows = pd.DataFrame(
+        {
+            "plate": "P",
+            "well": ["A01", "A01", "A02", "A02", "A03"],
+            "plate_well": ["P/A01", "P/A01", "P/A02", "P/A02", "P/A03"],
+            "window": [0, 1, 0, 1, 0],
+            "window_start_min": [0.0, 30.0, 0.0, 30.0, 0.0],
+            "window_end_min": [30.0, 60.0, 30.0, 60.0, 30.0],
+            "n_sites": 1,
+            "count_only": False,
+            "f": [1.0, 2.0, 0.5, np.nan, 3.0],
+        }
+    )
+    areas = well_areas(rows, "f").set_index("well")["f"]
+    assert areas["A01"] == pytest.approx(90.0)
+    assert np.isnan(areas["A02"]) and np.isnan(areas["A03"])
+
+
+def test_control_drift_flags_a_plate_whose_controls_move_over_the_run():
+    table = pd.DataFrame(
+        {
+            "role": ["negative_control"] * 6 + ["test"] * 3,
+            "excluded_by": "",
+            "window_start_min": [0, 0, 60, 60, 120, 120, 0, 60, 120],
+            "area_um2": [100, 102, 110, 108, 140, 136, 50, 50, 50.0],
+            "mean_intensity_reporter": [10, 10, 10, 10, 10.5, 10.5, 1, 2, 3.0],
+        }
+    )
+    drift = control_drift(table, ["area_um2", "mean_intensity_reporter"]).set_index("feature")
+    assert drift.loc["area_um2", "log_ratio"] == pytest.approx(np.log(138 / 101))
+    notes = drift_notes(table, ["area_um2", "mean_intensity_reporter"], TimeWindows(60.0, max_control_drift=0.2))
+    assert len(notes) == 1 and "area_um2 x1.37" in notes[0] and "mean_intensity_reporter" not in notes[0]
