@@ -134,7 +134,8 @@ def test_time_course_tables_open_as_one_dataset_with_every_reader(collective_scr
     assert with_pandas["plate"].nunique() == 6 and set(plain.column("plate").to_pylist()) == set(with_pandas["plate"])
     import duckdb
 
-    counted = duckdb.sql(f"select count(*), count(distinct plate) from read_parquet('{folder}/*/*.parquet')").fetchone()
+    query = f"select count(*), count(distinct plate) from read_parquet('{folder}/*/*.parquet')"
+    counted = duckdb.sql(query).fetchall()[0]
     assert counted == (len(with_pandas), 6)
     # Reports: the screen report shows the effect curves, each plate report its controls over time.
     screen = (collective_screen / "results/reports/screen.html").read_text()

@@ -123,3 +123,106 @@ def test_control_drift_flags_a_plate_whose_controls_move_over_the_run():
     assert drift.loc["area_um2", "log_ratio"] == pytest.approx(np.log(138 / 101))
     notes = drift_notes(table, ["area_um2", "mean_intensity_reporter"], TimeWindows(60.0, max_control_drift=0.2))
     assert len(notes) == 1 and "area_um2 x1.37" in notes[0] and "mean_intensity_reporter" not in notes[0]
+
+
+def _curves() -> pd.DataFrame:
+    """Effects over time of two treatments on one feature (invented numbers for the figure)."""
+    rows = []
+    for treatment, shape in (("LOOM-107 10 uM", [0, 0, 0.2, 0.6, 0.6, 0.6]), ("LOOM-104 1 uM", [0.0] * 6)):
+        for window, effect in enumerate(shape):
+            rows.append(
+                {
+                    "feature": "mean_intensity_reporter",
+                    "treatment": treatment,
+                    "role": "test",
+                    "scale": "log",
+                    "window": window,
+                    "window_start_min": 30.0 * window,
+                    "window_end_min": 30.0 * window + 30,
+                    "time_origin": "treatment",
+                    "estimate": effect,
+                    "ci_low": effect - 0.08,
+                    "ci_high": effect + 0.08,
+                    "band_low": effect - 0.12,
+                    "band_high": effect + 0.12,
+                    "p_value": 1e-6 if effect > 0.1 else 0.5,
+                    "q_value": 1e-5 if effect > 0.1 else 0.6,
+                    "hit": effect > 0.1,
+                }
+            )
+    return pd.DataFrame(rows)
+
+
+def test_effect_curves_have_time_axes_and_render_in_headless_chromium(tmp_path):
+    import os
+    import subprocess
+
+    from skimage.io import imread
+    from test_reports import _chromium
+
+    from plateloom.report.time_panels import effect_curves_figure, kinetics_html
+
+    curves = _curves()
+    figure = effect_curves_figure(curves, "mean_intensity_reporter")
+    assert figure.axes[0].get_xlabel() == "time after treatment (min)"
+    assert "natural-log ratio" in figure.axes[0].get_ylabel()
+    summary = pd.DataFrame(
+        [
+            {"feature": "mean_intensity_reporter", "treatment": "LOOM-107 10 uM", "onset_min": 60.0}
+            | dict.fromkeys(["half_max_time_min", "peak_effect", "peak_ci_low", "peak_ci_high", "peak_time_min"], 1.0)
+            | dict.fromkeys(["auc", "auc_ci_low", "auc_ci_high", "auc_q_value"], 1.0)
+            | {"significant_windows": 4, "n_windows": 6}
+        ]
+    )
+    html = kinetics_html(curves, summary, {"ci_level": 0.95, "hit_q_value": 0.05, "onset_windows": 2})
+    # only the curve with a significant window is drawn; the summary lists it by onset
+    assert "LOOM-107 10 uM" in html and 'alt="effects over time mean_intensity_reporter"' in html
+    if _chromium() is None:
+        if os.environ.get("PLATELOOM_REQUIRE_CHROMIUM"):
+            pytest.fail("chromium is required here (PLATELOOM_REQUIRE_CHROMIUM is set) but not installed")
+        pytest.skip("Debian package chromium not installed (.ci/run installs it)")
+    page = tmp_path / "kinetics.html"
+    page.write_text(f"<html><body style='margin:0;background:#fff'>{html}</body></html>", encoding="utf-8")
+    shot = tmp_path / "shot.png"
+    command = [_chromium(), "--headless", "--no-sandbox", "--disable-gpu", "--no-first-run"]
+    command += [f"--user-data-dir={tmp_path / 'profile'}", "--window-size=900,900", f"--screenshot={shot}"]
+    subprocess.run([*command, page.as_uri()], check=True, capture_output=True, timeout=120)
+    pixels = imread(shot)[..., :3].astype(int)
+    # the band's pale red (#b8322a at 15% on white) shows only if the figure was decoded and drawn
+    band = (np.abs(pixels - np.array([241, 224, 223])).sum(axis=-1) < 25).sum()
+    assert band > 1000, band
+
+
+def test_treatment_time_is_given_for_every_plate_or_for_none(tmp_path):
+    from plateloom.errors import InputError
+    from plateloom.setup.screen_sheet import load_screen_sheet, treatment_times
+
+    layout = tmp_path / "layout.csv"
+    layout.write_text("well,role,condition,dose,dose_unit\nA01,negative_control,vehicle,,\n")
+    header = "plate,batch,plate_format,layout,image_folder,treatment_time_min\n"
+    sheet = tmp_path / "plates.csv"
+    sheet.write_text(header + f"P1,day1,96,{layout},img/P1,-15\nP2,day1,96,{layout},img/P2,20.5\n")
+    entries = load_screen_sheet(str(sheet))
+    assert treatment_times(entries, str(sheet)) == {"P1": -15.0, "P2": 20.5}
+    sheet.write_text(header + f"P1,day1,96,{layout},img/P1,-15\nP2,day1,96,{layout},img/P2,\n")
+    with pytest.raises(InputError, match="P2.*give treatment_time_min for every plate"):
+        treatment_times(load_screen_sheet(str(sheet)), str(sheet))
+    sheet.write_text(header + f"P1,day1,96,{layout},img/P1,soon\n")
+    with pytest.raises(InputError, match="row 2, column treatment_time_min.*'soon' is not a number"):
+        load_screen_sheet(str(sheet))
+
+
+def test_windows_count_from_the_treatment_when_it_is_given():
+    # A plate treated 20 min after its first frame: frames before it belong to no window, and the
+    # window columns read in minutes after treatment.
+    from plateloom.plate.time_courses import time_course_table, window_cell_counts
+
+    counts = pd.DataFrame(
+        {"well": "A01", "site": 1, "frame": np.arange(8), "time_min": 10.0 * np.arange(8), "observations": 10}
+    )
+    cells = window_cell_counts(counts, 30.0, origin_min=20.0)
+    assert cells["window"].tolist() == [0, 1] and cells["n_frames"].tolist() == [3, 3]
+    windows = pd.DataFrame({"well": ["A01", "A01"], "window": [0, 1], "n_observations": [30, 30], "f": [1.0, 2.0]})
+    profile = pd.DataFrame({"plate": ["P"], "well": ["A01"], "role": ["test"], "excluded_by": [""]})
+    table = time_course_table(windows, cells, profile, 30.0, (20.0, "treatment"))
+    assert table["window_start_min"].tolist() == [0.0, 30.0] and table["time_origin"].eq("treatment").all()

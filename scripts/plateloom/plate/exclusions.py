@@ -30,15 +30,18 @@ class ExclusionRules(FromSchema):
     z_prime_feature: str
 
 
+LEDGER_TYPES = {"site": "Int64", "frame": "Int64", "value": "float64", "threshold": "float64"}  # text: str
+
+
+def typed_ledger(ledger: pd.DataFrame) -> pd.DataFrame:
+    """The ledger with one type per column whatever rows it holds (text as str, site and frame as
+    nullable integers, value and threshold as floats), so every plate's file has the same schema
+    and ``results/exclusions`` opens as one dataset even when some plates excluded nothing."""
+    return ledger[LEDGER_COLUMNS].astype({c: LEDGER_TYPES.get(c, "str") for c in LEDGER_COLUMNS})
+
+
 def empty_ledger() -> pd.DataFrame:
-    return pd.DataFrame(
-        {
-            c: pd.Series(
-                dtype="int64" if c in ("site", "frame") else "float64" if c in ("value", "threshold") else "object"
-            )
-            for c in LEDGER_COLUMNS
-        }
-    )
+    return typed_ledger(pd.DataFrame({c: pd.Series(dtype="object") for c in LEDGER_COLUMNS}))
 
 
 @dataclass(frozen=True)

@@ -14,6 +14,7 @@ from plateloom.plate.exclusions import (
     excluded_site_frames,
     plate_exclusion,
     site_frame_exclusions,
+    typed_ledger,
     well_exclusions,
 )
 from plateloom.plate.normalization import NORMALIZATIONS, normalize
@@ -321,7 +322,7 @@ def _plate_tables(
     qc = plate_qc(profile, features)
     ledger = [observed.site_frame_ledger, well_ledger, plate_exclusion(qc, rules, design.plate)]
     frames = [table for table in ledger if not table.empty]
-    ledger_table = pd.concat(frames, ignore_index=True) if frames else ledger[0]
+    ledger_table = typed_ledger(pd.concat(frames, ignore_index=True) if frames else ledger[0])
     plate_rows = ledger_table[ledger_table["level"] == "plate"]
     profile["plate_excluded_by"] = (
         (f"{plate_rows['rule'].iloc[0]}: {plate_rows['value'].iloc[0]:.3g} < {plate_rows['threshold'].iloc[0]:g}")
@@ -329,6 +330,8 @@ def _plate_tables(
         else ""
     )
     edge = pd.DataFrame(edge_rows)
+    for table in (qc, edge):  # the plate in every file, not only in its folder name
+        table.insert(0, "plate", design.plate)
     time_course = None
     if windows is not None and observed.windows is not None:
         time_course, notes = _time_course(observed, profile, windows)

@@ -116,15 +116,16 @@ def time_course_table(
     """The plate's time-course table: profile keys, window columns, cell_count and the window
     medians of every observation feature, one row per (well, window), sorted by well and window.
 
-    ``origin`` is (minutes since the first frame, "first_frame" or "treatment").
+    ``origin`` is (minutes from the first frame to the origin, "first_frame" or "treatment"); the
+    window columns count minutes from the origin.
     """
-    origin_min, origin_name = origin
+    _, origin_name = origin
     windows = windows.assign(well=windows["well"].astype(str))
     table = cell_counts.merge(windows, on=["well", "window"], how="left")
     table["n_observations"] = table["n_observations"].fillna(0).astype(np.int64)
     keys = profile[[c for c in PROFILE_KEYS if c in profile.columns]].assign(well=lambda t: t["well"].astype(str))
     table = keys.merge(table, on="well", how="inner").sort_values(["well", "window"], kind="stable")
-    table["window_start_min"] = origin_min + table["window"] * window_min
+    table["window_start_min"] = table["window"] * window_min  # minutes from the origin
     table["window_end_min"] = table["window_start_min"] + window_min
     table["time_origin"] = origin_name
     features = [c for c in windows.columns if c not in ("well", "window", "n_observations")]
