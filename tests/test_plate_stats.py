@@ -82,3 +82,13 @@ def test_ssmd_worked_example():
 def test_signal_window_worked_example():
     # (|12 - 2| - 3 (2 + 1)) / 2 = 0.5 (definition recalled from memory, Iversen et al. 2006)
     assert signal_window([10, 12, 14], [1, 2, 3]) == pytest.approx(0.5)
+
+
+def test_qc_verdict_says_why_z_prime_does_not_apply():
+    from plateloom.plate.qc import qc_verdict
+
+    assert qc_verdict(0.6, 8.0, 4, 12).startswith("excellent")
+    assert qc_verdict(-370.0, 0.05, 4, 12).startswith("no Z': the positive control does not move")
+    assert qc_verdict(-0.4, -3.5, 4, 12).startswith("unusable")  # moved, but too noisy to separate
+    assert qc_verdict(float("nan"), float("nan"), 0, 12).startswith("no Z': fewer than 2 positive-control")
+    assert qc_verdict(float("nan"), float("nan"), 4, 1).startswith("no Z': fewer than 2 negative-control")

@@ -125,3 +125,59 @@ def test_plate_report_is_the_same_whatever_numpy_global_state(tmp_path):
     np.random.seed(12345)
     np.random.random(17)
     assert _report(tmp_path / "b").read_bytes() == first
+
+
+def test_report_tables_sort_by_a_clicked_column_and_filter_offline(tmp_path):
+    # The inline script of every report page: numbers sort as numbers, empty cells last; typing in the
+    # filter box hides the rows without the text. Checked in headless Chromium (--dump-dom after a click).
+    import re
+
+    from plateloom.report.html import page, table_tag
+
+    if _chromium() is None:
+        if os.environ.get("PLATELOOM_REQUIRE_CHROMIUM"):
+            pytest.fail("chromium is required here (PLATELOOM_REQUIRE_CHROMIUM is set) but not installed")
+        pytest.skip("Debian package chromium not installed (.ci/run installs it)")
+    values = [5.0, 40.0, None, 3.5, 100.0, 12.0, None, 7.0, 0.5, 60.0, 8.0, 2.0]
+    frame = pd.DataFrame({"treatment": [f"T{i:02d}" for i in range(12)], "onset_min": values})
+    html = page("t", [("Kinetic summary", table_tag(frame))], {})
+    assert html.count("<script>") == 1 and 'id="kinetic-summary"' in html and 'href="#kinetic-summary"' in html
+    click = "<script>document.querySelectorAll('th')[1].click();</script></body>"
+    target = tmp_path / "sort.html"
+    target.write_text(html.replace("</body>", click), encoding="utf-8")
+    command = [_chromium(), "--headless", "--no-sandbox", "--disable-gpu", "--no-first-run"]
+    command += [f"--user-data-dir={tmp_path / 'profile'}", "--dump-dom", target.as_uri()]
+    dom = subprocess.run(command, check=True, capture_output=True, timeout=120, text=True).stdout
+    order = re.findall(r"<td>(T\d\d)</td>", dom)
+    assert order == ["T08", "T11", "T03", "T00", "T07", "T10", "T05", "T01", "T09", "T04", "T02", "T06"]
+    assert 'class="filter"' in dom  # a table of 10 or more rows gets a filter box
+
+
+def test_log_axes_get_round_ratio_ticks_across_the_data():
+    from plateloom.report.screen_page import ratio_ticks
+
+    # area hits near 1.5 must be read off the axis: ticks above 1, not only "0.9" and "1"
+    assert ratio_ticks(0.85, 1.6) == [0.9, 1.0, 1.1, 1.25, 1.5]
+    assert ratio_ticks(1.2, 2.5) == [1.0, 1.1, 1.25, 1.5, 2.0]  # 1 always shown
+    wide = ratio_ticks(0.01, 100.0)
+    assert len(wide) <= 10 and 1.0 in wide and wide[0] == 0.01 and wide[-1] == 100.0
+
+
+def test_volcano_plot_draws_the_q_threshold_and_names_the_top_hits():
+    from plateloom.report.screen_page import volcano_plot
+
+    effects = pd.DataFrame(
+        {
+            "feature": ["area_um2"] * 4,
+            "treatment": ["A 1 uM", "B 1 uM", "C 1 uM", "D 1 uM"],
+            "estimate": [0.4, -0.3, 0.01, 0.2],
+            "q_value": [1e-6, 1e-4, 0.8, 0.01],
+            "hit": [True, True, False, True],
+        }
+    )
+    figure = volcano_plot(effects, q_threshold=0.05, labelled=2)
+    axis = figure.axes[0]
+    horizontal = [line.get_ydata()[0] for line in axis.get_lines() if line.get_ydata()[0] == line.get_ydata()[1]]
+    assert any(abs(y - (-np.log10(0.05))) < 1e-12 for y in horizontal)
+    names = sorted(t.get_text() for t in axis.texts if ":" in t.get_text())
+    assert names == ["A 1 uM: area_um2", "B 1 uM: area_um2"]

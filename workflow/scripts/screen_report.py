@@ -35,7 +35,7 @@ def step() -> None:
     )
     settings = dict(sm.params.settings) | {"onset_windows": sm.params.onset_windows}
     html = build_screen_report(results, settings, read_provenance(sm.input.effects))
-    write_figure(volcano_plot(effects), sm.output.volcano)
+    write_figure(volcano_plot(effects, settings["hit_q_value"]), sm.output.volcano)
     write_figure(batch_components_plot(pd.read_parquet(sm.input.components)), sm.output.batch_pca)
     write_text(html, sm.output.report)
 

@@ -53,6 +53,22 @@ def z_prime_verdict(value: float) -> str:
     return "unusable"
 
 
+UNMOVED_SSMD = 2.0  # below this |SSMD| the positive control barely moves a feature
+
+
+def qc_verdict(z_value: float, ssmd_value: float, n_positive: int, n_negative: int) -> str:
+    """The Z' band, or why Z' says nothing about this feature: too few control wells, or a positive
+    control that does not move it (|SSMD| below UNMOVED_SSMD, where Z' runs to large negative values
+    that measure nothing but the lack of a shift)."""
+    if n_positive < 2:
+        return "no Z': fewer than 2 positive-control wells on this plate"
+    if n_negative < 2:
+        return "no Z': fewer than 2 negative-control wells on this plate"
+    if np.isfinite(ssmd_value) and abs(ssmd_value) < UNMOVED_SSMD and not z_value > 0:
+        return f"no Z': the positive control does not move this feature (|SSMD| < {UNMOVED_SSMD:g})"
+    return z_prime_verdict(z_value)
+
+
 def plate_qc(profile: pd.DataFrame, features: list[str]) -> pd.DataFrame:
     """Per feature: control counts, medians and CVs, Z', robust Z', SSMD, signal window, verdict band."""
     kept = profile[profile["excluded_by"] == ""]
@@ -76,7 +92,7 @@ def plate_qc(profile: pd.DataFrame, features: list[str]) -> pd.DataFrame:
                 "ssmd": ssmd(pos, neg),
                 "robust_ssmd": robust_ssmd(pos, neg),
                 "signal_window": signal_window(pos, neg),
-                "verdict": z_prime_verdict(value),
+                "verdict": qc_verdict(value, ssmd(pos, neg), len(pos), len(neg)),
             }
         )
     return pd.DataFrame(rows)

@@ -18,6 +18,7 @@ import pandas as pd  # noqa: E402
 from plateloom.assets import resource  # noqa: E402
 
 STYLE_PATH = resource("report", "style.css")
+TABLES_SCRIPT_PATH = resource("report", "tables.js")  # sorting and filtering, inline (no network)
 
 CAUTIONS = (
     "plateloom is a research tool. Its results need experimental confirmation and are not for clinical "
@@ -58,18 +59,32 @@ def table_tag(frame: pd.DataFrame, float_format: str = "{:.4g}") -> str:
     for column in formatted.columns:
         if pd.api.types.is_float_dtype(formatted[column]):
             formatted[column] = formatted[column].map(lambda v: "" if pd.isna(v) else float_format.format(v))
-    return formatted.to_html(index=False, escape=True, border=0)
+    with pd.option_context("display.max_colwidth", None):  # notes in full, never cut with "..."
+        return formatted.to_html(index=False, escape=True, border=0)
+
+
+def anchor(heading: str) -> str:
+    """The id of a section heading: lower case, words joined by '-' (letters and digits only)."""
+    words = "".join(c.lower() if c.isalnum() else " " for c in heading).split()
+    return "-".join(words) or "section"
 
 
 def page(title: str, sections: list[tuple[str, str]], provenance: dict) -> str:
-    """A complete HTML document: title, the cautions, sections (heading, HTML body), provenance."""
+    """A complete HTML document: title, the cautions, a table of contents, sections (heading, HTML
+    body), provenance; tables sortable and filterable by an inline script (nothing fetched)."""
     with open(STYLE_PATH, encoding="utf-8") as handle:
         style = handle.read()
-    body = "".join(f"<h2>{escape(heading)}</h2>\n{content}\n" for heading, content in sections)
-    meta = escape(json.dumps(provenance, sort_keys=True))
+    with open(TABLES_SCRIPT_PATH, encoding="utf-8") as handle:
+        script = handle.read()
+    headings = [heading for heading, _ in sections] + ["Provenance"]
+    contents = "".join(f'<li><a href="#{anchor(h)}">{escape(h)}</a></li>' for h in headings)
+    body = "".join(f'<h2 id="{anchor(heading)}">{escape(heading)}</h2>\n{content}\n' for heading, content in sections)
+    meta = escape(json.dumps(provenance, sort_keys=True, indent=1))
     return (
         f'<!DOCTYPE html>\n<html lang="en"><head><meta charset="utf-8"><title>{escape(title)}</title>'
         f"<style>{style}</style></head><body>\n<h1>{escape(title)}</h1>\n"
-        f'<p class="caution">{escape(CAUTIONS)}</p>\n{body}'
-        f'<h2>Provenance</h2><p class="meta">{meta}</p>\n</body></html>\n'
+        f'<p class="caution">{escape(CAUTIONS)}</p>\n'
+        f'<nav class="contents"><ol>{contents}</ol></nav>\n{body}'
+        f'<h2 id="provenance">Provenance</h2><pre class="meta">{meta}</pre>\n'
+        f"<script>{script}</script>\n</body></html>\n"
     )

@@ -41,6 +41,34 @@ def plate_heatmap(profile: pd.DataFrame, feature: str, fmt: PlateFormat) -> plt.
     return figure
 
 
+ROLE_COLOURS = {"empty": "#f2f2f2", "negative_control": "#33546e", "positive_control": "#c9a227", "test": "#9cc3d5"}
+
+
+def role_map(profile: pd.DataFrame, fmt: PlateFormat) -> plt.Figure:
+    """The plate's layout: each well coloured by its role (wells not analysed: empty); excluded wells x."""
+    from matplotlib.colors import ListedColormap
+    from matplotlib.patches import Patch
+
+    roles = list(ROLE_COLOURS)
+    codes = {w: float(roles.index(r)) for w, r in zip(profile["well"], profile["role"]) if r in roles}
+    grid = np.nan_to_num(well_grid(codes, fmt), nan=0.0)
+    width = min(14.0, 2 + fmt.columns * 0.45)
+    figure, axis = plt.subplots(figsize=(width, width * fmt.rows / fmt.columns * 0.9 + 0.8))
+    axis.imshow(grid, cmap=ListedColormap(list(ROLE_COLOURS.values())), vmin=-0.5, vmax=len(roles) - 0.5)
+    axis.set_xticks(range(fmt.columns), [str(c + 1) for c in range(fmt.columns)])
+    axis.set_yticks(range(fmt.rows), [row_label(r) for r in range(fmt.rows)])
+    axis.set_xticks(np.arange(-0.5, fmt.columns), minor=True)
+    axis.set_yticks(np.arange(-0.5, fmt.rows), minor=True)
+    axis.grid(which="minor", color="white", linewidth=1)
+    axis.tick_params(which="minor", length=0, labelsize=7 if fmt.wells <= 96 else 5)
+    for _, well in profile[profile["excluded_by"] != ""].iterrows():
+        axis.text(well["column"] - 1, well["row"] - 1, "x", ha="center", va="center", color="red", fontsize=12)
+    handles = [Patch(color=c, label=r.replace("_", " ")) for r, c in ROLE_COLOURS.items()]
+    axis.legend(handles=handles, bbox_to_anchor=(1.01, 1), loc="upper left", fontsize=8)
+    axis.set_title("layout: well roles (x: excluded well)")
+    return figure
+
+
 @contextmanager
 def _seeded_jitter(seed: int = 0):
     """seaborn draws strip-plot jitter from numpy's global generator: seed it, so that identical
@@ -192,7 +220,8 @@ def _summary_html(tables: PlateTables, page_info: PlatePage) -> str:
 
 
 def _maps_html(profile: pd.DataFrame, report_feature: str, fmt: PlateFormat) -> str:
-    heatmaps = figure_tag(plate_heatmap(profile, "cell_count", fmt), "cell count heatmap")
+    heatmaps = figure_tag(role_map(profile, fmt), "layout role map")
+    heatmaps += figure_tag(plate_heatmap(profile, "cell_count", fmt), "cell count heatmap")
     if report_feature in profile.columns and report_feature != "cell_count":
         heatmaps += figure_tag(plate_heatmap(profile, report_feature, fmt), f"{report_feature} heatmap")
     return heatmaps

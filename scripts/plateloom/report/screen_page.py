@@ -7,11 +7,26 @@ from dataclasses import dataclass, field
 import matplotlib.pyplot as plt
 import numpy as np
 import pandas as pd
-from matplotlib.ticker import FormatStrFormatter
+from matplotlib.ticker import NullLocator
 
 from plateloom.report.html import escape, figure_tag, page, table_tag
 from plateloom.report.time_panels import kinetics_html
 from plateloom.screen.dose_response import hill_curve
+
+NICE_RATIOS = (0.01, 0.02, 0.05, 0.1, 0.2, 0.25, 0.33, 0.5, 0.67, 0.8, 0.9, 1.0, 1.1, 1.25, 1.5, 2.0, 3.0, 4.0, 5.0,
+               10.0, 20.0, 50.0, 100.0)  # fmt: skip
+
+
+def ratio_ticks(low: float, high: float, most: int = 9) -> list[float]:
+    """Ratio tick values for a log axis spanning [low, high] (1 always among them): the round ratios
+    inside the range, thinned evenly to at most ``most``."""
+    if not (np.isfinite(low) and np.isfinite(high) and low > 0):
+        return [1.0]
+    inside = [r for r in NICE_RATIOS if min(low, 1.0) <= r <= max(high, 1.0)]
+    if len(inside) > most:
+        keep = np.unique(np.round(np.linspace(0, len(inside) - 1, most)).astype(int))
+        inside = sorted(set([inside[i] for i in keep]) | {1.0})
+    return inside
 
 
 def forest_plot(effects: pd.DataFrame, feature: str, ci_level: float) -> plt.Figure:
@@ -29,9 +44,9 @@ def forest_plot(effects: pd.DataFrame, feature: str, ci_level: float) -> plt.Fig
     axis.axvline(1.0 if log_scale else 0.0, color="grey", linestyle="--", linewidth=1)
     if log_scale:
         axis.set_xscale("log")
-        axis.xaxis.set_major_formatter(FormatStrFormatter("%.3g"))
-        axis.xaxis.set_minor_formatter(FormatStrFormatter("%.3g"))
-        axis.tick_params(axis="x", which="minor", labelsize=7)
+        ticks = ratio_ticks(float(np.nanmin(low)), float(np.nanmax(high)))
+        axis.xaxis.set_minor_locator(NullLocator())
+        axis.set_xticks(ticks, [f"{t:g}" for t in ticks])
     axis.set_yticks(y, rows["treatment"], fontsize=8)
     label = "ratio to negative control" if log_scale else "difference from negative control"
     axis.set_xlabel(f"{feature}: {label} ({ci_level:.0%} CI; red = hit)")
@@ -39,14 +54,26 @@ def forest_plot(effects: pd.DataFrame, feature: str, ci_level: float) -> plt.Fig
     return figure
 
 
-def volcano_plot(effects: pd.DataFrame) -> plt.Figure:
-    """Effect (model scale) against -log10 q-value for every feature and treatment; hits in red."""
-    figure, axis = plt.subplots(figsize=(6.5, 4.2))
+def volcano_plot(effects: pd.DataFrame, q_threshold: float = 0.05, labelled: int = 8) -> plt.Figure:
+    """Effect (model scale) against -log10 q-value for every feature and test treatment; hits in red,
+    the q-value threshold as a dashed line, the ``labelled`` smallest-q hits named."""
+    figure, axis = plt.subplots(figsize=(7.5, 4.8))
     rows = effects[np.isfinite(effects["estimate"]) & np.isfinite(effects["q_value"])]
     height = -np.log10(np.clip(rows["q_value"].to_numpy(float), 1e-300, 1))
     colours = np.where(rows["hit"], "#b8322a", "#8a9aa8")
     axis.scatter(rows["estimate"], height, c=colours, s=14)
     axis.axvline(0, color="grey", linewidth=1)
+    axis.axhline(-np.log10(q_threshold), color="#b8322a", linestyle="--", linewidth=1)
+    axis.text(axis.get_xlim()[0], -np.log10(q_threshold), f" q = {q_threshold:g}", va="bottom", fontsize=7)
+    top = rows.assign(_height=height)[rows["hit"].to_numpy(bool)].nlargest(labelled, "_height")
+    for _, row in top.iterrows():
+        axis.annotate(
+            f"{row['treatment']}: {row['feature']}",
+            (row["estimate"], row["_height"]),
+            xytext=(4, 2),
+            textcoords="offset points",
+            fontsize=6.5,
+        )
     axis.set_xlabel("effect (natural-log ratio, or difference for linear features)")
     axis.set_ylabel("-log10 q-value (Benjamini-Hochberg)")
     figure.tight_layout()
@@ -96,7 +123,8 @@ def batch_components_plot(components: pd.DataFrame) -> plt.Figure:
         axis.set_xlabel(f"PC1 ({shares.iloc[0]:.0%})")
         axis.set_ylabel(f"PC2 ({shares.iloc[1]:.0%})")
         axis.set_title(f"{stage} batch correction", fontsize=9)
-    axes[1].legend(fontsize=7, title="batch", title_fontsize=7)
+    for axis in axes:
+        axis.legend(fontsize=7, title="batch", title_fontsize=7)
     figure.tight_layout()
     return figure
 
@@ -225,7 +253,16 @@ def _summary_html(results: ScreenResults, settings: dict) -> str:
         f"over the {family} feature-test-treatment pairs; positive controls outside the family) and an effect of "
         f"at least {settings['hit_min_log_ratio']:g} natural-log ratio (log-scale features) or "
         f"{settings.get('hit_min_standardized_effect', 1.0):g} negative-control well SDs (linear-scale features).</p>"
-    ) + table_tag(plates)
+    ) + _linked_plates(table_tag(plates), plates["plate"].astype(str).tolist())
+
+
+def _linked_plates(table_html: str, plates: list[str]) -> str:
+    """The plates table with each plate id linked to its plate report (reports/plates/<plate>.html,
+    next to this page; plate ids are letters, digits, '-', '_' and '.' only)."""
+    for plate in plates:
+        cell = f"<td>{escape(plate)}</td>"
+        table_html = table_html.replace(cell, f'<td><a href="plates/{escape(plate)}.html">{escape(plate)}</a></td>', 1)
+    return table_html
 
 
 def _components_html(effects: pd.DataFrame) -> str:
@@ -303,7 +340,7 @@ def build_screen_report(results: ScreenResults, settings: dict, provenance: dict
         ("Summary", _summary_html(results, settings)),
         ("Method", _method_text(settings, provenance)),
         ("Hits", hit_html),
-        ("Volcano plot", figure_tag(volcano_plot(effects), "volcano plot")),
+        ("Volcano plot", figure_tag(volcano_plot(effects, settings["hit_q_value"]), "volcano plot")),
         ("Effects with confidence intervals", forest),
         ("Dose-response", _dose_html(results.dose_fits, results.dose_points)),
         ("Effects over time", kinetics_html(results.effects_over_time, results.kinetic_summary, settings)),
