@@ -200,3 +200,18 @@ def test_plain_batch_labels_are_accepted(tmp_path, batch):
     sheet = tmp_path / "plates.csv"
     sheet.write_text(f"plate,batch,plate_format,layout,image_folder\nP1,{batch},96,{layout},img\n")
     assert load_screen_sheet(str(sheet))[0].batch == batch
+
+
+def test_a_misspelt_config_key_gets_one_short_line_with_the_closest_key():
+    from plateloom.settings import config_problems, demo_config
+
+    config = demo_config()
+    config["kinetcs"] = {"window_min": 20}
+    config["screen"]["fiter"] = "exact"
+    config["plate"]["well_summary"] = "mean"
+    problems = config_problems(config)
+    assert problems[0] == "kinetcs: not a known key (did you mean kinetics?)"
+    assert "plate.well_summary: 'mean' is not one of ['median', 'mean_log']" in problems
+    assert "screen.fiter: not a known key (did you mean fitter?)" in problems
+    assert len(problems) == 3 and sum(len(p) for p in problems) < 300  # not the whole schema
+    assert config_problems(demo_config()) == []

@@ -45,6 +45,35 @@ def fill_defaults(config: dict) -> dict:
     return filled
 
 
+def _unknown_keys(error) -> list[str]:
+    """Each unexpected key of an additionalProperties error, with the closest known key if any."""
+    import difflib
+
+    known = list(error.schema.get("properties", {}))
+    where = ".".join(map(str, error.path))
+    found = []
+    for key in sorted(set(error.instance) - set(known)):
+        close = difflib.get_close_matches(str(key), known, n=1, cutoff=0.6)
+        name = f"{where}.{key}" if where else str(key)
+        found.append(f"{name}: not a known key" + (f" (did you mean {close[0]}?)" if close else ""))
+    return found
+
+
+def config_problems(config: dict) -> list[str]:
+    """Every way ``config`` breaks the schema, one short line each (key path: what is wrong), with the
+    closest known key for a misspelt one; empty when the config is valid."""
+    import jsonschema
+
+    problems = []
+    for error in sorted(jsonschema.Draft202012Validator(load_schema()).iter_errors(config), key=lambda e: list(e.path)):
+        if error.validator == "additionalProperties" and isinstance(error.instance, dict):
+            problems += _unknown_keys(error)
+            continue
+        where = ".".join(map(str, error.path)) or "top level"
+        problems.append(f"{where}: {error.message if len(error.message) < 300 else error.message[:300] + '...'}")
+    return problems
+
+
 @lru_cache(maxsize=1)
 def _schema_defaults() -> dict:
     return fill_defaults(MINIMAL_CONFIG)

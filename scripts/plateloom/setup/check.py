@@ -17,7 +17,10 @@ from plateloom.io.images import ImageIndex, index_plate_images, read_ome_metadat
 from plateloom.setup.image_checks import header_problems
 from plateloom.setup.screen_sheet import check_layout, check_screen_sheet
 
-OUTPUT_BYTES_PER_OBSERVATION = 60 * 8  # about 60 columns of 8 bytes in the cells table, before compression
+# Measured on the demo (2026-12-03): cells, tracks and site QC tables take about 255 bytes per
+# nucleus and frame after compression; a well's thumbnail about 51 KB.
+OUTPUT_BYTES_PER_OBSERVATION = 255
+OUTPUT_BYTES_PER_WELL = 51_000
 
 
 @dataclass
@@ -233,7 +236,7 @@ class _ScreenCheck:
             "images": totals["images"],
             "image_gb": totals["image_bytes"] / 1e9,
             "jobs": totals["jobs"] + (6 if totals["plates"] else 0),
-            "output_gb": observations * OUTPUT_BYTES_PER_OBSERVATION / 1e9,
+            "output_gb": (observations * OUTPUT_BYTES_PER_OBSERVATION + totals["wells"] * OUTPUT_BYTES_PER_WELL) / 1e9,
             "assumed_objects_per_frame": assumed_objects_per_frame,
         }
 
@@ -258,7 +261,22 @@ def _scale_problems(unset: list[str], first: str | None) -> list[InputError]:
     ]
 
 
-def check_screen(config: dict, read_headers: bool = True, assumed_objects_per_frame: int = 200) -> CheckReport:
+def _objects_per_frame(config: dict, entries: list, given: int | None) -> int:
+    """Nuclei per site and frame for the output estimate: as given, the demo scenario's when every
+    plate is one of its plates, else 200 (a dense 1024 x 1024 field)."""
+    if given is not None:
+        return given
+    from plateloom.assets import demo_scenario
+    from plateloom.demo.scenario import demo_plates, load_scenario
+
+    path = config["demo"].get("scenario") or str(demo_scenario())
+    scenario = load_scenario(path) if os.path.isfile(path) else None
+    if scenario and entries and all(e.plate in demo_plates(scenario) for e in entries):
+        return int(scenario["cells_per_site"])
+    return 200
+
+
+def check_screen(config: dict, read_headers: bool = True, assumed_objects_per_frame: int | None = None) -> CheckReport:
     """Every problem of a screen's config, sheet, layouts and images, and an estimate of the run.
 
     ``config`` is the validated config (defaults filled). With ``read_headers`` every TIFF's
@@ -298,17 +316,17 @@ def check_screen(config: dict, read_headers: bool = True, assumed_objects_per_fr
             check.report.add("warning", InputError(config["screen_sheet"], warning))
     if entries:
         check.image_scale()
-    check.report.estimate = check.estimate(assumed_objects_per_frame)
+    check.report.estimate = check.estimate(_objects_per_frame(config, entries, assumed_objects_per_frame))
     return check.report
 
 
 def load_config(path: str) -> dict:
     """A config file validated against the workflow's schema, defaults filled; every schema problem
     in one InputError."""
-    import jsonschema
     import yaml
     from snakemake.utils import validate
 
+    from plateloom.settings import config_problems
     from plateloom.setup.config import SCHEMA as schema_path
 
     try:
@@ -327,11 +345,8 @@ def load_config(path: str) -> dict:
         ) from None
     if not isinstance(config, dict):
         raise InputError(f"config {path}", "is not a mapping of keys to values.", "start from config/config.yaml.")
-    with open(schema_path, encoding="utf-8") as handle:
-        schema = yaml.safe_load(handle)
-    errors = sorted(jsonschema.Draft202012Validator(schema).iter_errors(config), key=lambda e: list(e.path))
-    if errors:
-        listed = "; ".join(f"{'.'.join(map(str, e.path)) or 'top level'}: {e.message}" for e in errors)
-        raise InputError(f"config {path}", listed + ".", "compare with workflow/schemas/config.schema.yaml.")
+    problems = config_problems(config)
+    if problems:
+        raise InputError(f"config {path}", "; ".join(problems) + ".", "every key is described in config/REFERENCE.md.")
     validate(config, schema_path)
     return config

@@ -2,7 +2,9 @@
 
 from __future__ import annotations
 
+import logging
 import os
+import time
 from dataclasses import dataclass
 
 import numpy as np
@@ -78,7 +80,9 @@ def analyse_chunk(
     for folder in folders + ([outputs.thumbnails] if outputs.thumbnails else []):
         os.makedirs(folder, exist_ok=True)
     pixel_type = usual_pixel_type(index)  # a site exported at another bit depth is flagged, not measured
-    for well in wells:
+    log = logging.getLogger("plateloom")
+    for number, well in enumerate(wells, start=1):
+        started = time.perf_counter()
         cells, tracks, site_qc = analyse_well(index, well, settings, flat_field, pixel_type)
         tables = [cells, tracks, site_qc]
         if outputs.collective:
@@ -88,3 +92,7 @@ def analyse_chunk(
         thumbnail = well_thumbnail(index, well, settings, flat_field, cells, site_qc) if outputs.thumbnails else None
         if thumbnail is not None:
             write_bytes(thumbnail, os.path.join(outputs.thumbnails, f"{well}.png"))
+        log.info(
+            "well %s done (%d of %d): %d nuclei in %d site-frames, %d tracks, %.1f s",
+            well, number, len(wells), len(cells), len(site_qc), len(tracks), time.perf_counter() - started,
+        )  # fmt: skip
