@@ -181,3 +181,42 @@ def test_volcano_plot_draws_the_q_threshold_and_names_the_top_hits():
     assert any(abs(y - (-np.log10(0.05))) < 1e-12 for y in horizontal)
     names = sorted(t.get_text() for t in axis.texts if ":" in t.get_text())
     assert names == ["A 1 uM: area_um2", "B 1 uM: area_um2"]
+
+
+def test_treatment_pages_have_safe_distinct_names_and_link_back():
+    from plateloom.report.treatment_pages import linked_treatments, page_name, treatment_page
+
+    assert page_name("LOOM-101 0.3 uM").startswith("LOOM-101_0.3_uM-") and page_name("a/b").startswith("a_b-")
+    assert page_name("a b") != page_name("a_b")  # the hash keeps look-alike names apart
+    assert page_name("<script>x</script>").startswith("script_x_script-")
+    effects = pd.DataFrame(
+        {
+            "feature": ["area_um2", "solidity"],
+            "treatment": "T 1 uM",
+            "condition": "T",
+            "dose": 1.0,
+            "dose_unit": "uM",
+            "role": "test",
+            "scale": ["log", "linear"],
+            "estimate": [0.3, 0.0],
+            "ci_low": [0.2, -0.01],
+            "ci_high": [0.4, 0.01],
+            "ratio": [np.exp(0.3), np.nan],
+            "df": 40.0,
+            "q_value": [1e-4, 0.9],
+            "hit": [True, False],
+            "n_wells": 6,
+            "standardized_effect": [3.0, 0.0],
+            "control_well_sd": [0.1, 0.02],
+            "note": "",
+        }
+    )
+    wells = pd.DataFrame(
+        {"batch": "day1", "plate": "P1", "well": ["B02", "C03"], "treatment": "T 1 uM", "excluded_by": ["", "focus"]}
+    )
+    context = {"effects": effects, "wells": wells, "settings": {"ci_level": 0.95}}
+    html = treatment_page("T 1 uM", context, {})
+    assert '<a href="../plates/P1.html">P1</a>: B02, C03 (excluded: focus)' in html
+    assert 'href="../screen.html"' in html and "1 hit(s) over 2 features" in html
+    linked = linked_treatments("<td>T 1 uM</td><td>T 1 uM</td>", ["T 1 uM"])
+    assert linked.count(f'href="treatments/{page_name("T 1 uM")}"') == 2

@@ -16,6 +16,7 @@ from conftest import copy_workflow, run_snakemake
 from scipy import stats
 
 from plateloom.demo.scenario import load_scenario, planted_ratios
+from plateloom.report.html import anchor
 from plateloom.setup.screen_sheet import load_layout
 
 NEW_PLATE = "WV-D3-P3"
@@ -147,7 +148,9 @@ def test_design_check_reports_coverage_near_nominal(finished_screen):
 @pytest.mark.slow
 def test_reports_are_self_contained(finished_screen):
     report = (finished_screen / "results/reports/screen.html").read_text()
-    assert "data:image/png;base64," in report and "<script" not in report and "http://" not in report
+    # one inline script of our own (sorting and filtering tables); nothing loaded from anywhere
+    assert "data:image/png;base64," in report and report.count("<script") == 1 and "<script src" not in report
+    assert "http://" not in report and "https://" not in report
     assert "not for clinical" in report
     for section in (
         "Volcano plot",
@@ -158,11 +161,17 @@ def test_reports_are_self_contained(finished_screen):
         "Exclusion ledger",
         "Method",
     ):
-        assert f"<h2>{section}</h2>" in report
+        assert f">{section}</h2>" in report and f'href="#{anchor(section)}"' in report
+    # one page per treatment, linked from the screen report; each links back and to its plates
+    pages = sorted((finished_screen / "results/reports/treatments").glob("*.html"))
+    effects = pd.read_parquet(finished_screen / "results/effects.parquet")
+    assert len(pages) == effects["treatment"].nunique()
+    assert all(f'href="treatments/{page.name}"' in report for page in pages)
+    assert all('href="../screen.html"' in page.read_text() for page in pages[:3])
     plate = (finished_screen / "results/reports/plates/WV-D1-P1.html").read_text()
     assert "Z&#x27;-factor and SSMD per feature" in plate
     assert plate.count("data:image/png;base64,") >= 4
-    assert "<h2>Illumination</h2>" in plate and "illumination profiles" in plate
+    assert 'id="illumination">Illumination</h2>' in plate and "illumination profiles" in plate
 
 
 @pytest.mark.slow
@@ -273,6 +282,7 @@ def test_new_plate_schedules_only_its_own_jobs_and_the_fan_ins(finished_screen):
         "fit_effects": 3,
         "screen_effects": 1,
         "dose_response": 1,
+        "effects_over_time": 1,
         "design_check": 1,
         "screen_report": 1,
         "all": 1,

@@ -194,6 +194,7 @@ rule screen_report:
             caption="../report/batch_pca.rst",
             category="Figures",
         ),
+        treatments=directory(f"{RESULTS}/reports/treatments"),
     log:
         f"{RESULTS}/logs/screen_report.log",
     benchmark:

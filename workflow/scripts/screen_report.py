@@ -11,6 +11,7 @@ from plateloom.report.screen_page import (
     build_screen_report,
     volcano_plot,
 )
+from plateloom.report.treatment_pages import write_treatment_pages
 
 sm = snakemake  # noqa: F821  (injected by Snakemake's script directive)
 
@@ -34,7 +35,9 @@ def step() -> None:
         kinetic_summary=pd.read_parquet(sm.input.kinetics[1]) if sm.input.kinetics else None,
     )
     settings = dict(sm.params.settings) | {"onset_windows": sm.params.onset_windows}
-    html = build_screen_report(results, settings, read_provenance(sm.input.effects))
+    provenance = read_provenance(sm.input.effects)
+    html = build_screen_report(results, settings, provenance)
+    write_treatment_pages(results, settings, provenance, sm.output.treatments)
     write_figure(volcano_plot(effects, settings["hit_q_value"]), sm.output.volcano)
     write_figure(batch_components_plot(pd.read_parquet(sm.input.components)), sm.output.batch_pca)
     write_text(html, sm.output.report)

@@ -11,6 +11,7 @@ from matplotlib.ticker import NullLocator
 
 from plateloom.report.html import escape, figure_tag, page, table_tag
 from plateloom.report.time_panels import kinetics_html
+from plateloom.report.treatment_pages import linked_treatments
 from plateloom.screen.dose_response import hill_curve
 
 NICE_RATIOS = (0.01, 0.02, 0.05, 0.1, 0.2, 0.25, 0.33, 0.5, 0.67, 0.8, 0.9, 1.0, 1.1, 1.25, 1.5, 2.0, 3.0, 4.0, 5.0,
@@ -331,7 +332,8 @@ def build_screen_report(results: ScreenResults, settings: dict, provenance: dict
     """The self-contained HTML report of the whole screen."""
     effects = results.effects
     hits = effects[effects["hit"]].sort_values("q_value")
-    hit_html = "<p>No hits.</p>" if hits.empty else table_tag(hits[EFFECT_COLUMNS])
+    names = sorted(effects["treatment"].unique())
+    hit_html = "<p>No hits.</p>" if hits.empty else linked_treatments(table_tag(hits[EFFECT_COLUMNS]), names)
     forest = "".join(
         figure_tag(forest_plot(effects, f, settings["ci_level"]), f"forest plot {f}")
         for f in effects["feature"].unique()
@@ -348,6 +350,9 @@ def build_screen_report(results: ScreenResults, settings: dict, provenance: dict
         ("Variance components", _components_html(effects)),
         ("Design check", _design_html(results.design)),
         ("Exclusion ledger", _ledger_html(results.ledger)),
-        ("All effects", table_tag(effects[EFFECT_COLUMNS + ["p_value", "in_fdr_family", "hit", "note"]])),
+        (
+            "All effects",
+            linked_treatments(table_tag(effects[EFFECT_COLUMNS + ["p_value", "in_fdr_family", "hit", "note"]]), names),
+        ),
     ]
     return page("plateloom screen report", sections, provenance)

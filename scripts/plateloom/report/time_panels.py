@@ -70,16 +70,19 @@ def control_time_course_html(time_course: pd.DataFrame | None, features: list[st
     )
 
 
-def effect_curves_figure(curves: pd.DataFrame, feature: str) -> plt.Figure:
-    """Small multiples, one per treatment: the effect per window with its pointwise interval (bars)
-    and the simultaneous band (shaded); zero = no effect."""
-    treatments = list(dict.fromkeys(curves["treatment"]))
+def effect_curves_figure(curves: pd.DataFrame, feature: str, panel: str = "treatment") -> plt.Figure:
+    """Small multiples, one per value of ``panel`` (a treatment, or a feature for one treatment's
+    page): the effect per window with its pointwise interval (bars) and the simultaneous band
+    (shaded); zero = no effect. ``feature`` labels the y axis."""
+    treatments = list(dict.fromkeys(curves[panel]))
     columns = min(PANEL_COLUMNS, len(treatments))
     rows = int(np.ceil(len(treatments) / columns))
-    figure, axes = plt.subplots(rows, columns, figsize=(3.2 * columns, 2.5 * rows), squeeze=False, sharey=True)
+    figure, axes = plt.subplots(
+        rows, columns, figsize=(3.2 * columns, 2.5 * rows), squeeze=False, sharey=panel == "treatment"
+    )
     log_scale = (curves["scale"] == "log").all()
     for axis, treatment in zip(axes.ravel(), treatments):
-        curve = curves[curves["treatment"] == treatment].sort_values("window")
+        curve = curves[curves[panel] == treatment].sort_values("window")
         t = _midpoints(curve)
         axis.fill_between(t, curve["band_low"], curve["band_high"], color="#b8322a", alpha=0.15, linewidth=0)
         estimate = curve["estimate"].to_numpy(float)
@@ -93,7 +96,7 @@ def effect_curves_figure(curves: pd.DataFrame, feature: str) -> plt.Figure:
         axis.set_visible(False)
     unit = "natural-log ratio to controls" if log_scale else "difference from controls"
     for axis in axes[:, 0]:
-        axis.set_ylabel(f"{feature}\n{unit}", fontsize=7)
+        axis.set_ylabel(f"{feature}\n{unit}" if feature else unit, fontsize=7)
     figure.tight_layout()
     return figure
 

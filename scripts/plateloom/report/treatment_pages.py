@@ -1,0 +1,137 @@
+"""One report page per treatment: its effects on every feature, its compound's dose-response, its
+effects over time, and the plates and wells it sits in (linked to the plate reports)."""
+
+from __future__ import annotations
+
+import hashlib
+import re
+
+import matplotlib.pyplot as plt
+import numpy as np
+import pandas as pd
+
+from plateloom.report.html import escape, figure_tag, page, table_tag
+from plateloom.report.time_panels import effect_curves_figure
+
+TREATMENT_COLUMNS = ["feature", "scale", "estimate", "ci_low", "ci_high", "ratio", "df", "q_value", "hit", "n_wells"]
+
+
+def page_name(treatment: str) -> str:
+    """The file name of a treatment's page: its name with every character other than a letter, a
+    digit, '-' or '.' replaced by '_', and 6 hex digits of its SHA-256 so that two names never share a file."""
+    slug = re.sub(r"[^A-Za-z0-9.-]+", "_", treatment).strip("_")[:60] or "treatment"
+    return f"{slug}-{hashlib.sha256(treatment.encode()).hexdigest()[:6]}.html"
+
+
+def effects_across_features(rows: pd.DataFrame, ci_level: float) -> plt.Figure:
+    """The treatment's standardized effect on every feature (effect / negative-control well SD)
+    with its interval; hits in red."""
+    rows = rows[np.isfinite(rows["standardized_effect"].to_numpy(float))].iloc[::-1]
+    spread = rows["control_well_sd"].to_numpy(float)
+    centre = rows["standardized_effect"].to_numpy(float)
+    low, high = rows["ci_low"].to_numpy(float) / spread, rows["ci_high"].to_numpy(float) / spread
+    figure, axis = plt.subplots(figsize=(6.5, 0.3 * len(rows) + 1.2))
+    y = np.arange(len(rows))
+    colours = np.where(rows["hit"], "#b8322a", "#33546e")
+    axis.errorbar(centre, y, xerr=[centre - low, high - centre], fmt="none", ecolor=colours, elinewidth=1.5)
+    axis.scatter(centre, y, c=colours, zorder=3, s=18)
+    axis.axvline(0.0, color="grey", linestyle="--", linewidth=1)
+    axis.set_yticks(y, rows["feature"], fontsize=8)
+    axis.set_xlabel(f"effect in negative-control well SDs ({ci_level:.0%} CI; red = hit)")
+    figure.tight_layout()
+    return figure
+
+
+def _wells_html(wells: pd.DataFrame, treatment: str) -> str:
+    """The plates and wells of the treatment, each plate linked to its report (excluded wells marked)."""
+    mine = wells[wells["treatment"] == treatment].sort_values(["batch", "plate", "well"])
+    items = []
+    for (batch, plate), group in mine.groupby(["batch", "plate"], sort=False, observed=True):
+        listed = ", ".join(
+            escape(w) + (f" (excluded: {escape(x)})" if x else "")
+            for w, x in zip(group["well"], group["excluded_by"].fillna(""))
+        )
+        items.append(
+            f'<li>{escape(batch)}: <a href="../plates/{escape(plate)}.html">{escape(plate)}</a>: {listed}</li>'
+        )
+    return "<ul>" + "".join(items) + "</ul>" if items else "<p>In no analysed well.</p>"
+
+
+def _time_html(effects_over_time: pd.DataFrame | None, treatment: str) -> str:
+    if effects_over_time is None or effects_over_time.empty:
+        return "<p>Not run.</p>"
+    curves = effects_over_time[effects_over_time["treatment"] == treatment]
+    if curves.empty:
+        return "<p>No effects over time for this treatment.</p>"
+    parts = []
+    for scale, group in curves.groupby("scale", sort=True):
+        figure = effect_curves_figure(group, "", panel="feature")
+        parts.append(figure_tag(figure, f"effects over time ({scale} scale)"))
+    return (
+        "<p>Effect per time window with pointwise intervals (bars) and the simultaneous band (shaded), "
+        "as in the screen report.</p>" + "".join(parts)
+    )
+
+
+def treatment_page(treatment: str, context: dict, provenance: dict) -> str:
+    """The HTML page of one treatment. ``context`` holds effects, wells, settings and, when run,
+    dose_figures (condition -> list of (alt, figure builder)) and effects_over_time."""
+    effects = context["effects"]
+    rows = effects[effects["treatment"] == treatment]
+    first = rows.iloc[0]
+    settings = context["settings"]
+    summary = (
+        f"<p>Condition {escape(first['condition'])}, dose {escape(first['dose'])} {escape(first['dose_unit'])}, "
+        f"role {escape(first['role'])}; {int(rows['hit'].sum())} hit(s) over {len(rows)} features. "
+        '<a href="../screen.html">Back to the screen report</a>.</p>'
+    )
+    doses = "".join(
+        figure_tag(build(), alt) for alt, build in context.get("dose_figures", {}).get(first["condition"], [])
+    )
+    sections = [
+        ("Summary", summary),
+        ("Effects on every feature", figure_tag(effects_across_features(rows, settings["ci_level"]), "effects")
+         + table_tag(rows[TREATMENT_COLUMNS + ["note"]])),
+        ("Dose-response of the compound", doses or "<p>No identifiable dose-response fit for this compound.</p>"),
+        ("Effects over time", _time_html(context.get("effects_over_time"), treatment)),
+        ("Plates and wells", _wells_html(context["wells"], treatment)),
+    ]  # fmt: skip
+    return page(f"plateloom treatment: {treatment}", sections, provenance)
+
+
+def linked_treatments(table_html: str, treatments: list[str]) -> str:
+    """Every treatment-name cell of a table linked to the treatment's page (reports/treatments/)."""
+    for treatment in treatments:
+        cell = f"<td>{escape(treatment)}</td>"
+        link = f'<td><a href="treatments/{escape(page_name(treatment))}">{escape(treatment)}</a></td>'
+        table_html = table_html.replace(cell, link)
+    return table_html
+
+
+def write_treatment_pages(results, settings: dict, provenance: dict, folder: str) -> None:
+    """One page per treatment of the effects table (``results``: a ``ScreenResults``) into ``folder``."""
+    import os
+
+    from plateloom.io.tables import write_text
+    from plateloom.report.screen_page import dose_response_plot  # imported here: screen_page imports this module
+
+    os.makedirs(folder, exist_ok=True)
+    dose_figures: dict[str, list] = {}
+    if results.dose_fits is not None and results.dose_points is not None:
+        points = results.dose_points
+        for _, fit in results.dose_fits[results.dose_fits["identifiable"]].iterrows():
+            mine = (points["feature"] == fit["feature"]) & (
+                (points["condition"] == fit["condition"]) | (points["role"] == "negative_control")
+            )
+            dose_figures.setdefault(fit["condition"], []).append(
+                (f"dose-response {fit['feature']}", lambda fit=fit, part=points[mine]: dose_response_plot(fit, part))
+            )
+    context = {
+        "effects": results.effects,
+        "wells": results.wells,
+        "settings": settings,
+        "dose_figures": dose_figures,
+        "effects_over_time": results.effects_over_time,
+    }
+    for treatment in sorted(results.effects["treatment"].unique()):
+        write_text(treatment_page(treatment, context, provenance), os.path.join(folder, page_name(treatment)))
