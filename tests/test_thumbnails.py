@@ -166,3 +166,33 @@ def test_beyond_the_shown_flagged_wells_the_rest_are_named():
     html = thumbnails_html(profile, {w: b"png" for w in wells}, flagged)
     assert html.count('class="thumb"') == MAX_FLAGGED + 6  # every shown flagged well, and six test wells
     assert f"2 more flagged well(s) not shown: {wells[MAX_FLAGGED]}, {wells[MAX_FLAGGED + 1]}." in html
+
+
+def test_cell_crops_span_the_sizes_and_montages_share_one_contrast(tmp_path):
+    from plateloom.report.montage import crop_files, montage_figure, sample_crops
+    from plateloom.well.snapshot import cell_crops, crops_bytes
+
+    # planted: 8 disks of radius 3..10 px on a 200 x 200 field, channel 2 = 2 x channel 1
+    labels = np.zeros((200, 200), np.int32)
+    yy, xx = np.mgrid[:200, :200]
+    for i, radius in enumerate(range(3, 11)):
+        cy, cx = 30 + (i // 4) * 100, 25 + (i % 4) * 50
+        labels[(yy - cy) ** 2 + (xx - cx) ** 2 <= radius**2] = i + 1
+    planes = np.stack([labels > 0, 2 * (labels > 0)]).astype(np.float32) * 100
+    crops, areas = cell_crops(planes, labels, pixel_size_um=1.0, count=4)
+    assert crops.shape == (4, 2, 24, 24)  # 12 um half side at 1 um per pixel
+    assert np.all(np.diff(areas) > 0) and areas[0] == (labels == 1).sum() and areas[-1] == (labels == 8).sum()
+    np.testing.assert_array_equal(crops[:, 1], 2 * crops[:, 0])
+    assert crops[0, 0, 12, 12] == 100  # centred on its nucleus
+    folder = tmp_path / "thumbnails" / "plate=P1" / "chunk=000"
+    folder.mkdir(parents=True)
+    for well in ("B02", "C03"):
+        (folder / f"{well}.npz").write_bytes(crops_bytes(crops, areas, 1.0, ["dna", "rep"]))
+    files = crop_files([str(folder)])
+    assert set(files) == {("P1", "B02"), ("P1", "C03")}
+    wells = pd.DataFrame({"batch": "d1", "plate": "P1", "well": ["C03", "B02"]})
+    sampled, sampled_areas, pixel, channels = sample_crops(wells, files, per_well=3, most=5)
+    assert len(sampled) == 5 and np.all(np.diff(sampled_areas) >= 0) and channels == ["dna", "rep"]
+    figure = montage_figure([("a", sampled), ("b", sampled[:2])], pixel, channels)
+    first, second = (axis.get_images()[0].get_array() for axis in figure.axes)
+    assert first.max() == second.max() == 1.0  # one contrast: the same values give the same grey

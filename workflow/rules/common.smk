@@ -138,6 +138,11 @@ ALL_TIME_COURSES = (
     else []
 )
 KINETIC_SUMMARY = f"{RESULTS}/kinetic_summary.parquet"
+ALL_THUMBNAIL_FOLDERS = [
+    f"{RESULTS}/thumbnails/plate={plate}/chunk={chunk}"
+    for plate in sorted(PLAN.plates)
+    for chunk in PLAN.chunk_ids(plate)
+]
 EFFECTS_OVER_TIME = f"{RESULTS}/effects_over_time.parquet"
 ALL_WELL_TABLES = expand(PLATE_TABLES["wells"], plate=sorted(PLAN.plates))
 ALL_LEDGERS = expand(PLATE_TABLES["ledger"], plate=sorted(PLAN.plates))

@@ -178,6 +178,7 @@ rule screen_report:
         design_check=f"{RESULTS}/design_check.parquet",
         model_wells=MODEL_WELLS,
         kinetics=[EFFECTS_OVER_TIME, KINETIC_SUMMARY] if KINETICS.enabled else [],
+        thumbnails=ALL_THUMBNAIL_FOLDERS,
     output:
         report=report(
             f"{RESULTS}/reports/screen.html",

@@ -5,6 +5,7 @@ import pandas as pd
 from plateloom.io.job import run_step
 from plateloom.io.tables import read_extra, read_provenance, write_text
 from plateloom.report.html import write_figure
+from plateloom.report.montage import crop_files
 from plateloom.report.screen_page import (
     ScreenResults,
     batch_components_plot,
@@ -33,6 +34,7 @@ def step() -> None:
         design_warnings=read_extra(sm.input.model_wells).get("design_warnings", []),
         effects_over_time=pd.read_parquet(sm.input.kinetics[0]) if sm.input.kinetics else None,
         kinetic_summary=pd.read_parquet(sm.input.kinetics[1]) if sm.input.kinetics else None,
+        crop_files=crop_files(list(sm.input.thumbnails)),
     )
     settings = dict(sm.params.settings) | {"onset_windows": sm.params.onset_windows}
     provenance = read_provenance(sm.input.effects)

@@ -11,7 +11,7 @@ from matplotlib.ticker import NullLocator
 
 from plateloom.report.html import escape, figure_tag, page, table_tag
 from plateloom.report.time_panels import kinetics_html
-from plateloom.report.treatment_pages import linked_treatments
+from plateloom.report.treatment_pages import linked_treatments, montage_html
 from plateloom.screen.dose_response import hill_curve
 
 NICE_RATIOS = (0.01, 0.02, 0.05, 0.1, 0.2, 0.25, 0.33, 0.5, 0.67, 0.8, 0.9, 1.0, 1.1, 1.25, 1.5, 2.0, 3.0, 4.0, 5.0,
@@ -192,6 +192,7 @@ class ScreenResults:
     design_warnings: list[str] = field(default_factory=list)
     effects_over_time: pd.DataFrame | None = None
     kinetic_summary: pd.DataFrame | None = None
+    crop_files: dict | None = None  # (plate, well) -> crops (plateloom.report.montage.crop_files)
 
 
 EFFECT_COLUMNS = [
@@ -346,6 +347,12 @@ def build_screen_report(results: ScreenResults, settings: dict, provenance: dict
         ("Effects with confidence intervals", forest),
         ("Dose-response", _dose_html(results.dose_fits, results.dose_points)),
         ("Effects over time", kinetics_html(results.effects_over_time, results.kinetic_summary, settings)),
+        (
+            "Cells",
+            montage_html(
+                results.wells, hits.drop_duplicates("treatment")["treatment"].head(3).tolist(), results.crop_files
+            ),
+        ),
         ("Batch diagnostics", _batch_html(results)),
         ("Variance components", _components_html(effects)),
         ("Design check", _design_html(results.design)),

@@ -11,6 +11,7 @@ import numpy as np
 import pandas as pd
 
 from plateloom.report.html import escape, figure_tag, page, table_tag
+from plateloom.report.montage import montage_figure, sample_crops
 from plateloom.report.time_panels import effect_curves_figure
 
 TREATMENT_COLUMNS = ["feature", "scale", "estimate", "ci_low", "ci_high", "ratio", "df", "q_value", "hit", "n_wells"]
@@ -57,6 +58,30 @@ def _wells_html(wells: pd.DataFrame, treatment: str) -> str:
     return "<ul>" + "".join(items) + "</ul>" if items else "<p>In no analysed well.</p>"
 
 
+def montage_html(wells: pd.DataFrame, treatments: list[str], files: dict | None) -> str:
+    """Montages of the given treatments' cells and the negative controls' (one contrast for all),
+    sampled across plates and days from the wells kept in the model."""
+    if not files:
+        return "<p>No cell crops (thumbnails are written by the per-well jobs).</p>"
+    kept = wells[(wells["excluded_by"].fillna("") == "") & (wells.get("plate_excluded_by", "") == "")]
+    groups, pixel, channels = [], None, None
+    for label, mine in [("negative controls", kept["role"] == "negative_control")] + [
+        (t, kept["treatment"] == t) for t in treatments
+    ]:
+        sample = sample_crops(kept[mine], files)
+        if sample is not None:
+            crops, _, pixel, channels = sample
+            groups.append((f"{label}: {len(crops)} cells, smallest to largest nucleus", crops))
+    if not groups:
+        return "<p>No cell crops for these wells.</p>"
+    return (
+        "<p>Nuclei cut from each well's thumbnail frame (its first frame flagged by site QC, else its last "
+        "usable frame), up to 3 per well, taken in turn from every plate and day, ordered by nuclear area; "
+        "the same contrast per channel in every panel.</p>"
+        + figure_tag(montage_figure(groups, pixel, channels), "cell montage")
+    )
+
+
 def _time_html(effects_over_time: pd.DataFrame | None, treatment: str) -> str:
     if effects_over_time is None or effects_over_time.empty:
         return "<p>Not run.</p>"
@@ -94,6 +119,7 @@ def treatment_page(treatment: str, context: dict, provenance: dict) -> str:
          + table_tag(rows[TREATMENT_COLUMNS + ["note"]])),
         ("Dose-response of the compound", doses or "<p>No identifiable dose-response fit for this compound.</p>"),
         ("Effects over time", _time_html(context.get("effects_over_time"), treatment)),
+        ("Cells", montage_html(context["wells"], [treatment], context.get("crop_files"))),
         ("Plates and wells", _wells_html(context["wells"], treatment)),
     ]  # fmt: skip
     return page(f"plateloom treatment: {treatment}", sections, provenance)
@@ -132,6 +158,7 @@ def write_treatment_pages(results, settings: dict, provenance: dict, folder: str
         "settings": settings,
         "dose_figures": dose_figures,
         "effects_over_time": results.effects_over_time,
+        "crop_files": results.crop_files,
     }
     for treatment in sorted(results.effects["treatment"].unique()):
         write_text(treatment_page(treatment, context, provenance), os.path.join(folder, page_name(treatment)))

@@ -14,7 +14,7 @@ from plateloom.io.images import ImageIndex, read_site_frame, usual_pixel_type
 from plateloom.io.tables import well_part_path, write_bytes, write_parquet
 from plateloom.well.collective import CollectiveSettings, well_collective_readouts
 from plateloom.well.illumination import apply_flat_field
-from plateloom.well.snapshot import overlay_rgb, png_bytes, snapshot_frame, track_tails
+from plateloom.well.snapshot import cell_crops, crops_bytes, overlay_rgb, png_bytes, snapshot_frame, track_tails
 from plateloom.well.stage import WellSettings, analyse_well, segment_frame, with_keys
 
 
@@ -39,19 +39,20 @@ class ChunkOutputs:
     tracks: str
     site_qc: str
     collective: str | None = None
-    thumbnails: str | None = None  # one <well>.png per well (plateloom.well.snapshot)
+    thumbnails: str | None = None  # per well <well>.png and <well>.npz (crops) (plateloom.well.snapshot)
 
 
-def well_thumbnail(
+def well_snapshot(
     index: ImageIndex,
     well: str,
     settings: WellSettings,
     flat_field: np.ndarray | None,
     cells: pd.DataFrame,
     site_qc: pd.DataFrame,
-) -> bytes | None:
-    """PNG of the well's first site on its first flagged (else last usable) frame, with nuclear
-    outlines and track tails; None when no frame of that site can be read."""
+) -> tuple[bytes, bytes] | None:
+    """The well's first site on its first flagged (else last usable) frame: a PNG with nuclear
+    outlines and track tails, and an .npz of a few nuclei's crops (``cell_crops``, for the
+    montages); None when no frame of that site can be read."""
     site = int(site_qc["site"].min())
     frame = snapshot_frame(site_qc, site)
     planes = None if frame is None else read_site_frame(index, well, site, list(settings.channels), frame)
@@ -60,7 +61,9 @@ def well_thumbnail(
     planes = apply_flat_field(planes, flat_field)
     labels = segment_frame(planes, settings)[0]
     nuclear = planes[list(settings.channels).index(settings.nuclei_channel)]
-    return png_bytes(overlay_rgb(nuclear, labels, track_tails(cells, site, frame, settings.pixel_size_um)))
+    png = png_bytes(overlay_rgb(nuclear, labels, track_tails(cells, site, frame, settings.pixel_size_um)))
+    crops, areas = cell_crops(planes, labels, settings.pixel_size_um)
+    return png, crops_bytes(crops, areas, settings.pixel_size_um, list(settings.channels))
 
 
 def analyse_chunk(
@@ -89,10 +92,11 @@ def analyse_chunk(
             tables.append(collective_table(cells, settings, collective or CollectiveSettings.defaults(), well))
         for table, folder in zip(tables, folders):
             write_parquet(with_keys(table, plate, well), well_part_path(folder, well), config_for_provenance)
-        thumbnail = well_thumbnail(index, well, settings, flat_field, cells, site_qc) if outputs.thumbnails else None
-        if thumbnail is not None:
-            write_bytes(thumbnail, os.path.join(outputs.thumbnails, f"{well}.png"))
+        snapshot = well_snapshot(index, well, settings, flat_field, cells, site_qc) if outputs.thumbnails else None
+        if snapshot is not None:
+            write_bytes(snapshot[0], os.path.join(outputs.thumbnails, f"{well}.png"))
+            write_bytes(snapshot[1], os.path.join(outputs.thumbnails, f"{well}.npz"))
         log.info(
-            "well %s done (%d of %d): %d nuclei in %d site-frames, %d tracks, %.1f s",
-            well, number, len(wells), len(cells), len(site_qc), len(tracks), time.perf_counter() - started,
+            "plate %s well %s done (%d of %d): %d nuclei in %d site-frames, %d tracks, %.1f s",
+            plate, well, number, len(wells), len(cells), len(site_qc), len(tracks), time.perf_counter() - started,
         )  # fmt: skip

@@ -81,3 +81,49 @@ def png_bytes(rgb: np.ndarray) -> bytes:
     buffer = io.BytesIO()
     mpl_image.imsave(buffer, rgb, format="png", metadata={"Software": None})
     return buffer.getvalue()
+
+
+CROPS_PER_WELL = 6
+CROP_HALF_UM = 12.0  # a crop is 24 um a side: a nucleus with a margin of its surroundings
+
+
+def cell_crops(planes: np.ndarray, labels: np.ndarray, pixel_size_um: float, count: int = CROPS_PER_WELL):
+    """Crops of up to ``count`` nuclei of one frame, for montages: (crops (n, channels, side, side)
+    in the image's grey levels, their nuclei's areas in um2). The nuclei are those whose crop lies
+    inside the image, taken at evenly spaced ranks of area (smallest to largest), so a well's crops
+    show its spread of sizes; the same frame always gives the same crops."""
+    half = max(4, int(round(CROP_HALF_UM / pixel_size_um)))
+    n_labels = int(labels.max())
+    empty = np.zeros((0, planes.shape[0], 2 * half, 2 * half), np.float32), np.zeros(0)
+    if n_labels == 0:
+        return empty
+    index = np.flatnonzero(labels)
+    owner = labels.ravel()[index]
+    y, x = np.divmod(index, labels.shape[1])
+    area = np.bincount(owner, minlength=n_labels + 1).astype(float)
+    with np.errstate(invalid="ignore"):
+        cy = np.rint(np.bincount(owner, y, n_labels + 1) / area)
+        cx = np.rint(np.bincount(owner, x, n_labels + 1) / area)
+    inside = (cy >= half) & (cx >= half) & (cy + half <= labels.shape[0]) & (cx + half <= labels.shape[1])
+    candidates = np.flatnonzero(inside & (area > 0))
+    if len(candidates) == 0:
+        return empty
+    by_area = candidates[np.argsort(area[candidates], kind="stable")]
+    chosen = by_area[np.unique(np.round(np.linspace(0, len(by_area) - 1, min(count, len(by_area)))).astype(int))]
+    crops = np.stack(
+        [planes[:, int(cy[i]) - half : int(cy[i]) + half, int(cx[i]) - half : int(cx[i]) + half] for i in chosen]
+    )
+    return crops.astype(np.float32), area[chosen] * pixel_size_um**2
+
+
+def crops_bytes(crops: np.ndarray, areas_um2: np.ndarray, pixel_size_um: float, channels: list[str]) -> bytes:
+    """The crops as a compressed NumPy archive (.npz: crops, area_um2, pixel_size_um, channels)."""
+    buffer = io.BytesIO()
+    np.savez_compressed(
+        buffer,
+        crops=crops.astype(np.float32),
+        area_um2=np.asarray(areas_um2, float),
+        pixel_size_um=np.float64(pixel_size_um),
+        channels=np.array(channels),
+    )
+    return buffer.getvalue()

@@ -1,0 +1,103 @@
+"""Cell montages: crops of nuclei (``plateloom.well.snapshot.cell_crops``, written beside each well's
+thumbnail) sampled deterministically across a treatment's plates and days, laid out in a grid
+with the same contrast for every crop of a figure and a scale bar in micrometres."""
+
+from __future__ import annotations
+
+import os
+
+import matplotlib.pyplot as plt
+import numpy as np
+import pandas as pd
+
+TILES_PER_ROW = 8
+SCALE_BAR_UM = 10.0
+
+
+def crop_files(folders: list[str]) -> dict[tuple[str, str], str]:
+    """(plate, well) -> path of the well's crops, from thumbnail folders .../plate=P/chunk=C."""
+    found = {}
+    for folder in folders:
+        plate = os.path.basename(os.path.dirname(os.path.normpath(folder))).split("=", 1)[-1]
+        for name in sorted(os.listdir(folder)) if os.path.isdir(folder) else []:
+            if name.endswith(".npz"):
+                found[(plate, name[: -len(".npz")])] = os.path.join(folder, name)
+    return found
+
+
+def sample_crops(wells: pd.DataFrame, files: dict, per_well: int = 3, most: int = 24):
+    """Crops of the given wells (columns batch, plate, well), taken in turn from the plates (ordered
+    by batch, plate, well) so that every day and plate is represented, ``per_well`` per well at
+    most, ``most`` in all: (crops (n, channels, side, side), areas um2, pixel size um, channels)
+    ordered by area; None when no well has crops."""
+    ordered = wells.sort_values(["batch", "plate", "well"])
+    queues = [list(g["well"]) for _, g in ordered.groupby(["batch", "plate"], sort=True, observed=True)]
+    plates = [str(p) for p in ordered.drop_duplicates(["batch", "plate"])["plate"]]
+    picked, areas, pixel, channels = [], [], None, None
+    taken = 0
+    while taken < most and any(queues):
+        for plate, queue in zip(plates, queues):
+            if not queue or taken >= most:
+                continue
+            path = files.get((plate, str(queue.pop(0))))
+            if path is None:
+                continue
+            with np.load(path) as data:
+                crops, area = data["crops"][:per_well], data["area_um2"][:per_well]
+                pixel, channels = float(data["pixel_size_um"]), [str(c) for c in data["channels"]]
+            keep = crops[: most - taken]
+            picked.append(keep)
+            areas.append(area[: len(keep)])
+            taken += len(keep)
+    if not taken:
+        return None
+    crops, areas = np.concatenate(picked), np.concatenate(areas)
+    order = np.argsort(areas, kind="stable")
+    return crops[order], areas[order], pixel, channels
+
+
+def _contrast(groups: list[np.ndarray]) -> tuple[np.ndarray, np.ndarray]:
+    """Per channel: the 1st and 99.5th percentiles over every crop of every group (one contrast)."""
+    stacked = np.concatenate(groups)
+    low = np.percentile(stacked, 1.0, axis=(0, 2, 3))
+    high = np.percentile(stacked, 99.5, axis=(0, 2, 3))
+    return low, np.maximum(high, low + 1e-6)
+
+
+def _canvas(crops: np.ndarray, low: np.ndarray, high: np.ndarray) -> np.ndarray:
+    """The crops as one grey image: a tile per cell (its channels side by side), TILES_PER_ROW a row."""
+    n, channels, side, _ = crops.shape
+    scaled = np.clip((crops - low[None, :, None, None]) / (high - low)[None, :, None, None], 0, 1)
+    gap = 2
+    tile_width = channels * side + (channels - 1) * gap
+    rows = int(np.ceil(n / TILES_PER_ROW))
+    canvas = np.ones((rows * (side + 3 * gap), min(n, TILES_PER_ROW) * (tile_width + 3 * gap)))
+    for i in range(n):
+        top, left = (i // TILES_PER_ROW) * (side + 3 * gap), (i % TILES_PER_ROW) * (tile_width + 3 * gap)
+        for c in range(channels):
+            x = left + c * (side + gap)
+            canvas[top : top + side, x : x + side] = scaled[i, c]
+    return canvas
+
+
+def montage_figure(groups: list[tuple[str, np.ndarray]], pixel_size_um: float, channels: list[str]) -> plt.Figure:
+    """One panel per (title, crops) group, every group with the same contrast per channel; each
+    cell shows its channels side by side (in ``channels`` order); a scale bar of SCALE_BAR_UM."""
+    low, high = _contrast([crops for _, crops in groups])
+    canvases = [_canvas(crops, low, high) for _, crops in groups]
+    width = max(c.shape[1] for c in canvases)
+    heights = [c.shape[0] for c in canvases]
+    figure_width = min(12.0, width / 40 + 1)
+    drawn = sum(h / width * (figure_width - 0.4) + 0.35 for h in heights)  # panels fill the width
+    figure, axes = plt.subplots(
+        len(groups), 1, figsize=(figure_width, drawn), squeeze=False, gridspec_kw={"height_ratios": heights}
+    )
+    bar = SCALE_BAR_UM / pixel_size_um
+    for axis, (title, _), canvas in zip(axes[:, 0], groups, canvases):
+        axis.imshow(canvas, cmap="gray", vmin=0, vmax=1, interpolation="nearest")
+        axis.plot([3, 3 + bar], [canvas.shape[0] - 4] * 2, color="#ffd400", linewidth=3)
+        axis.set_title(f"{title} ({' | '.join(channels)} per cell; bar {SCALE_BAR_UM:g} um)", fontsize=8)
+        axis.set_xlim(0, width)
+        axis.axis("off")
+    figure.tight_layout()
+    return figure
