@@ -220,3 +220,14 @@ def test_treatment_pages_have_safe_distinct_names_and_link_back():
     assert 'href="../screen.html"' in html and "1 hit(s) over 2 features" in html
     linked = linked_treatments("<td>T 1 uM</td><td>T 1 uM</td>", ["T 1 uM"])
     assert linked.count(f'href="treatments/{page_name("T 1 uM")}"') == 2
+
+
+def test_a_batch_share_raised_by_the_correction_is_explained():
+    from plateloom.report.screen_page import _raised_share_note
+
+    wide = pd.DataFrame(
+        {"batch_share_before": [0.30, 0.05], "batch_share_after": [0.02, 0.09]}, index=["area_um2", "solidity"]
+    )
+    note = _raised_share_note(wide)
+    assert "raised the batch share of 1 feature(s) (solidity)" in note and "uncorrected values" in note
+    assert _raised_share_note(wide.iloc[:1]) == ""

@@ -70,21 +70,20 @@ def anchor(heading: str) -> str:
 
 
 def page(title: str, sections: list[tuple[str, str]], provenance: dict) -> str:
-    """A complete HTML document: title, the cautions, a table of contents, sections (heading, HTML
-    body), provenance; tables sortable and filterable by an inline script (nothing fetched)."""
-    with open(STYLE_PATH, encoding="utf-8") as handle:
-        style = handle.read()
-    with open(TABLES_SCRIPT_PATH, encoding="utf-8") as handle:
-        script = handle.read()
-    headings = [heading for heading, _ in sections] + ["Provenance"]
-    contents = "".join(f'<li><a href="#{anchor(h)}">{escape(h)}</a></li>' for h in headings)
-    body = "".join(f'<h2 id="{anchor(heading)}">{escape(heading)}</h2>\n{content}\n' for heading, content in sections)
-    meta = escape(json.dumps(provenance, sort_keys=True, indent=1))
-    return (
-        f'<!DOCTYPE html>\n<html lang="en"><head><meta charset="utf-8"><title>{escape(title)}</title>'
-        f"<style>{style}</style></head><body>\n<h1>{escape(title)}</h1>\n"
-        f'<p class="caution">{escape(CAUTIONS)}</p>\n'
-        f'<nav class="contents"><ol>{contents}</ol></nav>\n{body}'
-        f'<h2 id="provenance">Provenance</h2><pre class="meta">{meta}</pre>\n'
-        f"<script>{script}</script>\n</body></html>\n"
+    """A complete HTML document from the page template (Jinja2, every text escaped): title, the
+    cautions, a table of contents, sections (heading, HTML body built by the report modules),
+    provenance; tables sortable and filterable by an inline script (nothing fetched)."""
+    import jinja2
+
+    folder = STYLE_PATH.parent
+    environment = jinja2.Environment(
+        loader=jinja2.FileSystemLoader(str(folder)), autoescape=True, keep_trailing_newline=True
+    )
+    return environment.get_template("page.html").render(
+        title=title,
+        cautions=CAUTIONS,
+        style=(folder / "style.css").read_text(encoding="utf-8"),
+        script=TABLES_SCRIPT_PATH.read_text(encoding="utf-8"),
+        sections=[{"heading": h, "anchor": anchor(h), "body": body} for h, body in sections],
+        provenance=json.dumps(provenance, sort_keys=True, indent=1),
     )

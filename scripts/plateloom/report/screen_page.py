@@ -286,6 +286,21 @@ def _ledger_html(ledger: pd.DataFrame) -> str:
     return table_tag(counts) + "<p>Wells and plates left out of the model:</p>" + table_tag(left_out)
 
 
+def _raised_share_note(wide: pd.DataFrame) -> str:
+    """A note naming the features whose batch share the correction raised, and what that means."""
+    raised = wide.index[wide["batch_share_after"] > wide["batch_share_before"] + 1e-9].tolist()
+    if not raised:
+        return ""
+    return (
+        f"<p>The correction raised the batch share of {len(raised)} feature(s) ({escape(', '.join(raised))}). "
+        "It aligns each batch's negative-control median, which removes a day's shift only as far as the "
+        "controls measure it: with few or noisy control wells, or a batch shift that is not the same for "
+        "every treatment, the aligned values can differ more between batches than before. The effects "
+        "do not depend on it: the model is fitted on uncorrected values with a random intercept per batch "
+        "(screen.model_on_corrected_values is off by default); these columns are diagnostics.</p>"
+    )
+
+
 def _batch_html(results: ScreenResults) -> str:
     html = "<p>No diagnostics.</p>"
     if results.variance is not None and results.components is not None:
@@ -296,7 +311,7 @@ def _batch_html(results: ScreenResults) -> str:
         html = (
             figure_tag(batch_components_plot(results.components), "principal components by batch")
             + "<p>Share of treatment-adjusted variance between batches, plates within batch and wells, "
-            "before and after correction:</p>" + table_tag(wide[order].reset_index())
+            "before and after correction:</p>" + table_tag(wide[order].reset_index()) + _raised_share_note(wide)
         )
     if results.correction_notes:
         html += "<ul>" + "".join(f"<li>{escape(n)}</li>" for n in results.correction_notes) + "</ul>"
