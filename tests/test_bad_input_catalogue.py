@@ -312,3 +312,28 @@ def test_an_empty_image_file_costs_only_its_site(tmp_path):
     assert (
         "well A01, site 2:" in flagged["frame_problem"].iloc[0] and "A01_s2_dna.tif" in flagged["frame_problem"].iloc[0]
     )
+
+
+def test_exported_labels_are_an_ome_tiff_time_series_matching_the_cells_table(tmp_path):
+    # Reference: tifffile's OME-TIFF reader (axes, physical size in the OME-XML); the label under each
+    # nucleus's centroid is its object number in the cells table of that frame.
+    from plateloom.well.chunk import ChunkOutputs, analyse_chunk
+
+    images = tmp_path / "images"
+    images.mkdir()
+    tifffile.imwrite(images / "A01_s1_dna.tif", _nuclei_stack(frames=3), photometric="minisblack")
+    (images / "A01_s2_dna.tif").write_bytes(b"")  # an unreadable site: no labels written for it
+    out = tmp_path / "out"
+    folders = ChunkOutputs(str(out / "cells"), str(out / "tracks"), str(out / "site_qc"), labels=str(out / "labels"))
+    analyse_chunk(_index(images), "P1", ["A01"], _settings(), folders, {})
+    assert sorted(p.name for p in (out / "labels").iterdir()) == ["A01_s1.ome.tif"]
+    with tifffile.TiffFile(out / "labels" / "A01_s1.ome.tif") as tif:
+        assert tif.is_ome and tif.series[0].axes == "TYX"
+        labels = tif.asarray()
+        assert 'PhysicalSizeX="1.0"' in tif.ome_metadata and 'TimeIncrement="1.0"' in tif.ome_metadata
+    cells = pd.read_parquet(out / "cells" / "well=A01" / "part-0.parquet")
+    cells = cells[cells["site"] == 1]
+    assert labels.shape[0] == 3 and len(cells) > 0
+    x = np.rint(cells["centroid_x_um"].to_numpy()).astype(int)  # 1 um pixels
+    y = np.rint(cells["centroid_y_um"].to_numpy()).astype(int)
+    assert (labels[cells["frame"].to_numpy(), y, x] == cells["object"].to_numpy()).mean() > 0.95

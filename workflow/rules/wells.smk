@@ -39,6 +39,7 @@ rule analyse_wells:
         site_qc=directory(f"{RESULTS}/site_qc/plate={{plate}}/chunk={{chunk}}"),
         collective=directory(f"{RESULTS}/collective/plate={{plate}}/chunk={{chunk}}"),
         thumbnails=directory(f"{RESULTS}/thumbnails/plate={{plate}}/chunk={{chunk}}"),
+        labels=directory(f"{RESULTS}/labels/plate={{plate}}/chunk={{chunk}}"),
     log:
         f"{RESULTS}/logs/analyse_wells/{{plate}}_{{chunk}}.log",
     benchmark:
@@ -58,5 +59,6 @@ rule analyse_wells:
         template=get_filename_template,
         settings=WELL_SETTINGS,
         collective=COLLECTIVE,
+        export_labels=config["segmentation"]["export_labels"],
     script:
         "../scripts/analyse_wells.py"

@@ -1,5 +1,7 @@
 """Rule analyse_wells: segment, track and measure one chunk of wells of one plate."""
 
+import os
+
 import numpy as np
 import tifffile
 
@@ -17,6 +19,7 @@ def step() -> None:
     index = index_plate_images(
         sm.params.image_folder, sm.params.template, sm.params.plate_format, list(settings.channels)
     )
+    os.makedirs(sm.output.labels, exist_ok=True)  # empty unless segmentation.export_labels
     profiles = list(sm.input.flat_fields)
     flat_field = np.stack([tifffile.imread(path) for path in profiles]) if profiles else None
     analyse_chunk(
@@ -24,7 +27,14 @@ def step() -> None:
         sm.wildcards.plate,
         list(sm.params.wells),
         settings,
-        ChunkOutputs(sm.output.cells, sm.output.tracks, sm.output.site_qc, sm.output.collective, sm.output.thumbnails),
+        ChunkOutputs(
+            sm.output.cells,
+            sm.output.tracks,
+            sm.output.site_qc,
+            sm.output.collective,
+            sm.output.thumbnails,
+            sm.output.labels if sm.params.export_labels else None,
+        ),
         dict(sm.params.settings),
         flat_field,
         CollectiveSettings(**sm.params.collective),

@@ -198,3 +198,33 @@ def stream_multichannel_site(index: ImageIndex, well: str, site: int, channels: 
                 yield SiteFrame(frame, None, np.full(len(channels), np.nan), problem)
             else:
                 yield SiteFrame(frame, np.stack(planes), np.array(saturated))
+
+
+def write_label_stack(
+    path: str, frames: dict[int, np.ndarray], n_frames: int, pixel_size_um: float, frame_interval_min: float
+) -> None:
+    """Write one site's nucleus labels as an OME-TIFF time series (axes TYX, one page per frame,
+    physical pixel size and frame interval in the OME metadata), atomically. ``frames`` maps frame
+    number -> label image (the value of a nucleus is its ``object`` in the cells table of that
+    frame); a frame without labels (unusable) is written as zeros, so page t is frame t."""
+    import tifffile
+
+    from plateloom.io.tables import atomic_path
+
+    shape = next(iter(frames.values())).shape
+    largest = max(int(labels.max(initial=0)) for labels in frames.values())
+    dtype = np.uint16 if largest < 2**16 else np.uint32
+    stack = np.zeros((n_frames, *shape), dtype)
+    for frame, labels in frames.items():
+        stack[frame] = labels
+    metadata = {
+        "axes": "TYX",
+        "PhysicalSizeX": pixel_size_um,
+        "PhysicalSizeY": pixel_size_um,
+        "PhysicalSizeXUnit": "µm",
+        "PhysicalSizeYUnit": "µm",
+        "TimeIncrement": frame_interval_min,
+        "TimeIncrementUnit": "min",
+    }
+    with atomic_path(path) as tmp:
+        tifffile.imwrite(tmp, stack, ome=True, metadata=metadata, compression="zlib")

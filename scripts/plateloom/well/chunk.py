@@ -11,6 +11,7 @@ import numpy as np
 import pandas as pd
 
 from plateloom.io.images import ImageIndex, read_site_frame, usual_pixel_type
+from plateloom.io.ome_tiff import write_label_stack
 from plateloom.io.tables import well_part_path, write_bytes, write_parquet
 from plateloom.well.collective import CollectiveSettings, well_collective_readouts
 from plateloom.well.illumination import apply_flat_field
@@ -40,6 +41,7 @@ class ChunkOutputs:
     site_qc: str
     collective: str | None = None
     thumbnails: str | None = None  # per well <well>.png and <well>.npz (crops) (plateloom.well.snapshot)
+    labels: str | None = None  # with segmentation.export_labels: <well>_s<site>.ome.tif per site
 
 
 def well_snapshot(
@@ -80,13 +82,19 @@ def analyse_chunk(
     (cells, tracks, site QC and, with a collective folder, the well's collective readouts) and,
     with a thumbnails folder, one PNG per well."""
     folders = [outputs.cells, outputs.tracks, outputs.site_qc] + ([outputs.collective] if outputs.collective else [])
-    for folder in folders + ([outputs.thumbnails] if outputs.thumbnails else []):
+    for folder in folders + [f for f in (outputs.thumbnails, outputs.labels) if f]:
         os.makedirs(folder, exist_ok=True)
     pixel_type = usual_pixel_type(index)  # a site exported at another bit depth is flagged, not measured
     log = logging.getLogger("plateloom")
     for number, well in enumerate(wells, start=1):
         started = time.perf_counter()
-        cells, tracks, site_qc = analyse_well(index, well, settings, flat_field, pixel_type)
+        label_frames: dict | None = {} if outputs.labels else None
+        cells, tracks, site_qc = analyse_well(index, well, settings, flat_field, pixel_type, label_frames)
+        for site, frames in (label_frames or {}).items():
+            if frames:
+                n_frames = int(site_qc.loc[site_qc["site"] == site, "frame"].max()) + 1
+                path = os.path.join(outputs.labels, f"{well}_s{site}.ome.tif")
+                write_label_stack(path, frames, n_frames, settings.pixel_size_um, settings.frame_interval_min)
         tables = [cells, tracks, site_qc]
         if outputs.collective:
             tables.append(collective_table(cells, settings, collective or CollectiveSettings.defaults(), well))

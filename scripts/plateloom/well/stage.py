@@ -241,12 +241,14 @@ def analyse_site(
     settings: WellSettings,
     flat_field: np.ndarray | None = None,
     pixel_type: str | None = None,
+    label_frames: dict[int, np.ndarray] | None = None,
 ) -> tuple[pd.DataFrame, pd.DataFrame]:
     """Observations (with track ids local to the site) and per-frame QC of one site.
 
     ``flat_field`` (channels, y, x), if given, divides every frame before segmentation and
     measurement. A frame that cannot be used gets a QC row with ``frame_problem`` (the
-    message) and no observations; tracks bridge it by gap closing.
+    message) and no observations; tracks bridge it by gap closing. ``label_frames``, if given,
+    receives each usable frame's nucleus labels (frame -> labels; for the optional label export).
     """
     channels = list(settings.channels)
     observations, qc_rows = [], []
@@ -260,6 +262,8 @@ def analyse_site(
         saturated = saturation_masks(item.planes)  # before the flat field moves the ceiling
         planes = apply_flat_field(item.planes, flat_field)
         labels, bodies, threshold, smooth = segment_frame(planes, settings)
+        if label_frames is not None:
+            label_frames[item.frame] = labels
         table, background = measure_frame(planes, labels, bodies, settings, saturated)
         tracks = linker.tracks_of(table[["centroid_x_um", "centroid_y_um"]].to_numpy())
         table.insert(0, "frame", item.frame)
@@ -319,10 +323,12 @@ def analyse_well(
     settings: WellSettings,
     flat_field: np.ndarray | None = None,
     pixel_type: str | None = None,
+    label_frames: dict[int, dict[int, np.ndarray]] | None = None,
 ) -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame]:
     """Cells, tracks and site QC of one well over all its sites.
 
-    Track ids are unique within the well (site-local ids are offset site by site).
+    Track ids are unique within the well (site-local ids are offset site by site). ``label_frames``,
+    if given, receives site -> frame -> nucleus labels (``analyse_site``).
     """
     sites = sorted(index.table.loc[index.table["well"] == well, "site"].unique())
     if not sites:
@@ -333,7 +339,8 @@ def analyse_well(
         )
     cell_parts, qc_parts, offset = [], [], 0
     for site in sites:
-        cells, qc = analyse_site(index, well, int(site), settings, flat_field, pixel_type)
+        frames = label_frames.setdefault(int(site), {}) if label_frames is not None else None
+        cells, qc = analyse_site(index, well, int(site), settings, flat_field, pixel_type, frames)
         cells["track"] += offset
         cells.loc[cells["parent_track"] >= 0, "parent_track"] += offset
         offset = int(cells["track"].max()) + 1 if len(cells) else offset
