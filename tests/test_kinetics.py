@@ -224,5 +224,5 @@ def test_windows_count_from_the_treatment_when_it_is_given():
     assert cells["window"].tolist() == [0, 1] and cells["n_frames"].tolist() == [3, 3]
     windows = pd.DataFrame({"well": ["A01", "A01"], "window": [0, 1], "n_observations": [30, 30], "f": [1.0, 2.0]})
     profile = pd.DataFrame({"plate": ["P"], "well": ["A01"], "role": ["test"], "excluded_by": [""]})
-    table = time_course_table(windows, cells, profile, 30.0, (20.0, "treatment"))
+    table = time_course_table(windows, cells, profile, 30.0, "treatment")
     assert table["window_start_min"].tolist() == [0.0, 30.0] and table["time_origin"].eq("treatment").all()

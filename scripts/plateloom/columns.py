@@ -187,3 +187,19 @@ def well_features(columns: list[str]) -> list[str]:
 def unregistered(columns: list[str]) -> list[str]:
     """Column names the registry does not know (a test keeps every produced table free of them)."""
     return [name for name in columns if lookup(name) is None and not is_derived(name)]
+
+
+# The keys of a well in the well profiles and every table made from them (layout and position).
+KEY_COLUMNS = [
+    "plate",
+    "batch",
+    "well",
+    "row",
+    "column",
+    "is_edge",
+    "role",
+    "condition",
+    "dose",
+    "dose_unit",
+    "treatment",
+]

@@ -292,9 +292,7 @@ def _time_course(observed: _Observed, profile: pd.DataFrame, windows: TimeWindow
     """The plate's time-course table and the warnings about its negative controls' drift."""
     kept_counts = drop_excluded_site_frames(observed.counts, observed.site_frame_ledger)
     cell_counts = window_cell_counts(kept_counts, windows.window_min, windows.origin_min)
-    table = time_course_table(
-        observed.windows, cell_counts, profile, windows.window_min, (windows.origin_min, windows.origin_name)
-    )
+    table = time_course_table(observed.windows, cell_counts, profile, windows.window_min, windows.origin_name)
     return table, drift_notes(table, list(observed.summaries.columns), windows)
 
 

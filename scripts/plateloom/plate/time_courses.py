@@ -15,26 +15,12 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
+from plateloom.columns import KEY_COLUMNS
 from plateloom.plate.summaries import block_summaries
 
 # Keys copied from the well profile to every row of the time course, so the screen stage selects
 # wells and designs its model from this table alone.
-PROFILE_KEYS = (
-    "plate",
-    "batch",
-    "well",
-    "row",
-    "column",
-    "is_edge",
-    "role",
-    "condition",
-    "dose",
-    "dose_unit",
-    "treatment",
-    "excluded_by",
-    "plate_excluded_by",
-    "n_sites",
-)
+PROFILE_KEYS = (*KEY_COLUMNS, "excluded_by", "plate_excluded_by", "n_sites")
 
 
 @dataclass(frozen=True)
@@ -111,15 +97,13 @@ def time_course_table(
     cell_counts: pd.DataFrame,
     profile: pd.DataFrame,
     window_min: float,
-    origin: tuple[float, str],
+    origin_name: str,
 ) -> pd.DataFrame:
     """The plate's time-course table: profile keys, window columns, cell_count and the window
     medians of every observation feature, one row per (well, window), sorted by well and window.
 
-    ``origin`` is (minutes from the first frame to the origin, "first_frame" or "treatment"); the
-    window columns count minutes from the origin.
+    ``origin_name`` is "first_frame" or "treatment"; the window columns count minutes from it.
     """
-    _, origin_name = origin
     windows = windows.assign(well=windows["well"].astype(str))
     table = cell_counts.merge(windows, on=["well", "window"], how="left")
     table["n_observations"] = table["n_observations"].fillna(0).astype(np.int64)

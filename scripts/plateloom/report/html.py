@@ -63,6 +63,15 @@ def table_tag(frame: pd.DataFrame, float_format: str = "{:.4g}") -> str:
         return formatted.to_html(index=False, escape=True, border=0)
 
 
+def linked_cells(table_html: str, links: dict[str, str]) -> str:
+    """``table_html`` with every cell whose whole text is a key of ``links`` made a link to its value."""
+    for text, href in links.items():
+        table_html = table_html.replace(
+            f"<td>{escape(text)}</td>", f'<td><a href="{escape(href)}">{escape(text)}</a></td>'
+        )
+    return table_html
+
+
 def anchor(heading: str) -> str:
     """The id of a section heading: lower case, words joined by '-' (letters and digits only)."""
     words = "".join(c.lower() if c.isalnum() else " " for c in heading).split()

@@ -5,6 +5,7 @@ with the same contrast for every crop of a figure and a scale bar in micrometres
 from __future__ import annotations
 
 import os
+from functools import lru_cache
 
 import matplotlib.pyplot as plt
 import numpy as np
@@ -25,6 +26,14 @@ def crop_files(folders: list[str]) -> dict[tuple[str, str], str]:
     return found
 
 
+@lru_cache(maxsize=1024)
+def _read_crops(path: str) -> tuple[np.ndarray, np.ndarray, float, list[str]]:
+    """A well's crops file (read once per process: the controls appear on every treatment page)."""
+    with np.load(path) as data:
+        crops, area = data["crops"], data["area_um2"]
+        return crops, area, float(data["pixel_size_um"]), [str(c) for c in data["channels"]]
+
+
 def sample_crops(wells: pd.DataFrame, files: dict, per_well: int = 3, most: int = 24):
     """Crops of the given wells (columns batch, plate, well), taken in turn from the plates (ordered
     by batch, plate, well) so that every day and plate is represented, ``per_well`` per well at
@@ -42,9 +51,8 @@ def sample_crops(wells: pd.DataFrame, files: dict, per_well: int = 3, most: int 
             path = files.get((plate, str(queue.pop(0))))
             if path is None:
                 continue
-            with np.load(path) as data:
-                crops, area = data["crops"][:per_well], data["area_um2"][:per_well]
-                pixel, channels = float(data["pixel_size_um"]), [str(c) for c in data["channels"]]
+            crops, area, pixel, channels = _read_crops(path)
+            crops, area = crops[:per_well], area[:per_well]
             keep = crops[: most - taken]
             picked.append(keep)
             areas.append(area[: len(keep)])

@@ -9,7 +9,7 @@ import numpy as np
 import pandas as pd
 from matplotlib.ticker import NullLocator
 
-from plateloom.report.html import escape, figure_tag, page, table_tag
+from plateloom.report.html import escape, figure_tag, linked_cells, page, table_tag
 from plateloom.report.time_panels import kinetics_html
 from plateloom.report.treatment_pages import linked_treatments, montage_html
 from plateloom.screen.dose_response import hill_curve
@@ -255,16 +255,7 @@ def _summary_html(results: ScreenResults, settings: dict) -> str:
         f"over the {family} feature-test-treatment pairs; positive controls outside the family) and an effect of "
         f"at least {settings['hit_min_log_ratio']:g} natural-log ratio (log-scale features) or "
         f"{settings.get('hit_min_standardized_effect', 1.0):g} negative-control well SDs (linear-scale features).</p>"
-    ) + _linked_plates(table_tag(plates), plates["plate"].astype(str).tolist())
-
-
-def _linked_plates(table_html: str, plates: list[str]) -> str:
-    """The plates table with each plate id linked to its plate report (reports/plates/<plate>.html,
-    next to this page; plate ids are letters, digits, '-', '_' and '.' only)."""
-    for plate in plates:
-        cell = f"<td>{escape(plate)}</td>"
-        table_html = table_html.replace(cell, f'<td><a href="plates/{escape(plate)}.html">{escape(plate)}</a></td>', 1)
-    return table_html
+    ) + linked_cells(table_tag(plates), {p: f"plates/{p}.html" for p in plates["plate"].astype(str)})
 
 
 def _components_html(effects: pd.DataFrame) -> str:

@@ -8,7 +8,7 @@ import numpy as np
 import pandas as pd
 
 from plateloom.report.html import escape, figure_tag, table_tag
-from plateloom.screen.kinetics import BAND_METHOD
+from plateloom.screen.kinetics import BAND_METHOD, significant
 
 MAX_CURVES_PER_FEATURE = 12
 PANEL_COLUMNS = 4
@@ -105,8 +105,7 @@ def _moving(effects: pd.DataFrame, feature: str, threshold: float) -> pd.DataFra
     """The curves of one feature worth showing: treatments with a significant window (q-value at most
     ``threshold``; positive controls by p-value), most significant windows first, at most MAX_CURVES_PER_FEATURE."""
     rows = effects[effects["feature"] == feature]
-    significant = (rows["q_value"] <= threshold) | ((rows["role"] != "test") & (rows["p_value"] <= threshold))
-    counts = rows.assign(_s=significant).groupby("treatment")["_s"].sum()
+    counts = rows.assign(_s=significant(rows, threshold)).groupby("treatment")["_s"].sum()
     chosen = counts[counts > 0].sort_values(ascending=False).index[:MAX_CURVES_PER_FEATURE]
     return rows[rows["treatment"].isin(chosen)]
 

@@ -10,9 +10,10 @@ import matplotlib.pyplot as plt
 import numpy as np
 import pandas as pd
 
-from plateloom.report.html import escape, figure_tag, page, table_tag
+from plateloom.report.html import escape, figure_tag, linked_cells, page, table_tag
 from plateloom.report.montage import montage_figure, sample_crops
 from plateloom.report.time_panels import effect_curves_figure
+from plateloom.screen.model_wells import in_model
 
 TREATMENT_COLUMNS = ["feature", "scale", "estimate", "ci_low", "ci_high", "ratio", "df", "q_value", "hit", "n_wells"]
 
@@ -63,7 +64,7 @@ def montage_html(wells: pd.DataFrame, treatments: list[str], files: dict | None)
     sampled across plates and days from the wells kept in the model."""
     if not files:
         return "<p>No cell crops (thumbnails are written by the per-well jobs).</p>"
-    kept = wells[(wells["excluded_by"].fillna("") == "") & (wells.get("plate_excluded_by", "") == "")]
+    kept = wells[in_model(wells)]
     groups, pixel, channels = [], None, None
     for label, mine in [("negative controls", kept["role"] == "negative_control")] + [
         (t, kept["treatment"] == t) for t in treatments
@@ -127,11 +128,7 @@ def treatment_page(treatment: str, context: dict, provenance: dict) -> str:
 
 def linked_treatments(table_html: str, treatments: list[str]) -> str:
     """Every treatment-name cell of a table linked to the treatment's page (reports/treatments/)."""
-    for treatment in treatments:
-        cell = f"<td>{escape(treatment)}</td>"
-        link = f'<td><a href="treatments/{escape(page_name(treatment))}">{escape(treatment)}</a></td>'
-        table_html = table_html.replace(cell, link)
-    return table_html
+    return linked_cells(table_html, {t: f"treatments/{page_name(t)}" for t in treatments})
 
 
 def write_treatment_pages(results, settings: dict, provenance: dict, folder: str) -> None:

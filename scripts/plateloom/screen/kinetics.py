@@ -20,10 +20,11 @@ import numpy as np
 import pandas as pd
 from scipy import stats
 
+from plateloom.columns import KEY_COLUMNS
 from plateloom.screen.batch_correction import COUNT_FEATURE
 from plateloom.screen.effects import fit_feature_effects
 from plateloom.screen.hits import FDR_FAMILY_ROLE, HitRule, add_hit_calls
-from plateloom.screen.model_wells import KEY_COLUMNS, count_only, in_model
+from plateloom.screen.model_wells import count_only, in_model
 from plateloom.settings import FromSchema
 from plateloom.stats import bh_qvalues
 
@@ -142,12 +143,9 @@ def well_areas(rows: pd.DataFrame, feature: str) -> pd.DataFrame:
     length, model-scale units x min); NaN for a well missing a window that other wells have."""
     window_length = (rows["window_end_min"] - rows["window_start_min"]).to_numpy(float)
     keys = [c for c in KEY_COLUMNS if c in rows] + ["n_sites", "count_only"]
-    areas = rows.assign(_area=rows[feature].to_numpy(float) * window_length)
-    per_well = areas.pivot_table(index="plate_well", columns="window", values="_area", aggfunc="sum", dropna=False)
-    complete = areas.pivot_table(index="plate_well", columns="window", values=feature, aggfunc="count").reindex(
-        columns=per_well.columns
-    )
-    area = per_well.sum(axis=1).where(complete.fillna(0).gt(0).all(axis=1))
+    per_well = rows.assign(_area=rows[feature].to_numpy(float) * window_length).groupby("plate_well", sort=False)
+    complete = per_well[feature].count() == rows["window"].nunique()
+    area = per_well["_area"].sum().where(complete)
     first = rows.drop_duplicates("plate_well").set_index("plate_well")[keys]
     return first.assign(**{feature: area.reindex(first.index).to_numpy(float)}).reset_index(drop=True)
 
@@ -199,20 +197,25 @@ def half_maximum_time(midpoints: np.ndarray, estimates: np.ndarray, peak: int) -
     return float(midpoints[reached - 1] + share * (midpoints[reached] - midpoints[reached - 1]))
 
 
+def significant(table: pd.DataFrame, threshold: float) -> np.ndarray:
+    """Which rows are significant windows: q-value at most ``threshold`` (test treatments); p-value
+    at most it for controls, which are outside the FDR family."""
+    outside = table["role"].to_numpy() != FDR_FAMILY_ROLE
+    return (table["q_value"].to_numpy(float) <= threshold) | (outside & (table["p_value"].to_numpy(float) <= threshold))
+
+
 def _curve_summary(curve: pd.DataFrame, q_threshold: float, run: int) -> dict[str, float]:
     curve = curve.sort_values("window")
     estimates = curve["estimate"].to_numpy(float)
     midpoints = ((curve["window_start_min"] + curve["window_end_min"]) / 2).to_numpy(float)
-    significant = (curve["q_value"].to_numpy(float) <= q_threshold) | (
-        (curve["role"].to_numpy() != FDR_FAMILY_ROLE) & (curve["p_value"].to_numpy(float) <= q_threshold)
-    )
+    is_significant = significant(curve, q_threshold)
     finite = np.isfinite(estimates)
     peak = int(np.nanargmax(np.abs(np.where(finite, estimates, np.nan)))) if finite.any() else -1
-    onset = onset_window(significant, run)
+    onset = onset_window(is_significant, run)
     pick = (lambda column: float(curve[column].iloc[peak])) if peak >= 0 else (lambda column: float("nan"))
     return {
         "n_windows": int(finite.sum()),
-        "significant_windows": int(significant.sum()),
+        "significant_windows": int(is_significant.sum()),
         "onset_min": float(curve["window_start_min"].iloc[onset]) if onset >= 0 else np.nan,
         "half_max_time_min": half_maximum_time(midpoints, estimates, peak),
         "peak_effect": pick("estimate"),

@@ -8,7 +8,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from plateloom.columns import ANALYSED_ROLES
+from plateloom.columns import ANALYSED_ROLES, KEY_COLUMNS
 from plateloom.screen.batch_correction import (
     COUNT_FEATURE,
     batches_without_controls,
@@ -18,20 +18,6 @@ from plateloom.screen.batch_correction import (
     variance_shares,
 )
 from plateloom.screen.design_warnings import design_warnings
-
-KEY_COLUMNS = [
-    "plate",
-    "batch",
-    "well",
-    "row",
-    "column",
-    "is_edge",
-    "role",
-    "condition",
-    "dose",
-    "dose_unit",
-    "treatment",
-]
 
 
 @dataclass(frozen=True)

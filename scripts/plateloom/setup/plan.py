@@ -42,7 +42,6 @@ class ScreenPlan:
     log_features: list[str] = field(default_factory=list)
     imaging: dict[str, ImagingSize] = field(default_factory=dict)
     kinetic_features: list[str] | None = None  # None: the screen features measured per cell and frame
-    treatment_times: dict[str, float] | None = None  # plate -> minutes from first frame to treatment
     sizing: dict = field(default_factory=dict)
 
     def chunk_ids(self, plate: str) -> list[str]:
@@ -164,7 +163,7 @@ def plan_screen(config: dict) -> ScreenPlan:
     if across:
         raise across[0]
     _plan_features(plan, config)
-    plan.treatment_times = treatment_times(entries, config["screen_sheet"])
+    treatment_times(entries, config["screen_sheet"])  # every plate or none (each entry holds its own)
     return plan
 
 
