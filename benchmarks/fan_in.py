@@ -109,7 +109,7 @@ def main() -> None:
     rng = np.random.default_rng(1)
     with tempfile.TemporaryDirectory() as tmp:
         root = Path(tmp)
-        parquet, csv = root / "cells" / "plate=P1" / "chunk=000", root / "csv"
+        parquet, csv = root / "cells" / "plate=P1" / "chunk-000", root / "csv"
         csv.mkdir(parents=True)
         for well in wells:
             table = synthetic_well(rng, well, rows // WELLS)

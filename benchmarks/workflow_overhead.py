@@ -38,7 +38,7 @@ def _create_outputs(results: Path) -> None:
     for kind in ("cells", "tracks", "site_qc"):
         for p in range(PLATES):
             for c in range(chunks):
-                (results / kind / f"plate=B{p:02d}" / f"chunk={c:03d}").mkdir(parents=True, exist_ok=True)
+                (results / kind / f"plate=B{p:02d}" / f"chunk-{c:03d}").mkdir(parents=True, exist_ok=True)
     time.sleep(1.1)
     for p in range(PLATES):
         for kind in ("wells", "plate_qc", "exclusions", "edge_effects"):

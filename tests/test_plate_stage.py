@@ -167,7 +167,7 @@ def _write_cells_folders(tmp_path, cells: pd.DataFrame) -> list[str]:
     """The cells table as the per-well stage writes it: one Parquet file per well folder."""
     from plateloom.io.tables import write_parquet
 
-    folder = tmp_path / "cells" / "plate=P1" / "chunk=000"
+    folder = tmp_path / "cells" / "plate=P1" / "chunk-000"
     for well, rows in cells.groupby("well"):
         write_parquet(rows.reset_index(drop=True), str(folder / f"well={well}" / "part-0.parquet"), {})
     return [str(folder)]

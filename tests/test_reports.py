@@ -183,43 +183,65 @@ def test_volcano_plot_draws_the_q_threshold_and_names_the_top_hits():
     assert names == ["A 1 uM: area_um2", "B 1 uM: area_um2"]
 
 
-def test_treatment_pages_have_safe_distinct_names_and_link_back():
-    from plateloom.report.treatment_pages import linked_treatments, page_name, treatment_page
-
-    assert page_name("LOOM-101 0.3 uM").startswith("LOOM-101_0.3_uM-") and page_name("a/b").startswith("a_b-")
-    assert page_name("a b") != page_name("a_b")  # the hash keeps look-alike names apart
-    assert page_name("<script>x</script>").startswith("script_x_script-")
+def _treatment_context(treatment: str) -> dict:
     effects = pd.DataFrame(
         {
-            "feature": ["area_um2", "solidity"],
-            "treatment": "T 1 uM",
+            "feature": ["area_um2", "solidity", "speed_um_per_min"],
+            "treatment": treatment,
             "condition": "T",
             "dose": 1.0,
             "dose_unit": "uM",
             "role": "test",
-            "scale": ["log", "linear"],
-            "estimate": [0.3, 0.0],
-            "ci_low": [0.2, -0.01],
-            "ci_high": [0.4, 0.01],
-            "ratio": [np.exp(0.3), np.nan],
+            "scale": ["log", "linear", "log"],
+            "estimate": [0.3, 0.0, 0.9],
+            "ci_low": [0.2, -0.01, 0.7],
+            "ci_high": [0.4, 0.01, 1.1],
+            "ratio": [np.exp(0.3), np.nan, np.exp(0.9)],
             "df": 40.0,
-            "q_value": [1e-4, 0.9],
-            "hit": [True, False],
+            "q_value": [1e-4, 0.9, 1e-6],
+            "hit": [True, False, True],
             "n_wells": 6,
-            "standardized_effect": [3.0, 0.0],
-            "control_well_sd": [0.1, 0.02],
+            "standardized_effect": [3.0, 0.0, 9.0],
+            "control_well_sd": [0.1, 0.02, 0.1],
             "note": "",
         }
     )
     wells = pd.DataFrame(
-        {"batch": "day1", "plate": "P1", "well": ["B02", "C03"], "treatment": "T 1 uM", "excluded_by": ["", "focus"]}
+        {"batch": "day1", "plate": "P1", "well": ["B02", "C03"], "treatment": treatment, "excluded_by": ["", "focus"]}
     )
-    context = {"effects": effects, "wells": wells, "settings": {"ci_level": 0.95}}
+    return {"effects": effects, "wells": wells, "settings": {"ci_level": 0.95, "hit_q_value": 0.05}}
+
+
+def test_treatment_pages_have_safe_distinct_names_and_link_back():
+    from plateloom.report.treatment_pages import linked_treatments, page_feature, page_name, treatment_page
+
+    assert page_name("LOOM-101 0.3 uM").startswith("LOOM-101_0.3_uM-") and page_name("a/b").startswith("a_b-")
+    assert page_name("a b") != page_name("a_b")  # the hash keeps look-alike names apart
+    assert page_name("<script>x</script>").startswith("script_x_script-")
+    context = _treatment_context("T 1 uM")
     html = treatment_page("T 1 uM", context, {})
     assert '<a href="../plates/P1.html">P1</a>: B02, C03 (excluded: focus)' in html
-    assert 'href="../screen.html"' in html and "1 hit(s) over 2 features" in html
+    assert 'href="../screen.html"' in html and "2 hit(s) over 3 features" in html
     linked = linked_treatments("<td>T 1 uM</td><td>T 1 uM</td>", ["T 1 uM"])
     assert linked.count(f'href="treatments/{page_name("T 1 uM")}"') == 2
+    # the montage follows the page's strongest per-cell hit (speed is a track feature: no cell has it)
+    effects = context["effects"]
+    assert page_feature(effects, {"area_um2", "solidity"}) == "area_um2"
+    assert page_feature(effects, {"solidity"}) == "solidity" and page_feature(effects, set()) == "area_um2"
+
+
+def test_a_hostile_treatment_name_is_text_on_its_page():
+    from plateloom.report.treatment_pages import treatment_page
+
+    name = "<script>alert(1)</script> \"q\" 'x' Ölsäure µM ✓"
+    html = treatment_page(name, _treatment_context(name), {})
+    assert "<script>alert" not in html
+    import html as html_module
+    import re
+
+    heading = re.search(r"<h1>(.*?)</h1>", html).group(1)
+    assert "&lt;script&gt;alert(1)&lt;/script&gt;" in heading and html_module.unescape(heading).endswith(name)
+    assert html.count("<script") == 1  # the page's own table script only
 
 
 def test_a_batch_share_raised_by_the_correction_is_explained():

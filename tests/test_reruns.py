@@ -142,7 +142,7 @@ def test_a_minimal_config_runs_with_the_schema_defaults_not_the_demo_values(own_
         "only_plates": [PLATE],
     }
     (own_plate / "minimal.yaml").write_text(yaml.safe_dump(minimal))
-    target = f"results_minimal/cells/plate={PLATE}/chunk=000"
+    target = f"results_minimal/cells/plate={PLATE}/chunk-000"
     run_snakemake(own_plate, target, "--configfile", "minimal.yaml")
     used = read_provenance(str(next((own_plate / target).glob("well=*/part-0.parquet"))))["config_sha256"]
     defaults = asdict(WellSettings.from_config(fill_defaults(minimal)))

@@ -78,7 +78,7 @@ def test_a_results_tree_opens_as_one_arrow_dataset(tmp_path):
     from plateloom.io.tables import well_part_path, write_parquet
 
     for plate, well, value in (("P1", "B02", 1.0), ("P1", "B03", 2.0), ("P2", "B02", 3.0)):
-        folder = tmp_path / "cells" / f"plate={plate}" / "chunk=000"
+        folder = tmp_path / "cells" / f"plate={plate}" / "chunk-000"
         folder.mkdir(parents=True, exist_ok=True)
         write_parquet(
             pd.DataFrame({"plate": [plate], "well": [well], "area_um2": [value]}),

@@ -179,20 +179,29 @@ def test_cell_crops_span_the_sizes_and_montages_share_one_contrast(tmp_path):
         cy, cx = 30 + (i // 4) * 100, 25 + (i % 4) * 50
         labels[(yy - cy) ** 2 + (xx - cx) ** 2 <= radius**2] = i + 1
     planes = np.stack([labels > 0, 2 * (labels > 0)]).astype(np.float32) * 100
-    crops, areas = cell_crops(planes, labels, pixel_size_um=1.0, count=4)
+    crops, areas, objects = cell_crops(planes, labels, pixel_size_um=1.0, count=4)
+    assert objects.tolist() == [1, 3, 6, 8]  # evenly spaced ranks of area: 0, 2.3, 4.7, 7 rounded
     assert crops.shape == (4, 2, 24, 24)  # 12 um half side at 1 um per pixel
     assert np.all(np.diff(areas) > 0) and areas[0] == (labels == 1).sum() and areas[-1] == (labels == 8).sum()
     np.testing.assert_array_equal(crops[:, 1], 2 * crops[:, 0])
     assert crops[0, 0, 12, 12] == 100  # centred on its nucleus
-    folder = tmp_path / "thumbnails" / "plate=P1" / "chunk=000"
+    folder = tmp_path / "thumbnails" / "plate=P1" / "chunk-000"
     folder.mkdir(parents=True)
+    features = pd.DataFrame({"mean_intensity_rep": [40.0, np.nan, 20.0, 10.0]})  # another per-cell feature
     for well in ("B02", "C03"):
-        (folder / f"{well}.npz").write_bytes(crops_bytes(crops, areas, 1.0, ["dna", "rep"]))
+        (folder / f"{well}.npz").write_bytes(crops_bytes(crops, areas, 1.0, ["dna", "rep"], features))
     files = crop_files([str(folder)])
     assert set(files) == {("P1", "B02"), ("P1", "C03")}
     wells = pd.DataFrame({"batch": "d1", "plate": "P1", "well": ["C03", "B02"]})
     sampled, sampled_areas, pixel, channels = sample_crops(wells, files, per_well=3, most=5)
     assert len(sampled) == 5 and np.all(np.diff(sampled_areas) >= 0) and channels == ["dna", "rep"]
+    # ordered by the page's feature instead: lowest first, a cell without a value last
+    by_intensity, values, _, _ = sample_crops(wells, files, per_well=3, most=5, order_by="mean_intensity_rep")
+    # (3 crops of B02 evenly spaced over its 4: values 40, 20, 10; then 2 of C03: 40, 10)
+    np.testing.assert_array_equal(values, [10.0, 10.0, 20.0, 40.0, 40.0])
+    assert by_intensity[0, 0].sum() == crops[3, 0].sum() and by_intensity[-1, 0].sum() == crops[0, 0].sum()
+    _, areas_only, _, _ = sample_crops(wells, files, per_well=2, most=2, order_by="not_in_the_files")
+    assert np.isnan(areas_only).all()
     figure = montage_figure([("a", sampled), ("b", sampled[:2])], pixel, channels)
     first, second = (axis.get_images()[0].get_array() for axis in figure.axes)
     assert first.max() == second.max() == 1.0  # one contrast: the same values give the same grey

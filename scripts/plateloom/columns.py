@@ -56,7 +56,12 @@ REGISTRY: tuple[Column, ...] = (
     Column("object", _C, "key", description="label of the object in its frame"),
     Column("track", ("cells", "tracks"), "key"),
     Column("parent_track", ("cells", "tracks"), "key", description="the track this one divided from"),
-    Column("chunk", (), "key", description="folder key of a per-well job's outputs (not a column of any file)"),
+    Column(
+        "chunk",
+        (),
+        "key",
+        description="folder of a per-well job's outputs (chunk-C: not a Hive key, so no reader adds it as a column)",
+    ),
     Column("centroid_x_um", _C, "position", "um"),
     Column("centroid_y_um", _C, "position", "um"),
     Column("touches_border", ("cells", "tracks"), "flag", description="left out of the well summaries"),

@@ -139,7 +139,7 @@ ALL_TIME_COURSES = (
 )
 KINETIC_SUMMARY = f"{RESULTS}/kinetic_summary.parquet"
 ALL_THUMBNAIL_FOLDERS = [
-    f"{RESULTS}/thumbnails/plate={plate}/chunk={chunk}"
+    f"{RESULTS}/thumbnails/plate={plate}/chunk-{chunk}"
     for plate in sorted(PLAN.plates)
     for chunk in PLAN.chunk_ids(plate)
 ]
@@ -210,7 +210,7 @@ def get_chunk_folders(kind):
     def folders(wildcards):
         chunks = PLAN.chunk_ids(wildcards.plate)
         return [
-            f"{RESULTS}/{kind}/plate={wildcards.plate}/chunk={chunk}"
+            f"{RESULTS}/{kind}/plate={wildcards.plate}/chunk-{chunk}"
             for chunk in chunks
         ]
 

@@ -195,14 +195,19 @@ rule screen_report:
             caption="../report/batch_pca.rst",
             category="Figures",
         ),
-        treatments=directory(f"{RESULTS}/reports/treatments"),
+        treatments=report(
+            directory(f"{RESULTS}/reports/treatments"),
+            patterns=["{name}.html"],
+            caption="../report/treatment_pages.rst",
+            category="Treatments",
+        ),
     log:
         f"{RESULTS}/logs/screen_report.log",
     benchmark:
         f"{RESULTS}/benchmarks/screen_report.tsv"
     conda:
         "../envs/plateloom.yaml"
-    threads: 1
+    threads: 2
     resources:
         mem_mb=SCREEN_JOB.mem_mb,
         runtime=SCREEN_JOB.runtime_min,

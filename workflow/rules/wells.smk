@@ -34,12 +34,12 @@ rule analyse_wells:
         images=get_chunk_images,
         flat_fields=get_flat_fields,
     output:
-        cells=directory(f"{RESULTS}/cells/plate={{plate}}/chunk={{chunk}}"),
-        tracks=directory(f"{RESULTS}/tracks/plate={{plate}}/chunk={{chunk}}"),
-        site_qc=directory(f"{RESULTS}/site_qc/plate={{plate}}/chunk={{chunk}}"),
-        collective=directory(f"{RESULTS}/collective/plate={{plate}}/chunk={{chunk}}"),
-        thumbnails=directory(f"{RESULTS}/thumbnails/plate={{plate}}/chunk={{chunk}}"),
-        labels=directory(f"{RESULTS}/labels/plate={{plate}}/chunk={{chunk}}"),
+        cells=directory(f"{RESULTS}/cells/plate={{plate}}/chunk-{{chunk}}"),
+        tracks=directory(f"{RESULTS}/tracks/plate={{plate}}/chunk-{{chunk}}"),
+        site_qc=directory(f"{RESULTS}/site_qc/plate={{plate}}/chunk-{{chunk}}"),
+        collective=directory(f"{RESULTS}/collective/plate={{plate}}/chunk-{{chunk}}"),
+        thumbnails=directory(f"{RESULTS}/thumbnails/plate={{plate}}/chunk-{{chunk}}"),
+        labels=directory(f"{RESULTS}/labels/plate={{plate}}/chunk-{{chunk}}"),
     log:
         f"{RESULTS}/logs/analyse_wells/{{plate}}_{{chunk}}.log",
     benchmark:

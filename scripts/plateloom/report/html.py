@@ -6,6 +6,7 @@ import base64
 import html
 import io
 import json
+import re
 
 import matplotlib
 
@@ -33,10 +34,11 @@ def escape(text: object) -> str:
     return html.escape(str(text), quote=True)
 
 
-def figure_tag(figure: plt.Figure, alt: str) -> str:
-    """Render a matplotlib figure as an inline PNG <img> and close it."""
+def figure_tag(figure: plt.Figure, alt: str, trim: bool = True) -> str:
+    """Render a matplotlib figure as an inline PNG <img> and close it. ``trim`` cuts the figure to
+    what is drawn (one more drawing pass); figures that set their own margins pass False."""
     buffer = io.BytesIO()
-    figure.savefig(buffer, format="png", dpi=90, bbox_inches="tight", metadata={"Software": None})
+    figure.savefig(buffer, format="png", dpi=90, bbox_inches="tight" if trim else None, metadata={"Software": None})
     plt.close(figure)
     data = base64.b64encode(buffer.getvalue()).decode()
     return f'<img alt="{escape(alt)}" src="data:image/png;base64,{data}">'
@@ -53,6 +55,9 @@ def write_figure(figure: plt.Figure, path: str) -> None:
         plt.close(figure)
 
 
+LONG_CELL_CHARACTERS = 40
+
+
 def table_tag(frame: pd.DataFrame, float_format: str = "{:.4g}") -> str:
     """An HTML table of ``frame`` with every cell escaped."""
     formatted = frame.copy()
@@ -60,15 +65,23 @@ def table_tag(frame: pd.DataFrame, float_format: str = "{:.4g}") -> str:
         if pd.api.types.is_float_dtype(formatted[column]):
             formatted[column] = formatted[column].map(lambda v: "" if pd.isna(v) else float_format.format(v))
     with pd.option_context("display.max_colwidth", None):  # notes in full, never cut with "..."
-        return formatted.to_html(index=False, escape=True, border=0)
+        html_table = formatted.to_html(index=False, escape=True, border=0)
+    # short cells stay on one line (the table scrolls sideways in its frame); long text wraps in a wide cell
+    return re.sub(rf"<td>([^<]{{{LONG_CELL_CHARACTERS},}})</td>", r'<td class="long">\1</td>', html_table)
+
+
+def folded(summary: str, body: str) -> str:
+    """``body`` behind a line the reader clicks to open (an HTML details element, closed)."""
+    return f"<details><summary>{escape(summary)}</summary>{body}</details>"
 
 
 def linked_cells(table_html: str, links: dict[str, str]) -> str:
     """``table_html`` with every cell whose whole text is a key of ``links`` made a link to its value."""
     for text, href in links.items():
-        table_html = table_html.replace(
-            f"<td>{escape(text)}</td>", f'<td><a href="{escape(href)}">{escape(text)}</a></td>'
-        )
+        for cell in ("<td>", '<td class="long">'):
+            table_html = table_html.replace(
+                f"{cell}{escape(text)}</td>", f'{cell}<a href="{escape(href)}">{escape(text)}</a></td>'
+            )
     return table_html
 
 

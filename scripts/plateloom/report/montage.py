@@ -11,12 +11,12 @@ import matplotlib.pyplot as plt
 import numpy as np
 import pandas as pd
 
-TILES_PER_ROW = 8
+TILES_PER_ROW = 12
 SCALE_BAR_UM = 10.0
 
 
 def crop_files(folders: list[str]) -> dict[tuple[str, str], str]:
-    """(plate, well) -> path of the well's crops, from thumbnail folders .../plate=P/chunk=C."""
+    """(plate, well) -> path of the well's crops, from thumbnail folders .../plate=P/chunk-C."""
     found = {}
     for folder in folders:
         plate = os.path.basename(os.path.dirname(os.path.normpath(folder))).split("=", 1)[-1]
@@ -27,22 +27,34 @@ def crop_files(folders: list[str]) -> dict[tuple[str, str], str]:
 
 
 @lru_cache(maxsize=1024)
-def _read_crops(path: str) -> tuple[np.ndarray, np.ndarray, float, list[str]]:
-    """A well's crops file (read once per process: the controls appear on every treatment page)."""
+def _read_crops(path: str) -> tuple[np.ndarray, pd.DataFrame, float, list[str]]:
+    """A well's crops file (read once per process: the controls appear on every treatment page):
+    crops, their per-cell values (area_um2 always, other features when the file has them), pixel
+    size (um) and channel names."""
     with np.load(path) as data:
-        crops, area = data["crops"], data["area_um2"]
-        return crops, area, float(data["pixel_size_um"]), [str(c) for c in data["channels"]]
+        values = pd.DataFrame({"area_um2": data["area_um2"]})
+        if "feature_names" in data.files:
+            names = [str(n) for n in data["feature_names"]]
+            extra = pd.DataFrame(data["feature_values"].reshape(len(values), len(names)), columns=names)
+            values = pd.concat([values, extra.drop(columns=["area_um2"], errors="ignore")], axis=1)
+        return data["crops"], values, float(data["pixel_size_um"]), [str(c) for c in data["channels"]]
 
 
-def sample_crops(wells: pd.DataFrame, files: dict, per_well: int = 3, most: int = 24):
+def crop_feature_names(files: dict) -> set[str]:
+    """The per-cell features every crops file carries (area_um2 at least); empty without files."""
+    names = [set(_read_crops(path)[1].columns) for path in files.values()]
+    return set.intersection(*names) if names else set()
+
+
+def sample_crops(wells: pd.DataFrame, files: dict, per_well: int = 3, most: int = 24, order_by: str = "area_um2"):
     """Crops of the given wells (columns batch, plate, well), taken in turn from the plates (ordered
     by batch, plate, well) so that every day and plate is represented, ``per_well`` per well at
-    most, ``most`` in all: (crops (n, channels, side, side), areas um2, pixel size um, channels)
-    ordered by area; None when no well has crops."""
+    most, ``most`` in all: (crops (n, channels, side, side), their ``order_by`` values, pixel size
+    um, channels) ordered by ``order_by`` (a per-cell feature; NaN last); None when no well has crops."""
     ordered = wells.sort_values(["batch", "plate", "well"])
     queues = [list(g["well"]) for _, g in ordered.groupby(["batch", "plate"], sort=True, observed=True)]
     plates = [str(p) for p in ordered.drop_duplicates(["batch", "plate"])["plate"]]
-    picked, areas, pixel, channels = [], [], None, None
+    picked, values, pixel, channels = [], [], None, None
     taken = 0
     while taken < most and any(queues):
         for plate, queue in zip(plates, queues):
@@ -51,17 +63,19 @@ def sample_crops(wells: pd.DataFrame, files: dict, per_well: int = 3, most: int 
             path = files.get((plate, str(queue.pop(0))))
             if path is None:
                 continue
-            crops, area, pixel, channels = _read_crops(path)
-            crops, area = crops[:per_well], area[:per_well]
-            keep = crops[: most - taken]
-            picked.append(keep)
-            areas.append(area[: len(keep)])
-            taken += len(keep)
+            crops, table, pixel, channels = _read_crops(path)
+            # evenly spaced over the well's crops (which span its sizes), not its smallest
+            chosen = np.unique(np.round(np.linspace(0, len(crops) - 1, min(per_well, most - taken, len(crops)))))
+            chosen = chosen.astype(int)
+            picked.append(crops[chosen])
+            column = table[order_by] if order_by in table else pd.Series(np.nan, index=table.index)
+            values.append(column.to_numpy(float)[chosen])
+            taken += len(chosen)
     if not taken:
         return None
-    crops, areas = np.concatenate(picked), np.concatenate(areas)
-    order = np.argsort(areas, kind="stable")
-    return crops[order], areas[order], pixel, channels
+    crops, values = np.concatenate(picked), np.concatenate(values)
+    order = np.argsort(np.where(np.isnan(values), np.inf, values), kind="stable")
+    return crops[order], values[order], pixel, channels
 
 
 def _contrast(groups: list[np.ndarray]) -> tuple[np.ndarray, np.ndarray]:

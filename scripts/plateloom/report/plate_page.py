@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-from contextlib import contextmanager
 from dataclasses import dataclass
 
 import matplotlib.pyplot as plt
@@ -14,7 +13,7 @@ from plateloom.columns import ANALYSED_ROLES
 from plateloom.plate.stage import PlateTables
 from plateloom.report.html import escape, figure_tag, page, table_tag
 from plateloom.report.thumbnails import thumbnails_html
-from plateloom.report.time_panels import control_time_course_html
+from plateloom.report.time_panels import control_time_course_html, fixed_margins
 from plateloom.setup.plate_formats import PlateFormat, row_label, well_grid
 
 
@@ -69,16 +68,18 @@ def role_map(profile: pd.DataFrame, fmt: PlateFormat) -> plt.Figure:
     return figure
 
 
-@contextmanager
-def _seeded_jitter(seed: int = 0):
-    """seaborn draws strip-plot jitter from numpy's global generator: seed it, so that identical
-    runs give identical reports, and give the caller's state back."""
-    state = np.random.get_state()
-    np.random.seed(seed)
-    try:
-        yield
-    finally:
-        np.random.set_state(state)
+def _role_panel(axis: plt.Axes, data: pd.DataFrame, feature: str, order: list[str]) -> None:
+    """One feature's wells by role: every well a point (jittered across its role's column by a
+    generator of its own, so the page does not depend on numpy's global state) over a box of the
+    quartiles with whiskers to 1.5 IQR."""
+    jitter = np.random.default_rng(0)
+    values = [data.loc[data["role"] == role, feature].dropna().to_numpy(float) for role in order]
+    for position, (role, points) in enumerate(zip(order, values)):
+        x = position + jitter.uniform(-0.25, 0.25, len(points))
+        axis.scatter(x, points, s=12, color=ROLE_COLOURS.get(role, "#777777"), edgecolor="#333333", linewidth=0.3)
+    axis.boxplot(values, positions=range(len(order)), widths=0.5, showfliers=False, medianprops={"color": "black"})
+    axis.set_xticks(range(len(order)), [role.replace("_", " ") for role in order], rotation=20, fontsize=8)
+    axis.set_ylabel(feature, fontsize=8)
 
 
 def control_distributions(profile: pd.DataFrame, features: list[str]) -> plt.Figure:
@@ -89,25 +90,12 @@ def control_distributions(profile: pd.DataFrame, features: list[str]) -> plt.Fig
     data = profile[profile["excluded_by"] == ""]
     for axis, feature in zip(axes[0], features):
         order = [r for r in ANALYSED_ROLES if data.loc[data["role"] == r, feature].notna().any()]
+        axis.set_title(feature, fontsize=9)
         if not order:
             axis.text(0.5, 0.5, "no values", ha="center", va="center", transform=axis.transAxes)
-            axis.set_title(feature, fontsize=9)
             continue
-        with _seeded_jitter():
-            sns.stripplot(data=data, x="role", y=feature, order=order, ax=axis, size=4, jitter=0.25)
-        sns.boxplot(
-            data=data,
-            x="role",
-            y=feature,
-            order=order,
-            ax=axis,
-            showfliers=False,
-            boxprops={"facecolor": "none"},
-            width=0.5,
-        )
-        axis.tick_params(axis="x", labelrotation=20, labelsize=8)
-        axis.set_xlabel("")
-    figure.tight_layout()
+        _role_panel(axis, data, feature, order)
+    fixed_margins(figure, 1)  # drawn once: no tight_layout, no trimming
     return figure
 
 
@@ -240,7 +228,7 @@ def build_plate_report(tables: PlateTables, page_info: PlatePage) -> str:
     profile, qc = tables.profile, tables.qc
     features = qc["feature"].tolist()
     distributions = "".join(
-        figure_tag(control_distributions(profile, features[i : i + 4]), "control distributions")
+        figure_tag(control_distributions(profile, features[i : i + 4]), "control distributions", trim=False)
         for i in range(0, len(features), 4)
     )
     ledger_html = "<p>Nothing was excluded.</p>" if tables.ledger.empty else table_tag(tables.ledger)

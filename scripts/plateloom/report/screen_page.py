@@ -9,7 +9,7 @@ import numpy as np
 import pandas as pd
 from matplotlib.ticker import NullLocator
 
-from plateloom.report.html import escape, figure_tag, linked_cells, page, table_tag
+from plateloom.report.html import escape, figure_tag, folded, linked_cells, page, table_tag
 from plateloom.report.time_panels import kinetics_html
 from plateloom.report.treatment_pages import linked_treatments, montage_html
 from plateloom.screen.dose_response import hill_curve
@@ -341,9 +341,14 @@ def build_screen_report(results: ScreenResults, settings: dict, provenance: dict
     hits = effects[effects["hit"]].sort_values("q_value")
     names = sorted(effects["treatment"].unique())
     hit_html = "<p>No hits.</p>" if hits.empty else linked_treatments(table_tag(hits[EFFECT_COLUMNS]), names)
-    forest = "".join(
-        figure_tag(forest_plot(effects, f, settings["ci_level"]), f"forest plot {f}")
-        for f in effects["feature"].unique()
+    features = effects["feature"].unique()
+    forest = (
+        "<p>Every treatment's effect on each feature with its interval, one plot per feature (a treatment's "
+        "effects on every feature are on its own page).</p>"
+        + folded(
+            f"Forest plots of the {len(features)} features",
+            "".join(figure_tag(forest_plot(effects, f, settings["ci_level"]), f"forest plot {f}") for f in features),
+        )
     )
     sections = [
         ("Summary", _summary_html(results, settings)),

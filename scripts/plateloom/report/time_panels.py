@@ -7,7 +7,7 @@ import matplotlib.pyplot as plt
 import numpy as np
 import pandas as pd
 
-from plateloom.report.html import escape, figure_tag, table_tag
+from plateloom.report.html import escape, figure_tag, folded, table_tag
 from plateloom.screen.kinetics import BAND_METHOD, significant
 
 MAX_CURVES_PER_FEATURE = 12
@@ -70,35 +70,55 @@ def control_time_course_html(time_course: pd.DataFrame | None, features: list[st
     )
 
 
+def _unit(log_scale: bool) -> str:
+    return "natural-log ratio to controls" if log_scale else "difference from controls"
+
+
 def effect_curves_figure(curves: pd.DataFrame, feature: str, panel: str = "treatment") -> plt.Figure:
     """Small multiples, one per value of ``panel`` (a treatment, or a feature for one treatment's
     page): the effect per window with its pointwise interval (bars) and the simultaneous band
-    (shaded); zero = no effect. ``feature`` labels the y axis."""
-    treatments = list(dict.fromkeys(curves[panel]))
-    columns = min(PANEL_COLUMNS, len(treatments))
-    rows = int(np.ceil(len(treatments) / columns))
+    (shaded); zero = no effect. ``feature`` labels the y axes; panels of features label their own
+    unit (their scales may differ)."""
+    names = list(dict.fromkeys(curves[panel]))
+    columns = min(PANEL_COLUMNS, len(names))
+    rows = int(np.ceil(len(names) / columns))
     figure, axes = plt.subplots(
         rows, columns, figsize=(3.2 * columns, 2.5 * rows), squeeze=False, sharey=panel == "treatment"
     )
-    log_scale = (curves["scale"] == "log").all()
-    for axis, treatment in zip(axes.ravel(), treatments):
-        curve = curves[curves[panel] == treatment].sort_values("window")
+    for number, (axis, name) in enumerate(zip(axes.ravel(), names)):
+        curve = curves[curves[panel] == name].sort_values("window")
         t = _midpoints(curve)
         axis.fill_between(t, curve["band_low"], curve["band_high"], color="#b8322a", alpha=0.15, linewidth=0)
         estimate = curve["estimate"].to_numpy(float)
         bars = [estimate - curve["ci_low"].to_numpy(float), curve["ci_high"].to_numpy(float) - estimate]
         axis.errorbar(t, estimate, yerr=bars, color="#33546e", marker="o", markersize=3, linewidth=1.2, capsize=2)
         axis.axhline(0.0, color="grey", linestyle="--", linewidth=0.8)
-        axis.set_title(str(treatment), fontsize=8)
+        axis.set_title(str(name), fontsize=8)
         axis.tick_params(labelsize=7)
         axis.set_xlabel(time_axis_label(str(curve["time_origin"].iloc[0])), fontsize=7)
-    for axis in axes.ravel()[len(treatments) :]:
+        if panel == "feature":
+            axis.set_ylabel(_unit((curve["scale"] == "log").all()), fontsize=7)
+        elif number % columns == 0:
+            unit = _unit((curves["scale"] == "log").all())
+            axis.set_ylabel(f"{feature}\n{unit}" if feature else unit, fontsize=7)
+    for axis in axes.ravel()[len(names) :]:
         axis.set_visible(False)
-    unit = "natural-log ratio to controls" if log_scale else "difference from controls"
-    for axis in axes[:, 0]:
-        axis.set_ylabel(f"{feature}\n{unit}" if feature else unit, fontsize=7)
-    figure.tight_layout()
+    fixed_margins(figure, rows)
     return figure
+
+
+def fixed_margins(figure: plt.Figure, rows: int) -> None:
+    """Margins in inches for a grid of small panels with titles, axis labels and y labels on every
+    panel, so that the figure can be drawn once (no tight_layout, no trimming: ``figure_tag(..., trim=False)``)."""
+    width, height = figure.get_size_inches()
+    figure.subplots_adjust(
+        left=0.75 / width,
+        right=1 - 0.1 / width,
+        bottom=0.55 / height,
+        top=1 - 0.3 / height,
+        wspace=0.45,
+        hspace=0.75 if rows > 1 else 0.2,
+    )
 
 
 def _moving(effects: pd.DataFrame, feature: str, threshold: float) -> pd.DataFrame:
@@ -126,13 +146,15 @@ def kinetics_html(effects: pd.DataFrame | None, summary: pd.DataFrame | None, se
         "The area under the effect curve (model-scale units x min) is fitted on each well's own area, wells "
         "with every window only. Shown per feature: treatments with a significant window.</p>"
     )
-    panels = ""
+    panels, shown = "", 0
     for feature in effects["feature"].unique():
         moving = _moving(effects, feature, settings["hit_q_value"])
         if not moving.empty:
+            shown += 1
             panels += f"<h3>{escape(feature)}</h3>" + figure_tag(
-                effect_curves_figure(moving, feature), f"effects over time {feature}"
+                effect_curves_figure(moving, feature), f"effects over time {feature}", trim=False
             )
+    panels = folded(f"Effect curves of the {shown} features with a significant window", panels) if shown else ""
     ordered = summary.sort_values(["onset_min", "feature", "treatment"], na_position="last")
     acting = ordered[ordered["significant_windows"] > 0]
     table = table_tag(acting[SUMMARY_COLUMNS]) if not acting.empty else "<p>No treatment acts in any window.</p>"

@@ -3,6 +3,7 @@ effects over time, and the plates and wells it sits in (linked to the plate repo
 
 from __future__ import annotations
 
+import functools
 import hashlib
 import re
 
@@ -11,8 +12,9 @@ import numpy as np
 import pandas as pd
 
 from plateloom.report.html import escape, figure_tag, linked_cells, page, table_tag
-from plateloom.report.montage import montage_figure, sample_crops
+from plateloom.report.montage import crop_feature_names, montage_figure, sample_crops
 from plateloom.report.time_panels import effect_curves_figure
+from plateloom.screen.kinetics import significant
 from plateloom.screen.model_wells import in_model
 
 TREATMENT_COLUMNS = ["feature", "scale", "estimate", "ci_low", "ci_high", "ratio", "df", "q_value", "hit", "n_wells"]
@@ -59,9 +61,22 @@ def _wells_html(wells: pd.DataFrame, treatment: str) -> str:
     return "<ul>" + "".join(items) + "</ul>" if items else "<p>In no analysed well.</p>"
 
 
-def montage_html(wells: pd.DataFrame, treatments: list[str], files: dict | None) -> str:
+def page_feature(rows: pd.DataFrame, per_cell: set[str]) -> str:
+    """The feature a treatment page's montage is ordered by: of the per-cell features, the one with
+    the largest |standardized effect| among the treatment's hits, else among all its features;
+    area_um2 when no effect is on a per-cell feature."""
+    candidates = rows[rows["feature"].isin(per_cell) & np.isfinite(rows["standardized_effect"].to_numpy(float))]
+    if candidates.empty:
+        return "area_um2"
+    size = candidates["standardized_effect"].abs()
+    ranked = candidates.assign(size=size).sort_values(["hit", "size", "feature"], ascending=[False, False, True])
+    return str(ranked["feature"].iloc[0])
+
+
+def montage_html(wells: pd.DataFrame, treatments: list[str], files: dict | None, order_by: str = "area_um2") -> str:
     """Montages of the given treatments' cells and the negative controls' (one contrast for all),
-    sampled across plates and days from the wells kept in the model."""
+    sampled across plates and days from the wells kept in the model, ordered by ``order_by`` (a
+    per-cell feature)."""
     if not files:
         return "<p>No cell crops (thumbnails are written by the per-well jobs).</p>"
     kept = wells[in_model(wells)]
@@ -69,39 +84,66 @@ def montage_html(wells: pd.DataFrame, treatments: list[str], files: dict | None)
     for label, mine in [("negative controls", kept["role"] == "negative_control")] + [
         (t, kept["treatment"] == t) for t in treatments
     ]:
-        sample = sample_crops(kept[mine], files)
+        sample = sample_crops(kept[mine], files, order_by=order_by)
         if sample is not None:
             crops, _, pixel, channels = sample
-            groups.append((f"{label}: {len(crops)} cells, smallest to largest nucleus", crops))
+            groups.append((f"{label}: {len(crops)} cells by {order_by}, lowest first", crops))
     if not groups:
         return "<p>No cell crops for these wells.</p>"
     return (
         "<p>Nuclei cut from each well's thumbnail frame (its first frame flagged by site QC, else its last "
-        "usable frame), up to 3 per well, taken in turn from every plate and day, ordered by nuclear area; "
-        "the same contrast per channel in every panel.</p>"
+        "usable frame), up to 3 per well, taken in turn from every plate and day, ordered by "
+        f"{escape(order_by)} (the cell's own value); the same contrast per channel in every panel.</p>"
         + figure_tag(montage_figure(groups, pixel, channels), "cell montage")
     )
 
 
-def _time_html(effects_over_time: pd.DataFrame | None, treatment: str) -> str:
+MAX_TIME_PANELS = 4
+
+
+def _time_panels(curves: pd.DataFrame, threshold: float) -> pd.DataFrame:
+    """The curves of a treatment page: its features with a significant window first (most such
+    windows first), then by the largest |estimate / SE| of any window; MAX_TIME_PANELS at most."""
+    with np.errstate(divide="ignore", invalid="ignore"):
+        size = (curves["estimate"] / curves["std_error"]).abs().to_numpy(float)
+    ranks = (
+        curves.assign(_s=significant(curves, threshold), _t=np.nan_to_num(size))
+        .groupby("feature", sort=True)
+        .agg(windows=("_s", "sum"), strongest=("_t", "max"))
+        .sort_values(["windows", "strongest"], ascending=False, kind="stable")
+    )
+    rank = {feature: position for position, feature in enumerate(ranks.index[:MAX_TIME_PANELS])}
+    shown = curves[curves["feature"].isin(rank)]
+    return shown.assign(_rank=shown["feature"].map(rank)).sort_values(["_rank", "window"]).drop(columns="_rank")
+
+
+def _time_html(effects_over_time: pd.DataFrame | None, treatment: str, threshold: float) -> str:
     if effects_over_time is None or effects_over_time.empty:
         return "<p>Not run.</p>"
     curves = effects_over_time[effects_over_time["treatment"] == treatment]
     if curves.empty:
         return "<p>No effects over time for this treatment.</p>"
-    parts = []
-    for scale, group in curves.groupby("scale", sort=True):
-        figure = effect_curves_figure(group, "", panel="feature")
-        parts.append(figure_tag(figure, f"effects over time ({scale} scale)"))
+    shown = _time_panels(curves, threshold)
+    figure = figure_tag(effect_curves_figure(shown, "", panel="feature"), "effects over time", trim=False)
     return (
-        "<p>Effect per time window with pointwise intervals (bars) and the simultaneous band (shaded), "
-        "as in the screen report.</p>" + "".join(parts)
+        f"<p>Effect per time window with pointwise intervals (bars) and the simultaneous band (shaded), "
+        f"as in the screen report, for {shown['feature'].nunique()} of {curves['feature'].nunique()} features: "
+        "those with a significant window first, then those with the largest |estimate / SE|. "
+        "Every window is in results/effects_over_time.</p>" + figure
     )
+
+
+def _cells_html(rows: pd.DataFrame, context: dict) -> str:
+    files = context.get("crop_files")
+    per_cell = context["crop_features"] if "crop_features" in context else crop_feature_names(files or {})
+    order_by = page_feature(rows, per_cell) if files else "area_um2"
+    treatment = str(rows["treatment"].iloc[0])
+    return montage_html(context["wells"], [treatment], files, order_by)
 
 
 def treatment_page(treatment: str, context: dict, provenance: dict) -> str:
     """The HTML page of one treatment. ``context`` holds effects, wells, settings and, when run,
-    dose_figures (condition -> list of (alt, figure builder)) and effects_over_time."""
+    dose_html (condition -> its dose-response figures as HTML) and effects_over_time."""
     effects = context["effects"]
     rows = effects[effects["treatment"] == treatment]
     first = rows.iloc[0]
@@ -111,16 +153,14 @@ def treatment_page(treatment: str, context: dict, provenance: dict) -> str:
         f"role {escape(first['role'])}; {int(rows['hit'].sum())} hit(s) over {len(rows)} features. "
         '<a href="../screen.html">Back to the screen report</a>.</p>'
     )
-    doses = "".join(
-        figure_tag(build(), alt) for alt, build in context.get("dose_figures", {}).get(first["condition"], [])
-    )
+    doses = context["dose_html"](first["condition"]) if "dose_html" in context else ""
     sections = [
         ("Summary", summary),
         ("Effects on every feature", figure_tag(effects_across_features(rows, settings["ci_level"]), "effects")
          + table_tag(rows[TREATMENT_COLUMNS + ["note"]])),
         ("Dose-response of the compound", doses or "<p>No identifiable dose-response fit for this compound.</p>"),
-        ("Effects over time", _time_html(context.get("effects_over_time"), treatment)),
-        ("Cells", montage_html(context["wells"], [treatment], context.get("crop_files"))),
+        ("Effects over time", _time_html(context.get("effects_over_time"), treatment, settings["hit_q_value"])),
+        ("Cells", _cells_html(rows, context)),
         ("Plates and wells", _wells_html(context["wells"], treatment)),
     ]  # fmt: skip
     return page(f"plateloom treatment: {treatment}", sections, provenance)
@@ -131,14 +171,12 @@ def linked_treatments(table_html: str, treatments: list[str]) -> str:
     return linked_cells(table_html, {t: f"treatments/{page_name(t)}" for t in treatments})
 
 
-def write_treatment_pages(results, settings: dict, provenance: dict, folder: str) -> None:
-    """One page per treatment of the effects table (``results``: a ``ScreenResults``) into ``folder``."""
-    import os
-
-    from plateloom.io.tables import write_text
+def treatment_context(results, settings: dict) -> dict:
+    """What every treatment page reads (``results``: a ``ScreenResults``): effects, wells, settings,
+    dose_html (a compound's dose-response figures, drawn once per process and shown on each of its
+    doses' pages), effects over time, the crop files and the per-cell features they carry."""
     from plateloom.report.screen_page import dose_response_plot  # imported here: screen_page imports this module
 
-    os.makedirs(folder, exist_ok=True)
     dose_figures: dict[str, list] = {}
     if results.dose_fits is not None and results.dose_points is not None:
         points = results.dose_points
@@ -149,13 +187,17 @@ def write_treatment_pages(results, settings: dict, provenance: dict, folder: str
             dose_figures.setdefault(fit["condition"], []).append(
                 (f"dose-response {fit['feature']}", lambda fit=fit, part=points[mine]: dose_response_plot(fit, part))
             )
-    context = {
+
+    @functools.cache
+    def dose_html(condition: str) -> str:
+        return "".join(figure_tag(build(), alt) for alt, build in dose_figures.get(condition, []))
+
+    return {
         "effects": results.effects,
         "wells": results.wells,
         "settings": settings,
-        "dose_figures": dose_figures,
+        "dose_html": dose_html,
         "effects_over_time": results.effects_over_time,
         "crop_files": results.crop_files,
+        "crop_features": crop_feature_names(results.crop_files or {}),
     }
-    for treatment in sorted(results.effects["treatment"].unique()):
-        write_text(treatment_page(treatment, context, provenance), os.path.join(folder, page_name(treatment)))

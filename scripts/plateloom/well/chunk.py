@@ -64,8 +64,20 @@ def well_snapshot(
     labels = segment_frame(planes, settings)[0]
     nuclear = planes[list(settings.channels).index(settings.nuclei_channel)]
     png = png_bytes(overlay_rgb(nuclear, labels, track_tails(cells, site, frame, settings.pixel_size_um)))
-    crops, areas = cell_crops(planes, labels, settings.pixel_size_um)
-    return png, crops_bytes(crops, areas, settings.pixel_size_um, list(settings.channels))
+    crops, areas, objects = cell_crops(planes, labels, settings.pixel_size_um)
+    features = crop_features(cells, site, frame, objects)
+    return png, crops_bytes(crops, areas, settings.pixel_size_um, list(settings.channels), features)
+
+
+NOT_CROP_FEATURES = ("site", "frame", "time_min", "object", "track", "parent_track", "centroid_x_um", "centroid_y_um")
+
+
+def crop_features(cells: pd.DataFrame, site: int, frame: int, objects: np.ndarray) -> pd.DataFrame:
+    """The cells table's numeric per-cell features of the cropped nuclei (the frame's labels are its
+    ``object`` numbers), one row per crop in ``objects`` order; NaN where a nucleus has no row."""
+    here = cells[(cells["site"] == site) & (cells["frame"] == frame)].drop_duplicates("object").set_index("object")
+    numeric = [c for c in here.columns if c not in NOT_CROP_FEATURES and pd.api.types.is_numeric_dtype(here[c])]
+    return here.reindex(np.asarray(objects, np.int64))[numeric].astype(float).reset_index(drop=True)
 
 
 def analyse_chunk(

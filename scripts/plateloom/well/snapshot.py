@@ -89,12 +89,12 @@ CROP_HALF_UM = 12.0  # a crop is 24 um a side: a nucleus with a margin of its su
 
 def cell_crops(planes: np.ndarray, labels: np.ndarray, pixel_size_um: float, count: int = CROPS_PER_WELL):
     """Crops of up to ``count`` nuclei of one frame, for montages: (crops (n, channels, side, side)
-    in the image's grey levels, their nuclei's areas in um2). The nuclei are those whose crop lies
+    in the image's grey levels, their nuclei's areas in um2, their labels). The nuclei are those whose crop lies
     inside the image, taken at evenly spaced ranks of area (smallest to largest), so a well's crops
     show its spread of sizes; the same frame always gives the same crops."""
     half = max(4, int(round(CROP_HALF_UM / pixel_size_um)))
     n_labels = int(labels.max())
-    empty = np.zeros((0, planes.shape[0], 2 * half, 2 * half), np.float32), np.zeros(0)
+    empty = np.zeros((0, planes.shape[0], 2 * half, 2 * half), np.float32), np.zeros(0), np.zeros(0, np.int64)
     if n_labels == 0:
         return empty
     index = np.flatnonzero(labels)
@@ -113,11 +113,20 @@ def cell_crops(planes: np.ndarray, labels: np.ndarray, pixel_size_um: float, cou
     crops = np.stack(
         [planes[:, int(cy[i]) - half : int(cy[i]) + half, int(cx[i]) - half : int(cx[i]) + half] for i in chosen]
     )
-    return crops.astype(np.float32), area[chosen] * pixel_size_um**2
+    return crops.astype(np.float32), area[chosen] * pixel_size_um**2, chosen.astype(np.int64)
 
 
-def crops_bytes(crops: np.ndarray, areas_um2: np.ndarray, pixel_size_um: float, channels: list[str]) -> bytes:
-    """The crops as a compressed NumPy archive (.npz: crops, area_um2, pixel_size_um, channels)."""
+def crops_bytes(
+    crops: np.ndarray,
+    areas_um2: np.ndarray,
+    pixel_size_um: float,
+    channels: list[str],
+    features: pd.DataFrame | None = None,
+) -> bytes:
+    """The crops as a compressed NumPy archive (.npz: crops, area_um2, pixel_size_um, channels and,
+    given ``features`` (one row per crop), feature_names and feature_values (n, features) in the
+    cells table's units, so that a montage can be ordered by any per-cell feature)."""
+    features = pd.DataFrame(index=range(len(crops))) if features is None else features
     buffer = io.BytesIO()
     np.savez_compressed(
         buffer,
@@ -125,5 +134,7 @@ def crops_bytes(crops: np.ndarray, areas_um2: np.ndarray, pixel_size_um: float, 
         area_um2=np.asarray(areas_um2, float),
         pixel_size_um=np.float64(pixel_size_um),
         channels=np.array(channels),
+        feature_names=np.array(list(features.columns), dtype=str),
+        feature_values=features.to_numpy(float).reshape(len(crops), len(features.columns)),
     )
     return buffer.getvalue()
