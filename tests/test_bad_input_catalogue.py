@@ -312,6 +312,11 @@ def test_an_empty_image_file_costs_only_its_site(tmp_path):
     assert (
         "well A01, site 2:" in flagged["frame_problem"].iloc[0] and "A01_s2_dna.tif" in flagged["frame_problem"].iloc[0]
     )
+    # a well whose only site cannot be read has the site-QC columns (and types) of any other well
+    (tmp_path / "A01_s1_dna.tif").write_bytes(b"")
+    _, _, unreadable = analyse_well(_index(tmp_path), "A01", _settings())
+    assert list(unreadable.columns) == list(qc.columns)
+    assert unreadable["links"].dtype == qc["links"].dtype == np.int64
 
 
 def test_exported_labels_are_an_ome_tiff_time_series_matching_the_cells_table(tmp_path):

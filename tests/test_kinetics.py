@@ -226,3 +226,72 @@ def test_windows_count_from_the_treatment_when_it_is_given():
     profile = pd.DataFrame({"plate": ["P"], "well": ["A01"], "role": ["test"], "excluded_by": [""]})
     table = time_course_table(windows, cells, profile, 30.0, "treatment")
     assert table["window_start_min"].tolist() == [0.0, 30.0] and table["time_origin"].eq("treatment").all()
+
+
+def _awkward_windows(n_batches: int, seed: int = 5, windows: int = 4) -> list[pd.DataFrame]:
+    """Wells of a small screen repeated over ``windows`` time windows (planted truth for an equality
+    check, not data): unequal plates per batch (the last batch has one plate), a treatment in one
+    batch only, a well with no value in any window, a well kept for the cell count only, and a
+    feature with no batch-to-batch variation (its batch variance at the boundary)."""
+    rng = np.random.default_rng(seed)
+    rows = []
+    for b in range(n_batches):
+        for p in range(3 if b < n_batches - 1 or n_batches == 1 else 1):
+            plate = f"B{b}P{p}"
+            for w in range(12):
+                if w < 4:
+                    role, treatment = "negative_control", "vehicle"
+                elif w < 8 or b == 0:
+                    role, treatment = "test", f"T{w % 4} 1 uM" if w < 8 else "T9 1 uM"
+                else:
+                    role, treatment = "test", f"T{w % 2} 1 uM"
+                rows.append({"batch": f"d{b}", "plate": plate, "well": f"A{w:02d}", "role": role,
+                             "treatment": treatment, "condition": treatment.split()[0], "dose": 1.0,
+                             "dose_unit": "uM", "n_sites": 1, "count_only": False,
+                             "batch_offset": rng.normal(0, 0.3), "plate_offset": rng.normal(0, 0.2)})  # fmt: skip
+    wells = pd.DataFrame(rows)
+    wells["batch_offset"] = wells.groupby("batch")["batch_offset"].transform("first")
+    wells["plate_offset"] = wells.groupby("plate")["plate_offset"].transform("first")
+    wells.loc[3, "count_only"] = True
+    parts = []
+    for window in range(windows):
+        effect = np.where(wells["treatment"] == "T1 1 uM", 0.2 * window, 0.0)
+        part = wells.assign(
+            window=window,
+            area_um2=wells["batch_offset"] + wells["plate_offset"] + effect + rng.normal(0, 0.1, len(wells)),
+            solidity=wells["plate_offset"] + rng.normal(0, 0.1, len(wells)),
+        )
+        part.loc[5, ["area_um2", "solidity"]] = np.nan
+        parts.append(part)
+    return parts
+
+
+@pytest.mark.parametrize("n_batches", [3, 1])
+def test_shared_window_fits_equal_the_endpoint_fit_of_each_window(n_batches):
+    # The shared path (design once, group sums of all windows at once, warm-started REML) gives the
+    # rows of fit_feature_effects run on each window alone, on an unbalanced design.
+    from plateloom.screen.effects import fit_feature_effects
+    from plateloom.screen.window_fits import shared_window_effects
+
+    parts = _awkward_windows(n_batches)
+    catalogue = pd.DataFrame(
+        {"treatment": ["T7 1 uM"], "condition": "T7", "dose": 1.0, "dose_unit": "uM", "role": "test"}
+    )
+    catalogue = pd.concat(
+        [parts[0][["treatment", "condition", "dose", "dose_unit", "role"]].drop_duplicates(), catalogue]
+    )
+    for feature in ("area_um2", "solidity"):
+        shared = shared_window_effects(parts, feature, "linear", (0.95, "exact", "satterthwaite"), catalogue)
+        assert shared is not None and len(shared) == len(parts)
+        for part, table in zip(parts, shared):
+            alone = fit_feature_effects(part, feature, "linear", 0.95, "exact", catalogue, "", "satterthwaite")
+            pd.testing.assert_frame_equal(table, alone, rtol=1e-6, atol=1e-9)
+        notes = " ".join(shared[-1]["note"])
+        assert "1 wells with a missing value left out" in notes and "no estimate" in notes
+    assert "present in one batch only" in notes if n_batches > 1 else "one batch only" in notes
+    if n_batches > 1:  # solidity has no batch offsets: its batch variance sits at the boundary
+        assert "singular fit" in notes
+    # where the path does not apply it says so, and the caller fits window by window
+    assert shared_window_effects(parts, "area_um2", "linear", (0.95, "exact", "kenward_roger")) is None
+    shifted = [parts[0], parts[1].iloc[::-1]]
+    assert shared_window_effects(shifted, "area_um2", "linear", (0.95, "exact", "satterthwaite")) is None

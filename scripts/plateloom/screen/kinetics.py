@@ -25,6 +25,7 @@ from plateloom.screen.batch_correction import COUNT_FEATURE
 from plateloom.screen.effects import fit_feature_effects
 from plateloom.screen.hits import FDR_FAMILY_ROLE, HitRule, add_hit_calls
 from plateloom.screen.model_wells import count_only, in_model
+from plateloom.screen.window_fits import aligned_windows, shared_window_effects
 from plateloom.settings import FromSchema
 from plateloom.stats import bh_qvalues
 
@@ -92,14 +93,23 @@ def model_time_courses(time_courses: pd.DataFrame, features: list[str], scales: 
 
 
 def _window_effects(
-    rows: pd.DataFrame, feature: str, scale: str, choices: ModelChoices, treatments: pd.DataFrame | None
+    windows: list[tuple[int, pd.DataFrame]],
+    feature: str,
+    scale: str,
+    choices: ModelChoices,
+    treatments: pd.DataFrame | None,
+    aligned: bool,
 ) -> pd.DataFrame:
-    """The endpoint model fitted in each time window of one feature, one row per (treatment, window)."""
+    """The endpoint model fitted in each time window (``windows``: (window, its rows)) of one
+    feature, one row per (treatment, window) (``plateloom.screen.window_fits`` where it applies:
+    the same rows, with what windows share done once)."""
+    settings = (choices.ci_level, choices.fitter, choices.df_method)
+    tables = shared_window_effects([part for _, part in windows], feature, scale, settings, treatments, aligned)
+    if tables is None:
+        level, fitter, df_method = settings
+        tables = [fit_feature_effects(p, feature, scale, level, fitter, treatments, "", df_method) for _, p in windows]
     parts = []
-    for window, part in rows.groupby("window", sort=True):
-        table = fit_feature_effects(
-            part, feature, scale, choices.ci_level, choices.fitter, treatments, "", choices.df_method
-        )
+    for (window, part), table in zip(windows, tables):
         first = part.iloc[0]
         for position, key in enumerate(WINDOW_KEYS):
             table.insert(2 + position, key, window if key == "window" else first[key])
@@ -133,7 +143,9 @@ def effects_over_time(
     """Effects of every treatment on every feature in every time window (``model_time_courses``
     rows), with the simultaneous band, and BH q-values over every (feature, test treatment,
     window) with the endpoint's hit rule. Effects are in model-scale units as for the endpoint."""
-    parts = [_window_effects(rows, f, scales[f], choices, treatments) for f in features]
+    windows = [(window, part) for window, part in rows.groupby("window", sort=True)]
+    aligned = aligned_windows([part for _, part in windows])
+    parts = [_window_effects(windows, f, scales[f], choices, treatments, aligned) for f in features]
     table = pd.concat(parts, ignore_index=True)
     return add_simultaneous_band(add_hit_calls(table, choices.hit_rule), choices.ci_level)
 

@@ -27,7 +27,7 @@ which differentiates ``restricted_deviance`` and ``fixed_covariance`` in the var
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 import pandas as pd
@@ -101,6 +101,13 @@ def group_sums(
         float(np.sum(np.log(weights))),
         with_plate,
     )
+
+
+def window_sums(shared: GroupSums, column: int) -> GroupSums:
+    """The group sums of one response out of sums formed for several at once (``group_sums`` with
+    ``y`` of shape (rows, responses): the design's columns, then one per response)."""
+    keep = np.r_[np.arange(shared.n_fixed), shared.n_fixed + column]
+    return replace(shared, cross=shared.cross[np.ix_(keep, keep)], plate_sums=shared.plate_sums[:, keep])
 
 
 def _weighted_cross(sums: GroupSums, g_batch: float, g_plate: float) -> tuple[np.ndarray, float]:
@@ -210,26 +217,35 @@ def fit_nested_exact(
     plate: np.ndarray | None,
     reml: bool = True,
     weights: np.ndarray | None = None,
+    sums: GroupSums | None = None,
+    start: np.ndarray | None = None,
 ) -> ExactNestedFit:
     """REML (or ML) fit of ``y ~ design`` with random intercepts per batch and per plate within batch.
 
     ``batch`` and ``plate`` are labels per row (plate labels may repeat across batches; a plate
     is the pair batch, plate). With ``plate=None`` the model has the batch intercept only.
     ``weights``: known precision weights (residual variance s2 / w), or None for equal weights.
+    ``sums``: the group sums if already formed (``window_sums``); ``start``: theta to start from
+    (a fit of a similar response, e.g. the previous time window), which skips the coarse search.
     """
     with_plate = plate is not None
-    sums = group_sums(y, design, batch, plate, weights)
+    sums = group_sums(y, design, batch, plate, weights) if sums is None else sums
 
     def objective(theta: np.ndarray) -> float:
         return _objective(sums, theta[0] ** 2, theta[1] ** 2 if with_plate else 0.0, reml)
 
     # Coarse start by Nelder-Mead, a quasi-Newton polish, then Newton steps with central-difference
     # derivatives: finite-difference BFGS stalls near 1e-6 in theta, Newton reaches ~1e-10.
-    start = np.full(2 if with_plate else 1, 0.5)
-    coarse = optimize.minimize(objective, start, method="Nelder-Mead", options={"xatol": 1e-3, "fatol": 1e-6})
-    polished = optimize.minimize(objective, coarse.x, method="BFGS", options={"gtol": 1e-6})
-    best = polished if polished.fun <= coarse.fun else coarse
-    theta, value = _newton_polish(objective, np.abs(best.x), float(best.fun))
+    if start is None:
+        initial = np.full(2 if with_plate else 1, 0.5)
+        coarse = optimize.minimize(objective, initial, method="Nelder-Mead", options={"xatol": 1e-3, "fatol": 1e-6})
+        begin, begin_value = coarse.x, float(coarse.fun)
+    else:
+        begin = np.maximum(np.abs(np.asarray(start, float)), 1e-3)  # off the boundary, where theta's sign flips
+        begin_value = objective(begin)
+    polished = optimize.minimize(objective, begin, method="BFGS", options={"gtol": 1e-6})
+    best, best_value = (polished.x, float(polished.fun)) if polished.fun <= begin_value else (begin, begin_value)
+    theta, value = _newton_polish(objective, np.abs(best), best_value)
     g_batch, g_plate = theta[0] ** 2, (theta[1] ** 2 if with_plate else 0.0)
     beta, inverse, scale = _solution(sums, g_batch, g_plate, reml)
     return ExactNestedFit(

@@ -197,6 +197,7 @@ def _unusable_frame_qc(site: int, frame: int, problem: str, channels: list[str])
     qc.update({"focus_score": np.nan, "empty_field": False, "frame_problem": problem})
     qc.update({f"background_{c}": np.nan for c in channels})
     qc.update({f"saturated_fraction_{c}": np.nan for c in channels})
+    qc.update({"links": 0, "links_near_cutoff": 0, "links_cut_off": 0, "linking_distance_um": np.nan})
     return qc
 
 
