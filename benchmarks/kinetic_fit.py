@@ -36,9 +36,8 @@ def window_rows(wells: pd.DataFrame, features: list[str], seed: int = 2) -> pd.D
     rng = np.random.default_rng(seed)
     parts = []
     for window in range(WINDOWS):
-        part = wells.copy()
-        for feature in features:
-            part[feature] = part[feature] + rng.normal(0, 0.05, len(part))
+        noise = pd.DataFrame(rng.normal(0, 0.05, (len(wells), len(features))), columns=features, index=wells.index)
+        part = pd.concat([wells.drop(columns=features), wells[features] + noise], axis=1)
         parts.append(
             part.assign(
                 well=np.arange(len(part)).astype(str),

@@ -25,14 +25,14 @@ from plateloom.screen.model_wells import treatment_catalogue
 from plateloom.screen.nested_fit import FITTERS, fit_nested, fixed_plate_fit, treatment_design
 
 
-def _codes(treatments: pd.Series) -> tuple[pd.Series, dict[str, str]]:
+def treatment_codes(treatments: pd.Series) -> tuple[pd.Series, dict[str, str]]:
     """Formula-safe codes for treatment names; the reference sorts first (t0000)."""
     names = sorted(set(pd.unique(treatments)) - {REFERENCE_ROLE})
     mapping = {REFERENCE_ROLE: "t0000", **{name: f"t{i + 1:04d}" for i, name in enumerate(names)}}
     return treatments.map(mapping), mapping
 
 
-def _join(*notes: str) -> str:
+def join_notes(*notes: str) -> str:
     return "; ".join(n for n in notes if n)
 
 
@@ -52,7 +52,7 @@ class _Outcome:
     note: str
 
 
-def _model_data(wells: pd.DataFrame, feature: str) -> tuple[pd.DataFrame, int]:
+def model_data(wells: pd.DataFrame, feature: str) -> tuple[pd.DataFrame, int]:
     """The wells with a finite value of ``feature`` (as y; negative controls as the reference
     treatment) and how many wells had none. Wells kept for the cell count only are left out of
     every other feature without being counted as missing."""
@@ -66,11 +66,11 @@ def _model_data(wells: pd.DataFrame, feature: str) -> tuple[pd.DataFrame, int]:
     return data[finite], int((~finite).sum())
 
 
-def _design_note(data: pd.DataFrame, n_not_finite: int) -> str:
+def design_note(data: pd.DataFrame, n_not_finite: int) -> str:
     plates_per_batch = data.groupby("batch")["plate"].nunique()
     n_batches, n_plates = data["batch"].nunique(), data["plate"].nunique()
     single = plates_per_batch.index[plates_per_batch == 1]
-    return _join(
+    return join_notes(
         f"{n_not_finite} wells with a missing value left out" if n_not_finite else "",
         f"batch {', '.join(single)} has a single plate"
         if n_batches >= 2 and len(single) and n_plates > n_batches
@@ -112,12 +112,12 @@ def _fit_outcome(
     if np.nanstd(data["y"]) == 0:
         empty = pd.Series(dtype=float)
         return _Outcome(empty, empty, empty, "", (np.nan,) * 3, False, "not fitted",
-                        _join(note, "feature is constant across wells: not fitted"))  # fmt: skip
+                        join_notes(note, "feature is constant across wells: not fitted"))  # fmt: skip
     try:
         fit = fit_nested(data, mapping, fitter, weights, df_method)
     except RuntimeError as error:
         params, errors, residual, residual_df = fixed_plate_fit(data)
-        note = _join(note, f"mixed model failed ({error}); fallback used")
+        note = join_notes(note, f"mixed model failed ({error}); fallback used")
         return _Outcome(
             params,
             errors,
@@ -129,9 +129,9 @@ def _fit_outcome(
             note,
         )
     if data["batch"].nunique() < 2:
-        note = _join(note, "one batch only: random intercept per plate")
+        note = join_notes(note, "one batch only: random intercept per plate")
     if fit.boundary:
-        note = _join(note, "a variance component was estimated at zero (singular fit)")
+        note = join_notes(note, "a variance component was estimated at zero (singular fit)")
     components = (fit.batch_variance, fit.plate_variance, fit.residual_variance)
     return _Outcome(
         fit.params,
@@ -141,11 +141,11 @@ def _fit_outcome(
         components,
         True,
         f"REML mixed model ({fit.method})",
-        _join(note, fit.note),
+        join_notes(note, fit.note),
     )
 
 
-def _treatment_counts(data: pd.DataFrame) -> pd.DataFrame:
+def treatment_counts(data: pd.DataFrame) -> pd.DataFrame:
     groups = data.groupby("code")
     return pd.DataFrame(
         {
@@ -157,12 +157,12 @@ def _treatment_counts(data: pd.DataFrame) -> pd.DataFrame:
     )
 
 
-def _row_note(count: pd.Series | None, n_batches: int, note: str) -> str:
+def row_note(count: pd.Series | None, n_batches: int, note: str) -> str:
     if count is None:
-        return _join("all wells of this treatment were excluded or missing: no estimate", note)
+        return join_notes("all wells of this treatment were excluded or missing: no estimate", note)
     if count["n_batches"] == 1 and n_batches > 1:
         where = f"present in one batch only ({count['first_batch']}): estimated against that batch's controls"
-        return _join(where, note)
+        return join_notes(where, note)
     return note
 
 
@@ -221,7 +221,7 @@ def _fit_feature(
         weights = count_weights(data, mapping, fitter)
     except RuntimeError:
         return _fit_outcome(data, mapping, fitter, note, None, df_method)
-    note = _join(note, "cell count: log-linear model with overdispersion (Poisson precision weights)")
+    note = join_notes(note, "cell count: log-linear model with overdispersion (Poisson precision weights)")
     return _fit_outcome(data, mapping, fitter, note, weights, df_method)
 
 
@@ -248,7 +248,7 @@ def fit_feature_effects(
     well SD within plates). ``df_method``: "satterthwaite" or "kenward_roger" (adjusted SEs too).
     """
     _check_choices(fitter, df_method)
-    data, n_not_finite = _model_data(wells, feature)
+    data, n_not_finite = model_data(wells, feature)
     if data.empty:
         note = (
             f"no well has a value of {feature}: not fitted (collective readouts need tracks of at least "
@@ -260,13 +260,13 @@ def fit_feature_effects(
             f"feature {feature}: no negative-control wells are left in the model; "
             "check the layouts' role column and the exclusion ledger"
         )
-    data["code"], mapping = _codes(data["treatment"])
+    data["code"], mapping = treatment_codes(data["treatment"])
     data["plate_code"] = pd.factorize(data["plate"], sort=True)[0]
     data["batch_code"] = pd.factorize(data["batch"], sort=True)[0]
-    note = _join(_design_note(data, n_not_finite), scale_note)
+    note = join_notes(design_note(data, n_not_finite), scale_note)
     outcome = _fit_feature(data, mapping, (fitter, df_method), note, feature, scale)
     data.attrs.update(feature=feature, scale=scale)
-    return _with_ratios(_effect_rows(data, mapping, outcome, _treatment_catalogue(wells, treatments), ci_level), scale)
+    return with_ratios(_effect_rows(data, mapping, outcome, _treatment_catalogue(wells, treatments), ci_level), scale)
 
 
 def _check_choices(fitter: str, df_method: str) -> None:
@@ -281,7 +281,7 @@ def _effect_rows(
 ) -> pd.DataFrame:
     """One row per treatment of the catalogue: estimate, interval, sizes, components and note."""
     feature, scale = data.attrs["feature"], data.attrs["scale"]
-    counts = _treatment_counts(data)
+    counts = treatment_counts(data)
     spread = control_well_sd(data)
     rows = []
     for name, first in catalogue.iterrows():
@@ -296,12 +296,12 @@ def _effect_rows(
             | {"control_well_sd": spread}
             | sizes
             | _component_columns(outcome)
-            | {"note": _row_note(count, data["batch"].nunique(), outcome.note)}
+            | {"note": row_note(count, data["batch"].nunique(), outcome.note)}
         )
     return pd.DataFrame(rows)
 
 
-def _with_ratios(table: pd.DataFrame, scale: str) -> pd.DataFrame:
+def with_ratios(table: pd.DataFrame, scale: str) -> pd.DataFrame:
     """Ratio columns (exp of estimate and interval) for log-scale features; NaN for linear ones."""
     if not table.empty:
         for column, source in (("ratio", "estimate"), ("ratio_ci_low", "ci_low"), ("ratio_ci_high", "ci_high")):

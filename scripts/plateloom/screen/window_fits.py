@@ -15,6 +15,8 @@ through ``fit_feature_effects`` window by window.
 
 from __future__ import annotations
 
+from dataclasses import dataclass
+
 import numpy as np
 import pandas as pd
 from scipy import stats
@@ -24,23 +26,23 @@ from plateloom.screen.batch_correction import COUNT_FEATURE
 from plateloom.screen.denominator_df import satterthwaite_df
 from plateloom.screen.effects import (
     DF_METHOD_NAMES,
-    _codes,
-    _design_note,
-    _join,
-    _model_data,
-    _row_note,
-    _treatment_counts,
-    _with_ratios,
+    design_note,
     fit_feature_effects,
+    join_notes,
+    model_data,
+    row_note,
+    treatment_codes,
+    treatment_counts,
+    with_ratios,
 )
 from plateloom.screen.nested_fit import BOUNDARY_SHARE, treatment_design
-from plateloom.screen.reml import ExactNestedFit, fit_nested_exact, group_sums, window_sums
+from plateloom.screen.reml import ExactNestedFit, GroupSums, fit_nested_exact, group_sums, window_sums
 
 EXACT_METHOD = "REML mixed model (exact)"
 
 
 def _model_mask(part: pd.DataFrame, feature: str) -> np.ndarray:
-    """The rows ``_model_data`` keeps: finite values, and not kept for the cell count only."""
+    """The rows ``model_data`` keeps: finite values, and not kept for the cell count only."""
     keep = np.isfinite(part[feature].to_numpy(float))
     if "count_only" in part.columns and feature != COUNT_FEATURE:
         keep &= ~part["count_only"].to_numpy(bool)
@@ -106,6 +108,73 @@ def _window_columns(
     }
 
 
+@dataclass(frozen=True)
+class _SharedDesign:
+    """What every window of one feature shares: the first window's rows (the template), the design
+    and its groups, the group sums of all windows' responses, each row's design column (-1: no
+    wells), its treatment's counts and the note about the design."""
+
+    template: pd.DataFrame
+    design: np.ndarray
+    groups: np.ndarray
+    plate: np.ndarray
+    nested: bool
+    n_batches: int
+    responses: np.ndarray  # wells x windows
+    sums: GroupSums
+    terms: np.ndarray
+    row_counts: list
+    note: str
+    controls: np.ndarray
+
+
+def _shared_design(template: pd.DataFrame, parts: list[pd.DataFrame], feature: str, mask: np.ndarray) -> _SharedDesign:
+    data, n_not_finite = model_data(parts[0], feature)
+    data["code"], mapping = treatment_codes(data["treatment"])
+    batch = pd.factorize(data["batch"], sort=True)[0]
+    plate = pd.factorize(data["plate"], sort=True)[0]
+    n_batches, n_plates = int(batch.max()) + 1, int(plate.max()) + 1
+    nested = n_batches >= 2 and n_plates > n_batches
+    design, names = treatment_design(data["code"])
+    responses = np.column_stack([part[feature].to_numpy(float)[mask] for part in parts])
+    groups = batch if n_batches >= 2 else plate
+    position = {name: i for i, name in enumerate(names)}
+    codes = template["treatment"].map(mapping)
+    counts = treatment_counts(data)
+    return _SharedDesign(
+        template,
+        design,
+        groups,
+        plate,
+        nested,
+        n_batches,
+        responses,
+        group_sums(responses, design, groups, plate if nested else None),
+        np.array([position.get(f"C(code)[T.{c}]", -1) if isinstance(c, str) else -1 for c in codes]),
+        [counts.loc[c] if isinstance(c, str) and c in counts.index else None for c in codes],
+        design_note(data, n_not_finite),
+        (data["treatment"] == REFERENCE_ROLE).to_numpy(),
+    )
+
+
+def _window_table(shared: _SharedDesign, fit: ExactNestedFit, column: int, scale: str, ci_level: float) -> pd.DataFrame:
+    """One window's rows: the template with the response-dependent columns of ``fit`` and the notes."""
+    total = fit.batch_variance + fit.plate_variance + fit.residual_variance
+    boundary = min(fit.batch_variance, fit.plate_variance if shared.nested else np.inf) < BOUNDARY_SHARE * total
+    note = join_notes(
+        shared.note,
+        "one batch only: random intercept per plate" if shared.n_batches < 2 else "",
+        "a variance component was estimated at zero (singular fit)" if boundary else "",
+    )
+    table = shared.template.copy()
+    one_batch = shared.n_batches < 2
+    for name, values in _window_columns(fit, shared.terms, ci_level, shared.nested, one_batch).items():
+        table[name] = values
+    table["control_well_sd"] = _control_sd(shared.responses[:, column], shared.controls, shared.plate)
+    table["note"] = [row_note(count, shared.n_batches, note) for count in shared.row_counts]
+    return with_ratios(table, scale)
+
+
 def shared_window_effects(
     parts: list[pd.DataFrame],
     feature: str,
@@ -126,43 +195,16 @@ def shared_window_effects(
     template = fit_feature_effects(parts[0], feature, scale, ci_level, fitter, treatments, "", df_method)
     if not (template["method"] == EXACT_METHOD).all():
         return None
-    data, n_not_finite = _model_data(parts[0], feature)
-    data["code"], mapping = _codes(data["treatment"])
-    batch = pd.factorize(data["batch"], sort=True)[0]
-    plate = pd.factorize(data["plate"], sort=True)[0]
-    n_batches, n_plates = int(batch.max()) + 1, int(plate.max()) + 1
-    nested = n_batches >= 2 and n_plates > n_batches
-    design, names = treatment_design(data["code"])
-    responses = np.column_stack([part[feature].to_numpy(float)[mask] for part in parts])
-    if np.any(np.nanstd(responses, axis=0) == 0):
+    shared = _shared_design(template, parts, feature, mask)
+    if np.any(np.nanstd(shared.responses, axis=0) == 0):
         return None
-    groups = batch if n_batches >= 2 else plate
-    shared = group_sums(responses, design, groups, plate if nested else None)
-    position = {name: i for i, name in enumerate(names)}
-    codes = template["treatment"].map(mapping)
-    terms = np.array([position.get(f"C(code)[T.{c}]", -1) if isinstance(c, str) else -1 for c in codes])
-    counts = _treatment_counts(data)
-    row_counts = [counts.loc[c] if isinstance(c, str) and c in counts.index else None for c in codes]
-    design_note = _design_note(data, n_not_finite)
-    controls = (data["treatment"] == REFERENCE_ROLE).to_numpy()
+    plates = shared.plate if shared.nested else None
     tables, start = [template], None
     for column in range(1, len(parts)):
-        sums = window_sums(shared, column)
-        fit = fit_nested_exact(responses[:, column], design, groups, plate if nested else None, sums=sums, start=start)
+        response, sums = shared.responses[:, column], window_sums(shared.sums, column)
+        fit = fit_nested_exact(response, shared.design, shared.groups, plates, sums=sums, start=start)
         if not fit.converged:
             return None
         start = fit.variance_parameters[:-1]
-        total = fit.batch_variance + fit.plate_variance + fit.residual_variance
-        boundary = min(fit.batch_variance, fit.plate_variance if nested else np.inf) < BOUNDARY_SHARE * total
-        note = _join(
-            design_note,
-            "one batch only: random intercept per plate" if n_batches < 2 else "",
-            "a variance component was estimated at zero (singular fit)" if boundary else "",
-        )
-        table = template.copy()
-        for name, values in _window_columns(fit, terms, ci_level, nested, n_batches < 2).items():
-            table[name] = values
-        table["control_well_sd"] = _control_sd(responses[:, column], controls, plate)
-        table["note"] = [_row_note(count, n_batches, note) for count in row_counts]
-        tables.append(_with_ratios(table, scale))
+        tables.append(_window_table(shared, fit, column, scale, ci_level))
     return tables
