@@ -136,7 +136,7 @@ def _ids(html: str) -> set[str]:
 def _image(dom: str, alt: str) -> np.ndarray:
     from skimage.io import imread
 
-    found = re.search(r'<img[^>]*src="data:image/png;base64,([^"]+)"[^>]*alt="' + re.escape(alt) + '"', dom)
+    found = re.search(r'<img alt="' + re.escape(alt) + r'" src="data:image/png;base64,([^"]+)"', dom)
     assert found, alt
     return imread(io.BytesIO(base64.b64decode(found.group(1))))
 

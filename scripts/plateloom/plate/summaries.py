@@ -180,7 +180,7 @@ def summarise_wells(
         how="left",
     )
     profile["cell_count"] = profile["cell_count"].fillna(0.0)
-    for column in ("n_observations", "n_tracks"):
+    for column in ("n_observations", "n_tracks", "n_sites", "n_frames"):  # 0 for a well with no usable frame
         profile[column] = profile[column].fillna(0).astype(np.int64)
     return _with_position(profile.reset_index(), plate, batch, plate_format(wells))
 

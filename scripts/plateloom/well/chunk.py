@@ -116,7 +116,9 @@ def analyse_chunk(
         if snapshot is not None:
             write_bytes(snapshot[0], os.path.join(outputs.thumbnails, f"{well}.png"))
             write_bytes(snapshot[1], os.path.join(outputs.thumbnails, f"{well}.npz"))
+        seconds = time.perf_counter() - started
         log.info(
-            "plate %s well %s done (%d of %d): %d nuclei in %d site-frames, %d tracks, %.1f s",
-            plate, well, number, len(wells), len(cells), len(site_qc), len(tracks), time.perf_counter() - started,
+            "plate %s well %s done (%d of %d): %d nuclei in %d site-frames, %d tracks, %.1f s (%.1f site-frames/s)",
+            plate, well, number, len(wells), len(cells), len(site_qc), len(tracks), seconds,
+            len(site_qc) / max(seconds, 1e-9),
         )  # fmt: skip
