@@ -29,6 +29,7 @@ def collective_screen(tmp_path_factory):
     layout.to_csv(layout_path, index=False)
     config_path = workdir / "config" / "config.yaml"
     config = yaml.safe_load(config_path.read_text())
+    config["demo"]["size"] = "full"  # 36 frames of 160 px: the collective and kinetic compounds' own world
     config["screen"]["design_check"]["n_screens"] = 10
     config["screen"]["dose_response"]["features"] = ["area_um2"]
     config_path.write_text(yaml.safe_dump(config, sort_keys=False))

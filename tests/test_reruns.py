@@ -36,6 +36,7 @@ def own_plate(tmp_path_factory):
     workdir = copy_workflow(tmp_path_factory.mktemp("own") / "screen")
     config_path = workdir / "config" / "config.yaml"
     config = yaml.safe_load(config_path.read_text())
+    config["demo"]["size"] = "full"  # 160 px fields: A03 is cut to 100 px below
     config["demo"]["frames"] = 3
     config["only_plates"] = [PLATE]
     config["illumination"]["max_sites"] = MAX_SITES

@@ -1,5 +1,9 @@
 """Job sizes scale with the data: memory with the frame size, run time with the pixels read."""
 
+from pathlib import Path
+
+import pytest
+
 from plateloom.setup.sizing import ImagingSize, analyse_wells_size, screen_size
 
 
@@ -18,3 +22,16 @@ def test_per_well_job_size_grows_with_pixels_and_wells():
 def test_screen_job_size_grows_with_wells():
     assert screen_size(15360, 200, 2.0).mem_mb > screen_size(288, 10, 2.0).mem_mb
     assert screen_size(288, 10, 2.0).runtime_min == 10
+
+
+def test_the_quick_demo_is_the_scenarios_quick_section_and_full_keeps_its_own_numbers():
+    from plateloom.demo.scenario import load_scenario
+
+    path = str(Path(__file__).resolve().parents[1] / "resources/demo/scenario.yaml")
+    quick, full = load_scenario(path, size="quick"), load_scenario(path)
+    assert (quick["frames"], quick["image_size_px"], quick["cells_per_site"]) == (18, 96, 12)
+    assert (full["frames"], full["image_size_px"], full["cells_per_site"]) == (36, 160, 18)
+    assert "quick" not in quick and "quick" not in full
+    assert load_scenario(path, frames=3, size="quick")["frames"] == 3  # explicit overrides win
+    with pytest.raises(ValueError, match="demo.size"):
+        load_scenario(path, size="tiny")

@@ -35,6 +35,7 @@ def finished_screen(tmp_path_factory):
     scenario_path.write_text(yaml.safe_dump(scenario, sort_keys=False))
     config_path = workdir / "config" / "config.yaml"
     config = yaml.safe_load(config_path.read_text())
+    config["demo"]["size"] = "full"  # the full-size fields (160 px, 18 cells) with 5 frames
     config["demo"]["frames"] = 5
     config["screen"]["design_check"]["n_screens"] = 30
     config_path.write_text(yaml.safe_dump(config, sort_keys=False))

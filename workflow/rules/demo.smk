@@ -24,5 +24,6 @@ rule make_demo_plate:
         plate_format=get_plate_format,
         frames=DEMO.get("frames"),
         image_size_px=DEMO.get("image_size_px"),
+        size=DEMO.get("size", "quick"),
     script:
         "../scripts/make_demo_plate.py"

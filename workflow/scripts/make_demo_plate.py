@@ -9,7 +9,7 @@ sm = snakemake  # noqa: F821  (injected by Snakemake's script directive)
 
 
 def step() -> None:
-    scenario = load_scenario(sm.input.scenario, sm.params.frames, sm.params.image_size_px)
+    scenario = load_scenario(sm.input.scenario, sm.params.frames, sm.params.image_size_px, sm.params.size)
     layout = load_layout(sm.input.layout, sm.params.plate_format)
     write_demo_plate(scenario, layout, sm.wildcards.plate, sm.params.batch, sm.output.images)
 

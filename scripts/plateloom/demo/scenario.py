@@ -14,10 +14,20 @@ QUANTITIES = ("area", "reporter", "speed", "nuclear", "cell_count", "coupling", 
 WITHOUT_NUISANCE = ("coupling", "spreading")
 
 
-def load_scenario(path: str, frames: int | None = None, image_size_px: int | None = None) -> dict:
-    """Read the scenario YAML; ``frames`` and ``image_size_px`` override it for small runs."""
+DEMO_SIZES = ("quick", "full")
+
+
+def load_scenario(path: str, frames: int | None = None, image_size_px: int | None = None, size: str = "full") -> dict:
+    """Read the scenario YAML. ``size`` "quick" applies its ``quick`` section (fewer frames, smaller
+    fields: the default demo run), "full" keeps its own numbers; ``frames`` and ``image_size_px``
+    override either (small test runs)."""
+    if size not in DEMO_SIZES:
+        raise ValueError(f"demo.size: {size!r} is not one of {', '.join(DEMO_SIZES)}")
     with open(path, encoding="utf-8") as handle:
         scenario = yaml.safe_load(handle)
+    quick = scenario.pop("quick", {}) or {}
+    if size == "quick":
+        scenario.update({key: quick[key] for key in ("frames", "image_size_px", "cells_per_site") if key in quick})
     if frames:
         scenario["frames"] = int(frames)
     if image_size_px:

@@ -270,7 +270,7 @@ def _objects_per_frame(config: dict, entries: list, given: int | None) -> int:
     from plateloom.demo.scenario import demo_plates, load_scenario
 
     path = config["demo"].get("scenario") or str(demo_scenario())
-    scenario = load_scenario(path) if os.path.isfile(path) else None
+    scenario = load_scenario(path, size=config["demo"].get("size", "quick")) if os.path.isfile(path) else None
     if scenario and entries and all(e.plate in demo_plates(scenario) for e in entries):
         return int(scenario["cells_per_site"])
     return 200

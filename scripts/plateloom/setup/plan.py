@@ -116,7 +116,7 @@ def plan_screen(config: dict) -> ScreenPlan:
     demo = config["demo"]
     scenario_path = demo.get("scenario") or str(demo_scenario())
     scenario = (
-        load_scenario(scenario_path, demo.get("frames"), demo.get("image_size_px"))
+        load_scenario(scenario_path, demo.get("frames"), demo.get("image_size_px"), demo.get("size", "quick"))
         if scenario_path and os.path.isfile(scenario_path)
         else None
     )
