@@ -66,7 +66,7 @@ def write_report_site(
             return
         with ProcessPoolExecutor(processes, mp_context=multiprocessing.get_context("fork")) as pool:
             jobs = [pool.submit(_write_screen_page)]
-            jobs += [pool.submit(_write_treatment_pages, run) for run in _runs(treatments, 2 * processes)]
+            jobs += [pool.submit(_write_treatment_pages, run) for run in _runs(treatments, 4 * processes)]
             for job in jobs:
                 job.result()
     finally:
