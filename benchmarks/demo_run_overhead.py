@@ -47,6 +47,10 @@ def main() -> None:
         f"peak job RSS {jobs['max_rss'].max():.0f} MB"
     )
     print(f"overhead ratio 1 - job_s / (wall x {CORES} cores): {1 - jobs['s'].sum() / (wall * CORES):.3f}")
+    images, results = (sum(f.stat().st_size for f in (work / d).rglob("*") if f.is_file()) for d in ("demo_images", "results"))
+    minutes, seconds = divmod(round(wall), 60)
+    print(f"demo run (demo.size as configured): {minutes} min {seconds} s wall on {CORES} cores, "
+          f"{images / 1e6:.0f} MB of demo images, {results / 1e6:.0f} MB of results")  # fmt: skip
     shutil.rmtree(work)
 
 
