@@ -20,6 +20,7 @@ import pandas as pd
 
 ROOT = Path(__file__).resolve().parents[1]
 CORES = 2
+OUTPUTS = ("demo_images", "results")
 
 
 def main() -> None:
@@ -47,7 +48,7 @@ def main() -> None:
         f"peak job RSS {jobs['max_rss'].max():.0f} MB"
     )
     print(f"overhead ratio 1 - job_s / (wall x {CORES} cores): {1 - jobs['s'].sum() / (wall * CORES):.3f}")
-    images, results = (sum(f.stat().st_size for f in (work / d).rglob("*") if f.is_file()) for d in ("demo_images", "results"))
+    images, results = (sum(f.stat().st_size for f in (work / d).rglob("*") if f.is_file()) for d in OUTPUTS)
     minutes, seconds = divmod(round(wall), 60)
     print(f"demo run (demo.size as configured): {minutes} min {seconds} s wall on {CORES} cores, "
           f"{images / 1e6:.0f} MB of demo images, {results / 1e6:.0f} MB of results")  # fmt: skip
