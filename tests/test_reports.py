@@ -1,13 +1,14 @@
 """Reports: hostile names escaped, excluded plates said so, pages render offline in headless Chromium."""
 
 import os
-import shutil
 import subprocess
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
 import pytest
+from browser import chromium as _chromium
+from browser import require_chromium, screenshot
 from conftest import plate_tables
 from test_plate_stage import _plate
 
@@ -44,37 +45,9 @@ def test_excluded_plate_report_says_so(tmp_path):
     assert "min_plate_z_prime (area_um2)" in html
 
 
-def _chromium() -> str | None:
-    return shutil.which("chromium") or shutil.which("chromium-browser")
-
-
 def test_plate_report_renders_offline_in_headless_chromium(tmp_path):
-    from skimage.io import imread
-
-    if _chromium() is None:
-        if os.environ.get("PLATELOOM_REQUIRE_CHROMIUM"):
-            pytest.fail("chromium is required here (PLATELOOM_REQUIRE_CHROMIUM is set) but not installed")
-        pytest.skip("Debian package chromium not installed (.ci/run installs it)")
-
-    page = _report(tmp_path)
-    shot = tmp_path / "shot.png"
-    command = [
-        _chromium(),
-        "--headless",
-        "--no-sandbox",
-        "--disable-gpu",
-        "--disable-quic",
-        "--no-first-run",
-        "--disable-background-networking",
-        "--disable-component-update",
-        "--disable-sync",
-        f"--user-data-dir={tmp_path / 'profile'}",
-        "--window-size=1200,2400",
-        f"--screenshot={shot}",
-        page.as_uri(),
-    ]
-    subprocess.run(command, check=True, capture_output=True, timeout=120)
-    image = imread(shot)
+    require_chromium()
+    image = screenshot(_report(tmp_path), tmp_path / "shot.png", tmp_path, width=1200, height=2400)
     assert image.shape[0] >= 1000
     grey = image[..., :3].mean(axis=-1)
     # not blank: the heatmaps and tables put many distinct grey levels on the page
