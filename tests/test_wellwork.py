@@ -274,3 +274,17 @@ def test_axis_lengths_and_isoperimetric_quotient_match_geometry():
         else:
             assert 0.9 < row["isoperimetric_quotient"] <= 1.05
             assert row["std_intensity_dna"] < 0.1 * row["mean_intensity_dna"]
+
+
+def test_a_track_back_after_a_gap_is_not_taken_for_a_new_daughter():
+    # Planted: track 0 runs frames 0-5; track 1 is seen at frames 0-1, missed at 2, back at 3-5
+    # (joined by gap closing), next to track 0. It is not a track that starts at frame 3, so no
+    # division; and no track is listed as a daughter twice.
+    from plateloom.well.tracking import find_divisions
+
+    frame = np.array([0, 1, 2, 3, 4, 5, 0, 1, 3, 4, 5])
+    track = np.array([0, 0, 0, 0, 0, 0, 1, 1, 1, 1, 1])
+    x = np.array([0.0, 0.1, 0.2, 0.3, 0.4, 0.5, 4.0, 4.1, 4.2, 4.3, 4.4])
+    y = np.zeros(len(frame))
+    relabelled, parents = find_divisions(frame, track, x, y, max_distance_um=8.0)
+    assert parents.empty and np.array_equal(relabelled, track)

@@ -207,12 +207,15 @@ def find_divisions(
     next_id = int(track.max()) + 1 if len(track) else 0
     parents: list[tuple[int, int]] = []
     first_frame = int(frame.min()) if len(frame) else 0
+    seen = np.unique(track[frame == first_frame])
     for t in np.unique(frame):
         if t == first_frame:
             continue
         now, before = frame == t, frame == t - 1
         tracks_now, tracks_before = np.unique(track[now]), np.unique(track[before])
-        new = np.setdiff1d(tracks_now, tracks_before)
+        # a track that starts here: one back after a gap (gap closing) is not a new daughter
+        new = np.setdiff1d(tracks_now, seen)
+        seen = np.union1d(seen, tracks_now)
         continuing = np.intersect1d(tracks_now, tracks_before)
         if len(new) == 0 or len(continuing) == 0:
             continue
@@ -229,6 +232,7 @@ def find_divisions(
             other = next_id
             next_id += 1
             track[(track == mother) & (frame >= t)] = other
+            seen = np.append(seen, other)
             parents += [(int(new[daughter_index]), mother), (other, mother)]
     table = pd.DataFrame(parents, columns=["track", "parent_track"])
     return track, table
