@@ -34,6 +34,7 @@ def screen_with_bad_images(tmp_path_factory) -> Path:
     layout.write_text(layout.read_text().replace("LOOM-104", quoted))
     config_path = workdir / "config" / "config.yaml"
     config = yaml.safe_load(config_path.read_text())
+    config["demo"]["size"] = "full"  # 18 cells a site: no well of the clean plate falls below min_cells_per_well
     config["demo"]["frames"] = 3
     config["screen"]["design_check"]["n_screens"] = 10
     config_path.write_text(yaml.safe_dump(config, sort_keys=False))
