@@ -185,12 +185,22 @@ def _estimate_columns(outcome: _Outcome, code: str | None, ci_level: float) -> d
     }
 
 
+def pooled_control_sd(y: np.ndarray, controls: np.ndarray, plates: np.ndarray) -> float:
+    """Pooled within-plate SD of response ``y`` over the rows marked ``controls`` (``plates``: plate
+    codes 0, 1, ... per row); NaN if not estimable."""
+    y, plates = np.asarray(y, float)[controls], np.asarray(plates)[controls]
+    if len(y) == 0:
+        return np.nan
+    sizes = np.bincount(plates)
+    means = np.bincount(plates, y) / np.maximum(sizes, 1)
+    dof = len(y) - np.count_nonzero(sizes)
+    return float(np.sqrt(np.sum((y - means[plates]) ** 2) / dof)) if dof > 0 else np.nan
+
+
 def control_well_sd(data: pd.DataFrame) -> float:
     """Pooled within-plate SD of the negative-control wells (model-scale units), NaN if not estimable."""
-    controls = data[data["treatment"] == REFERENCE_ROLE]
-    deviations = controls["y"] - controls.groupby("plate")["y"].transform("mean")
-    dof = len(controls) - controls["plate"].nunique()
-    return float(np.sqrt(np.sum(deviations**2) / dof)) if dof > 0 else np.nan
+    plates = pd.factorize(data["plate"], sort=True)[0]
+    return pooled_control_sd(data["y"].to_numpy(float), (data["treatment"] == REFERENCE_ROLE).to_numpy(), plates)
 
 
 def _component_columns(outcome: _Outcome) -> dict[str, object]:

@@ -30,6 +30,7 @@ from plateloom.screen.effects import (
     fit_feature_effects,
     join_notes,
     model_data,
+    pooled_control_sd,
     row_note,
     treatment_codes,
     treatment_counts,
@@ -60,17 +61,6 @@ def _same_model_rows(parts: list[pd.DataFrame], feature: str) -> np.ndarray | No
     """The rows in the model, if they are the same in every window; else None."""
     mask = _model_mask(parts[0], feature)
     return mask if all(np.array_equal(_model_mask(part, feature), mask) for part in parts[1:]) else None
-
-
-def _control_sd(y: np.ndarray, controls: np.ndarray, plates: np.ndarray) -> float:
-    """``effects.control_well_sd`` for response ``y``: pooled within-plate SD of the controls."""
-    y, plates = y[controls], plates[controls]
-    if len(y) == 0:
-        return np.nan
-    sizes = np.bincount(plates)
-    means = np.bincount(plates, y) / np.maximum(sizes, 1)
-    dof = len(y) - np.count_nonzero(sizes)
-    return float(np.sqrt(np.sum((y - means[plates]) ** 2) / dof)) if dof > 0 else np.nan
 
 
 def _window_columns(
@@ -170,7 +160,7 @@ def _window_table(shared: _SharedDesign, fit: ExactNestedFit, column: int, scale
     one_batch = shared.n_batches < 2
     for name, values in _window_columns(fit, shared.terms, ci_level, shared.nested, one_batch).items():
         table[name] = values
-    table["control_well_sd"] = _control_sd(shared.responses[:, column], shared.controls, shared.plate)
+    table["control_well_sd"] = pooled_control_sd(shared.responses[:, column], shared.controls, shared.plate)
     table["note"] = [row_note(count, shared.n_batches, note) for count in shared.row_counts]
     return with_ratios(table, scale)
 
