@@ -82,7 +82,7 @@ def test_every_results_table_opens_as_one_table_with_four_readers(screen_with_ba
 
     results = screen_with_bad_images / "results"
     folders = _table_folders(results)
-    expected = {"cells", "tracks", "site_qc", "collective", "wells", "plate_qc", "edge_effects", "exclusions"}
+    expected = {"cells", "tracks", "site_qc", "collective", "events", "wells", "plate_qc", "edge_effects", "exclusions"}
     assert expected | {"time_courses"} <= {folder.name for folder in folders}
     for folder in folders:
         files = sorted(folder.rglob("*.parquet"))

@@ -211,7 +211,7 @@ def test_gap_closing_rejoins_tracks_across_missed_frames():
 
 def test_divisions_are_found_with_recall_of_at_least_0_8():
     # Planted truth: 20 mothers tracked for 8 frames, then each divides into two daughters 3 um either side.
-    from plateloom.well.tracking import find_divisions
+    from plateloom.well.divisions import find_divisions
 
     rng = np.random.default_rng(4)
     rows = []
@@ -280,7 +280,7 @@ def test_a_track_back_after_a_gap_is_not_taken_for_a_new_daughter():
     # Planted: track 0 runs frames 0-5; track 1 is seen at frames 0-1, missed at 2, back at 3-5
     # (joined by gap closing), next to track 0. It is not a track that starts at frame 3, so no
     # division; and no track is listed as a daughter twice.
-    from plateloom.well.tracking import find_divisions
+    from plateloom.well.divisions import find_divisions
 
     frame = np.array([0, 1, 2, 3, 4, 5, 0, 1, 3, 4, 5])
     track = np.array([0, 0, 0, 0, 0, 0, 1, 1, 1, 1, 1])

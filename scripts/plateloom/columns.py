@@ -48,13 +48,13 @@ _TW = ("tracks", "wells")
 
 REGISTRY: tuple[Column, ...] = (
     # keys: every table carries those it needs to join
-    Column("plate", ("cells", "tracks", "site_qc", "collective", "wells", "exclusions"), "key"),
-    Column("well", ("cells", "tracks", "site_qc", "collective", "wells", "exclusions"), "key"),
-    Column("site", ("cells", "tracks", "site_qc", "exclusions"), "key"),
-    Column("frame", ("cells", "site_qc", "exclusions"), "key"),
-    Column("time_min", _C, "key", "min", description="time since the first frame"),
+    Column("plate", ("cells", "tracks", "site_qc", "collective", "wells", "exclusions", "events"), "key"),
+    Column("well", ("cells", "tracks", "site_qc", "collective", "wells", "exclusions", "events"), "key"),
+    Column("site", ("cells", "tracks", "site_qc", "exclusions", "events"), "key"),
+    Column("frame", ("cells", "site_qc", "exclusions", "events"), "key"),
+    Column("time_min", ("cells", "events"), "key", "min", description="time since the first frame"),
     Column("object", _C, "key", description="label of the object in its frame"),
-    Column("track", ("cells", "tracks"), "key"),
+    Column("track", ("cells", "tracks", "events"), "key"),
     Column("parent_track", ("cells", "tracks"), "key", description="the track this one divided from"),
     Column(
         "chunk",
@@ -65,6 +65,7 @@ REGISTRY: tuple[Column, ...] = (
     Column("centroid_x_um", _C, "position", "um"),
     Column("centroid_y_um", _C, "position", "um"),
     Column("touches_border", ("cells", "tracks"), "flag", description="left out of the well summaries"),
+    Column("edge_distance_um", _C, "position", "um", description="centroid to the nearest edge of the field"),
     # well design (from the screen sheet and layout)
     Column("batch", _W, "design"),
     Column("row", _W, "design"),
@@ -113,9 +114,36 @@ REGISTRY: tuple[Column, ...] = (
     Column("period_min_{channel}", _TW, "measure", "min", "tracks"),
     Column("peaks_per_h_{channel}", _TW, "measure", "1/h", "tracks"),
     Column("max_rate_per_min_{channel}", _TW, "measure", "1/min", "tracks"),
+    Column(
+        "end_event", _T, "flag", description="how the track ends: division, death or '' (seen to the end, left, lost)"
+    ),
+    # fate events (one row per division or death; plateloom.well.events)
+    Column("event", ("events",), "flag", description="division or death"),
+    Column("x_um", ("events",), "position", "um", description="the cell's position at its last frame"),
+    Column("y_um", ("events",), "position", "um"),
+    Column(
+        "nuclear_ratio",
+        ("events",),
+        "measure",
+        "",
+        description="nuclear-channel mean intensity over the track's median before",
+    ),
+    Column("area_ratio", ("events",), "measure", "", description="nuclear area over the track's median before"),
+    Column(
+        "reporter_ratio", ("events",), "measure", "", description="first reporter's mean over the track's median before"
+    ),
     # computed per well
     Column("cell_count", _W, "measure", "nuclei per site and frame", "well", "log"),
     Column("growth_rate_per_h", _W, "measure", "1/h", "well"),
+    Column("cell_hours", _W, "count", "cell h", description="nuclei summed over site-frames x frame interval"),
+    Column("n_divisions", _W, "count"),
+    Column("n_deaths", _W, "count"),
+    Column("division_rate_per_cell_h", _W, "measure", "1/(cell h)", "well"),
+    Column("death_rate_per_cell_h", _W, "measure", "1/(cell h)", "well"),
+    Column("died_fraction", _W, "measure", "", "well", description="deaths / (nuclei at the start + divisions)"),
+    Column(
+        "cycle_time_min", _W, "measure", "min", "well", description="median birth-to-division time of complete cycles"
+    ),
     Column("phase_order_{channel}", ("collective", "wells"), "measure", "", "well"),
     Column("time_to_synchrony_min_{channel}", ("collective", "wells"), "measure", "min", "well"),
     Column("neighbour_correlation_{channel}", ("collective", "wells"), "measure", "", "well"),

@@ -40,6 +40,7 @@ rule analyse_wells:
         collective=directory(f"{RESULTS}/collective/plate={{plate}}/chunk-{{chunk}}"),
         thumbnails=directory(f"{RESULTS}/thumbnails/plate={{plate}}/chunk-{{chunk}}"),
         labels=directory(f"{RESULTS}/labels/plate={{plate}}/chunk-{{chunk}}"),
+        events=directory(f"{RESULTS}/events/plate={{plate}}/chunk-{{chunk}}"),
     log:
         f"{RESULTS}/logs/analyse_wells/{{plate}}_{{chunk}}.log",
     benchmark:

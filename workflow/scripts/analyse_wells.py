@@ -34,6 +34,7 @@ def step() -> None:
             sm.output.collective,
             sm.output.thumbnails,
             sm.output.labels if sm.params.export_labels else None,
+            sm.output.events,
         ),
         dict(sm.params.settings),
         flat_field,

@@ -98,6 +98,9 @@ def write_parquet(frame: pd.DataFrame, path: str, settings: object, extra: dict 
     columns are dictionary-encoded, numbers are not; Snappy compression.
     """
     table = _keys_as_partitions(pa.Table.from_pandas(frame, preserve_index=False), path)
+    for i, field in enumerate(table.schema):
+        if pa.types.is_null(field.type):  # an empty text column (no event in a well): text, as in the other files
+            table = table.set_column(i, field.name, table.column(i).cast(pa.string()))
     meta = dict(table.schema.metadata or {})
     meta[PROVENANCE_KEY] = json.dumps(provenance(settings), sort_keys=True).encode()
     if extra is not None:

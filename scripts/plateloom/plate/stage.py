@@ -17,6 +17,7 @@ from plateloom.plate.exclusions import (
     typed_ledger,
     well_exclusions,
 )
+from plateloom.plate.fate import well_fate
 from plateloom.plate.normalization import NORMALIZATIONS, normalize
 from plateloom.plate.positional import correct_positions
 from plateloom.plate.qc import plate_qc
@@ -237,7 +238,7 @@ class _Observed:
 
 
 def _well_profile(observed: _Observed, tables: WellTables, design: PlateDesign, statistic: str) -> pd.DataFrame:
-    """Well profiles with the collective readouts and the share of observations used."""
+    """Well profiles with the collective readouts, the fate rates and the share of observations used."""
     kept_counts = drop_excluded_site_frames(observed.counts, observed.site_frame_ledger)
     d = design
     profile = summarise_wells(
@@ -247,6 +248,9 @@ def _well_profile(observed: _Observed, tables: WellTables, design: PlateDesign, 
     if collective is not None and len(collective.columns.difference(["plate", "well"])):
         readouts = collective.drop(columns=["plate"], errors="ignore").assign(well=lambda t: t["well"].astype(str))
         profile = profile.merge(readouts, on="well", how="left", validate="one_to_one")
+    fate = well_fate(observed.counts, tables.tracks)
+    if len(fate.columns):
+        profile = profile.merge(fate.reset_index(), on="well", how="left", validate="one_to_one")
     measured = observed.counts.groupby("well", observed=True)["observations"].sum()
     used = kept_counts.groupby("well", observed=True)["whole"].sum()
     measured.index, used.index = measured.index.astype(str), used.index.astype(str)

@@ -49,7 +49,16 @@ def observation_counts(cells: pd.DataFrame) -> pd.DataFrame:
 
 
 # Columns of the cells table that the plate stage never reads (positions, ids, constant keys).
-NOT_READ_FOR_PROFILES = ("plate", "object", "track", "parent_track", "centroid_x_um", "centroid_y_um", "chunk")
+NOT_READ_FOR_PROFILES = (
+    "plate",
+    "object",
+    "track",
+    "parent_track",
+    "centroid_x_um",
+    "centroid_y_um",
+    "edge_distance_um",
+    "chunk",
+)
 
 
 def well_files(folders: list[str]) -> list[str]:

@@ -14,6 +14,7 @@ from plateloom.io.images import ImageIndex, read_site_frame, usual_pixel_type
 from plateloom.io.ome_tiff import write_label_stack
 from plateloom.io.tables import well_part_path, write_bytes, write_parquet
 from plateloom.well.collective import CollectiveSettings, well_collective_readouts
+from plateloom.well.events import end_events, fate_events
 from plateloom.well.illumination import apply_flat_field
 from plateloom.well.snapshot import cell_crops, crops_bytes, overlay_rgb, png_bytes, snapshot_frame, track_tails
 from plateloom.well.stage import WellSettings, analyse_well, segment_frame, with_keys
@@ -42,6 +43,7 @@ class ChunkOutputs:
     collective: str | None = None
     thumbnails: str | None = None  # per well <well>.png and <well>.npz (crops) (plateloom.well.snapshot)
     labels: str | None = None  # with segmentation.export_labels: <well>_s<site>.ome.tif per site
+    events: str | None = None  # divisions and deaths (plateloom.well.events)
 
 
 def well_snapshot(
@@ -69,7 +71,17 @@ def well_snapshot(
     return png, crops_bytes(crops, areas, settings.pixel_size_um, list(settings.channels), features)
 
 
-NOT_CROP_FEATURES = ("site", "frame", "time_min", "object", "track", "parent_track", "centroid_x_um", "centroid_y_um")
+NOT_CROP_FEATURES = (
+    "site",
+    "frame",
+    "time_min",
+    "object",
+    "track",
+    "parent_track",
+    "centroid_x_um",
+    "centroid_y_um",
+    "edge_distance_um",
+)
 
 
 def crop_features(cells: pd.DataFrame, site: int, frame: int, objects: np.ndarray) -> pd.DataFrame:
@@ -78,6 +90,27 @@ def crop_features(cells: pd.DataFrame, site: int, frame: int, objects: np.ndarra
     here = cells[(cells["site"] == site) & (cells["frame"] == frame)].drop_duplicates("object").set_index("object")
     numeric = [c for c in here.columns if c not in NOT_CROP_FEATURES and pd.api.types.is_numeric_dtype(here[c])]
     return here.reindex(np.asarray(objects, np.int64))[numeric].astype(float).reset_index(drop=True)
+
+
+def _well_tables(
+    cells: pd.DataFrame,
+    tracks: pd.DataFrame,
+    site_qc: pd.DataFrame,
+    settings: WellSettings,
+    outputs: ChunkOutputs,
+    collective: CollectiveSettings | None,
+    well: str,
+) -> list[pd.DataFrame]:
+    """The tables one well writes, in the order of ``analyse_chunk``'s folders (the tracks gain
+    ``end_event``)."""
+    events = fate_events(cells, settings.death_rule, settings.frame_interval_min)
+    tracks["end_event"] = end_events(tracks, events)
+    tables = [cells, tracks, site_qc]
+    if outputs.collective:
+        tables.append(collective_table(cells, settings, collective or CollectiveSettings.defaults(), well))
+    if outputs.events:
+        tables.append(events)
+    return tables
 
 
 def analyse_chunk(
@@ -91,9 +124,10 @@ def analyse_chunk(
     collective: CollectiveSettings | None = None,
 ) -> None:
     """Analyse the wells of one chunk; one Parquet file per well in each folder of ``outputs``
-    (cells, tracks, site QC and, with a collective folder, the well's collective readouts) and,
+    (cells, tracks, site QC and, with their folders, the well's collective readouts and fate events) and,
     with a thumbnails folder, one PNG per well."""
-    folders = [outputs.cells, outputs.tracks, outputs.site_qc] + ([outputs.collective] if outputs.collective else [])
+    optional = [f for f in (outputs.collective, outputs.events) if f]
+    folders = [outputs.cells, outputs.tracks, outputs.site_qc] + optional
     for folder in folders + [f for f in (outputs.thumbnails, outputs.labels) if f]:
         os.makedirs(folder, exist_ok=True)
     pixel_type = usual_pixel_type(index)  # a site exported at another bit depth is flagged, not measured
@@ -107,9 +141,7 @@ def analyse_chunk(
                 n_frames = int(site_qc.loc[site_qc["site"] == site, "frame"].max()) + 1
                 path = os.path.join(outputs.labels, f"{well}_s{site}.ome.tif")
                 write_label_stack(path, frames, n_frames, settings.pixel_size_um, settings.frame_interval_min)
-        tables = [cells, tracks, site_qc]
-        if outputs.collective:
-            tables.append(collective_table(cells, settings, collective or CollectiveSettings.defaults(), well))
+        tables = _well_tables(cells, tracks, site_qc, settings, outputs, collective, well)
         for table, folder in zip(tables, folders):
             write_parquet(with_keys(table, plate, well), well_part_path(folder, well), config_for_provenance)
         snapshot = well_snapshot(index, well, settings, flat_field, cells, site_qc) if outputs.thumbnails else None

@@ -177,7 +177,14 @@ def _shape_measures(
         "centroid_x_um": cx * pixel_size_um,
         "centroid_y_um": cy * pixel_size_um,
         "touches_border": _touching_border(labels, pixels.count),
+        "edge_distance_um": _edge_distance_px(cx, cy, labels.shape) * pixel_size_um,
     }
+
+
+def _edge_distance_px(cx: np.ndarray, cy: np.ndarray, shape: tuple[int, ...]) -> np.ndarray:
+    """Distance (pixels) from each centroid to the nearest edge of the field (pixel edges, not centres)."""
+    height, width = shape[-2], shape[-1]
+    return np.minimum(np.minimum(cx + 0.5, width - 0.5 - cx), np.minimum(cy + 0.5, height - 0.5 - cy))
 
 
 def _intensity_measures(
@@ -307,6 +314,7 @@ def object_columns(channels: list[str], texture_channels: list[str], with_cells:
             "centroid_x_um",
             "centroid_y_um",
             "touches_border",
+            "edge_distance_um",
         ]
         + [f"{kind}_intensity_{c}" for c in channels for kind in ("mean", "integrated", "std")]
         + [f"saturated_fraction_{c}" for c in channels]

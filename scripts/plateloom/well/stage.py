@@ -13,6 +13,8 @@ from plateloom.io.images import ImageIndex, SiteFrame, stream_site
 from plateloom.io.planes import saturation_masks
 from plateloom.settings import FromSchema
 from plateloom.well.cell_bodies import grow_cell_bodies
+from plateloom.well.divisions import DivisionRule, find_divisions
+from plateloom.well.events import DeathRule, division_distance_um
 from plateloom.well.features import measure_objects, neighbourhood
 from plateloom.well.illumination import apply_flat_field
 from plateloom.well.image_qc import background_levels, focus_score, segmentation_jumps
@@ -27,11 +29,7 @@ from plateloom.well.track_stats import (
     reporter_dynamics,
     track_matrix,
 )
-from plateloom.well.tracking import (
-    close_gaps,
-    find_divisions,
-    track_features,
-)
+from plateloom.well.tracking import close_gaps, track_features
 
 
 @dataclass(frozen=True)
@@ -48,7 +46,12 @@ class WellSettings(FromSchema):
     max_displacement_um: float | None  # None: estimated per site from the data
     min_track_frames: int
     max_gap_frames: int
-    division_max_distance_um: float | None
+    division_max_distance_um: float | None  # None: divisions not called
+    division_min_rounding: float
+    death_min_brightening: float
+    death_max_area_ratio: float
+    death_min_reporter_ratio: float
+    death_min_edge_distance_um: float
     neighbour_radius_um: float
     threshold_method: str
     segmentation_method: str
@@ -90,13 +93,30 @@ class WellSettings(FromSchema):
             max_displacement_um=track["max_displacement_um"],
             min_track_frames=track["min_track_frames"],
             max_gap_frames=int(track["max_gap_frames"]),
-            division_max_distance_um=track["division_max_distance_um"],
+            division_max_distance_um=division_distance_um(config),
+            division_min_rounding=float(config["fate"]["min_rounding"]),
+            death_min_brightening=float(config["fate"]["death_min_brightening"]),
+            death_max_area_ratio=float(config["fate"]["death_max_area_ratio"]),
+            death_min_reporter_ratio=float(config["fate"]["death_min_reporter_ratio"]),
+            death_min_edge_distance_um=float(config["fate"]["death_min_edge_distance_um"]),
             msd_max_lag_frames=int(track["msd_max_lag_frames"]),
             neighbour_radius_um=float(measure["neighbour_radius_um"]),
             texture_channels=None if texture is None else tuple(texture),
             texture_distance_um=float(measure["texture_distance_um"]),
             texture_levels=int(measure["texture_levels"]),
             reporter_channels=tuple(c for c in channels if roles[c] == "reporter"),
+        )
+
+    @property
+    def death_rule(self) -> DeathRule:
+        return DeathRule(
+            self.death_min_brightening,
+            self.death_max_area_ratio,
+            self.death_min_reporter_ratio,
+            self.nuclei_channel,
+            self.reporter_channels[0] if self.reporter_channels else None,
+            self.death_min_edge_distance_um,
+            self.division_max_distance_um or 1.25 * self.nucleus_diameter_um,
         )
 
     @property
@@ -221,14 +241,21 @@ def _frame_qc(
 
 
 def _close_gaps_and_divisions(cells: pd.DataFrame, settings: WellSettings) -> pd.DataFrame:
-    """Join track segments across missed frames and, if switched on, record divisions (parent_track)."""
+    """Join track segments across missed frames and, if switched on, record divisions (parent_track;
+    the mother rounds up before, both daughters are seen for 2 frames or more)."""
     cells["parent_track"] = -1
     if not len(cells):
         return cells
     frame, x, y = cells["frame"].to_numpy(), cells["centroid_x_um"].to_numpy(), cells["centroid_y_um"].to_numpy()
     track = close_gaps(frame, cells["track"].to_numpy(), x, y, settings.max_gap_frames, settings.max_displacement_um)
     if settings.division_max_distance_um:
-        track, parents = find_divisions(frame, track, x, y, settings.division_max_distance_um)
+        rule = DivisionRule(
+            settings.division_max_distance_um,
+            cells[f"mean_intensity_{settings.nuclei_channel}"].to_numpy(float),
+            settings.division_min_rounding,
+            min_daughter_frames=2,
+        )
+        track, parents = find_divisions(frame, track, x, y, settings.division_max_distance_um, rule)
         parent = pd.Series(parents.set_index("track")["parent_track"]).reindex(track).fillna(-1)
         cells["parent_track"] = parent.to_numpy(np.int64)
     cells["track"] = track

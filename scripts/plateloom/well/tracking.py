@@ -15,7 +15,7 @@ from scipy.sparse.csgraph import min_weight_full_bipartite_matching
 from scipy.spatial import cKDTree
 
 
-def _sparse_assignment(
+def sparse_assignment(
     n_rows: int, n_cols: int, rows: np.ndarray, cols: np.ndarray, costs: np.ndarray, alternative: float
 ) -> np.ndarray:
     """Column chosen for each row (or -1) in the LAP with 'no link' alternatives for every row and column.
@@ -87,7 +87,7 @@ def link_frames(
     if len(rows) == 0:
         return links
     # Any allowed link (cost d^2 <= max_displacement^2) beats ending one track plus starting another.
-    successor = _sparse_assignment(n, m, rows, cols, distance**2, max_displacement_um**2)
+    successor = sparse_assignment(n, m, rows, cols, distance**2, max_displacement_um**2)
     linked = successor >= 0
     links[successor[linked]] = np.nonzero(linked)[0]
     return links
@@ -182,7 +182,7 @@ def close_gaps(
     )
     rows, cols = pairs.row[allowed], pairs.col[allowed]
     costs = pairs.data[allowed] ** 2 / gap[allowed]
-    successor = _sparse_assignment(len(ids), len(ids), rows, cols, costs, max_displacement_um**2)
+    successor = sparse_assignment(len(ids), len(ids), rows, cols, costs, max_displacement_um**2)
     root = np.arange(len(ids))
     predecessor = np.full(len(ids), -1)
     predecessor[successor[successor >= 0]] = np.nonzero(successor >= 0)[0]
@@ -191,48 +191,3 @@ def close_gaps(
             root[i] = root[predecessor[i]]
     joined = pd.Series(ids[root], index=ids).loc[track].to_numpy()
     return _relabel(joined, frame)
-
-
-def find_divisions(
-    frame: np.ndarray, track: np.ndarray, x_um: np.ndarray, y_um: np.ndarray, max_distance_um: float
-) -> tuple[np.ndarray, pd.DataFrame]:
-    """Divisions: a track starting at frame t next to a track that continues from t - 1 to t.
-
-    Each such pair (cost: distance of the new start to the continuing track's position at t - 1)
-    is chosen by a LAP per frame, so a mother divides at most once per frame. The mother's track
-    ends at t - 1; from t on, both daughters get their own track ids. Returns new track ids and a
-    table (track, parent_track) listing every daughter.
-    """
-    track = track.copy()
-    next_id = int(track.max()) + 1 if len(track) else 0
-    parents: list[tuple[int, int]] = []
-    first_frame = int(frame.min()) if len(frame) else 0
-    seen = np.unique(track[frame == first_frame])
-    for t in np.unique(frame):
-        if t == first_frame:
-            continue
-        now, before = frame == t, frame == t - 1
-        tracks_now, tracks_before = np.unique(track[now]), np.unique(track[before])
-        # a track that starts here: one back after a gap (gap closing) is not a new daughter
-        new = np.setdiff1d(tracks_now, seen)
-        seen = np.union1d(seen, tracks_now)
-        continuing = np.intersect1d(tracks_now, tracks_before)
-        if len(new) == 0 or len(continuing) == 0:
-            continue
-        new_rows = [np.nonzero(now & (track == k))[0][0] for k in new]
-        mother_rows = [np.nonzero(before & (track == k))[0][0] for k in continuing]
-        start_xy = np.column_stack([x_um[new_rows], y_um[new_rows]])
-        mother_xy = np.column_stack([x_um[mother_rows], y_um[mother_rows]])
-        pairs = cKDTree(start_xy).sparse_distance_matrix(cKDTree(mother_xy), max_distance_um, output_type="coo_matrix")
-        chosen = _sparse_assignment(len(new), len(continuing), pairs.row, pairs.col, pairs.data**2, max_distance_um**2)
-        for daughter_index, mother_index in enumerate(chosen):
-            if mother_index < 0:
-                continue
-            mother = int(continuing[mother_index])
-            other = next_id
-            next_id += 1
-            track[(track == mother) & (frame >= t)] = other
-            seen = np.append(seen, other)
-            parents += [(int(new[daughter_index]), mother), (other, mother)]
-    table = pd.DataFrame(parents, columns=["track", "parent_track"])
-    return track, table
