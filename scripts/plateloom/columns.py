@@ -103,6 +103,8 @@ REGISTRY: tuple[Column, ...] = (
     # per-track measures; those with a summary are summarised per well over tracks
     Column("n_frames", ("tracks", "wells"), "count", description="frames of a track; frames imaged in a well"),
     Column("duration_min", _T, "measure", "min"),
+    Column("start_min", _T, "key", "min", description="time of the track's first frame (a daughter's birth)"),
+    Column("end_min", _T, "key", "min", description="time of the track's last frame"),
     Column("path_length_um", _T, "measure", "um"),
     Column("net_displacement_um", _T, "measure", "um"),
     Column("speed_um_per_min", _TW, "measure", "um/min", "tracks", "log"),

@@ -143,6 +143,17 @@ ALL_THUMBNAIL_FOLDERS = [
     for plate in sorted(PLAN.plates)
     for chunk in PLAN.chunk_ids(plate)
 ]
+ALL_TRACK_FOLDERS = [
+    f"{RESULTS}/tracks/plate={plate}/chunk-{chunk}"
+    for plate in sorted(PLAN.plates)
+    for chunk in PLAN.chunk_ids(plate)
+]
+FATE_TABLES = {
+    "effects": f"{RESULTS}/fate_effects.parquet",
+    "survival": f"{RESULTS}/survival.parquet",
+    "growth": f"{RESULTS}/growth_inhibition.parquet",
+    "gr_curves": f"{RESULTS}/gr_curves.parquet",
+}
 EFFECTS_OVER_TIME = f"{RESULTS}/effects_over_time.parquet"
 ALL_WELL_TABLES = expand(PLATE_TABLES["wells"], plate=sorted(PLAN.plates))
 ALL_LEDGERS = expand(PLATE_TABLES["ledger"], plate=sorted(PLAN.plates))

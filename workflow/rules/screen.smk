@@ -139,6 +139,37 @@ rule dose_response:
         "../scripts/dose_response.py"
 
 
+rule fate_effects:
+    input:
+        wells=ALL_WELL_TABLES,
+        tracks=ALL_TRACK_FOLDERS,
+    output:
+        effects=FATE_TABLES["effects"],
+        csv=report(
+            f"{RESULTS}/fate_effects.csv",
+            caption="../report/fate_effects.rst",
+            category="Screen",
+        ),
+        survival=FATE_TABLES["survival"],
+        growth=FATE_TABLES["growth"],
+        growth_csv=f"{RESULTS}/growth_inhibition.csv",
+        gr_curves=FATE_TABLES["gr_curves"],
+    log:
+        f"{RESULTS}/logs/fate_effects.log",
+    benchmark:
+        f"{RESULTS}/benchmarks/fate_effects.tsv"
+    conda:
+        "../envs/plateloom.yaml"
+    threads: 1
+    resources:
+        mem_mb=SCREEN_JOB.mem_mb,
+        runtime=SCREEN_JOB.runtime_min,
+    params:
+        settings=SCREEN_SETTINGS,
+    script:
+        "../scripts/fate_effects.py"
+
+
 rule design_check:
     input:
         model_wells=MODEL_WELLS,
@@ -179,6 +210,7 @@ rule screen_report:
         model_wells=MODEL_WELLS,
         kinetics=[EFFECTS_OVER_TIME, KINETIC_SUMMARY] if KINETICS.enabled else [],
         thumbnails=ALL_THUMBNAIL_FOLDERS,
+        fate=list(FATE_TABLES.values()),
     output:
         report=report(
             f"{RESULTS}/reports/screen.html",

@@ -4,6 +4,7 @@ import pandas as pd
 
 from plateloom.io.job import run_step
 from plateloom.io.tables import read_extra, read_provenance
+from plateloom.report.fate_panels import FateResults
 from plateloom.report.montage import crop_files
 from plateloom.report.screen_page import ScreenResults
 from plateloom.report.site import SiteOutputs, write_report_site
@@ -27,6 +28,7 @@ def step() -> None:
         effects_over_time=pd.read_parquet(sm.input.kinetics[0]) if sm.input.kinetics else None,
         kinetic_summary=pd.read_parquet(sm.input.kinetics[1]) if sm.input.kinetics else None,
         crop_files=crop_files(list(sm.input.thumbnails)),
+        fate=FateResults(*(pd.read_parquet(path) for path in sm.input.fate)),
     )
     settings = dict(sm.params.settings) | {"onset_windows": sm.params.onset_windows}
     outputs = SiteOutputs(sm.output.report, sm.output.volcano, sm.output.batch_pca, sm.output.treatments)

@@ -9,6 +9,7 @@ import numpy as np
 import pandas as pd
 from matplotlib.ticker import NullLocator
 
+from plateloom.report.fate_panels import FateResults, fate_html
 from plateloom.report.html import escape, figure_tag, folded, linked_cells, page, table_tag
 from plateloom.report.time_panels import kinetics_html
 from plateloom.report.treatment_pages import linked_treatments, montage_html
@@ -193,6 +194,7 @@ class ScreenResults:
     effects_over_time: pd.DataFrame | None = None
     kinetic_summary: pd.DataFrame | None = None
     crop_files: dict | None = None  # (plate, well) -> crops (plateloom.report.montage.crop_files)
+    fate: FateResults | None = None  # the fate_effects rule's tables
 
 
 EFFECT_COLUMNS = [
@@ -357,6 +359,7 @@ def build_screen_report(results: ScreenResults, settings: dict, provenance: dict
         ("Volcano plot", figure_tag(volcano_plot(effects, settings["hit_q_value"]), "volcano plot")),
         ("Effects with confidence intervals", forest),
         ("Dose-response", _dose_html(results.dose_fits, results.dose_points)),
+        ("Cell fate", fate_html(results.fate)),
         ("Effects over time", kinetics_html(results.effects_over_time, results.kinetic_summary, settings)),
         (
             "Cells",

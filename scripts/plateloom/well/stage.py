@@ -379,6 +379,8 @@ def analyse_well(
     tracks = track_table(cells, settings)
     first = cells.sort_values(["track", "frame"]).drop_duplicates("track").set_index("track")
     tracks.insert(0, "site", first.loc[tracks["track"], "site"].to_numpy())
+    tracks["start_min"] = first.loc[tracks["track"], "time_min"].to_numpy(float)
+    tracks["end_min"] = tracks["start_min"] + tracks["duration_min"]
     border = cells.groupby("track")["touches_border"].any()
     tracks["touches_border"] = border.loc[tracks["track"]].to_numpy()
     tracks["parent_track"] = cells.groupby("track")["parent_track"].first().loc[tracks["track"]].to_numpy()

@@ -1,0 +1,121 @@
+"""The screen report's "Cell fate" section: mode of action in growth terms, rate and hazard ratios,
+survival curves and GR curves per compound."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from html import escape
+
+import matplotlib.pyplot as plt
+import numpy as np
+import pandas as pd
+
+from plateloom.report.html import figure_tag, folded, table_tag
+from plateloom.screen.growth_inhibition import gr_curve
+
+
+@dataclass(frozen=True)
+class FateResults:
+    """The fate_effects rule's tables (plateloom.screen.fate_effects)."""
+
+    effects: pd.DataFrame
+    survival: pd.DataFrame
+    growth: pd.DataFrame
+    gr_curves: pd.DataFrame
+
+
+def _compounds(growth: pd.DataFrame) -> list[str]:
+    return sorted(growth.loc[growth["dose"] > 0, "condition"].dropna().astype(str).unique())
+
+
+def survival_plot(survival: pd.DataFrame, growth: pd.DataFrame) -> plt.Figure:
+    """Small multiples, one per compound: the negative controls' survival (grey, pooled band) and
+    each dose's (darker for higher doses), with well-bootstrap bands."""
+    compounds = _compounds(growth)
+    columns = min(4, max(1, len(compounds)))
+    rows = int(np.ceil(len(compounds) / columns)) or 1
+    figure, axes = plt.subplots(rows, columns, figsize=(3.2 * columns, 2.6 * rows), squeeze=False, sharey=True)
+    controls = survival[survival["role"] == "negative_control"].groupby("time_min")[["survival"]].mean()
+    for ax, compound in zip(axes.flat, compounds):
+        ax.step(controls.index, controls["survival"], where="post", color="0.5", label="negative controls")
+        doses = growth[(growth["condition"] == compound) & (growth["dose"] > 0)].sort_values("dose")
+        shades = plt.cm.Reds(np.linspace(0.45, 0.95, max(len(doses), 1)))
+        for colour, (_, dose) in zip(shades, doses.iterrows()):
+            curve = survival[survival["treatment"] == dose["treatment"]]
+            ax.step(curve["time_min"], curve["survival"], where="post", color=colour, label=f"{dose['dose']:g}")
+            ax.fill_between(curve["time_min"], curve["ci_low"], curve["ci_high"], step="post", color=colour, alpha=0.15)
+        ax.set_title(compound, fontsize=9)
+        ax.set_xlabel("time since first frame (min)", fontsize=8)
+        ax.legend(fontsize=6, frameon=False, loc="lower left")
+    for ax in list(axes.flat)[len(compounds) :]:
+        ax.set_visible(False)
+    axes[0, 0].set_ylabel("share of cells alive")
+    figure.tight_layout()
+    return figure
+
+
+def gr_plot(growth: pd.DataFrame, fits: pd.DataFrame) -> plt.Figure:
+    """GR value per dose with its interval and the fitted GR sigmoid, one panel per compound."""
+    compounds = _compounds(growth)
+    columns = min(4, max(1, len(compounds)))
+    rows = int(np.ceil(len(compounds) / columns)) or 1
+    figure, axes = plt.subplots(rows, columns, figsize=(3.2 * columns, 2.6 * rows), squeeze=False, sharey=True)
+    fitted = fits.set_index("condition") if len(fits) else pd.DataFrame()
+    for ax, compound in zip(axes.flat, compounds):
+        doses = growth[(growth["condition"] == compound) & (growth["dose"] > 0) & growth["gr"].notna()]
+        ax.errorbar(
+            doses["dose"],
+            doses["gr"],
+            yerr=[doses["gr"] - doses["gr_ci_low"], doses["gr_ci_high"] - doses["gr"]],
+            fmt="o",
+            color="black",
+            ms=3,
+        )
+        if compound in fitted.index and fitted.loc[compound, "fitted"]:
+            fit = fitted.loc[compound]
+            grid = np.geomspace(doses["dose"].min(), doses["dose"].max(), 60)
+            ax.plot(grid, gr_curve(grid, fit["gr_inf"], fit["gec50"], fit["hill"]), color="tab:red")
+        for level in (0.0, 1.0):
+            ax.axhline(level, color="0.6", lw=0.8, ls="--")
+        ax.set_xscale("log")
+        ax.set_title(compound, fontsize=9)
+        ax.set_xlabel("dose", fontsize=8)
+    for ax in list(axes.flat)[len(compounds) :]:
+        ax.set_visible(False)
+    axes[0, 0].set_ylabel("GR value")
+    figure.tight_layout()
+    return figure
+
+
+def fate_html(fate: FateResults | None) -> str:
+    """The section's HTML: the growth-mode summary per compound, GR curves, the rate and hazard ratios,
+    and the survival curves."""
+    if fate is None:
+        return "<p>Not computed.</p>"
+    growth = fate.growth
+    undefined = growth["note"].str.contains("did not grow", regex=False).any() if len(growth) else False
+    modes = (
+        "<p>The negative controls did not grow over the film, so GR values (which compare growth with "
+        "theirs) are not defined.</p>"
+        if undefined
+        else table_tag(fate.gr_curves)
+    )
+    ratios = fate.effects[["measure", "treatment", "n_wells", "n_events", "ratio", "ci_low", "ci_high", "q_value"]]
+    notes = fate.effects[fate.effects["note"] != ""][["measure", "treatment", "note"]]
+    return (
+        "<p>Growth-rate inhibition (GR; Hafner et al. 2016): GR = 2^(k/k0) - 1 from each treatment's "
+        "nuclei-count growth rate k against the negative controls' k0. Mode of action at the highest dose: "
+        "cytotoxic (GR interval below 0: fewer cells than at the start), cytostatic (growth slowed), "
+        "no growth effect (interval reaches 1).</p>"
+        + modes
+        + ("" if undefined else figure_tag(gr_plot(growth, fate.gr_curves), "GR curves"))
+        + "<p>Division and death rates (events per cell-hour) and the hazard of death, each against the "
+        "negative controls with its interval and BH q-value within the measure:</p>"
+        + table_tag(ratios)
+        + ("" if notes.empty else folded(f"{len(notes)} rows with a note", table_tag(notes)))
+        + folded(
+            "Survival curves per compound (Kaplan-Meier, well-bootstrap bands)",
+            figure_tag(survival_plot(fate.survival, growth), "survival curves"),
+        )
+        + f"<p>{escape('Event calls rest on the rules in config fate; check them on your own images.')}</p>"
+    )

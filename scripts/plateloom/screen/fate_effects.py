@@ -1,0 +1,202 @@
+"""The screen's fate tables: division and death rate ratios, death hazard ratios, survival curves,
+and growth-rate inhibition (GR) per treatment and compound, from the kept wells and their tracks."""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+from scipy import stats
+from statsmodels.stats.multitest import multipletests
+
+from plateloom.columns import REFERENCE_ROLE
+from plateloom.screen.fate_models import hazard_ratios, rate_ratios, survival_band
+from plateloom.screen.growth_inhibition import fit_gr_curve, growth_mode
+
+FATE_EFFECT_COLUMNS = [
+    "measure",
+    "treatment",
+    "condition",
+    "dose",
+    "n_wells",
+    "n_events",
+    "ratio",
+    "ci_low",
+    "ci_high",
+    "p_value",
+    "q_value",
+    "note",
+]
+
+
+def kept_wells(wells: pd.DataFrame) -> pd.DataFrame:
+    """The wells the screen model uses: not excluded, on plates not excluded, not empty."""
+    kept = (wells["excluded_by"].fillna("") == "") & (wells["plate_excluded_by"].fillna("") == "")
+    return wells[kept & (wells["role"] != "empty")]
+
+
+def track_lives(tracks: pd.DataFrame, wells: pd.DataFrame) -> pd.DataFrame:
+    """One row per track of a kept well: plate, well, role, treatment, entry_min (its first frame),
+    exit_min (its last), died (it ended in a death; otherwise censored there)."""
+    design = wells[["plate", "well", "role", "treatment"]].astype({"plate": str, "well": str})
+    lives = tracks.assign(plate=tracks["plate"].astype(str), well=tracks["well"].astype(str)).merge(
+        design, on=["plate", "well"], how="inner"
+    )
+    return pd.DataFrame(
+        {
+            "plate": lives["plate"],
+            "well": lives["plate"] + "/" + lives["well"],
+            "role": lives["role"],
+            "treatment": lives["treatment"].astype(str),
+            "entry_min": lives["start_min"].to_numpy(float),
+            "exit_min": lives["end_min"].to_numpy(float),
+            "died": (lives["end_event"] == "death").to_numpy(bool),
+        }
+    )
+
+
+def fate_effects(wells: pd.DataFrame, lives: pd.DataFrame, level: float) -> pd.DataFrame:
+    """Rows per (measure, test or positive-control treatment): division_rate and death_rate (rate
+    ratios), death_hazard (Cox hazard ratio); BH q-values within each measure."""
+    parts = []
+    for measure, events in (("division_rate", "n_divisions"), ("death_rate", "n_deaths")):
+        table = rate_ratios(wells, events, "cell_hours", level)
+        parts.append(table.rename(columns={"rate_ratio": "ratio"}).assign(measure=measure))
+    hazards = hazard_ratios(lives, level).rename(columns={"hazard_ratio": "ratio", "n_deaths": "n_events"})
+    wells_per_treatment = wells.groupby(wells["treatment"].astype(str)).size()
+    parts.append(hazards.assign(measure="death_hazard", n_wells=hazards["treatment"].map(wells_per_treatment)))
+    table = pd.concat(parts, ignore_index=True)
+    table["q_value"] = np.nan
+    for _, rows in table.groupby("measure"):
+        tested = rows["p_value"].notna()
+        if tested.any():
+            table.loc[rows.index[tested], "q_value"] = multipletests(rows.loc[tested, "p_value"], method="fdr_bh")[1]
+    doses = wells.drop_duplicates("treatment").set_index(wells.drop_duplicates("treatment")["treatment"].astype(str))
+    table["condition"] = table["treatment"].map(doses["condition"])
+    table["dose"] = table["treatment"].map(doses["dose"])
+    return table[FATE_EFFECT_COLUMNS]
+
+
+def survival_curves(lives: pd.DataFrame, times: np.ndarray, level: float, n_boot: int = 200) -> pd.DataFrame:
+    """Kaplan-Meier S(t) at ``times`` per treatment (the negative controls pooled under their
+    treatment names), with well-bootstrap intervals; seeded by the treatment's position."""
+    parts = []
+    for number, (treatment, cells) in enumerate(lives.groupby("treatment", sort=True)):
+        band = survival_band(cells, times, n_boot, level, seed=number)
+        parts.append(band.assign(treatment=treatment, role=cells["role"].iloc[0]))
+    columns = ["treatment", "role", "time_min", "survival", "ci_low", "ci_high"]
+    return pd.concat(parts, ignore_index=True)[columns] if parts else pd.DataFrame(columns=columns)
+
+
+GR_COLUMNS = [
+    "treatment",
+    "condition",
+    "dose",
+    "n_wells",
+    "growth_rate_per_h",
+    "control_growth_rate_per_h",
+    "gr",
+    "gr_ci_low",
+    "gr_ci_high",
+    "mode",
+    "note",
+]
+
+
+def _growth_fit(usable: pd.DataFrame, tested: list[str]) -> tuple[np.ndarray, np.ndarray, int]:
+    """Least squares of the wells' growth rates on plate intercepts (the controls' level per plate)
+    and one difference per tested treatment: coefficients, their covariance, residual df."""
+    plates = pd.get_dummies(usable["plate"].astype(str), dtype=float).to_numpy()
+    indicators = [(usable["treatment"].astype(str) == t).to_numpy(float) for t in tested]
+    x = np.column_stack([plates] + indicators)
+    y = usable["growth_rate_per_h"].to_numpy(float)
+    beta, _, rank, _ = np.linalg.lstsq(x, y, rcond=None)
+    df = len(y) - rank
+    sigma2 = float(np.sum((y - x @ beta) ** 2) / df) if df > 0 else np.nan
+    return beta, sigma2 * np.linalg.pinv(x.T @ x), df
+
+
+def _gr_interval(beta: np.ndarray, cov: np.ndarray, n_plates: int, column: int, quantile: float) -> dict:
+    """GR = 2 ** (k / k0) - 1 with k0 the mean of the plates' control levels and k = k0 + the
+    treatment's difference; the interval of k / k0 by the delta method (both estimated, their
+    covariance kept), mapped through the monotone 2 ** r - 1."""
+    c0 = np.zeros(len(beta))
+    c0[:n_plates] = 1.0 / n_plates
+    ct = c0.copy()
+    ct[column] = 1.0
+    k0, k = float(c0 @ beta), float(ct @ beta)
+    ratio = k / k0
+    variance = ct @ cov @ ct - 2 * ratio * (ct @ cov @ c0) + ratio**2 * (c0 @ cov @ c0)
+    se = float(np.sqrt(max(variance, 0.0)) / abs(k0))
+    return {
+        "control_growth_rate_per_h": k0,
+        "gr": 2.0**ratio - 1.0,
+        "gr_ci_low": 2.0 ** (ratio - quantile * se) - 1.0,
+        "gr_ci_high": 2.0 ** (ratio + quantile * se) - 1.0,
+    }
+
+
+def gr_values_per_treatment(wells: pd.DataFrame, level: float) -> pd.DataFrame:
+    """GR per test or positive-control treatment (Hafner et al. 2016) against the negative controls
+    on the plates that have them: growth rates fitted with plate intercepts and treatment
+    differences (``_growth_fit``), GR and its interval by ``_gr_interval`` (t quantile on the
+    residual df), the mode (``growth_mode``) from the GR interval. No GR where the controls did not
+    grow (k0 <= 0: GR compares growth, and there is none to compare)."""
+    usable = wells[np.isfinite(wells["growth_rate_per_h"])]
+    control_plates = set(usable.loc[usable["role"] == REFERENCE_ROLE, "plate"])
+    usable = usable[usable["plate"].isin(control_plates)]
+    tested = sorted(usable.loc[usable["role"] != REFERENCE_ROLE, "treatment"].astype(str).unique())
+    n_plates = usable["plate"].nunique()
+    fitted = bool(tested) and len(usable) > n_plates + len(tested)
+    if fitted:
+        beta, cov, df = _growth_fit(usable, tested)
+        quantile = stats.t.ppf(0.5 + level / 2.0, df)
+        k0 = float(beta[:n_plates].mean())
+    rows = []
+    for i, treatment in enumerate(tested):
+        mine = usable[usable["treatment"].astype(str) == treatment]
+        row = {"treatment": treatment, "n_wells": len(mine), "note": ""}
+        row["growth_rate_per_h"] = float(mine["growth_rate_per_h"].mean())
+        if not fitted:
+            row["note"] = "too few wells"
+        elif not k0 > 0:
+            row.update(control_growth_rate_per_h=k0, note="the negative controls did not grow: GR is not defined")
+        else:
+            row.update(_gr_interval(beta, cov, n_plates, n_plates + i, quantile))
+            row["mode"] = growth_mode(row["gr_ci_low"], row["gr_ci_high"])
+        rows.append(row)
+    table = pd.DataFrame(rows, columns=GR_COLUMNS)
+    first = wells.drop_duplicates("treatment")
+    design = first.set_index(first["treatment"].astype(str))
+    table["condition"] = table["treatment"].map(design["condition"])
+    table["dose"] = table["treatment"].map(design["dose"])
+    return table
+
+
+GR_FIT_COLUMNS = ["condition", "n_doses", "gr_inf", "gec50", "hill", "gr50", "gr_max", "gr_aoc", "mode", "fitted"]
+
+
+def gr_fits(per_treatment: pd.DataFrame) -> pd.DataFrame:
+    """Per compound with a GR value at 2 or more positive doses: the GR sigmoid (``fit_gr_curve``:
+    GR_inf, GEC50, Hill slope, GR50, GRmax, GR_AOC) and the mode at its highest dose."""
+    rows = []
+    scored = per_treatment[per_treatment["gr"].notna() & (per_treatment["dose"] > 0)]
+    for condition, doses in scored.groupby("condition", sort=True):
+        if doses["dose"].nunique() < 2:
+            continue
+        fit = fit_gr_curve(doses["dose"].to_numpy(float), doses["gr"].to_numpy(float))
+        top = doses.sort_values("dose").iloc[-1]
+        rows.append(
+            {
+                "condition": condition,
+                "n_doses": int(doses["dose"].nunique()),
+                "gr_inf": fit.gr_inf,
+                "gec50": fit.gec50,
+                "hill": fit.hill,
+                "gr50": fit.gr50,
+                "gr_max": fit.gr_max,
+                "gr_aoc": fit.gr_aoc,
+                "mode": top["mode"],
+                "fitted": fit.fitted,
+            }
+        )
+    return pd.DataFrame(rows, columns=GR_FIT_COLUMNS)
