@@ -1,6 +1,8 @@
 """The demo's full-length conditions end to end (36 frames a site): the decoupler's planted effect on the
 coupling readouts is found with an interval excluding 0, the no-effect compound's intervals cover 0, deaths
-spread under LOOM-106; the compounds with planted time courses act when they were planted to act."""
+spread under LOOM-106; the compounds with planted time courses act when they were planted to act; the
+cytostatic and cytotoxic compounds' planted division and death rates are inside their intervals and
+their modes of action are called (the null compound: no growth effect)."""
 
 import numpy as np
 import pandas as pd
@@ -9,10 +11,10 @@ import yaml
 from conftest import copy_workflow, run_snakemake
 from scipy import stats
 
-from plateloom.demo.scenario import load_scenario, planted_collective, planted_time_courses
+from plateloom.demo.scenario import load_scenario, planted_collective, planted_fate, planted_time_courses
 from plateloom.setup.screen_sheet import load_layout
 
-KEPT = ("vehicle", "LOOM-104", "LOOM-105", "LOOM-106", "LOOM-107", "LOOM-108", "LOOM-109")
+KEPT = ("vehicle", "LOOM-104", "LOOM-105", "LOOM-106", "LOOM-107", "LOOM-108", "LOOM-109", "LOOM-110", "LOOM-111")
 REPORTER = "mean_intensity_reporter"
 
 
@@ -143,3 +145,31 @@ def test_time_course_tables_open_as_one_dataset_with_every_reader(collective_scr
     assert 'alt="effects over time mean_intensity_reporter"' in screen and "LOOM-107" in screen
     plate = (collective_screen / "results/reports/plates/WV-D1-P1.html").read_text()
     assert 'alt="negative controls over time"' in plate
+
+
+@pytest.mark.slow
+def test_planted_division_and_death_rates_and_modes_of_action_are_recovered(collective_screen):
+    scenario = load_scenario(str(collective_screen / "resources/demo/scenario.yaml"))
+    layout = load_layout(str(collective_screen / "config/layouts/demo_96.csv"), 96)
+    truth = planted_fate(scenario, layout).set_index("treatment")
+    effects = pd.read_parquet(collective_screen / "results/fate_effects.parquet").set_index(["measure", "treatment"])
+    for treatment, measure, column in (
+        ("LOOM-110 30 uM", "division_rate", "division_ratio"),
+        ("LOOM-110 3 uM", "division_rate", "division_ratio"),
+        ("LOOM-111 30 uM", "death_rate", "death_ratio"),
+        ("LOOM-111 3 uM", "death_rate", "death_ratio"),
+    ):
+        row, planted = effects.loc[(measure, treatment)], truth.loc[treatment, column]
+        assert row["ci_low"] <= planted <= row["ci_high"], (treatment, measure, planted, row.to_dict())
+    assert effects.loc[("division_rate", "LOOM-110 30 uM"), "ci_high"] < 1.0  # slower division is found
+    hazard = effects.loc[("death_hazard", "LOOM-111 30 uM")]
+    assert hazard["ci_low"] > 1.0, hazard.to_dict()
+    for treatment in ("LOOM-104 30 uM", "LOOM-110 30 uM"):
+        null = effects.loc[("death_rate", treatment)]
+        assert null["ci_low"] <= 1.0 <= null["ci_high"], (treatment, null.to_dict())
+    modes = pd.read_parquet(collective_screen / "results/gr_curves.parquet").set_index("condition")["mode"]
+    assert modes["LOOM-110"] == "cytostatic" and modes["LOOM-111"] == "cytotoxic", modes.to_dict()
+    assert modes["LOOM-104"] == "no growth effect", modes.to_dict()
+    survival = pd.read_parquet(collective_screen / "results/survival.parquet")
+    end = survival[survival["time_min"] == survival["time_min"].max()].set_index("treatment")
+    assert end.loc["LOOM-111 30 uM", "ci_high"] < end.loc["vehicle", "ci_low"]  # fewer survivors under the toxin

@@ -10,8 +10,8 @@ import numpy as np
 import pandas as pd
 import yaml
 
-QUANTITIES = ("area", "reporter", "speed", "nuclear", "cell_count", "coupling", "spreading")
-WITHOUT_NUISANCE = ("coupling", "spreading")
+QUANTITIES = ("area", "reporter", "speed", "nuclear", "cell_count", "coupling", "spreading", "division", "death")
+WITHOUT_NUISANCE = ("coupling", "spreading", "death")
 
 
 DEMO_SIZES = ("quick", "full")
@@ -80,6 +80,17 @@ def reporter_course(scenario: dict, condition: str, dose: float) -> np.ndarray |
     return 1.0 + (full - 1.0) * time_course_shape(compound["time_course"], times)
 
 
+def death_course(scenario: dict, condition: str, dose: float) -> np.ndarray:
+    """Per frame, the planted ratio of the base death hazard: the compound's death ratio from its
+    ``death_onset_min`` (0 if not given) on, 1 before and for compounds without one."""
+    compound = _compound(scenario, condition) or {}
+    times = np.arange(scenario["frames"]) * scenario["frame_interval_min"]
+    if "death" not in compound.get("max_ratio", {}):
+        return np.ones(len(times))
+    full = hill_ratio(dose, compound["max_ratio"]["death"], compound["ec50_um"], compound["hill"])
+    return np.where(times >= compound.get("death_onset_min", 0.0), full, 1.0)
+
+
 def planted_time_courses(scenario: dict, layout: pd.DataFrame) -> pd.DataFrame:
     """The planted truth of the compounds with a time course: one row per (treatment, frame) with the
     time (min since the first frame) and the reporter ratio to the negative control."""
@@ -102,6 +113,49 @@ def treatment_ratios(scenario: dict, condition: str, dose: float) -> dict[str, f
             for quantity, max_ratio in compound["max_ratio"].items():
                 ratios[quantity] = hill_ratio(dose, max_ratio, compound["ec50_um"], compound["hill"])
     return ratios
+
+
+def expected_fate(scenario: dict, condition: str, dose: float) -> dict[str, float]:
+    """The planted fate of a treatment in expectation, on the frame grid: cells N_f with
+    N_{f+1} = N_f (1 + p_division - p_death(f)) (p per frame, the planted ratios applied, no
+    nuisance and no spreading), giving the division and death rates per cell-hour (events over
+    cell-hours) and the growth rate (1/h: slope of log N_f against time, as the well profiles
+    compute it)."""
+    cell, dt = scenario["cell"], scenario["frame_interval_min"]
+    ratios = treatment_ratios(scenario, condition, dose)
+    p_division = cell.get("division_rate_per_frame", 0.0) * ratios["division"]
+    p_death = cell["death_rate_per_frame"] * death_course(scenario, condition, dose)
+    counts = np.cumprod(np.r_[1.0, 1.0 + p_division - p_death[:-1]])
+    hours = counts.sum() * dt / 60.0
+    times_h = np.arange(len(counts)) * dt / 60.0
+    return {
+        "division_rate_per_cell_h": float(p_division * counts.sum() / hours),
+        "death_rate_per_cell_h": float((p_death * counts).sum() / hours),
+        "growth_rate_per_h": float(np.polyfit(times_h, np.log(counts), 1)[0]),
+    }
+
+
+def planted_fate(scenario: dict, layout: pd.DataFrame) -> pd.DataFrame:
+    """The planted fate truth per non-control treatment: division and death rate ratios to the
+    negative controls, the GR value (2 ** (k / k0) - 1 from the expected growth rates) and the mode
+    of action it implies (cytotoxic below 0, no growth effect at 1 within 0.05, else cytostatic)."""
+    control = expected_fate(scenario, "", 0.0)
+    rows = []
+    treated = layout[layout["role"].isin(["test", "positive_control"])].drop_duplicates("treatment")
+    for _, well in treated.iterrows():
+        mine = expected_fate(scenario, well["condition"], float(well["dose"]))
+        gr = 2.0 ** (mine["growth_rate_per_h"] / control["growth_rate_per_h"]) - 1.0
+        mode = "cytotoxic" if gr < 0 else "no growth effect" if gr > 0.95 else "cytostatic"
+        rows.append(
+            {"treatment": well["treatment"], "condition": well["condition"], "dose": well["dose"]}
+            | {
+                "division_ratio": mine["division_rate_per_cell_h"] / control["division_rate_per_cell_h"],
+                "death_ratio": mine["death_rate_per_cell_h"] / control["death_rate_per_cell_h"],
+                "gr": gr,
+                "mode": mode,
+            }
+        )
+    return pd.DataFrame(rows)
 
 
 def feature_of_quantity(scenario: dict) -> dict[str, str]:

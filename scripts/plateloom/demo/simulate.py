@@ -17,14 +17,14 @@ from __future__ import annotations
 
 import os
 import zlib
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 import pandas as pd
 import tifffile
 from scipy import ndimage
 
-from plateloom.demo.scenario import QUANTITIES, WITHOUT_NUISANCE, reporter_course, treatment_ratios
+from plateloom.demo.scenario import QUANTITIES, WITHOUT_NUISANCE, death_course, reporter_course, treatment_ratios
 from plateloom.io.tables import atomic_path
 from plateloom.setup.plate_formats import is_edge_well, plate_format
 
@@ -56,10 +56,17 @@ class _Cells:
     phase: np.ndarray
     frequency: np.ndarray  # rad/min
     fluctuation: np.ndarray  # relative reporter fluctuation
-    identity: np.ndarray  # index at the start (truth labels are identity + 1)
+    identity: np.ndarray  # index at the start, daughters numbered on (truth labels are identity + 1)
+    rounding: np.ndarray  # rounded up this frame (brighter, smaller), divides after it
 
     def keep(self, alive: np.ndarray) -> _Cells:
         return _Cells(*(getattr(self, f)[alive] for f in self.__dataclass_fields__))
+
+    def take_rows(self, rows: np.ndarray) -> _Cells:
+        return _Cells(*(getattr(self, f)[rows].copy() for f in self.__dataclass_fields__))
+
+    def joined(self, other: _Cells) -> _Cells:
+        return _Cells(*(np.concatenate([getattr(self, f), getattr(other, f)]) for f in self.__dataclass_fields__))
 
 
 def _draw_cells(rng: np.random.Generator, scenario: dict, factor: dict[str, float], size: int) -> _Cells:
@@ -96,6 +103,7 @@ def _draw_cells(rng: np.random.Generator, scenario: dict, factor: dict[str, floa
         frequency,
         np.zeros(n),
         np.arange(n),
+        np.zeros(n, bool),
     )
 
 
@@ -125,9 +133,15 @@ def _advance_reporter(rng: np.random.Generator, cells: _Cells, scenario: dict, c
 
 
 def _dying(
-    rng: np.random.Generator, cells: _Cells, scenario: dict, spreading: float, recent_deaths: np.ndarray
+    rng: np.random.Generator,
+    cells: _Cells,
+    scenario: dict,
+    spreading: float,
+    recent_deaths: np.ndarray,
+    base_ratio: float = 1.0,
 ) -> np.ndarray:
-    """Which cells die in this frame: a base hazard plus a chance per neighbour that died within the last frames."""
+    """Which cells die in this frame: a base hazard (times ``base_ratio``) plus a chance per neighbour
+    that died within the last frames; a rounding cell does not die."""
     cell = scenario["cell"]
     if len(cells.position) == 0:
         return np.zeros(0, bool)
@@ -138,8 +152,41 @@ def _dying(
     else:
         exposed = np.zeros(len(cells.position))
     spread = min(1.0, cell["death_spread_probability"] * spreading)
-    hazard = 1 - (1 - cell["death_rate_per_frame"]) * (1 - spread) ** exposed
-    return rng.uniform(size=len(cells.position)) < hazard
+    base = min(1.0, cell["death_rate_per_frame"] * base_ratio)
+    hazard = 1 - (1 - base) * (1 - spread) ** exposed
+    return (rng.uniform(size=len(cells.position)) < hazard) & ~cells.rounding
+
+
+ROUNDED_BRIGHTNESS, ROUNDED_RADIUS = 1.6, 0.8  # a mitotic nucleus condenses: brighter, smaller
+
+
+def _as_imaged(cells: _Cells) -> tuple[_Cells, np.ndarray]:
+    """The cells as drawn this frame (rounding cells smaller) and their nuclear levels (rounding brighter)."""
+    shrink = np.where(cells.rounding, ROUNDED_RADIUS, 1.0)
+    shown = replace(cells, semi_major=cells.semi_major * shrink, semi_minor=cells.semi_minor * shrink)
+    return shown, cells.nuclear * np.where(cells.rounding, ROUNDED_BRIGHTNESS, 1.0)
+
+
+def _divide(rng: np.random.Generator, cells: _Cells, next_id: int) -> tuple[_Cells, np.ndarray, int]:
+    """Every rounding cell becomes two daughters one nuclear radius either side of it along a random
+    axis (the mother's size, level and reporter state); returns the cells, each cell's mother
+    identity (-1 for the others) and the next free identity."""
+    mothers = np.flatnonzero(cells.rounding)
+    parent = np.full(len(cells.identity), -1)
+    if not len(mothers):
+        return cells, parent, next_id
+    angle = rng.uniform(0, np.pi, len(mothers))
+    offset = cells.semi_major[mothers, None] * np.column_stack([np.sin(angle), np.cos(angle)])
+    second = cells.take_rows(mothers)
+    parent[mothers] = cells.identity[mothers]
+    second_parent = cells.identity[mothers].copy()
+    cells.position[mothers] += offset
+    second.position -= offset
+    cells.identity[mothers] = next_id + np.arange(len(mothers))
+    second.identity[:] = next_id + len(mothers) + np.arange(len(mothers))
+    cells.rounding[mothers] = False
+    second.rounding[:] = False
+    return cells.joined(second), np.r_[parent, second_parent], next_id + 2 * len(mothers)
 
 
 def _step(rng: np.random.Generator, cells: _Cells, scenario: dict, speed_factor: float, size: int) -> None:
@@ -199,7 +246,7 @@ def _render_labels(cells: _Cells, size: int) -> np.ndarray:
     return labels
 
 
-def _truth_rows(cells: _Cells, frame: int, pixel_um: float, dying: np.ndarray) -> pd.DataFrame:
+def _truth_rows(cells: _Cells, frame: int, pixel_um: float, dying: np.ndarray, parent: np.ndarray) -> pd.DataFrame:
     return pd.DataFrame(
         {
             "frame": frame,
@@ -207,6 +254,8 @@ def _truth_rows(cells: _Cells, frame: int, pixel_um: float, dying: np.ndarray) -
             "x_um": cells.position[:, 1] * pixel_um,
             "y_um": cells.position[:, 0] * pixel_um,
             "dies": dying,
+            "divides": cells.rounding.copy(),
+            "parent": parent,
         }
     )
 
@@ -233,12 +282,16 @@ def simulate_site(
     rng: np.random.Generator,
     with_truth: bool = False,
     reporter_course: np.ndarray | None = None,
+    death_course: np.ndarray | None = None,
 ) -> np.ndarray | tuple[np.ndarray, SiteTruth]:
     """Images of one site: array (frames, 2 channels, y, x) uint16, nuclei then reporter.
 
-    ``reporter_course`` (one ratio per frame) scales the reporter over time. With ``with_truth``
-    also the planted truth (the images are the same either way); its positions table has a
-    ``dies`` column (True in a cell's last frame when it dies).
+    ``reporter_course`` (one ratio per frame) scales the reporter over time, ``death_course`` the
+    base death hazard. A cell rounds up (``cell.division_rate_per_frame`` x the division factor)
+    for one frame, then divides. With ``with_truth`` also the planted truth (the images are the
+    same either way); its positions table has ``dies`` (True in a cell's last frame when it dies),
+    ``divides`` (True in a mother's last frame) and ``parent`` (a daughter's mother, in the
+    daughter's first frame; -1 otherwise).
     """
     size, frames = scenario["image_size_px"], scenario["frames"]
     imaging, cell = scenario["imaging"], scenario["cell"]
@@ -249,25 +302,26 @@ def simulate_site(
     truth_labels = np.zeros((frames, size, size), np.int32) if with_truth else None
     positions = []
     recent_deaths: list[np.ndarray] = []
+    parent, next_id = np.full(len(cells.identity), -1), len(cells.identity)
+    p_division = cell.get("division_rate_per_frame", 0.0) * factor.get("division", 1.0)
     for frame in range(frames):
-        dying = _dying(
-            rng,
-            cells,
-            scenario,
-            factor.get("spreading", 1.0),
-            np.concatenate(recent_deaths[-cell["death_memory_frames"] :] or [np.empty((0, 2))]),
-        )
+        recent = np.concatenate(recent_deaths[-cell["death_memory_frames"] :] or [np.empty((0, 2))])
+        base_ratio = 1.0 if death_course is None else float(death_course[frame])
+        dying = _dying(rng, cells, scenario, factor.get("spreading", 1.0), recent, base_ratio)
         oscillation = 1 + cell["reporter_oscillation_amplitude"] * np.sin(cells.phase) + cells.fluctuation
         reporter = cells.reporter * np.clip(oscillation, 0.05, None) * np.where(dying, cell["death_reporter_jump"], 1.0)
         if reporter_course is not None:
             reporter = reporter * reporter_course[frame]
-        for channel, levels in enumerate((cells.nuclear, reporter)):
-            stack[frame, channel] = _camera_image(_render(cells, levels, size), illumination, imaging, rng)
+        shown, nuclear = _as_imaged(cells)
+        for channel, levels in enumerate((nuclear, reporter)):
+            stack[frame, channel] = _camera_image(_render(shown, levels, size), illumination, imaging, rng)
         if with_truth:
-            truth_labels[frame] = _render_labels(cells, size)
-            positions.append(_truth_rows(cells, frame, scenario["pixel_size_um"], dying))
+            truth_labels[frame] = _render_labels(shown, size)
+            positions.append(_truth_rows(cells, frame, scenario["pixel_size_um"], dying, parent))
         recent_deaths.append(cells.position[dying].copy())
         cells = cells.keep(~dying)
+        cells, parent, next_id = _divide(rng, cells, next_id)
+        cells.rounding[:] = (parent < 0) & (rng.uniform(size=len(parent)) < p_division)
         _advance_reporter(rng, cells, scenario, factor.get("coupling", 1.0))
         _step(rng, cells, scenario, factor["speed"], size)
     if not with_truth:
@@ -275,7 +329,7 @@ def simulate_site(
     table = (
         pd.concat(positions, ignore_index=True)
         if positions
-        else pd.DataFrame(columns=["frame", "cell", "x_um", "y_um", "dies"])
+        else pd.DataFrame(columns=["frame", "cell", "x_um", "y_um", "dies", "divides", "parent"])
     )
     return stack, SiteTruth(truth_labels, table)
 
@@ -311,9 +365,10 @@ def write_demo_plate(scenario: dict, layout: pd.DataFrame, plate: str, batch: st
         dose = 0.0 if np.isnan(row["dose"]) else float(row["dose"])
         factor = well_factors(scenario, plate, batch, row["well"], row["condition"], dose)
         course = reporter_course(scenario, row["condition"], dose)
+        deaths = death_course(scenario, row["condition"], dose)
         for site in range(1, scenario["sites_per_well"] + 1):
             rng = _stable_rng(scenario["seed"], "site", plate, row["well"], str(site))
-            stack = simulate_site(scenario, factor, rng, reporter_course=course)
+            stack = simulate_site(scenario, factor, rng, reporter_course=course, death_course=deaths)
             for channel, name in enumerate(names):
                 path = os.path.join(folder, f"{row['well']}_s{site}_{name}.tif")
                 with atomic_path(path) as tmp:

@@ -87,9 +87,33 @@ def gr_plot(growth: pd.DataFrame, fits: pd.DataFrame) -> plt.Figure:
     return figure
 
 
+def _modes_line(fits: pd.DataFrame) -> str:
+    """Compounds listed by mode of action (at their highest dose)."""
+    parts = []
+    for mode in ("cytotoxic", "cytostatic", "no growth effect"):
+        names = sorted(fits.loc[fits["mode"] == mode, "condition"].astype(str))
+        parts.append(f"<b>{mode}</b>: {escape(', '.join(names)) if names else 'none'}")
+    return "<p>" + "; ".join(parts) + ".</p>"
+
+
+def _ratio_table(effects: pd.DataFrame) -> pd.DataFrame:
+    """One row per treatment: each measure's ratio with its interval, as text, and its q-value."""
+    wide = effects.assign(
+        text=[
+            "" if pd.isna(r) else f"{r:.3g} [{low:.3g}, {high:.3g}]"
+            for r, low, high in zip(effects["ratio"], effects["ci_low"], effects["ci_high"])
+        ]
+    )
+    text = wide.pivot(index="treatment", columns="measure", values="text")
+    q = wide.pivot(index="treatment", columns="measure", values="q_value").add_suffix(" q")
+    events = wide.pivot(index="treatment", columns="measure", values="n_events").add_suffix(" events")
+    order = [c for m in ("division_rate", "death_rate", "death_hazard") for c in (f"{m} events", m, f"{m} q")]
+    return text.join([q, events])[[c for c in order if c in text.join([q, events]).columns]].reset_index()
+
+
 def fate_html(fate: FateResults | None) -> str:
-    """The section's HTML: the growth-mode summary per compound, GR curves, the rate and hazard ratios,
-    and the survival curves."""
+    """The section's HTML: compounds by mode of action, the GR table and curves, the rate and hazard
+    ratios per treatment, and the survival curves."""
     if fate is None:
         return "<p>Not computed.</p>"
     growth = fate.growth
@@ -98,9 +122,10 @@ def fate_html(fate: FateResults | None) -> str:
         "<p>The negative controls did not grow over the film, so GR values (which compare growth with "
         "theirs) are not defined.</p>"
         if undefined
-        else table_tag(fate.gr_curves)
+        else _modes_line(fate.gr_curves)
+        + table_tag(fate.gr_curves)
+        + figure_tag(gr_plot(growth, fate.gr_curves), "GR curves")
     )
-    ratios = fate.effects[["measure", "treatment", "n_wells", "n_events", "ratio", "ci_low", "ci_high", "q_value"]]
     notes = fate.effects[fate.effects["note"] != ""][["measure", "treatment", "note"]]
     return (
         "<p>Growth-rate inhibition (GR; Hafner et al. 2016): GR = 2^(k/k0) - 1 from each treatment's "
@@ -108,14 +133,13 @@ def fate_html(fate: FateResults | None) -> str:
         "cytotoxic (GR interval below 0: fewer cells than at the start), cytostatic (growth slowed), "
         "no growth effect (interval reaches 1).</p>"
         + modes
-        + ("" if undefined else figure_tag(gr_plot(growth, fate.gr_curves), "GR curves"))
-        + "<p>Division and death rates (events per cell-hour) and the hazard of death, each against the "
-        "negative controls with its interval and BH q-value within the measure:</p>"
-        + table_tag(ratios)
+        + "<p>Division and death rates (events per cell-hour) and the hazard of death, each as a ratio to "
+        "the negative controls with its interval [low, high] and BH q-value within the measure:</p>"
+        + table_tag(_ratio_table(fate.effects))
         + ("" if notes.empty else folded(f"{len(notes)} rows with a note", table_tag(notes)))
         + folded(
             "Survival curves per compound (Kaplan-Meier, well-bootstrap bands)",
             figure_tag(survival_plot(fate.survival, growth), "survival curves"),
         )
-        + f"<p>{escape('Event calls rest on the rules in config fate; check them on your own images.')}</p>"
+        + "<p>Event calls rest on the rules in config fate; check them on your own images.</p>"
     )

@@ -71,6 +71,11 @@ def rate_ratios(wells: pd.DataFrame, events: str, exposure: str = "cell_hours", 
     ``exposure`` (cell-hours; wells without exposure are left out) per well."""
     usable = wells[wells[exposure] > 0]
     comparable, notes = _comparable(usable)
+    totals = comparable.groupby(comparable["treatment"].astype(str))[events].sum()
+    silent = comparable["treatment"].astype(str).map(totals).eq(0) & (comparable["role"] != REFERENCE_ROLE)
+    for treatment in sorted(set(comparable.loc[silent, "treatment"].astype(str))):
+        notes[treatment] = "no events under this treatment"
+    comparable = comparable[~silent]
     x, tested = _design(comparable)
     y, offset = comparable[events].to_numpy(float), np.log(comparable[exposure].to_numpy(float))
     rows = []
@@ -79,8 +84,8 @@ def rate_ratios(wells: pd.DataFrame, events: str, exposure: str = "cell_hours", 
         mine = comparable[comparable["treatment"].astype(str) == treatment]
         row = _rate_row(treatment, mine, events, exposure)
         column = x.shape[1] - len(tested) + i
-        if fit is None or mine[events].sum() == 0:
-            row["note"] = "no events under this treatment" if fit is not None else "no events, or no residual df"
+        if fit is None:
+            row["note"] = "no events, or no residual df"
         else:
             row.update(_ratio_interval(fit, column, level))
         rows.append(row)
@@ -168,39 +173,54 @@ def survival_band(
 HAZARD_COLUMNS = ["treatment", "n_cells", "n_deaths", "hazard_ratio", "ci_low", "ci_high", "p_value", "note"]
 
 
+def _cox_clustered(model: PHReg, groups: np.ndarray) -> tuple[float, float]:
+    """The Cox fit's log hazard ratio and its cluster-robust SE: inverse information x (sum over
+    clusters of the summed score residuals' outer products) x inverse information (Lin & Wei 1989;
+    what R's coxph reports with cluster()). A subject at risk at no event time in its stratum has
+    a score residual of 0 (statsmodels gives NaN there, so its own robust option is not used)."""
+    fit = model.fit()
+    residuals = np.nan_to_num(model.score_residuals(fit.params))
+    per_cluster = pd.DataFrame(residuals).groupby(groups, sort=False).sum().to_numpy()
+    naive = np.asarray(fit.cov_params())
+    robust = naive @ (per_cluster.T @ per_cluster) @ naive
+    return float(fit.params[0]), float(np.sqrt(robust[0, 0]))
+
+
 def hazard_ratios(cells: pd.DataFrame, level: float = 0.95) -> pd.DataFrame:
     """Per non-control treatment: the hazard ratio of death against the negative controls (Cox, delayed
-    entry, strata = plate, well-clustered standard errors; normal interval). ``cells`` (one row per
-    track): plate, well, role, treatment, entry_min, exit_min, died (bool)."""
-    comparable, notes = _comparable(cells)
-    tested = sorted(comparable.loc[comparable["role"] != REFERENCE_ROLE, "treatment"].astype(str).unique())
-    rows = []
-    fit = None
-    if tested and comparable["died"].any():
-        x = np.column_stack([(comparable["treatment"].astype(str) == t).to_numpy(float) for t in tested])
-        model = PHReg(
-            comparable["exit_min"].to_numpy(float),
-            x,
-            status=comparable["died"].to_numpy(float),
-            entry=comparable["entry_min"].to_numpy(float),
-            strata=comparable["plate"].astype(str).to_numpy(),
-        )
-        fit = model.fit(groups=comparable["well"].astype(str).to_numpy())
+    entry, strata = plate, well-clustered standard errors; normal interval), fitted on the
+    treatment's cells and the negative controls' on its plates. ``cells`` (one row per track):
+    plate, well, role, treatment, entry_min, exit_min, died (bool); a track seen in one frame only
+    (exit = entry) is never at risk and is left out."""
+    comparable, notes = _comparable(cells[cells["exit_min"] > cells["entry_min"]])
+    treatments = comparable["treatment"].astype(str)
+    controls = comparable[comparable["role"] == REFERENCE_ROLE]
     quantile = stats.norm.ppf(0.5 + level / 2.0)
-    for i, treatment in enumerate(tested):
-        mine = comparable[comparable["treatment"].astype(str) == treatment]
+    rows = []
+    for treatment in sorted(treatments[comparable["role"] != REFERENCE_ROLE].unique()):
+        mine = comparable[treatments == treatment]
         row = {"treatment": treatment, "n_cells": len(mine), "n_deaths": int(mine["died"].sum()), "note": ""}
-        if fit is None or row["n_deaths"] == 0:
-            row["note"] = "no deaths under this treatment"
-        else:
-            estimate, se = float(fit.params[i]), float(fit.bse[i])
-            row.update(
-                hazard_ratio=np.exp(estimate),
-                ci_low=np.exp(estimate - quantile * se),
-                ci_high=np.exp(estimate + quantile * se),
-                p_value=float(2.0 * stats.norm.sf(abs(estimate / se))),
-            )
-        rows.append(row)
+        if row["n_deaths"] == 0:
+            rows.append(row | {"note": "no deaths under this treatment"})
+            continue
+        data = pd.concat([mine, controls[controls["plate"].isin(set(mine["plate"]))]], ignore_index=True)
+        model = PHReg(
+            data["exit_min"].to_numpy(float),
+            (data["treatment"].astype(str) == treatment).to_numpy(float)[:, None],
+            status=data["died"].to_numpy(float),
+            entry=data["entry_min"].to_numpy(float),
+            strata=data["plate"].astype(str).to_numpy(),
+        )
+        estimate, se = _cox_clustered(model, data["well"].astype(str).to_numpy())
+        rows.append(
+            row
+            | {
+                "hazard_ratio": np.exp(estimate),
+                "ci_low": np.exp(estimate - quantile * se),
+                "ci_high": np.exp(estimate + quantile * se),
+                "p_value": float(2.0 * stats.norm.sf(abs(estimate / se))),
+            }
+        )
     for treatment, note in notes.items():
         mine = cells[cells["treatment"] == treatment]
         rows.append({"treatment": treatment, "n_cells": len(mine), "n_deaths": int(mine["died"].sum()), "note": note})
