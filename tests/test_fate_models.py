@@ -238,6 +238,17 @@ def test_gr_values_and_modes_recover_planted_growth_rates():
     expected_gr50 = ((1.2 / 0.7) - 1) ** (1 / 1.5)  # where the sigmoid crosses 0.5
     assert fit["gr50"] == pytest.approx(expected_gr50, rel=0.15) and fit["gr_inf"] == pytest.approx(-0.2, abs=0.1)
     assert fit["mode"] == "cytotoxic"
+    from plateloom.screen.growth_inhibition import gr_aoc
+
+    planted_aoc = gr_aoc(np.array(doses), gr)
+    for name, planted in (
+        ("gr50", expected_gr50),
+        ("gr_inf", -0.2),
+        ("hill", 1.5),
+        ("gr_max", gr[-1]),
+        ("gr_aoc", planted_aoc),
+    ):
+        assert fit[f"{name}_ci_low"] <= planted <= fit[f"{name}_ci_high"], (name, fit.to_dict())
 
 
 @pytest.mark.slow

@@ -32,7 +32,7 @@ def step() -> None:
     growth = gr_values_per_treatment(wells, level)
     write_parquet(growth, sm.output.growth, dict(p))
     write_text(csv_text(growth), sm.output.growth_csv)
-    write_parquet(gr_fits(growth), sm.output.gr_curves, dict(p))
+    write_parquet(gr_fits(growth, level), sm.output.gr_curves, dict(p))
 
 
 run_step(sm.log[0], step, "fate_effects")

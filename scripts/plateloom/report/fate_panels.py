@@ -9,6 +9,7 @@ from html import escape
 import matplotlib.pyplot as plt
 import numpy as np
 import pandas as pd
+from matplotlib.ticker import FuncFormatter, NullFormatter
 
 from plateloom.report.html import figure_tag, folded, table_tag
 from plateloom.screen.growth_inhibition import gr_curve
@@ -25,7 +26,32 @@ class FateResults:
 
 
 def _compounds(growth: pd.DataFrame) -> list[str]:
-    return sorted(growth.loc[growth["dose"] > 0, "condition"].dropna().astype(str).unique())
+    """Compounds tested at two doses or more (the ones with a curve to draw)."""
+    doses = growth[growth["dose"] > 0].groupby("condition")["dose"].nunique()
+    return sorted(doses[doses >= 2].index.astype(str))
+
+
+def _plain_log_axis(ax: plt.Axes) -> None:
+    """Log-scaled x axis with plain-number tick labels (no mathtext)."""
+    ax.set_xscale("log")
+    ax.xaxis.set_major_formatter(FuncFormatter(lambda value, _: f"{value:g}"))
+    ax.xaxis.set_minor_formatter(NullFormatter())
+
+
+def _with_interval(values: pd.Series, low: pd.Series, high: pd.Series) -> list[str]:
+    return [
+        "" if pd.isna(v) else f"{v:.3g} [{lo:.3g}, {hi:.3g}]" if pd.notna(lo) else f"{v:.3g}"
+        for v, lo, hi in zip(values, low, high)
+    ]
+
+
+def _gr_table(fits: pd.DataFrame) -> pd.DataFrame:
+    """Per compound: GR50, GRmax, GR_inf, Hill slope and GR_AOC, each with its interval, and the mode."""
+    table = fits[["condition", "n_doses"]].copy()
+    for name in ("gr50", "gr_max", "gr_inf", "hill", "gr_aoc"):
+        table[name] = _with_interval(fits[name], fits[f"{name}_ci_low"], fits[f"{name}_ci_high"])
+    table["mode"] = fits["mode"]
+    return table
 
 
 def survival_plot(survival: pd.DataFrame, growth: pd.DataFrame) -> plt.Figure:
@@ -77,7 +103,8 @@ def gr_plot(growth: pd.DataFrame, fits: pd.DataFrame) -> plt.Figure:
             ax.plot(grid, gr_curve(grid, fit["gr_inf"], fit["gec50"], fit["hill"]), color="tab:red")
         for level in (0.0, 1.0):
             ax.axhline(level, color="0.6", lw=0.8, ls="--")
-        ax.set_xscale("log")
+        ax.set_ylim(-1.1, 2.0)
+        _plain_log_axis(ax)
         ax.set_title(compound, fontsize=9)
         ax.set_xlabel("dose", fontsize=8)
     for ax in list(axes.flat)[len(compounds) :]:
@@ -108,7 +135,8 @@ def _ratio_table(effects: pd.DataFrame) -> pd.DataFrame:
     q = wide.pivot(index="treatment", columns="measure", values="q_value").add_suffix(" q")
     events = wide.pivot(index="treatment", columns="measure", values="n_events").add_suffix(" events")
     order = [c for m in ("division_rate", "death_rate", "death_hazard") for c in (f"{m} events", m, f"{m} q")]
-    return text.join([q, events])[[c for c in order if c in text.join([q, events]).columns]].reset_index()
+    table = text.join([q, events])
+    return table[[c for c in order if c in table.columns]].rename_axis(columns=None).reset_index()
 
 
 def fate_html(fate: FateResults | None) -> str:
@@ -123,7 +151,7 @@ def fate_html(fate: FateResults | None) -> str:
         "theirs) are not defined.</p>"
         if undefined
         else _modes_line(fate.gr_curves)
-        + table_tag(fate.gr_curves)
+        + table_tag(_gr_table(fate.gr_curves))
         + figure_tag(gr_plot(growth, fate.gr_curves), "GR curves")
     )
     notes = fate.effects[fate.effects["note"] != ""][["measure", "treatment", "note"]]
@@ -131,7 +159,8 @@ def fate_html(fate: FateResults | None) -> str:
         "<p>Growth-rate inhibition (GR; Hafner et al. 2016): GR = 2^(k/k0) - 1 from each treatment's "
         "nuclei-count growth rate k against the negative controls' k0. Mode of action at the highest dose: "
         "cytotoxic (GR interval below 0: fewer cells than at the start), cytostatic (growth slowed), "
-        "no growth effect (interval reaches 1).</p>"
+        "no growth effect (interval reaches 1). Intervals [low, high]: GR values by the delta method, curve "
+        "parameters by a parametric bootstrap.</p>"
         + modes
         + "<p>Division and death rates (events per cell-hour) and the hazard of death, each as a ratio to "
         "the negative controls with its interval [low, high] and BH q-value within the measure:</p>"

@@ -97,6 +97,8 @@ GR_COLUMNS = [
     "gr",
     "gr_ci_low",
     "gr_ci_high",
+    "growth_ratio",
+    "growth_ratio_se",
     "mode",
     "note",
 ]
@@ -129,6 +131,8 @@ def _gr_interval(beta: np.ndarray, cov: np.ndarray, n_plates: int, column: int, 
     se = float(np.sqrt(max(variance, 0.0)) / abs(k0))
     return {
         "control_growth_rate_per_h": k0,
+        "growth_ratio": ratio,
+        "growth_ratio_se": se,
         "gr": 2.0**ratio - 1.0,
         "gr_ci_low": 2.0 ** (ratio - quantile * se) - 1.0,
         "gr_ci_high": 2.0 ** (ratio + quantile * se) - 1.0,
@@ -172,31 +176,72 @@ def gr_values_per_treatment(wells: pd.DataFrame, level: float) -> pd.DataFrame:
     return table
 
 
-GR_FIT_COLUMNS = ["condition", "n_doses", "gr_inf", "gec50", "hill", "gr50", "gr_max", "gr_aoc", "mode", "fitted"]
+GR_FIT_COLUMNS = [
+    "condition",
+    "n_doses",
+    "gr_inf",
+    "gr_inf_ci_low",
+    "gr_inf_ci_high",
+    "gec50",
+    "hill",
+    "hill_ci_low",
+    "hill_ci_high",
+    "gr50",
+    "gr50_ci_low",
+    "gr50_ci_high",
+    "gr_max",
+    "gr_max_ci_low",
+    "gr_max_ci_high",
+    "gr_aoc",
+    "gr_aoc_ci_low",
+    "gr_aoc_ci_high",
+    "mode",
+    "fitted",
+]
+WITH_INTERVALS = ("gr_inf", "hill", "gr50", "gr_max", "gr_aoc")
 
 
-def gr_fits(per_treatment: pd.DataFrame) -> pd.DataFrame:
+def _fit_values(doses: np.ndarray, gr: np.ndarray) -> dict[str, float]:
+    fit = fit_gr_curve(doses, gr)
+    return {"gr_inf": fit.gr_inf, "gec50": fit.gec50, "hill": fit.hill, "gr50": fit.gr50, "gr_max": fit.gr_max} | {
+        "gr_aoc": fit.gr_aoc,
+        "fitted": fit.fitted,
+    }
+
+
+def _bootstrap_intervals(doses: pd.DataFrame, level: float, n_boot: int, rng: np.random.Generator) -> dict[str, float]:
+    """Percentile intervals of the GR metrics: each dose's k/k0 drawn from a normal with its estimate
+    and SE (parametric bootstrap; doses drawn independently, their shared controls ignored), GR
+    values recomputed and the curve refitted. A GR50 that is not reached counts as infinite."""
+    ratio, se = doses["growth_ratio"].to_numpy(float), doses["growth_ratio_se"].to_numpy(float)
+    draws = {name: [] for name in WITH_INTERVALS}
+    for _ in range(n_boot):
+        values = _fit_values(doses["dose"].to_numpy(float), 2.0 ** rng.normal(ratio, se) - 1.0)
+        for name in WITH_INTERVALS:
+            draws[name].append(values[name])
+    tail = (1.0 - level) / 2.0
+    out = {}
+    for name, values in draws.items():
+        # order statistics, not interpolation: a draw whose GR50 is never reached is infinite
+        low, high = np.quantile(np.asarray(values, float), [tail, 1.0 - tail], method="inverted_cdf")
+        out[f"{name}_ci_low"], out[f"{name}_ci_high"] = float(low), float(high)
+    return out
+
+
+def gr_fits(per_treatment: pd.DataFrame, level: float = 0.95, n_boot: int = 200, seed: int = 0) -> pd.DataFrame:
     """Per compound with a GR value at 2 or more positive doses: the GR sigmoid (``fit_gr_curve``:
-    GR_inf, GEC50, Hill slope, GR50, GRmax, GR_AOC) and the mode at its highest dose."""
+    GR_inf, GEC50, Hill slope, GR50, GRmax, GR_AOC) with parametric-bootstrap intervals (when the
+    sigmoid can be fitted: 3 doses or more) and the mode at its highest dose."""
     rows = []
     scored = per_treatment[per_treatment["gr"].notna() & (per_treatment["dose"] > 0)]
+    rng = np.random.default_rng(seed)
     for condition, doses in scored.groupby("condition", sort=True):
         if doses["dose"].nunique() < 2:
             continue
-        fit = fit_gr_curve(doses["dose"].to_numpy(float), doses["gr"].to_numpy(float))
-        top = doses.sort_values("dose").iloc[-1]
-        rows.append(
-            {
-                "condition": condition,
-                "n_doses": int(doses["dose"].nunique()),
-                "gr_inf": fit.gr_inf,
-                "gec50": fit.gec50,
-                "hill": fit.hill,
-                "gr50": fit.gr50,
-                "gr_max": fit.gr_max,
-                "gr_aoc": fit.gr_aoc,
-                "mode": top["mode"],
-                "fitted": fit.fitted,
-            }
-        )
+        row = {"condition": condition, "n_doses": int(doses["dose"].nunique())}
+        row |= _fit_values(doses["dose"].to_numpy(float), doses["gr"].to_numpy(float))
+        if row["n_doses"] >= 3:
+            row |= _bootstrap_intervals(doses, level, n_boot, rng)
+        row["mode"] = doses.sort_values("dose").iloc[-1]["mode"]
+        rows.append(row)
     return pd.DataFrame(rows, columns=GR_FIT_COLUMNS)
