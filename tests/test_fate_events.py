@@ -74,17 +74,15 @@ def _scores(tmp_path, seed: int) -> dict[str, np.ndarray]:
 @pytest.mark.slow
 def test_divisions_and_deaths_are_found_on_planted_time_lapses(tmp_path):
     # 24 seeded sites of 16 frames (5 min, 0.5 um/min). Measured when written: divisions precision
-    # 0.89, recall 0.80 (33 of 41; the misses are daughters the tracker did not link); deaths 0.93
-    # and 0.93 (26 of 28). The goal is 0.90 for both; the bounds hold what is measured.
+    # and recall 0.90 (37 of 41 found, 37 of 41 right), deaths 0.93 and 0.93 (26 of 28): the issue's
+    # goal of 0.90 for both. At 1 um/min (not asserted): divisions 0.79/0.79, deaths 0.92/0.82.
     total = {"division": np.zeros(3, int), "death": np.zeros(3, int)}
     for seed in range(1, 49, 2):
         for kind, score in _scores(tmp_path, seed).items():
             total[kind] += score
     for kind, (matched, found, planted) in total.items():
         assert planted >= 25, (kind, planted)
-        assert matched / found >= 0.85, (kind, total[kind])
-    assert total["death"][0] / total["death"][2] >= 0.9, total["death"]
-    assert total["division"][0] / total["division"][2] >= 0.75, total["division"]
+        assert matched / found >= 0.9 and matched / planted >= 0.9, (kind, total[kind])
 
 
 def test_divisions_and_deaths_are_found_on_two_planted_sites(tmp_path):
