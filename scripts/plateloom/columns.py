@@ -224,6 +224,9 @@ def unregistered(columns: list[str]) -> list[str]:
     return [name for name in columns if lookup(name) is None and not is_derived(name)]
 
 
+# Per-object ids and positions of the cells table: never features of a cell or a well.
+OBJECT_IDS_AND_POSITIONS = ("object", "track", "parent_track", "centroid_x_um", "centroid_y_um", "edge_distance_um")
+
 # The keys of a well in the well profiles and every table made from them (layout and position).
 KEY_COLUMNS = [
     "plate",

@@ -9,7 +9,7 @@ import numpy as np
 import pandas as pd
 import pyarrow.dataset as ds
 
-from plateloom.columns import observation_features, track_features
+from plateloom.columns import OBJECT_IDS_AND_POSITIONS, observation_features, track_features
 from plateloom.setup.plate_formats import PlateFormat, is_edge_well, parse_well, plate_format
 from plateloom.well.track_stats import growth_rate_per_h
 
@@ -49,16 +49,7 @@ def observation_counts(cells: pd.DataFrame) -> pd.DataFrame:
 
 
 # Columns of the cells table that the plate stage never reads (positions, ids, constant keys).
-NOT_READ_FOR_PROFILES = (
-    "plate",
-    "object",
-    "track",
-    "parent_track",
-    "centroid_x_um",
-    "centroid_y_um",
-    "edge_distance_um",
-    "chunk",
-)
+NOT_READ_FOR_PROFILES = ("plate", "chunk", *OBJECT_IDS_AND_POSITIONS)
 
 
 def well_files(folders: list[str]) -> list[str]:

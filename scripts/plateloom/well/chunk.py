@@ -10,6 +10,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
+from plateloom.columns import OBJECT_IDS_AND_POSITIONS
 from plateloom.io.images import ImageIndex, read_site_frame, usual_pixel_type
 from plateloom.io.ome_tiff import write_label_stack
 from plateloom.io.tables import well_part_path, write_bytes, write_parquet
@@ -71,17 +72,7 @@ def well_snapshot(
     return png, crops_bytes(crops, areas, settings.pixel_size_um, list(settings.channels), features)
 
 
-NOT_CROP_FEATURES = (
-    "site",
-    "frame",
-    "time_min",
-    "object",
-    "track",
-    "parent_track",
-    "centroid_x_um",
-    "centroid_y_um",
-    "edge_distance_um",
-)
+NOT_CROP_FEATURES = ("site", "frame", "time_min", *OBJECT_IDS_AND_POSITIONS)
 
 
 def crop_features(cells: pd.DataFrame, site: int, frame: int, objects: np.ndarray) -> pd.DataFrame:
