@@ -80,6 +80,42 @@ def survival_plot(survival: pd.DataFrame, growth: pd.DataFrame) -> plt.Figure:
     return figure
 
 
+def rates_plot(effects: pd.DataFrame, growth: pd.DataFrame) -> plt.Figure:
+    """Division and death rate ratios to the negative controls against dose, with intervals, one
+    panel per compound (log-log; 1 = the controls' rate)."""
+    compounds = _compounds(growth)
+    columns = min(4, max(1, len(compounds)))
+    rows = int(np.ceil(len(compounds) / columns)) or 1
+    figure, axes = plt.subplots(rows, columns, figsize=(3.2 * columns, 2.6 * rows), squeeze=False, sharey=True)
+    for ax, compound in zip(axes.flat, compounds):
+        for measure, colour, shift in (("division_rate", "tab:blue", 0.94), ("death_rate", "tab:red", 1.06)):
+            mine = effects[(effects["condition"] == compound) & (effects["measure"] == measure)]
+            mine = mine[mine["ratio"].notna() & (mine["dose"] > 0)].sort_values("dose")
+            ax.errorbar(
+                mine["dose"] * shift,
+                mine["ratio"],
+                yerr=[mine["ratio"] - mine["ci_low"], mine["ci_high"] - mine["ratio"]],
+                fmt="o-",
+                color=colour,
+                ms=3,
+                lw=0.8,
+                label=measure.replace("_", " "),
+            )
+        ax.axhline(1.0, color="0.6", lw=0.8, ls="--")
+        ax.set_yscale("log")
+        _plain_log_axis(ax)
+        ax.yaxis.set_major_formatter(FuncFormatter(lambda value, _: f"{value:g}"))
+        ax.yaxis.set_minor_formatter(NullFormatter())
+        ax.set_title(compound, fontsize=9)
+        ax.set_xlabel("dose", fontsize=8)
+        ax.legend(fontsize=6, frameon=False)
+    for ax in list(axes.flat)[len(compounds) :]:
+        ax.set_visible(False)
+    axes[0, 0].set_ylabel("rate ratio to controls")
+    figure.tight_layout()
+    return figure
+
+
 def gr_plot(growth: pd.DataFrame, fits: pd.DataFrame) -> plt.Figure:
     """GR value per dose with its interval and the fitted GR sigmoid, one panel per compound."""
     compounds = _compounds(growth)
@@ -151,8 +187,10 @@ def fate_html(fate: FateResults | None) -> str:
         "theirs) are not defined.</p>"
         if undefined
         else _modes_line(fate.gr_curves)
-        + table_tag(_gr_table(fate.gr_curves))
-        + figure_tag(gr_plot(growth, fate.gr_curves), "GR curves")
+        + folded(
+            "GR50, GRmax, GR_inf, Hill slope and GR_AOC per compound, and the GR curves",
+            table_tag(_gr_table(fate.gr_curves)) + figure_tag(gr_plot(growth, fate.gr_curves), "GR curves"),
+        )
     )
     notes = fate.effects[fate.effects["note"] != ""][["measure", "treatment", "note"]]
     return (
@@ -164,7 +202,11 @@ def fate_html(fate: FateResults | None) -> str:
         + modes
         + "<p>Division and death rates (events per cell-hour) and the hazard of death, each as a ratio to "
         "the negative controls with its interval [low, high] and BH q-value within the measure:</p>"
-        + table_tag(_ratio_table(fate.effects))
+        + folded(
+            "Division and death rate ratios against dose, per compound",
+            figure_tag(rates_plot(fate.effects, growth), "division and death rate ratios against dose"),
+        )
+        + folded("The rate and hazard ratios of every treatment", table_tag(_ratio_table(fate.effects)))
         + ("" if notes.empty else folded(f"{len(notes)} rows with a note", table_tag(notes)))
         + folded(
             "Survival curves per compound (Kaplan-Meier, well-bootstrap bands)",
