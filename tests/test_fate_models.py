@@ -269,3 +269,42 @@ def test_gr_intervals_cover_planted_gr_on_unbalanced_designs():
         for treatment, gr in planted.items():
             covered[treatment].append(table.loc[treatment, "gr_ci_low"] <= gr <= table.loc[treatment, "gr_ci_high"])
     assert all(0.93 <= np.mean(hits) <= 0.995 for hits in covered.values()), {t: np.mean(h) for t, h in covered.items()}
+
+
+def test_a_screen_without_events_gets_notes_not_a_crash():
+    # Found by running a tiny screen: no division and no death anywhere (a short film).
+    from plateloom.screen.fate_effects import fate_effects, gr_fits, gr_values_per_treatment, survival_curves
+
+    wells = pd.DataFrame(
+        {
+            "plate": ["P1"] * 4,
+            "well": ["A01", "A02", "A03", "A04"],
+            "role": ["negative_control", "negative_control", "test", "test"],
+            "treatment": ["vehicle", "vehicle", "A 1 uM", "A 1 uM"],
+            "condition": ["vehicle", "vehicle", "A", "A"],
+            "dose": [np.nan, np.nan, 1.0, 1.0],
+            "n_divisions": 0,
+            "n_deaths": 0,
+            "cell_hours": [5.0, 6.0, 5.0, 4.0],
+            "growth_rate_per_h": [0.0, 0.0, 0.0, 0.0],
+        }
+    )
+    lives = pd.DataFrame(
+        {
+            "plate": "P1",
+            "well": ["P1/A01", "P1/A03"],
+            "role": ["negative_control", "test"],
+            "treatment": ["vehicle", "A 1 uM"],
+            "entry_min": [0.0, 0.0],
+            "exit_min": [20.0, 20.0],
+            "died": [False, False],
+        }
+    )
+    effects = fate_effects(wells, lives, 0.95)
+    assert len(effects) == 3 and effects["ratio"].isna().all()
+    assert set(effects["note"]) == {"no events under this treatment", "no deaths under this treatment"}
+    growth = gr_values_per_treatment(wells, 0.95)
+    assert growth["gr"].isna().all() and "did not grow" in growth["note"].iloc[0]
+    assert gr_fits(growth).empty
+    curves = survival_curves(lives, np.array([0.0, 10.0, 20.0]), 0.95, n_boot=20)
+    assert (curves["survival"] == 1.0).all()

@@ -43,8 +43,8 @@ def _design(wells: pd.DataFrame) -> tuple[np.ndarray, list[str]]:
     """Columns: one per plate (intercepts) and one indicator per non-control treatment."""
     plates = pd.get_dummies(wells["plate"].astype(str), dtype=float)
     tested = sorted(wells.loc[wells["role"] != REFERENCE_ROLE, "treatment"].astype(str).unique())
-    indicators = np.column_stack([(wells["treatment"].astype(str) == t).to_numpy(float) for t in tested])
-    return np.column_stack([plates.to_numpy(), indicators.reshape(len(wells), -1)]), tested
+    indicators = [(wells["treatment"].astype(str) == t).to_numpy(float)[:, None] for t in tested]
+    return np.hstack([plates.to_numpy(), *indicators]), tested
 
 
 RATE_COLUMNS = [
