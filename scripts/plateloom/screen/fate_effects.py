@@ -104,22 +104,29 @@ GR_COLUMNS = [
 ]
 
 
-def _growth_fit(usable: pd.DataFrame, tested: list[str]) -> tuple[np.ndarray, np.ndarray, int]:
-    """Least squares of the wells' growth rates on plate intercepts (the controls' level per plate)
-    and one difference per tested treatment: coefficients, their covariance, residual df."""
-    plates = pd.get_dummies(usable["plate"].astype(str), dtype=float).to_numpy()
-    indicators = [(usable["treatment"].astype(str) == t).to_numpy(float) for t in tested]
-    x = np.column_stack([plates] + indicators)
-    y = usable["growth_rate_per_h"].to_numpy(float)
-    beta, _, rank, _ = np.linalg.lstsq(x, y, rcond=None)
-    df = len(y) - rank
-    sigma2 = float(np.sum((y - x @ beta) ** 2) / df) if df > 0 else np.nan
-    return beta, sigma2 * np.linalg.pinv(x.T @ x), df
+def _growth_fit(data: pd.DataFrame, treatment: str) -> tuple[np.ndarray, np.ndarray, float]:
+    """One treatment's wells and the negative controls on its plates: growth rates on plate
+    intercepts (the controls' level per plate) and the treatment's difference, weighted least
+    squares with one variance for the controls and one for the treatment (a toxic treatment's
+    wells scatter far more than the controls'), Welch-Satterthwaite df (Welch 1947). Returns
+    coefficients (plates, then the difference), their covariance and the df."""
+    treated = (data["treatment"].astype(str) == treatment).to_numpy()
+    x = np.column_stack([pd.get_dummies(data["plate"].astype(str), dtype=float).to_numpy(), treated.astype(float)])
+    y = data["growth_rate_per_h"].to_numpy(float)
+    residual = y - x @ np.linalg.lstsq(x, y, rcond=None)[0]
+    n_t, n_c, n_plates = int(treated.sum()), int((~treated).sum()), x.shape[1] - 1
+    var_t = max(float(np.sum(residual[treated] ** 2)) / (n_t - 1), 1e-12)
+    var_c = max(float(np.sum(residual[~treated] ** 2)) / (n_c - n_plates), 1e-12)
+    weight = np.where(treated, 1.0 / var_t, 1.0 / var_c)
+    cov = np.linalg.pinv(x.T @ (x * weight[:, None]))
+    beta = cov @ (x.T @ (weight * y))
+    a, b = var_t / n_t, var_c / n_c
+    return beta, cov, (a + b) ** 2 / (a**2 / (n_t - 1) + b**2 / (n_c - n_plates))
 
 
 def _gr_interval(beta: np.ndarray, cov: np.ndarray, n_plates: int, column: int, quantile: float) -> dict:
     """GR = 2 ** (k / k0) - 1 with k0 the mean of the plates' control levels and k = k0 + the
-    treatment's difference; the interval of k / k0 by the delta method (both estimated, their
+    treatment's difference (coefficient ``column``); the interval of k / k0 by the delta method (both estimated, their
     covariance kept), mapped through the monotone 2 ** r - 1."""
     c0 = np.zeros(len(beta))
     c0[:n_plates] = 1.0 / n_plates
@@ -141,31 +148,29 @@ def _gr_interval(beta: np.ndarray, cov: np.ndarray, n_plates: int, column: int, 
 
 def gr_values_per_treatment(wells: pd.DataFrame, level: float) -> pd.DataFrame:
     """GR per test or positive-control treatment (Hafner et al. 2016) against the negative controls
-    on the plates that have them: growth rates fitted with plate intercepts and treatment
-    differences (``_growth_fit``), GR and its interval by ``_gr_interval`` (t quantile on the
-    residual df), the mode (``growth_mode``) from the GR interval. No GR where the controls did not
-    grow (k0 <= 0: GR compares growth, and there is none to compare)."""
+    on its plates: growth rates fitted with plate intercepts and the treatment's difference
+    (``_growth_fit``), GR and its interval by ``_gr_interval`` (t quantile on the Welch df), the
+    mode (``growth_mode``) from the GR interval. No GR where those controls did not grow (k0 <= 0:
+    GR compares growth, and there is none to compare) or with fewer than 2 wells of the treatment."""
     usable = wells[np.isfinite(wells["growth_rate_per_h"])]
-    control_plates = set(usable.loc[usable["role"] == REFERENCE_ROLE, "plate"])
-    usable = usable[usable["plate"].isin(control_plates)]
-    tested = sorted(usable.loc[usable["role"] != REFERENCE_ROLE, "treatment"].astype(str).unique())
-    n_plates = usable["plate"].nunique()
-    fitted = bool(tested) and len(usable) > n_plates + len(tested)
-    if fitted:
-        beta, cov, df = _growth_fit(usable, tested)
-        quantile = stats.t.ppf(0.5 + level / 2.0, df)
-        k0 = float(beta[:n_plates].mean())
+    controls = usable[usable["role"] == REFERENCE_ROLE]
+    treatments = usable["treatment"].astype(str)
     rows = []
-    for i, treatment in enumerate(tested):
-        mine = usable[usable["treatment"].astype(str) == treatment]
+    for treatment in sorted(treatments[usable["role"] != REFERENCE_ROLE].unique()):
+        mine = usable[(treatments == treatment) & usable["plate"].isin(set(controls["plate"]))]
         row = {"treatment": treatment, "n_wells": len(mine), "note": ""}
-        row["growth_rate_per_h"] = float(mine["growth_rate_per_h"].mean())
-        if not fitted:
-            row["note"] = "too few wells"
-        elif not k0 > 0:
+        row["growth_rate_per_h"] = float(mine["growth_rate_per_h"].mean()) if len(mine) else np.nan
+        mine_controls = controls[controls["plate"].isin(set(mine["plate"]))]
+        if len(mine) < 2 or len(mine_controls) <= mine_controls["plate"].nunique():
+            rows.append(row | {"note": "too few wells, or no negative controls on its plates"})
+            continue
+        beta, cov, df = _growth_fit(pd.concat([mine_controls, mine]), treatment)
+        n_plates = len(beta) - 1
+        k0 = float(beta[:n_plates].mean())
+        if not k0 > 0:
             row.update(control_growth_rate_per_h=k0, note="the negative controls did not grow: GR is not defined")
         else:
-            row.update(_gr_interval(beta, cov, n_plates, n_plates + i, quantile))
+            row.update(_gr_interval(beta, cov, n_plates, n_plates, stats.t.ppf(0.5 + level / 2.0, df)))
             row["mode"] = growth_mode(row["gr_ci_low"], row["gr_ci_high"])
         rows.append(row)
     table = pd.DataFrame(rows, columns=GR_COLUMNS)
