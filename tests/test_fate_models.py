@@ -308,3 +308,44 @@ def test_a_screen_without_events_gets_notes_not_a_crash():
     assert gr_fits(growth).empty
     curves = survival_curves(lives, np.array([0.0, 10.0, 20.0]), 0.95, n_boot=20)
     assert (curves["survival"] == 1.0).all()
+
+
+def test_the_fate_section_draws_awkward_tables():
+    # Found by a run: a compound whose every rate ratio is missing, or whose interval reaches 0, broke
+    # the layout of the log-scaled panels. Each such panel now says "no events" or skips the point.
+    from plateloom.report.fate_panels import FateResults, fate_html
+
+    growth = pd.DataFrame(
+        {
+            "treatment": ["A 1 uM", "A 10 uM", "B 1 uM", "B 10 uM"],
+            "condition": ["A", "A", "B", "B"],
+            "dose": [1.0, 10.0, 1.0, 10.0],
+            "gr": [0.5, np.nan, 0.9, 0.8],
+            "gr_ci_low": [0.1, np.nan, 0.5, 0.4],
+            "gr_ci_high": [0.9, np.nan, 1.2, 1.1],
+            "note": ["", "", "", ""],
+        }
+    )
+    effects = pd.DataFrame(
+        {
+            "measure": ["division_rate", "death_rate"] * 4,
+            "treatment": np.repeat(growth["treatment"], 2).to_numpy(),
+            "condition": np.repeat(growth["condition"], 2).to_numpy(),
+            "dose": np.repeat(growth["dose"], 2).to_numpy(),
+            "n_wells": 2,
+            "n_events": [0, 0, 0, 0, 3, 0, 4, 1],
+            "ratio": [np.nan, np.nan, np.nan, np.nan, 1.2, np.nan, 0.8, 0.5],
+            "ci_low": [np.nan, np.nan, np.nan, np.nan, 0.0, np.nan, 0.3, 0.01],
+            "ci_high": [np.nan, np.nan, np.nan, np.nan, 4.0, np.nan, 2.0, 9.0],
+            "q_value": np.nan,
+            "note": ["no events under this treatment"] * 4 + ["", "no events under this treatment", "", ""],
+        }
+    )
+    survival = pd.DataFrame(columns=["treatment", "role", "time_min", "survival", "ci_low", "ci_high"])
+    fits = pd.DataFrame(
+        {"condition": ["B"], "n_doses": [2], "mode": ["no growth effect"], "fitted": [False]}
+        | {name: [np.nan] for name in ("gr_inf", "gec50", "hill", "gr50", "gr_max", "gr_aoc")}
+        | {f"{n}_{e}": [np.nan] for n in ("gr_inf", "hill", "gr50", "gr_max", "gr_aoc") for e in ("ci_low", "ci_high")}
+    )
+    html = fate_html(FateResults(effects, survival, growth, fits))
+    assert html.count("<img") == 3 and "no growth effect</b>: B" in html

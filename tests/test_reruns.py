@@ -22,7 +22,7 @@ TEMPLATE = "{well}_s{site}_{channel}.tif"
 HOSTILE = 'LOOM-104</script><img src=x onerror=document.title=42>, "x"'
 
 
-MAX_SITES = 56  # flat-field sites: the black and wrong-size sites (A02, A03) among them, some wells not
+MAX_SITES = 64  # flat-field sites: the black and wrong-size sites (A02, A03) among them, some wells not
 
 
 def _jobs(output: str) -> dict[str, int]:

@@ -101,9 +101,9 @@ def test_planted_effects_recovered_within_their_intervals(finished_screen):
     # 99% intervals around the planted log ratios (the scenario states truth as ratios to control).
     half = stats.t.ppf(0.995, merged["df"]) * merged["std_error"]
     inside = (merged["estimate"] - half <= merged["log_truth"]) & (merged["log_truth"] <= merged["estimate"] + half)
-    # With calibrated 99% intervals, misses among n are Binomial(n, 0.01); more than 3 of 63 has probability
-    # about 0.4%, while a biased measure or model misses far more often.
-    assert len(merged) == 63  # 21 treatments x 3 planted features
+    # With calibrated 99% intervals, misses among n are Binomial(n, 0.01); more than 3 of 81 has probability
+    # about 1%, while a biased measure or model misses far more often.
+    assert len(merged) == 81  # 27 treatments (the 3 with time courses have their own test) x 3 planted features
     assert (~inside).sum() <= 3, merged.loc[~inside, ["treatment", "feature", "true_ratio", "ratio"]]
     # The positive control's 95% CI on nuclear area excludes no effect (0 on the log scale).
     positive = effects[(effects["role"] == "positive_control") & (effects["feature"] == "area_um2")].iloc[0]
@@ -262,11 +262,11 @@ def test_new_plate_schedules_only_its_own_jobs_and_the_fan_ins(finished_screen):
     # a quick look at the new plate alone: its own jobs and report, no screen model
     look = run_snakemake(finished_screen, "-n", "--config", f'only_plates=["{NEW_PLATE}"]')
     look_jobs = pd.Series(re.findall(r"^rule (\w+):", look.stdout + look.stderr, flags=re.M)).value_counts().to_dict()
-    # 56 analysed wells in chunks of 24: 3 per-well jobs
+    # 74 analysed wells in chunks of 24: 4 per-well jobs
     assert look_jobs == {
         "make_demo_plate": 1,
         "estimate_illumination": 2,
-        "analyse_wells": 3,
+        "analyse_wells": 4,
         "plate_profiles": 1,
         "plate_report": 1,
         "all": 1,
@@ -278,13 +278,14 @@ def test_new_plate_schedules_only_its_own_jobs_and_the_fan_ins(finished_screen):
     assert counts == {
         "make_demo_plate": 1,
         "estimate_illumination": 2,
-        "analyse_wells": 3,
+        "analyse_wells": 4,
         "plate_profiles": 1,
         "plate_report": 1,
         "correct_batches": 1,
         "fit_effects": 3,
         "screen_effects": 1,
         "dose_response": 1,
+        "fate_effects": 1,
         "effects_over_time": 1,
         "design_check": 1,
         "screen_report": 1,

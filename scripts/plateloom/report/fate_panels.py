@@ -54,6 +54,24 @@ def _gr_table(fits: pd.DataFrame) -> pd.DataFrame:
     return table
 
 
+def _finished(figure: plt.Figure, axes: np.ndarray, used: int, ylabel: str) -> plt.Figure:
+    """Hide the unused panels, label the first, and set fixed margins (no layout pass that an
+    empty or log-scaled panel can break)."""
+    for ax in list(axes.flat)[used:]:
+        ax.set_visible(False)
+    axes[0, 0].set_ylabel(ylabel)
+    rows, columns = axes.shape
+    figure.subplots_adjust(
+        left=0.5 / (3.2 * columns) + 0.04,
+        right=0.98,
+        bottom=0.5 / (2.6 * rows),
+        top=1 - 0.3 / (2.6 * rows),
+        wspace=0.3,
+        hspace=0.55,
+    )
+    return figure
+
+
 def survival_plot(survival: pd.DataFrame, growth: pd.DataFrame) -> plt.Figure:
     """Small multiples, one per compound: the negative controls' survival (grey, pooled band) and
     each dose's (darker for higher doses), with well-bootstrap bands."""
@@ -61,23 +79,23 @@ def survival_plot(survival: pd.DataFrame, growth: pd.DataFrame) -> plt.Figure:
     columns = min(4, max(1, len(compounds)))
     rows = int(np.ceil(len(compounds) / columns)) or 1
     figure, axes = plt.subplots(rows, columns, figsize=(3.2 * columns, 2.6 * rows), squeeze=False, sharey=True)
-    controls = survival[survival["role"] == "negative_control"].groupby("time_min")[["survival"]].mean()
+    controls = survival[survival["role"] == "negative_control"].astype({"survival": float})
+    controls = controls.groupby("time_min")[["survival"]].mean()
     for ax, compound in zip(axes.flat, compounds):
         ax.step(controls.index, controls["survival"], where="post", color="0.5", label="negative controls")
         doses = growth[(growth["condition"] == compound) & (growth["dose"] > 0)].sort_values("dose")
         shades = plt.cm.Reds(np.linspace(0.45, 0.95, max(len(doses), 1)))
         for colour, (_, dose) in zip(shades, doses.iterrows()):
             curve = survival[survival["treatment"] == dose["treatment"]]
+            if curve.empty:
+                continue
+            curve = curve.astype({c: float for c in ("time_min", "survival", "ci_low", "ci_high")})
             ax.step(curve["time_min"], curve["survival"], where="post", color=colour, label=f"{dose['dose']:g}")
             ax.fill_between(curve["time_min"], curve["ci_low"], curve["ci_high"], step="post", color=colour, alpha=0.15)
         ax.set_title(compound, fontsize=9)
         ax.set_xlabel("time since first frame (min)", fontsize=8)
         ax.legend(fontsize=6, frameon=False, loc="lower left")
-    for ax in list(axes.flat)[len(compounds) :]:
-        ax.set_visible(False)
-    axes[0, 0].set_ylabel("share of cells alive")
-    figure.tight_layout()
-    return figure
+    return _finished(figure, axes, len(compounds), "share of cells alive")
 
 
 def rates_plot(effects: pd.DataFrame, growth: pd.DataFrame) -> plt.Figure:
@@ -90,7 +108,9 @@ def rates_plot(effects: pd.DataFrame, growth: pd.DataFrame) -> plt.Figure:
     for ax, compound in zip(axes.flat, compounds):
         for measure, colour, shift in (("division_rate", "tab:blue", 0.94), ("death_rate", "tab:red", 1.06)):
             mine = effects[(effects["condition"] == compound) & (effects["measure"] == measure)]
-            mine = mine[mine["ratio"].notna() & (mine["dose"] > 0)].sort_values("dose")
+            mine = mine[(mine["ratio"] > 0) & (mine["ci_low"] > 0) & (mine["dose"] > 0)].sort_values("dose")
+            if mine.empty:
+                continue
             ax.errorbar(
                 mine["dose"] * shift,
                 mine["ratio"],
@@ -102,18 +122,17 @@ def rates_plot(effects: pd.DataFrame, growth: pd.DataFrame) -> plt.Figure:
                 label=measure.replace("_", " "),
             )
         ax.axhline(1.0, color="0.6", lw=0.8, ls="--")
-        ax.set_yscale("log")
-        _plain_log_axis(ax)
-        ax.yaxis.set_major_formatter(FuncFormatter(lambda value, _: f"{value:g}"))
-        ax.yaxis.set_minor_formatter(NullFormatter())
+        if ax.has_data() and len(ax.lines) > 1:
+            ax.set_yscale("log")
+            _plain_log_axis(ax)
+            ax.yaxis.set_major_formatter(FuncFormatter(lambda value, _: f"{value:g}"))
+            ax.yaxis.set_minor_formatter(NullFormatter())
+            ax.legend(fontsize=6, frameon=False)
+        else:
+            ax.text(0.5, 0.5, "no events", transform=ax.transAxes, ha="center", fontsize=8)
         ax.set_title(compound, fontsize=9)
         ax.set_xlabel("dose", fontsize=8)
-        ax.legend(fontsize=6, frameon=False)
-    for ax in list(axes.flat)[len(compounds) :]:
-        ax.set_visible(False)
-    axes[0, 0].set_ylabel("rate ratio to controls")
-    figure.tight_layout()
-    return figure
+    return _finished(figure, axes, len(compounds), "rate ratio to controls")
 
 
 def gr_plot(growth: pd.DataFrame, fits: pd.DataFrame) -> plt.Figure:
@@ -140,14 +159,11 @@ def gr_plot(growth: pd.DataFrame, fits: pd.DataFrame) -> plt.Figure:
         for level in (0.0, 1.0):
             ax.axhline(level, color="0.6", lw=0.8, ls="--")
         ax.set_ylim(-1.1, 2.0)
-        _plain_log_axis(ax)
+        if len(doses):
+            _plain_log_axis(ax)
         ax.set_title(compound, fontsize=9)
         ax.set_xlabel("dose", fontsize=8)
-    for ax in list(axes.flat)[len(compounds) :]:
-        ax.set_visible(False)
-    axes[0, 0].set_ylabel("GR value")
-    figure.tight_layout()
-    return figure
+    return _finished(figure, axes, len(compounds), "GR value")
 
 
 def _modes_line(fits: pd.DataFrame) -> str:
@@ -189,7 +205,7 @@ def fate_html(fate: FateResults | None) -> str:
         else _modes_line(fate.gr_curves)
         + folded(
             "GR50, GRmax, GR_inf, Hill slope and GR_AOC per compound, and the GR curves",
-            table_tag(_gr_table(fate.gr_curves)) + figure_tag(gr_plot(growth, fate.gr_curves), "GR curves"),
+            table_tag(_gr_table(fate.gr_curves)) + figure_tag(gr_plot(growth, fate.gr_curves), "GR curves", trim=False),
         )
     )
     notes = fate.effects[fate.effects["note"] != ""][["measure", "treatment", "note"]]
@@ -204,13 +220,13 @@ def fate_html(fate: FateResults | None) -> str:
         "the negative controls with its interval [low, high] and BH q-value within the measure:</p>"
         + folded(
             "Division and death rate ratios against dose, per compound",
-            figure_tag(rates_plot(fate.effects, growth), "division and death rate ratios against dose"),
+            figure_tag(rates_plot(fate.effects, growth), "division and death rate ratios against dose", trim=False),
         )
         + folded("The rate and hazard ratios of every treatment", table_tag(_ratio_table(fate.effects)))
         + ("" if notes.empty else folded(f"{len(notes)} rows with a note", table_tag(notes)))
         + folded(
             "Survival curves per compound (Kaplan-Meier, well-bootstrap bands)",
-            figure_tag(survival_plot(fate.survival, growth), "survival curves"),
+            figure_tag(survival_plot(fate.survival, growth), "survival curves", trim=False),
         )
         + "<p>Event calls rest on the rules in config fate; check them on your own images.</p>"
     )
