@@ -280,3 +280,16 @@ def test_streamed_fan_in_names_the_file_when_a_cells_table_lacks_a_key_column(tm
     with pytest.raises(InputError, match="time_min") as error:
         summarise_observation_files(folders, pd.DataFrame({"well": [], "site": [], "frame": []}))
     assert "part-0.parquet" in str(error.value) and "re-run the per-well jobs" in str(error.value)
+
+
+def test_fate_counts_are_integers_and_zero_for_a_well_without_cells():
+    # A well with no usable frame (every image unreadable) has no counts; its fate counts are 0, not
+    # missing, so the column is int64 on every plate (readers refuse to stack int64 and float files).
+    cells, tracks, qc, layout = _plate()
+    cells = cells[cells["well"] != "B02"].assign(time_min=lambda t: t["frame"] * 10.0)
+    tracks = tracks[tracks["well"] != "B02"].assign(parent_track=-1, duration_min=10.0, end_event="")
+    tracks.loc[tracks.index[:3], "end_event"] = "death"
+    profile = plate_tables(cells, tracks, qc, layout).profile.set_index("well")
+    assert profile["n_deaths"].dtype == profile["n_divisions"].dtype == np.int64
+    assert profile.loc["B02", ["n_deaths", "n_divisions", "cell_hours"]].tolist() == [0, 0, 0.0]
+    assert profile["n_deaths"].sum() == 3 and profile.loc["A01", "cell_hours"] == pytest.approx(20 * 2 * 10 / 60)

@@ -251,6 +251,9 @@ def _well_profile(observed: _Observed, tables: WellTables, design: PlateDesign, 
     fate = well_fate(observed.counts, tables.tracks)
     if len(fate.columns):
         profile = profile.merge(fate.reset_index(), on="well", how="left", validate="one_to_one")
+        for column in ("n_divisions", "n_deaths"):  # 0 for a well with no usable frame, int on every plate
+            profile[column] = profile[column].fillna(0).astype(np.int64)
+        profile["cell_hours"] = profile["cell_hours"].fillna(0.0)
     measured = observed.counts.groupby("well", observed=True)["observations"].sum()
     used = kept_counts.groupby("well", observed=True)["whole"].sum()
     measured.index, used.index = measured.index.astype(str), used.index.astype(str)
