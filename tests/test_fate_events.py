@@ -170,3 +170,20 @@ def test_well_fate_rates_by_hand():
     assert fate["died_fraction"] == pytest.approx(1 / (4 + 1))
     assert fate["cycle_time_min"] == pytest.approx(20.0)
     assert well_fate(counts, tracks.drop(columns="end_event")).empty
+
+
+def test_a_well_without_events_writes_the_schema_of_a_well_with_events(tmp_path):
+    # Found by the four-reader check: an empty text column became Arrow's null type in one well's file
+    # and text in the others, so the folder no longer opened as one table.
+    import pyarrow.parquet as pq
+
+    from plateloom.io.tables import write_parquet
+
+    quiet = _track(1, 0, range(4), [100.0] * 4, [50.0] * 4)
+    dying = pd.concat([quiet, _track(1, 1, range(8), [100.0] * 6 + [140, 150], [50.0] * 6 + [35, 30], x=200.0)])
+    for cells in (quiet, dying, quiet.iloc[:0]):
+        events = fate_events(cells, RULE, 5.0)
+        path = tmp_path / f"{len(cells)}.parquet"
+        write_parquet(events.assign(plate="P1", well="A01"), str(path), {})
+    schemas = {str(pq.read_schema(path).remove_metadata()) for path in tmp_path.glob("*.parquet")}
+    assert len(schemas) == 1, schemas
