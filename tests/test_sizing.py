@@ -29,7 +29,7 @@ def test_the_quick_demo_is_the_scenarios_quick_section_and_full_keeps_its_own_nu
 
     path = str(Path(__file__).resolve().parents[1] / "resources/demo/scenario.yaml")
     quick, full = load_scenario(path, size="quick"), load_scenario(path)
-    assert (quick["frames"], quick["image_size_px"], quick["cells_per_site"]) == (18, 88, 8)
+    assert (quick["frames"], quick["image_size_px"], quick["cells_per_site"]) == (16, 88, 8)
     assert (full["frames"], full["image_size_px"], full["cells_per_site"]) == (36, 160, 18)
     assert "quick" not in quick and "quick" not in full
     assert load_scenario(path, frames=3, size="quick")["frames"] == 3  # explicit overrides win
