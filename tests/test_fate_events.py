@@ -19,7 +19,7 @@ from conftest import nuclear_only_settings
 from plateloom.demo.realistic_timelapse import TimeLapseSettings, simulate_time_lapse
 from plateloom.io.images import index_plate_images
 from plateloom.plate.fate import well_fate
-from plateloom.well.events import DeathRule, death_events, fate_events
+from plateloom.well.events import DeathRule, death_events, end_events, fate_events
 from plateloom.well.stage import analyse_well
 
 PIXEL_UM, INTERVAL_MIN, RIM_UM, MATCH_UM = 0.65, 5.0, 10.0, 12.0
@@ -186,4 +186,15 @@ def test_a_well_without_events_writes_the_schema_of_a_well_with_events(tmp_path)
         path = tmp_path / f"{len(cells)}.parquet"
         write_parquet(events.assign(plate="P1", well="A01"), str(path), {})
     schemas = {str(pq.read_schema(path).remove_metadata()) for path in tmp_path.glob("*.parquet")}
+    assert len(schemas) == 1, schemas
+    # the tracks' end_event, with tracks and events, with tracks and none, and without tracks
+    tracks = pd.DataFrame({"track": [0, 1]})
+    for name, table, events in (
+        ("some", tracks, fate_events(dying, RULE, 5.0)),
+        ("none", tracks, fate_events(quiet, RULE, 5.0)),
+        ("empty", tracks.iloc[:0], fate_events(quiet, RULE, 5.0)),
+    ):
+        ended = table.assign(end_event=end_events(table, events), plate="P1", well="A01")
+        write_parquet(ended, str(tmp_path / f"tracks_{name}.parquet"), {})
+    schemas = {str(pq.read_schema(path).remove_metadata()) for path in tmp_path.glob("tracks_*.parquet")}
     assert len(schemas) == 1, schemas

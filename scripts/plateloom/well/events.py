@@ -176,4 +176,5 @@ def end_events(tracks: pd.DataFrame, events: pd.DataFrame) -> pd.Series:
     """Per track: how it ends ("division", "death" or "" when it is still seen at the last frame,
     leaves the field or is lost)."""
     ended = tracks["track"].map(events.set_index("track")["event"])
-    return pd.Series(np.where(ended.notna(), ended, ""), index=tracks.index, dtype=object)
+    # the text dtype, not object: Arrow writes both the same way then, with tracks or without
+    return pd.Series(np.where(ended.notna(), ended, ""), index=tracks.index, dtype="str")
