@@ -106,7 +106,10 @@ def test_every_results_table_opens_as_one_table_with_four_readers(screen_with_ba
             assert sorted(columns) == sorted(with_pandas.columns), folder.name
         plates = set(with_pandas["plate"].astype(str))
         assert plates == set(with_polars["plate"].cast(pl.String)) == set(with_duckdb["plate"].astype(str))
-        assert plates <= set(PLATES) and (folder.name == "exclusions" or plates == set(PLATES)), (folder.name, plates)
+        # a ledger and an events table may have no row of a plate (nothing excluded, or too few
+        # frames for a division or a death: this screen has 3)
+        sparse = ("exclusions", "events")
+        assert plates <= set(PLATES) and (folder.name in sparse or plates == set(PLATES)), (folder.name, plates)
 
 
 def readme_snippets() -> list[str]:
