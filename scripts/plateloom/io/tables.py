@@ -8,7 +8,6 @@ import os
 import platform
 from collections.abc import Iterator
 from contextlib import contextmanager
-from functools import lru_cache
 from importlib import metadata
 
 import pandas as pd
@@ -91,12 +90,6 @@ def _keys_as_partitions(table: pa.Table, path: str) -> pa.Table:
     return table
 
 
-@lru_cache(maxsize=1)
-def _text_type() -> pa.DataType:
-    """The Arrow type this pandas gives a column of text (string, or large_string with pandas 3)."""
-    return pa.Table.from_pandas(pd.DataFrame({"text": ["a"]}), preserve_index=False).schema.field("text").type
-
-
 def write_parquet(frame: pd.DataFrame, path: str, settings: object, extra: dict | None = None) -> None:
     """Write ``frame`` to ``path`` atomically (temporary file in the same folder, then rename).
 
@@ -106,8 +99,10 @@ def write_parquet(frame: pd.DataFrame, path: str, settings: object, extra: dict 
     """
     table = _keys_as_partitions(pa.Table.from_pandas(frame, preserve_index=False), path)
     for i, field in enumerate(table.schema):
-        if pa.types.is_null(field.type):  # an empty text column (no event in a well): text, as in the other files
-            table = table.set_column(i, field.name, table.column(i).cast(_text_type()))
+        # one Arrow type for text, whatever pandas held it in (object or str dtype: string or
+        # large_string) and for an empty text column (null), so every file of a table has one schema
+        if pa.types.is_null(field.type) or pa.types.is_string(field.type):
+            table = table.set_column(i, field.name, table.column(i).cast(pa.large_string()))
     meta = dict(table.schema.metadata or {})
     meta[PROVENANCE_KEY] = json.dumps(provenance(settings), sort_keys=True).encode()
     if extra is not None:

@@ -12,6 +12,7 @@ import pandas as pd
 from matplotlib.ticker import FuncFormatter, NullFormatter
 
 from plateloom.report.html import figure_tag, folded, table_tag
+from plateloom.report.time_panels import fixed_margins
 from plateloom.screen.growth_inhibition import gr_curve
 
 
@@ -54,21 +55,20 @@ def _gr_table(fits: pd.DataFrame) -> pd.DataFrame:
     return table
 
 
+def _compound_grid(n_compounds: int) -> tuple[plt.Figure, np.ndarray]:
+    """Small multiples, up to 4 a row, one per compound, sharing the y axis."""
+    columns = min(4, max(1, n_compounds))
+    rows = int(np.ceil(n_compounds / columns)) or 1
+    return plt.subplots(rows, columns, figsize=(3.2 * columns, 2.6 * rows), squeeze=False, sharey=True)
+
+
 def _finished(figure: plt.Figure, axes: np.ndarray, used: int, ylabel: str) -> plt.Figure:
-    """Hide the unused panels, label the first, and set fixed margins (no layout pass that an
-    empty or log-scaled panel can break)."""
+    """Hide the unused panels, label the first, and set fixed margins (``time_panels.fixed_margins``:
+    no layout pass that an empty or log-scaled panel can break)."""
     for ax in list(axes.flat)[used:]:
         ax.set_visible(False)
     axes[0, 0].set_ylabel(ylabel)
-    rows, columns = axes.shape
-    figure.subplots_adjust(
-        left=0.5 / (3.2 * columns) + 0.04,
-        right=0.98,
-        bottom=0.5 / (2.6 * rows),
-        top=1 - 0.3 / (2.6 * rows),
-        wspace=0.3,
-        hspace=0.55,
-    )
+    fixed_margins(figure, axes.shape[0])
     return figure
 
 
@@ -76,9 +76,7 @@ def survival_plot(survival: pd.DataFrame, growth: pd.DataFrame) -> plt.Figure:
     """Small multiples, one per compound: the negative controls' survival (grey, pooled band) and
     each dose's (darker for higher doses), with well-bootstrap bands."""
     compounds = _compounds(growth)
-    columns = min(4, max(1, len(compounds)))
-    rows = int(np.ceil(len(compounds) / columns)) or 1
-    figure, axes = plt.subplots(rows, columns, figsize=(3.2 * columns, 2.6 * rows), squeeze=False, sharey=True)
+    figure, axes = _compound_grid(len(compounds))
     controls = survival[survival["role"] == "negative_control"].astype({"survival": float})
     controls = controls.groupby("time_min")[["survival"]].mean()
     for ax, compound in zip(axes.flat, compounds):
@@ -102,9 +100,7 @@ def rates_plot(effects: pd.DataFrame, growth: pd.DataFrame) -> plt.Figure:
     """Division and death rate ratios to the negative controls against dose, with intervals, one
     panel per compound (log-log; 1 = the controls' rate)."""
     compounds = _compounds(growth)
-    columns = min(4, max(1, len(compounds)))
-    rows = int(np.ceil(len(compounds) / columns)) or 1
-    figure, axes = plt.subplots(rows, columns, figsize=(3.2 * columns, 2.6 * rows), squeeze=False, sharey=True)
+    figure, axes = _compound_grid(len(compounds))
     for ax, compound in zip(axes.flat, compounds):
         for measure, colour, shift in (("division_rate", "tab:blue", 0.94), ("death_rate", "tab:red", 1.06)):
             mine = effects[(effects["condition"] == compound) & (effects["measure"] == measure)]
@@ -138,9 +134,7 @@ def rates_plot(effects: pd.DataFrame, growth: pd.DataFrame) -> plt.Figure:
 def gr_plot(growth: pd.DataFrame, fits: pd.DataFrame) -> plt.Figure:
     """GR value per dose with its interval and the fitted GR sigmoid, one panel per compound."""
     compounds = _compounds(growth)
-    columns = min(4, max(1, len(compounds)))
-    rows = int(np.ceil(len(compounds) / columns)) or 1
-    figure, axes = plt.subplots(rows, columns, figsize=(3.2 * columns, 2.6 * rows), squeeze=False, sharey=True)
+    figure, axes = _compound_grid(len(compounds))
     fitted = fits.set_index("condition") if len(fits) else pd.DataFrame()
     for ax, compound in zip(axes.flat, compounds):
         doses = growth[(growth["condition"] == compound) & (growth["dose"] > 0) & growth["gr"].notna()]

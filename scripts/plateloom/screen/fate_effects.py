@@ -6,11 +6,12 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 from scipy import stats
-from statsmodels.stats.multitest import multipletests
 
 from plateloom.columns import REFERENCE_ROLE
 from plateloom.screen.fate_models import hazard_ratios, rate_ratios, survival_band
 from plateloom.screen.growth_inhibition import fit_gr_curve, growth_mode
+from plateloom.screen.model_wells import in_model
+from plateloom.stats import bh_qvalues
 
 FATE_EFFECT_COLUMNS = [
     "measure",
@@ -29,9 +30,17 @@ FATE_EFFECT_COLUMNS = [
 
 
 def kept_wells(wells: pd.DataFrame) -> pd.DataFrame:
-    """The wells the screen model uses: not excluded, on plates not excluded, not empty."""
-    kept = (wells["excluded_by"].fillna("") == "") & (wells["plate_excluded_by"].fillna("") == "")
-    return wells[kept & (wells["role"] != "empty")]
+    """The wells the screen model uses (``model_wells.in_model``)."""
+    return wells[in_model(wells)]
+
+
+def _with_design(table: pd.DataFrame, wells: pd.DataFrame) -> pd.DataFrame:
+    """``table`` (a treatment column) with each treatment's condition and dose from ``wells``."""
+    first = wells.drop_duplicates("treatment")
+    design = first.set_index(first["treatment"].astype(str))
+    return table.assign(
+        condition=table["treatment"].map(design["condition"]), dose=table["treatment"].map(design["dose"])
+    )
 
 
 def track_lives(tracks: pd.DataFrame, wells: pd.DataFrame) -> pd.DataFrame:
@@ -65,15 +74,8 @@ def fate_effects(wells: pd.DataFrame, lives: pd.DataFrame, level: float) -> pd.D
     wells_per_treatment = wells.groupby(wells["treatment"].astype(str)).size()
     parts.append(hazards.assign(measure="death_hazard", n_wells=hazards["treatment"].map(wells_per_treatment)))
     table = pd.concat(parts, ignore_index=True)
-    table["q_value"] = np.nan
-    for _, rows in table.groupby("measure"):
-        tested = rows["p_value"].notna()
-        if tested.any():
-            table.loc[rows.index[tested], "q_value"] = multipletests(rows.loc[tested, "p_value"], method="fdr_bh")[1]
-    doses = wells.drop_duplicates("treatment").set_index(wells.drop_duplicates("treatment")["treatment"].astype(str))
-    table["condition"] = table["treatment"].map(doses["condition"])
-    table["dose"] = table["treatment"].map(doses["dose"])
-    return table[FATE_EFFECT_COLUMNS]
+    table["q_value"] = table.groupby("measure")["p_value"].transform(lambda p: bh_qvalues(p.to_numpy(float)))
+    return _with_design(table, wells)[FATE_EFFECT_COLUMNS]
 
 
 def survival_curves(lives: pd.DataFrame, times: np.ndarray, level: float, n_boot: int = 200) -> pd.DataFrame:
@@ -173,12 +175,7 @@ def gr_values_per_treatment(wells: pd.DataFrame, level: float) -> pd.DataFrame:
             row.update(_gr_interval(beta, cov, n_plates, n_plates, stats.t.ppf(0.5 + level / 2.0, df)))
             row["mode"] = growth_mode(row["gr_ci_low"], row["gr_ci_high"])
         rows.append(row)
-    table = pd.DataFrame(rows, columns=GR_COLUMNS)
-    first = wells.drop_duplicates("treatment")
-    design = first.set_index(first["treatment"].astype(str))
-    table["condition"] = table["treatment"].map(design["condition"])
-    table["dose"] = table["treatment"].map(design["dose"])
-    return table
+    return _with_design(pd.DataFrame(rows, columns=GR_COLUMNS), wells)
 
 
 GR_FIT_COLUMNS = [

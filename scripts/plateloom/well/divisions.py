@@ -81,48 +81,6 @@ def _kept_pairs(
     return pairs.row[keep], pairs.col[keep], pairs.data[keep]
 
 
-def _ended_mothers(
-    frame: np.ndarray,
-    track: np.ndarray,
-    t: int,
-    ended: np.ndarray,
-    new: np.ndarray,
-    rounding: np.ndarray,
-    xy_um: tuple[np.ndarray, np.ndarray],
-    rule: DivisionRule,
-) -> list[tuple[int, int, int]]:
-    """(mother, daughter, daughter) for tracks that end at t - 1 with two new tracks starting at t
-    within the rule's distance of their last position (the linking gave neither daughter the
-    mother's track), each new track used once, nearest pairs first; the rule's rounding and
-    daughter lengths apply."""
-    x_um, y_um = xy_um
-    if len(ended) == 0 or len(new) < 2:
-        return []
-    mother_rows = _first_rows(frame == t - 1, track, ended)
-    if rule.intensity is not None:
-        has_earlier = np.isin(ended, track[frame == t - 2])
-        earlier_rows = mother_rows.copy()
-        earlier_rows[has_earlier] = _first_rows(frame == t - 2, track, ended[has_earlier])
-        rounded = np.fmax(rounding[mother_rows], rounding[earlier_rows]) >= rule.min_rounding
-        ended, mother_rows = ended[rounded], mother_rows[rounded]
-    new_rows = _first_rows(frame == t, track, new)
-    long_enough = np.bincount(track, minlength=int(track.max()) + 1)[new] >= rule.min_daughter_frames
-    new, new_rows = new[long_enough], new_rows[long_enough]
-    if len(ended) == 0 or len(new) < 2:
-        return []
-    tree = cKDTree(np.column_stack([x_um[new_rows], y_um[new_rows]]))
-    distance, nearest = tree.query(
-        np.column_stack([x_um[mother_rows], y_um[mother_rows]]), k=2, distance_upper_bound=rule.max_distance_um
-    )
-    found, used = [], set()
-    for m in np.argsort(distance.sum(axis=1)):
-        pair = nearest[m]
-        if np.all(np.isfinite(distance[m])) and not used.intersection(pair):
-            used.update(pair.tolist())
-            found.append((int(ended[m]), int(new[pair[0]]), int(new[pair[1]])))
-    return found
-
-
 def split_dim_heads(frame: np.ndarray, track: np.ndarray, intensity: np.ndarray, share: float = 0.5) -> np.ndarray:
     """Track ids with each track's leading observations dimmer than ``share`` of its median given
     their own id: the glow around a rounded, saturated mother is segmented as a faint object that the
@@ -151,9 +109,7 @@ def find_divisions(
 
     Each such pair (cost: distance of the new start to the continuing track's position at t - 1)
     that ``rule`` keeps is chosen by a LAP per frame, so a mother divides at most once per frame.
-    A track that ends at t - 1 next to two new tracks starting at t is a mother too
-    (``_ended_mothers``). With intensities, dim leading observations of a track are split off first
-    (``split_dim_heads``).
+    With intensities, dim leading observations of a track are split off first (``split_dim_heads``).
     The mother's track ends at t - 1; from t on, both daughters get their own track ids. Returns
     new track ids and a table (track, parent_track) listing every daughter.
     """
@@ -170,10 +126,6 @@ def find_divisions(
         new = np.setdiff1d(tracks_now, seen)
         seen = np.union1d(seen, tracks_now)
         continuing = np.intersect1d(tracks_now, tracks_before)
-        ended = np.setdiff1d(tracks_before, tracks_now)
-        for mother, first, second in _ended_mothers(frame, track, t, ended, new, rounding, (x_um, y_um), rule):
-            parents += [(first, mother), (second, mother)]
-            new = np.setdiff1d(new, [first, second])
         if len(new) == 0 or len(continuing) == 0:
             continue
         rows, cols, distance = _kept_pairs(frame, track, t, new, continuing, rounding, (x_um, y_um), rule)

@@ -14,6 +14,10 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
+# A daughter starts about one nuclear diameter from its mother's centre: the default reach of a
+# division link, and how close a new track must start to a track's end to explain it as one.
+DAUGHTER_REACH_DIAMETERS = 1.25
+
 EVENT_COLUMNS = (
     "site",
     "track",
@@ -54,7 +58,7 @@ def division_distance_um(config: dict) -> float | None:
     if not fate["divisions"] or (interval is not None and interval > fate["max_division_frame_interval_min"]):
         return None
     chosen = config["tracking"]["division_max_distance_um"]
-    return float(chosen) if chosen else 1.25 * float(config["segmentation"]["nucleus_diameter_um"])
+    return float(chosen) if chosen else DAUGHTER_REACH_DIAMETERS * float(config["segmentation"]["nucleus_diameter_um"])
 
 
 def _ratios_to_median_before(sorted_cells: pd.DataFrame, column: str, keys: list[str]) -> pd.Series:
@@ -66,6 +70,35 @@ def _ratios_to_median_before(sorted_cells: pd.DataFrame, column: str, keys: list
     return (values / baseline).where(baseline > 0)
 
 
+KEYS = ["site", "track"]
+
+
+@dataclass(frozen=True)
+class _Measured:
+    """One well's observations in track order and, per observation, its ratios to its track's median
+    before the track's last two frames (nuclear intensity, area, reporter; NaN without one)."""
+
+    ordered: pd.DataFrame
+    nuclear: pd.Series
+    area: pd.Series
+    reporter: pd.Series
+
+
+def _measured(cells: pd.DataFrame, rule: DeathRule) -> _Measured:
+    ordered = cells.sort_values(KEYS + ["frame"], kind="stable")
+    reporter = (
+        _ratios_to_median_before(ordered, f"mean_intensity_{rule.reporter_channel}", KEYS)
+        if rule.reporter_channel
+        else pd.Series(np.nan, index=ordered.index)
+    )
+    return _Measured(
+        ordered,
+        _ratios_to_median_before(ordered, f"mean_intensity_{rule.nuclei_channel}", KEYS),
+        _ratios_to_median_before(ordered, "area_um2", KEYS),
+        reporter,
+    )
+
+
 def death_events(cells: pd.DataFrame, rule: DeathRule) -> pd.DataFrame:
     """Deaths in the observations of one well (see ``DeathRule`` and the module docstring).
 
@@ -73,30 +106,26 @@ def death_events(cells: pd.DataFrame, rule: DeathRule) -> pd.DataFrame:
     area_um2, mean_intensity_<nuclei channel> (and of the reporter channel, if the rule has one).
     The event's frame is the first of the last two frames that shows a sign.
     """
-    keys = ["site", "track"]
-    ordered = cells.sort_values(keys + ["frame"], kind="stable")
+    return _deaths(_measured(cells, rule), rule)
+
+
+def _deaths(measured: _Measured, rule: DeathRule) -> pd.DataFrame:
+    ordered, nuclear, area, reporter = measured.ordered, measured.nuclear, measured.area, measured.reporter
     last_frame = ordered.groupby("site")["frame"].transform("max")
-    grouped = ordered.groupby(keys, sort=False)
+    grouped = ordered.groupby(KEYS, sort=False)
     length, end = grouped["frame"].transform("size"), grouped["frame"].transform("max")
     mothers = pd.MultiIndex.from_frame(ordered.loc[ordered["parent_track"] >= 0, ["site", "parent_track"]])
-    is_mother = pd.Series(pd.MultiIndex.from_frame(ordered[keys]).isin(mothers), index=ordered.index)
+    is_mother = pd.Series(pd.MultiIndex.from_frame(ordered[KEYS]).isin(mothers), index=ordered.index)
     at_edge = ordered["touches_border"].astype(bool)
     if "edge_distance_um" in ordered.columns:
         at_edge = at_edge | (ordered["edge_distance_um"] < rule.min_edge_distance_um)
-    end_at_edge = at_edge.groupby([ordered[k] for k in keys], sort=False).transform("last").astype(bool)
+    end_at_edge = at_edge.groupby([ordered[k] for k in KEYS], sort=False).transform("last").astype(bool)
     candidate = (length >= 3) & (end < last_frame) & ~is_mother & ~end_at_edge
     in_tail = grouped.cumcount(ascending=False) < 2
-    nuclear = _ratios_to_median_before(ordered, f"mean_intensity_{rule.nuclei_channel}", keys)
-    area = _ratios_to_median_before(ordered, "area_um2", keys)
-    reporter = (
-        _ratios_to_median_before(ordered, f"mean_intensity_{rule.reporter_channel}", keys)
-        if rule.reporter_channel
-        else pd.Series(np.nan, index=ordered.index)
-    )
     condensed = (nuclear >= rule.min_brightening) & (area <= rule.max_area_ratio)
     sign = condensed | (reporter >= rule.min_reporter_ratio)
-    hits = ordered[candidate & in_tail & sign].drop_duplicates(keys, keep="first")
-    ends = ordered.drop_duplicates(keys, keep="last").set_index(keys).loc[pd.MultiIndex.from_frame(hits[keys])]
+    hits = ordered[candidate & in_tail & sign].drop_duplicates(KEYS, keep="first")
+    ends = ordered.drop_duplicates(KEYS, keep="last").set_index(KEYS).loc[pd.MultiIndex.from_frame(hits[KEYS])]
     succeeded = _followed_by_a_start(ordered, ends, rule.successor_distance_um)
     return _event_rows(hits[~succeeded], "death", nuclear, area, reporter)
 
@@ -124,18 +153,18 @@ def division_events(cells: pd.DataFrame, rule: DeathRule) -> pd.DataFrame:
     """Divisions in the observations of one well: one row per mother (parent_track of daughters),
     at its last frame, with the frame of the division (the daughters' first) and the mother's
     rounding (nuclear mean intensity in its last frame over its track's median before)."""
-    keys = ["site", "track"]
-    daughters = cells[cells["parent_track"] >= 0]
+    return _divisions(_measured(cells, rule))
+
+
+def _divisions(measured: _Measured) -> pd.DataFrame:
+    ordered = measured.ordered
+    daughters = ordered[ordered["parent_track"] >= 0]
     first_of_daughters = daughters.groupby(["site", "parent_track"])["frame"].min()
-    ordered = cells.sort_values(keys + ["frame"], kind="stable")
-    nuclear = _ratios_to_median_before(ordered, f"mean_intensity_{rule.nuclei_channel}", keys)
-    area = _ratios_to_median_before(ordered, "area_um2", keys)
-    last = ordered.drop_duplicates(keys, keep="last")
-    index = pd.MultiIndex.from_frame(last[keys])
-    mothers = last[index.isin(first_of_daughters.index)].copy()
-    mother_index = pd.MultiIndex.from_frame(mothers[keys])
-    rows = _event_rows(mothers, "division", nuclear, area, pd.Series(np.nan, index=ordered.index))
-    rows["frame"] = first_of_daughters.reindex(mother_index).to_numpy(np.int64)
+    last = ordered.drop_duplicates(KEYS, keep="last")
+    mothers = last[pd.MultiIndex.from_frame(last[KEYS]).isin(first_of_daughters.index)]
+    no_reporter = pd.Series(np.nan, index=ordered.index)
+    rows = _event_rows(mothers, "division", measured.nuclear, measured.area, no_reporter)
+    rows["frame"] = first_of_daughters.reindex(pd.MultiIndex.from_frame(mothers[KEYS])).to_numpy(np.int64)
     return rows
 
 
@@ -163,7 +192,8 @@ def fate_events(cells: pd.DataFrame, rule: DeathRule, frame_interval_min: float)
     """Every division and death of one well's tracks, ordered by site, frame and track."""
     if cells.empty:
         return pd.DataFrame({c: pd.Series(dtype=_dtype(c)) for c in EVENT_COLUMNS})
-    events = pd.concat([division_events(cells, rule), death_events(cells, rule)], ignore_index=True)
+    measured = _measured(cells, rule)
+    events = pd.concat([_divisions(measured), _deaths(measured, rule)], ignore_index=True)
     events["time_min"] = events["frame"] * frame_interval_min
     return events.sort_values(["site", "frame", "track"], kind="stable").reset_index(drop=True)
 
@@ -176,5 +206,4 @@ def end_events(tracks: pd.DataFrame, events: pd.DataFrame) -> pd.Series:
     """Per track: how it ends ("division", "death" or "" when it is still seen at the last frame,
     leaves the field or is lost)."""
     ended = tracks["track"].map(events.set_index("track")["event"])
-    # the text dtype, not object: Arrow writes both the same way then, with tracks or without
-    return pd.Series(np.where(ended.notna(), ended, ""), index=tracks.index, dtype="str")
+    return pd.Series(np.where(ended.notna(), ended, ""), index=tracks.index, dtype=object)

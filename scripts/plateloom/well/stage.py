@@ -14,7 +14,7 @@ from plateloom.io.planes import saturation_masks
 from plateloom.settings import FromSchema
 from plateloom.well.cell_bodies import grow_cell_bodies
 from plateloom.well.divisions import DivisionRule, find_divisions
-from plateloom.well.events import DeathRule, division_distance_um
+from plateloom.well.events import DAUGHTER_REACH_DIAMETERS, DeathRule, division_distance_um
 from plateloom.well.features import measure_objects, neighbourhood
 from plateloom.well.illumination import apply_flat_field
 from plateloom.well.image_qc import background_levels, focus_score, segmentation_jumps
@@ -116,7 +116,7 @@ class WellSettings(FromSchema):
             self.nuclei_channel,
             self.reporter_channels[0] if self.reporter_channels else None,
             self.death_min_edge_distance_um,
-            self.division_max_distance_um or 1.25 * self.nucleus_diameter_um,
+            self.division_max_distance_um or DAUGHTER_REACH_DIAMETERS * self.nucleus_diameter_um,
         )
 
     @property
