@@ -23,11 +23,13 @@ def _walk(step_sd_um: float, cells: int = 60, frames: int = 12, seed: int = 4) -
     return np.concatenate([start[None], start[None] + np.cumsum(steps, axis=0)])
 
 
-def _link_all(positions: np.ndarray, cutoff: float | None) -> tuple[np.ndarray, pd.DataFrame, FrameLinker]:
+def _link_all(
+    positions: np.ndarray, cutoff: float | None, features: np.ndarray | None = None
+) -> tuple[np.ndarray, pd.DataFrame, FrameLinker]:
     linker = FrameLinker(cutoff)
     tracks, rows = [], []
     for frame, xy in enumerate(positions):
-        tracks.append(linker.tracks_of(xy))
+        tracks.append(linker.tracks_of(xy, None if features is None else features[frame]))
         rows.append({"well": "B02", "site": 1, "frame": frame} | linker.last)
     return np.array(tracks), pd.DataFrame(rows), linker
 
@@ -72,3 +74,29 @@ def test_the_estimate_scales_with_the_movement(step_sd_um):
 def test_a_generous_cutoff_is_quiet():
     tracks, qc, _ = _link_all(_walk(step_sd_um=1.0), 10.0)
     assert _correct_links(tracks) > 0.99 and linking_notes(qc) == []
+
+
+def _appearances(cells: int, frames: int, seed: int = 5) -> np.ndarray:
+    """(frames, cells, 2) log nuclear brightness and log area: each cell its own (brightness
+    log-normal over more than a decade, SD 0.8; area SD 0.2), measured with 5% noise a frame."""
+    rng = np.random.default_rng(seed)
+    own = np.column_stack([rng.normal(6, 0.8, cells), rng.normal(4.5, 0.2, cells)])
+    return own[None] + rng.normal(0, 0.05, (frames, cells, 2))
+
+
+def test_appearance_tells_apart_cells_that_come_close():
+    # steps of 17 um rms among 120 nuclei in 600 um: position alone mixes up cells that come close
+    positions = _walk(step_sd_um=12.0, cells=120)
+    features = _appearances(*positions.shape[1::-1])
+    by_position, _, _ = _link_all(positions, None)
+    by_both, _, _ = _link_all(positions, None, features)
+    assert _correct_links(by_position) < 0.87  # measured 0.839
+    assert _correct_links(by_both) > 0.95  # measured 0.973
+
+
+def test_a_cell_that_rounds_up_keeps_its_track():
+    positions = _walk(step_sd_um=2.0)
+    features = _appearances(*positions.shape[1::-1])
+    features[6:, 0, 0] += np.log(10)  # cell 0 rounds up at frame 6: ten times brighter from then on
+    tracks, _, _ = _link_all(positions, None, features)
+    assert len(set(tracks[:, 0])) == 1

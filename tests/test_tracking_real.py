@@ -64,10 +64,13 @@ def _true_speeds(table: pd.DataFrame, min_frames: int = 3) -> pd.Series:
     return summary["path"] / ((summary["last"] - summary["first"]) * INTERVAL_MIN)
 
 
-@pytest.mark.parametrize("speed_um_per_min", [0.5, 1.0, 2.0])
+@pytest.mark.parametrize("speed_um_per_min", [0.5, 1.0, 2.0, 3.2])
 def test_tracks_hold_at_every_speed_and_speed_is_unbiased(tmp_path, speed_um_per_min):
     # 2 um/min is a median true step of 8.8 um a frame (3 seeds), and 16% of steps are longer than
-    # 16 um, twice the linking distance that was the default before it was estimated
+    # 16 um, twice the linking distance that was the default before it was estimated; at 3.2 um/min
+    # the median step is 16 um. Measured (3 seeds pooled): MOTA / IDF1 0.981/0.969, 0.974/0.975,
+    # 0.958/0.961, 0.936/0.929; on 6 other seeds at 3.2 um/min 0.926/0.930 and 0.904/0.907.
+    # Without the appearance term at 3.2 um/min: 0.881/0.801.
     accumulators, found_speeds, true_speeds = [], [], []
     for seed in SEEDS:
         lapse = simulate_time_lapse(seed, TimeLapseSettings(speed_um_per_min=speed_um_per_min))
@@ -75,10 +78,13 @@ def test_tracks_hold_at_every_speed_and_speed_is_unbiased(tmp_path, speed_um_per
         accumulators.append(_accumulate(lapse, cells))
         found_speeds.append(tracks["speed_um_per_min"].dropna())
         true_speeds.append(_true_speeds(lapse.cells))
-        assert linking_notes(qc.assign(well="B02")) == []  # the estimated cutoff does not bind
+        if speed_um_per_min <= 2.0:  # the estimated cutoff does not bind
+            assert linking_notes(qc.assign(well="B02")) == []
+        # at 3.2 um/min the cutoff stops at the nuclei's median spacing, and at some sites more than
+        # 5% of links come close to it: the plate report's note says so, rightly
     scores = mm.metrics.create().compute_many(accumulators, metrics=["mota", "idf1"], generate_overall=True)
     scores = scores.loc["OVERALL"]  # pooled over the seeds
-    assert scores["mota"] >= 0.90 and scores["idf1"] >= 0.85, scores.to_dict()
+    assert scores["mota"] >= 0.90 and scores["idf1"] >= 0.90, scores.to_dict()
     ratio = np.median(pd.concat(found_speeds)) / np.median(pd.concat(true_speeds))
     assert abs(ratio - 1) <= 0.05, ratio
 

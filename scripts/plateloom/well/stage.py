@@ -18,7 +18,7 @@ from plateloom.well.events import DAUGHTER_REACH_DIAMETERS, DeathRule, division_
 from plateloom.well.features import measure_objects, neighbourhood
 from plateloom.well.illumination import apply_flat_field
 from plateloom.well.image_qc import background_levels, focus_score, segmentation_jumps
-from plateloom.well.linking import FrameLinker
+from plateloom.well.linking import FrameLinker, appearance_features
 from plateloom.well.nuclei import segment_nuclei_on_edges
 from plateloom.well.segment import segment_label_free, segment_smoothed
 from plateloom.well.texture import TextureSettings
@@ -293,7 +293,8 @@ def analyse_site(
         if label_frames is not None:
             label_frames[item.frame] = labels
         table, background = measure_frame(planes, labels, bodies, settings, saturated)
-        tracks = linker.tracks_of(table[["centroid_x_um", "centroid_y_um"]].to_numpy())
+        xy = table[["centroid_x_um", "centroid_y_um"]].to_numpy()
+        tracks = linker.tracks_of(xy, appearance_features(table, settings.nuclei_channel))
         table.insert(0, "frame", item.frame)
         table.insert(1, "track", tracks)
         observations.append(table)

@@ -2,11 +2,15 @@
 
 The cost matrix is augmented with birth and death alternatives so that an object may start
 or end a track instead of taking a poor link; links longer than the maximum displacement
-are forbidden. The matrix is sparse (candidate links from a KD-tree, plus the alternatives), so
-a frame of n objects costs about O(n log n) to build and the assignment works on O(n) entries.
+are forbidden. A link may also pay for a change of appearance (nuclear brightness and size, a
+bounded term), which tells fast movers apart where distance alone is ambiguous. The matrix is
+sparse (candidate links from a KD-tree, plus the alternatives), so a frame of n objects costs
+about O(n log n) to build and the assignment works on O(n) entries.
 """
 
 from __future__ import annotations
+
+from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
@@ -58,11 +62,31 @@ def _smallest_per_pair(
     return rows[first], cols[first], distance[first]
 
 
+APPEARANCE_CAP = 16.0  # a change of appearance costs at most this squared number of its SDs (4 SDs)
+
+
+@dataclass(frozen=True)
+class Appearance:
+    """Appearance of the objects of two frames for the link cost: features (columns, e.g. log
+    nuclear intensity and log area) already divided by the SD of their change along a link, and
+    ``weight_um2``, the squared distance one SD of change costs."""
+
+    previous: np.ndarray
+    current: np.ndarray
+    weight_um2: float
+
+    def penalty(self, rows: np.ndarray, cols: np.ndarray) -> np.ndarray:
+        """Cost (um^2) of the appearance change of each candidate link, at most weight x APPEARANCE_CAP."""
+        change = np.square(self.current[cols] - self.previous[rows]).sum(axis=1)
+        return self.weight_um2 * np.minimum(change, APPEARANCE_CAP)
+
+
 def link_frames(
     previous_um: np.ndarray,
     current_um: np.ndarray,
     max_displacement_um: float,
     predicted_um: np.ndarray | None = None,
+    appearance: Appearance | None = None,
 ) -> np.ndarray:
     """Match objects of two consecutive frames.
 
@@ -70,9 +94,11 @@ def link_frames(
     ``predicted_um`` (n, 2), each previous object's expected position this frame (its last
     position plus its last step, a constant-velocity prediction), a link costs the smaller of the
     squared distances to the last and to the predicted position, so persistent movers keep their
-    track while a cell that turns or stops is no worse off. Returns an int array of length m: for
-    each current object the index of the previous object it continues, or -1 when it starts a new
-    track.
+    track while a cell that turns or stops is no worse off. With ``appearance``, a link also pays
+    for the change of its object's appearance (Gaussian log-likelihood in both terms, the
+    appearance term capped so that a cell that rounds up or condenses can still be linked). Returns
+    an int array of length m: for each current object the index of the previous object it
+    continues, or -1 when it starts a new track.
     """
     n, m = len(previous_um), len(current_um)
     links = np.full(m, -1, dtype=np.int64)
@@ -86,8 +112,13 @@ def link_frames(
         )
     if len(rows) == 0:
         return links
-    # Any allowed link (cost d^2 <= max_displacement^2) beats ending one track plus starting another.
-    successor = sparse_assignment(n, m, rows, cols, distance**2, max_displacement_um**2)
+    # Any allowed link (distance <= max_displacement, any appearance) beats ending one track plus
+    # starting another.
+    costs, alternative = distance**2, max_displacement_um**2
+    if appearance is not None:
+        costs = costs + appearance.penalty(rows, cols)
+        alternative += appearance.weight_um2 * APPEARANCE_CAP
+    successor = sparse_assignment(n, m, rows, cols, costs, alternative)
     linked = successor >= 0
     links[successor[linked]] = np.nonzero(linked)[0]
     return links
