@@ -27,7 +27,14 @@ from skimage.measure import label as connected_regions
 from skimage.segmentation import watershed
 
 from plateloom.well.segment import _bounding_boxes, _drop_small, split_touching
-from plateloom.well.thresholds import BACKGROUND_STRIDE, fill_holes, object_threshold, smooth_image
+from plateloom.well.thresholds import (
+    BACKGROUND_STRIDE,
+    dilate_cross,
+    erode_cross,
+    fill_holes,
+    object_threshold,
+    smooth_image,
+)
 
 CORE_RATIO = 0.5  # a core pixel is at least this share of the brightest value around it ...
 CORE_WINDOW = 0.8  # ... within this many typical nuclear radii (square window)
@@ -72,9 +79,11 @@ def _shelves(sizes: list[tuple[int, int]], width: int) -> tuple[list[tuple[int, 
     return corners, y + shelf_height, canvas_width
 
 
-def _pack(smooth: np.ndarray, components: np.ndarray, foreground: np.ndarray, ids: np.ndarray, margin: int) -> _Canvas:
-    """The canvas of the components ``ids`` with ``margin`` pixels of image around each."""
-    index = np.flatnonzero(foreground)
+def _pack(
+    smooth: np.ndarray, components: np.ndarray, foreground: np.ndarray, index: np.ndarray, ids: np.ndarray, margin: int
+) -> _Canvas:
+    """The canvas of the components ``ids`` with ``margin`` pixels of image around each
+    (``index``: flat indices of the foreground pixels)."""
     boxes = _bounding_boxes(index, components.ravel()[index], ids, components.shape[1])
     height, width = components.shape
     frames = [
@@ -106,7 +115,7 @@ def _cores(canvas: _Canvas, floor: float, radius_px: float, min_distance_px: int
     signal = smooth_image(canvas.image, 1.0) - np.float32(floor)
     window = max(3, int(round(CORE_WINDOW * radius_px)) | 1)
     ratio = signal / np.maximum(ndimage.maximum_filter(signal, size=window), 1.0)
-    cores = ndimage.binary_opening((ratio > CORE_RATIO) & (canvas.own > 0))
+    cores = dilate_cross(erode_cross((ratio > CORE_RATIO) & (canvas.own > 0)))  # binary opening
     labelled, count = ndimage.label(cores)
     area = np.bincount(labelled.ravel(), minlength=count + 1)
     small = area < CORE_MIN_AREA * np.pi * radius_px**2
@@ -115,6 +124,24 @@ def _cores(canvas: _Canvas, floor: float, radius_px: float, min_distance_px: int
     if not labelled.any():
         return labelled
     return split_touching(labelled, count, min_distance_px, area_factor=CORE_SPLIT_AREA, min_fill=CORE_SPLIT_FILL)
+
+
+def _grow_cores(cores: np.ndarray, components: np.ndarray, surface: np.ndarray) -> np.ndarray:
+    """Cores grown over their components by a watershed on ``surface``; a component with one core
+    is that core's whole (what the watershed gives), so only components with several are flooded."""
+    inside = cores > 0
+    pairs = np.unique(components[inside].astype(np.int64) * (int(cores.max()) + 1) + cores[inside])
+    owner_component, owner_core = np.divmod(pairs, int(cores.max()) + 1)
+    n_cores = np.bincount(owner_component, minlength=int(components.max()) + 1)
+    only_core = np.zeros(len(n_cores), np.int32)
+    single = n_cores[owner_component] == 1
+    only_core[owner_component[single]] = owner_core[single]
+    grown = only_core[components]
+    several = n_cores[components] >= 2
+    if several.any():
+        flooded = watershed(surface, np.where(several, cores, 0), mask=several)
+        grown[several] = flooded[several]
+    return grown
 
 
 def _ring_background(canvas: _Canvas, labels: np.ndarray, fallback: float) -> np.ndarray:
@@ -131,13 +158,18 @@ def _ring_background(canvas: _Canvas, labels: np.ndarray, fallback: float) -> np
 def _label_medians(labels: np.ndarray, values: np.ndarray, n_labels: int) -> np.ndarray:
     """Median of ``values`` over each label's pixels (0 for an empty label); indexed by label."""
     index = np.flatnonzero(labels)
-    owner, value = labels.ravel()[index], values.ravel()[index]
-    order = np.lexsort((value, owner))
+    owner, value = labels.ravel()[index], values.ravel()[index].astype(np.float64)
+    if len(value) == 0:
+        return np.zeros(n_labels + 1)
+    # one sort on label x span + value orders by label, then value (lexsort is about 10x slower)
+    low = value.min()
+    span = value.max() - low + 1.0
+    order = np.argsort(owner * span + (value - low))
     owner, value = owner[order], value[order]
     starts = np.searchsorted(owner, np.arange(n_labels + 1))
     ends = np.searchsorted(owner, np.arange(n_labels + 1), side="right")
-    middle = np.clip((starts + ends - 1) // 2, 0, max(len(value) - 1, 0))
-    return np.where(ends > starts, value[middle] if len(value) else 0.0, 0.0)
+    middle = np.clip((starts + ends - 1) // 2, 0, len(value) - 1)
+    return np.where(ends > starts, value[middle], 0.0)
 
 
 def _cut(labels: np.ndarray, values: np.ndarray, background: np.ndarray, level: np.ndarray) -> np.ndarray:
@@ -176,7 +208,7 @@ def _nuclei_on_canvas(canvas: _Canvas, floor: float, background: float, radius_p
     if not cores.any():
         return cores
     surface = sobel(np.log(np.maximum(canvas.image - np.float32(floor), 1.0)))
-    grown = watershed(surface, cores, mask=canvas.own > 0)
+    grown = _grow_cores(cores, canvas.own, surface)
     n_labels = int(grown.max())
     ring = _ring_background(canvas, grown, background)
     totals = np.bincount(grown.ravel(), canvas.image.ravel(), minlength=n_labels + 1)
@@ -190,7 +222,7 @@ def _nuclei_on_canvas(canvas: _Canvas, floor: float, background: float, radius_p
 def _drop_shallow_edges(labels: np.ndarray, steepness: np.ndarray, valid: np.ndarray) -> np.ndarray:
     """Labels whose edge towards the background rises less steeply than MIN_EDGE_STEEPNESS (median
     over the edge pixels) removed: glow and haze, not nuclei."""
-    edge = (labels > 0) & ndimage.binary_dilation((labels == 0) & valid)
+    edge = (labels > 0) & dilate_cross((labels == 0) & valid)
     if not edge.any():
         return labels
     n_labels = int(labels.max())
@@ -220,7 +252,8 @@ def segment_nuclei_on_edges(
     min_area_px = max(1, int(round(min_area_um2 / pixel_size_um**2)))
     foreground = fill_holes(smooth > threshold)
     components, count = ndimage.label(foreground)
-    sizes = np.bincount(components.ravel(), minlength=count + 1)
+    index = np.flatnonzero(foreground)
+    sizes = np.bincount(components.ravel()[index], minlength=count + 1)
     keep = sizes >= min_area_px
     keep[0] = False
     if not keep.any():
@@ -231,7 +264,7 @@ def segment_nuclei_on_edges(
     background = float(np.median(sample[outside])) if outside.any() else floor
     radius_px = 0.5 * nucleus_diameter_um / pixel_size_um
     margin = max(RING_PX, int(np.ceil(CORE_WINDOW * radius_px / 2))) + 3
-    canvas = _pack(smooth, components, foreground, np.flatnonzero(keep), margin)
+    canvas = _pack(smooth, components, foreground, index, np.flatnonzero(keep), margin)
     min_distance_px = max(1, int(round(split_min_distance_um / pixel_size_um)))
     found = _nuclei_on_canvas(canvas, floor, background, radius_px, min_distance_px)
     labels = empty

@@ -122,6 +122,30 @@ def fill_holes(mask: np.ndarray) -> np.ndarray:
     return mask | ~outside[background]
 
 
+def dilate_cross(mask: np.ndarray) -> np.ndarray:
+    """Binary dilation by the 3x3 cross (``ndimage.binary_dilation`` with its default structure),
+    by shifted slices: many times faster than scipy's binary morphology on large images."""
+    out = mask.copy()
+    out[1:] |= mask[:-1]
+    out[:-1] |= mask[1:]
+    out[:, 1:] |= mask[:, :-1]
+    out[:, :-1] |= mask[:, 1:]
+    return out
+
+
+def erode_cross(mask: np.ndarray) -> np.ndarray:
+    """Binary erosion by the 3x3 cross, outside the image counting as background (as
+    ``ndimage.binary_erosion`` with its defaults)."""
+    out = mask.copy()
+    out[1:] &= mask[:-1]
+    out[:-1] &= mask[1:]
+    out[:, 1:] &= mask[:, :-1]
+    out[:, :-1] &= mask[:, 1:]
+    out[0] = out[-1] = False
+    out[:, 0] = out[:, -1] = False
+    return out
+
+
 def block_reduce(image: np.ndarray, size: int, reduce: Callable) -> np.ndarray:
     """size x size blocks of an image (edges repeated to whole blocks) combined by the binary ufunc
     ``reduce`` (np.add, np.maximum, np.logical_or): one pass over strided views, no reshaped copy."""
