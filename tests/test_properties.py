@@ -86,3 +86,33 @@ def test_z_prime_is_unchanged_by_a_change_of_units(shift, scale):
     rng = np.random.default_rng(4)
     positive, negative = rng.normal(10, 1, 16), rng.normal(0, 1, 16)
     assert np.isclose(z_prime(positive * scale + shift, negative * scale + shift), z_prime(positive, negative))
+
+
+@settings(max_examples=40, deadline=None)
+@given(st.integers(0, 10_000), st.floats(0.1, 0.9), st.integers(1, 40), st.integers(1, 40))
+def test_cross_morphology_by_slices_equals_scipy(seed, density, height, width):
+    # reference: scipy.ndimage.binary_erosion / binary_dilation with their default structure
+    from scipy import ndimage
+
+    from plateloom.well.thresholds import dilate_cross, erode_cross
+
+    mask = np.random.default_rng(seed).random((height, width)) < density
+    assert np.array_equal(erode_cross(mask), ndimage.binary_erosion(mask))
+    assert np.array_equal(dilate_cross(mask), ndimage.binary_dilation(mask))
+
+
+@settings(max_examples=40, deadline=None)
+@given(st.integers(0, 10_000), st.integers(1, 12))
+def test_label_medians_equal_numpy_per_label(seed, n_labels):
+    # reference: numpy's median of each label's values (the lower middle value for an even count,
+    # as the edge cut uses)
+    from plateloom.well.nuclei import _label_medians
+
+    rng = np.random.default_rng(seed)
+    labels = rng.integers(0, n_labels + 1, (20, 30))
+    values = rng.normal(500, 200, labels.shape).astype(np.float32)
+    found = _label_medians(labels, values, n_labels)
+    for label in range(1, n_labels + 1):
+        own = np.sort(values[labels == label])
+        expected = own[(len(own) - 1) // 2] if len(own) else 0.0
+        assert found[label] == expected
