@@ -116,3 +116,24 @@ def test_label_medians_equal_numpy_per_label(seed, n_labels):
         own = np.sort(values[labels == label])
         expected = own[(len(own) - 1) // 2] if len(own) else 0.0
         assert found[label] == expected
+
+
+@settings(max_examples=20, deadline=None)
+@given(st.integers(0, 10_000), st.integers(2, 30), st.integers(2, 30))
+def test_gradient_magnitude_equals_skimage_sobel(seed, height, width):
+    # reference: skimage.filters.sobel (equal within float32 rounding)
+    from skimage.filters import sobel
+
+    from plateloom.well.nuclei import gradient_magnitude
+
+    image = np.random.default_rng(seed).normal(5, 1, (height, width)).astype(np.float32)
+    np.testing.assert_allclose(gradient_magnitude(image), sobel(image), rtol=1e-5, atol=1e-5)
+
+
+@settings(max_examples=20, deadline=None)
+@given(st.integers(0, 10_000), st.sampled_from([np.int32, np.int64]), st.integers(1, 70_000))
+def test_stable_label_order_equals_numpy_stable_argsort(seed, dtype, top):
+    from plateloom.well.object_pixels import stable_label_order
+
+    labels = np.random.default_rng(seed).integers(0, top, 500).astype(dtype)
+    assert np.array_equal(stable_label_order(labels), np.argsort(labels, kind="stable"))

@@ -22,7 +22,6 @@ from dataclasses import dataclass
 
 import numpy as np
 from scipy import ndimage
-from skimage.filters import sobel
 from skimage.measure import label as connected_regions
 from skimage.segmentation import watershed
 
@@ -144,6 +143,15 @@ def _grow_cores(cores: np.ndarray, components: np.ndarray, surface: np.ndarray) 
     return grown
 
 
+def gradient_magnitude(image: np.ndarray) -> np.ndarray:
+    """Sobel gradient magnitude, scaled as ``skimage.filters.sobel`` (sqrt of the mean of the two
+    squared derivatives, each kernel normalised to unit weight), by scipy's separable filters in
+    float32: equal to skimage's within float32 rounding, at about half the time."""
+    along_y = ndimage.sobel(image, axis=0, mode="reflect")
+    along_x = ndimage.sobel(image, axis=1, mode="reflect")
+    return np.sqrt((along_y * along_y + along_x * along_x) * np.float32(1 / 32))
+
+
 def _ring_background(canvas: _Canvas, labels: np.ndarray, fallback: float) -> np.ndarray:
     """Mean smoothed value of the non-foreground pixels within RING_PX of each label (``fallback``
     for a label with no such pixel); indexed by label."""
@@ -207,7 +215,7 @@ def _nuclei_on_canvas(canvas: _Canvas, floor: float, background: float, radius_p
     cores = _cores(canvas, floor, radius_px, min_distance_px)
     if not cores.any():
         return cores
-    surface = sobel(np.log(np.maximum(canvas.image - np.float32(floor), 1.0)))
+    surface = gradient_magnitude(np.log(np.maximum(canvas.image - np.float32(floor), 1.0)))
     grown = _grow_cores(cores, canvas.own, surface)
     n_labels = int(grown.max())
     ring = _ring_background(canvas, grown, background)

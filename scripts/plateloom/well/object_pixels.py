@@ -24,7 +24,7 @@ class ObjectPixels:
     def of(cls, labels: np.ndarray) -> ObjectPixels:
         flat = labels.ravel()
         index = np.flatnonzero(flat != 0)  # on a bool image: several times faster than on int32
-        order = np.argsort(flat[index], kind="stable")
+        order = stable_label_order(flat[index])
         index = index[order]
         label = flat[index].astype(np.int64)
         count = int(labels.max()) if labels.size else 0
@@ -35,6 +35,14 @@ class ObjectPixels:
     def sums(self, weights: np.ndarray | None = None) -> np.ndarray:
         """Per-label sums (labels 1..count) of ``weights`` over the object pixels (or pixel counts)."""
         return np.bincount(self.label, weights, minlength=self.count + 1)[1:]
+
+
+def stable_label_order(label: np.ndarray) -> np.ndarray:
+    """``np.argsort(label, kind="stable")``; as 16-bit values when the labels fit, which numpy
+    sorts by radix (several times faster than the merge sort of wider integers, same order)."""
+    if len(label) and 0 <= label.min() and label.max() < 1 << 16:
+        label = label.astype(np.uint16)
+    return np.argsort(label, kind="stable")
 
 
 def neighbour_label(labels_padded: np.ndarray, pixels: ObjectPixels, pad: int, dy: int, dx: int) -> np.ndarray:

@@ -14,6 +14,7 @@ from skimage.feature import peak_local_max
 from skimage.morphology import h_maxima
 from skimage.segmentation import watershed
 
+from plateloom.well.object_pixels import stable_label_order
 from plateloom.well.thresholds import BACKGROUND_STRIDE, fill_holes, object_threshold, smooth_image
 
 SEED_DEPTH_PX = 1.0
@@ -46,7 +47,7 @@ def _bounding_boxes(index: np.ndarray, label: np.ndarray, wanted: np.ndarray, wi
     is_wanted[wanted] = True
     chosen = is_wanted[label]
     index, label = index[chosen], label[chosen]
-    order = np.argsort(label, kind="stable")
+    order = stable_label_order(label)
     index, label = index[order], label[order]
     starts = np.flatnonzero(np.diff(label, prepend=-1))
     y, x = np.divmod(index, width)
