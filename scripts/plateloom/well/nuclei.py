@@ -166,10 +166,15 @@ def _ring_background(canvas: _Canvas, labels: np.ndarray, fallback: float) -> np
 def _label_medians(labels: np.ndarray, values: np.ndarray, n_labels: int) -> np.ndarray:
     """Median of ``values`` over each label's pixels (0 for an empty label); indexed by label."""
     index = np.flatnonzero(labels)
-    owner, value = labels.ravel()[index], values.ravel()[index].astype(np.float64)
+    return _medians_by_owner(labels.ravel()[index], values.ravel()[index], n_labels)
+
+
+def _medians_by_owner(owner: np.ndarray, value: np.ndarray, n_labels: int) -> np.ndarray:
+    """Median (the lower middle value) of ``value`` per ``owner`` 1..n_labels (0 for none); indexed by owner."""
     if len(value) == 0:
         return np.zeros(n_labels + 1)
-    # one sort on label x span + value orders by label, then value (lexsort is about 10x slower)
+    value = value.astype(np.float64)
+    # one sort on owner x span + value orders by owner, then value (lexsort is about 10x slower)
     low = value.min()
     span = value.max() - low + 1.0
     order = np.argsort(owner * span + (value - low))
@@ -180,12 +185,25 @@ def _label_medians(labels: np.ndarray, values: np.ndarray, n_labels: int) -> np.
     return np.where(ends > starts, value[middle], 0.0)
 
 
-def _cut(labels: np.ndarray, values: np.ndarray, background: np.ndarray, level: np.ndarray) -> np.ndarray:
-    """Each label's pixels at or below background + EDGE_HEIGHT x (level - background) removed."""
-    cut = background + EDGE_HEIGHT * (level - background)
-    cut[0] = np.inf
-    out = labels.copy()
-    out[values <= cut[labels]] = 0
+def _edge_levels(background: np.ndarray, level: np.ndarray) -> np.ndarray:
+    """Per label, the value at or below which its pixels are cut: background + EDGE_HEIGHT x
+    (level - background)."""
+    return background + EDGE_HEIGHT * (level - background)
+
+
+def _cut_at_edges(grown: np.ndarray, image: np.ndarray, background: np.ndarray) -> np.ndarray:
+    """Each label cut at half its height over its local ``background``: first with its mean as the
+    height, then with the median of what that first cut keeps (spots and rim move neither)."""
+    n_labels = int(grown.max())
+    index = np.flatnonzero(grown)
+    owner, value = grown.ravel()[index], image.ravel()[index]
+    count = np.bincount(owner, minlength=n_labels + 1)
+    means = np.bincount(owner, value, minlength=n_labels + 1) / np.maximum(count, 1)
+    kept = value > _edge_levels(background, means)[owner]  # a first edge, from the mean ...
+    medians = _medians_by_owner(owner[kept], value[kept], n_labels)  # ... then the median inside it
+    kept = value > _edge_levels(background, np.where(medians > 0, medians, means))[owner]
+    out = np.zeros_like(grown)
+    out.ravel()[index[kept]] = owner[kept]
     return out
 
 
@@ -217,13 +235,7 @@ def _nuclei_on_canvas(canvas: _Canvas, floor: float, background: float, radius_p
         return cores
     surface = gradient_magnitude(np.log(np.maximum(canvas.image - np.float32(floor), 1.0)))
     grown = _grow_cores(cores, canvas.own, surface)
-    n_labels = int(grown.max())
-    ring = _ring_background(canvas, grown, background)
-    totals = np.bincount(grown.ravel(), canvas.image.ravel(), minlength=n_labels + 1)
-    means = totals / np.maximum(np.bincount(grown.ravel(), minlength=n_labels + 1), 1)
-    first = _cut(grown, canvas.image, ring, means)  # a first edge, from the mean ...
-    medians = _label_medians(first, canvas.image, n_labels)  # ... then the median inside it
-    nuclei = _largest_pieces(_cut(grown, canvas.image, ring, np.where(medians > 0, medians, means)))
+    nuclei = _largest_pieces(_cut_at_edges(grown, canvas.image, _ring_background(canvas, grown, background)))
     return _drop_shallow_edges(nuclei, surface, canvas.valid)
 
 
