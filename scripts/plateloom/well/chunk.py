@@ -13,6 +13,7 @@ import pandas as pd
 from plateloom.columns import OBJECT_IDS_AND_POSITIONS
 from plateloom.io.images import ImageIndex, read_site_frame, usual_pixel_type
 from plateloom.io.ome_tiff import write_label_stack
+from plateloom.io.planes import saturation_masks
 from plateloom.io.tables import well_part_path, write_bytes, write_parquet
 from plateloom.well.collective import CollectiveSettings, well_collective_readouts
 from plateloom.well.events import end_events, fate_events
@@ -63,8 +64,9 @@ def well_snapshot(
     planes = None if frame is None else read_site_frame(index, well, site, list(settings.channels), frame)
     if planes is None:
         return None
+    saturated = saturation_masks(planes)  # before the flat field moves the ceiling, as the analysis
     planes = apply_flat_field(planes, flat_field)
-    labels = segment_frame(planes, settings)[0]
+    labels = segment_frame(planes, settings, saturated)[0]
     nuclear = planes[list(settings.channels).index(settings.nuclei_channel)]
     png = png_bytes(overlay_rgb(nuclear, labels, track_tails(cells, site, frame, settings.pixel_size_um)))
     crops, areas, objects = cell_crops(planes, labels, settings.pixel_size_um)

@@ -45,18 +45,27 @@ CORE_SPLIT_FILL = 0.96  # moment ellipse than this, go to the shape split
 MIN_EDGE_STEEPNESS = 0.15  # median log-intensity gradient (Sobel) along the edge facing the background:
 # glow and out-of-focus haze fall off slowly (about 0.05), nuclei steeply (0.2 and more)
 CANVAS_GAP_PX = 6  # empty columns and rows between packed boxes (wider than any filter reaches)
+# A saturated cell's real peak lies above the camera's ceiling, so half its height lies above half
+# the ceiling: pixels compared with a saturated region of at least SATURATED_MIN_AREA of a typical
+# nucleus (a clipped cell, not a clipped chromatin spot) are core pixels only from this share of it.
+# Measured on 320 realistic fields (5 sets of 64): nuclei touching a saturated cell found 0.905 ->
+# 0.938, average precision up in every set (0.915-0.925 -> 0.918-0.930).
+SATURATED_CORE_RATIO = 0.7
+SATURATED_MIN_AREA = 0.2
 
 
 @dataclass(frozen=True)
 class _Canvas:
     """Component boxes (with margins) packed into one image: the smoothed values, the component
-    each pixel belongs to (0 elsewhere), whether a pixel is any foreground, and which canvas
-    pixels hold image data; ``places`` maps each box back to the frame."""
+    each pixel belongs to (0 elsewhere), whether a pixel is any foreground, which canvas pixels
+    hold image data, and which are saturated (None: not known); ``places`` maps each box back to
+    the frame."""
 
     image: np.ndarray
     own: np.ndarray
     foreground: np.ndarray
     valid: np.ndarray
+    saturated: np.ndarray | None
     places: list[tuple[tuple[slice, slice], tuple[slice, slice]]]
 
 
@@ -79,10 +88,17 @@ def _shelves(sizes: list[tuple[int, int]], width: int) -> tuple[list[tuple[int, 
 
 
 def _pack(
-    smooth: np.ndarray, components: np.ndarray, foreground: np.ndarray, index: np.ndarray, ids: np.ndarray, margin: int
+    smooth: np.ndarray,
+    components: np.ndarray,
+    foreground: np.ndarray,
+    index: np.ndarray,
+    ids: np.ndarray,
+    margin: int,
+    saturated: np.ndarray | None = None,
 ) -> _Canvas:
     """The canvas of the components ``ids`` with ``margin`` pixels of image around each
-    (``index``: flat indices of the foreground pixels)."""
+    (``index``: flat indices of the foreground pixels; ``saturated``: the frame's saturated
+    pixels, packed alongside)."""
     boxes = _bounding_boxes(index, components.ravel()[index], ids, components.shape[1])
     height, width = components.shape
     frames = [
@@ -98,6 +114,7 @@ def _pack(
     own = np.zeros((canvas_height, canvas_width), np.int32)
     fore = np.zeros((canvas_height, canvas_width), bool)
     valid = np.zeros((canvas_height, canvas_width), bool)
+    sat = np.zeros((canvas_height, canvas_width), bool) if saturated is not None else None
     places = []
     for component, frame, (y, x), (h, w) in zip(ids.tolist(), frames, corners, sizes):
         place = (slice(y, y + h), slice(x, x + w))
@@ -105,8 +122,10 @@ def _pack(
         own[place] = np.where(components[frame] == component, component, 0)
         fore[place] = foreground[frame]
         valid[place] = True
+        if sat is not None:
+            sat[place] = saturated[frame]
         places.append((frame, place))
-    return _Canvas(image, own, fore, valid, places)
+    return _Canvas(image, own, fore, valid, sat, places)
 
 
 def _cores(canvas: _Canvas, floor: float, radius_px: float, min_distance_px: int) -> np.ndarray:
@@ -114,7 +133,8 @@ def _cores(canvas: _Canvas, floor: float, radius_px: float, min_distance_px: int
     signal = smooth_image(canvas.image, 1.0) - np.float32(floor)
     window = max(3, int(round(CORE_WINDOW * radius_px)) | 1)
     ratio = signal / np.maximum(ndimage.maximum_filter(signal, size=window), 1.0)
-    cores = dilate_cross(erode_cross((ratio > CORE_RATIO) & (canvas.own > 0)))  # binary opening
+    level = _core_levels(canvas.saturated, window, radius_px)
+    cores = dilate_cross(erode_cross((ratio > level) & (canvas.own > 0)))  # binary opening
     labelled, count = ndimage.label(cores)
     area = np.bincount(labelled.ravel(), minlength=count + 1)
     small = area < CORE_MIN_AREA * np.pi * radius_px**2
@@ -150,6 +170,20 @@ def gradient_magnitude(image: np.ndarray) -> np.ndarray:
     along_y = ndimage.sobel(image, axis=0, mode="reflect")
     along_x = ndimage.sobel(image, axis=1, mode="reflect")
     return np.sqrt((along_y * along_y + along_x * along_x) * np.float32(1 / 32))
+
+
+def _core_levels(saturated: np.ndarray | None, window: int, radius_px: float) -> float | np.ndarray:
+    """The share of the brightest value around a pixel it needs to be a core pixel: CORE_RATIO,
+    or SATURATED_CORE_RATIO where that brightest value may be a large saturated region's."""
+    if saturated is None or not saturated.any():
+        return CORE_RATIO
+    regions, count = ndimage.label(saturated)
+    large = np.bincount(regions.ravel(), minlength=count + 1) >= SATURATED_MIN_AREA * np.pi * radius_px**2
+    large[0] = False
+    if not large.any():
+        return CORE_RATIO
+    near = ndimage.maximum_filter(large[regions], size=window)
+    return np.where(near, np.float32(SATURATED_CORE_RATIO), np.float32(CORE_RATIO))
 
 
 def _ring_background(canvas: _Canvas, labels: np.ndarray, fallback: float) -> np.ndarray:
@@ -262,9 +296,12 @@ def segment_nuclei_on_edges(
     split_min_distance_um: float,
     nucleus_diameter_um: float,
     threshold_method: str = "log_otsu",
+    saturated: np.ndarray | None = None,
 ) -> tuple[np.ndarray, float]:
     """Nucleus labels (int32, 0 background) of a smoothed image and its foreground threshold
-    (grey levels; NaN when the field holds no objects). Sizes in micrometres."""
+    (grey levels; NaN when the field holds no objects). Sizes in micrometres; ``saturated``: the
+    pixels at the camera's ceiling in the raw image (``plateloom.io.planes.saturation_masks``),
+    if any."""
     empty = np.zeros(smooth.shape, np.int32)
     threshold = object_threshold(smooth, threshold_method)
     if np.isnan(threshold):
@@ -284,7 +321,7 @@ def segment_nuclei_on_edges(
     background = float(np.median(sample[outside])) if outside.any() else floor
     radius_px = 0.5 * nucleus_diameter_um / pixel_size_um
     margin = max(RING_PX, int(np.ceil(CORE_WINDOW * radius_px / 2))) + 3
-    canvas = _pack(smooth, components, foreground, index, np.flatnonzero(keep), margin)
+    canvas = _pack(smooth, components, foreground, index, np.flatnonzero(keep), margin, saturated)
     min_distance_px = max(1, int(round(split_min_distance_um / pixel_size_um)))
     found = _nuclei_on_canvas(canvas, floor, background, radius_px, min_distance_px)
     labels = empty

@@ -125,11 +125,13 @@ class WellSettings(FromSchema):
 
 
 def segment_frame(
-    planes: np.ndarray, settings: WellSettings
+    planes: np.ndarray, settings: WellSettings, saturated: np.ndarray | None = None
 ) -> tuple[np.ndarray, np.ndarray | None, float, np.ndarray]:
-    """Objects of one frame: (nuclei labels, cell-body labels or None, threshold, smoothed segmented channel)."""
+    """Objects of one frame: (nuclei labels, cell-body labels or None, threshold, smoothed segmented
+    channel). ``saturated``: per channel, the raw pixels at the camera's ceiling (None: none)."""
     channels = list(settings.channels)
-    image = planes[channels.index(settings.nuclei_channel)]
+    nuclei_index = channels.index(settings.nuclei_channel)
+    image = planes[nuclei_index]
     smooth = smooth_image(image, settings.smoothing_sigma_um / settings.pixel_size_um)
     if settings.label_free:
         labels, threshold = segment_label_free(
@@ -148,6 +150,7 @@ def segment_frame(
             settings.split_min_distance_um,
             settings.nucleus_diameter_um,
             settings.threshold_method,
+            None if saturated is None else saturated[nuclei_index],
         )
     else:
         labels, threshold = segment_smoothed(
@@ -289,7 +292,7 @@ def analyse_site(
             continue
         saturated = saturation_masks(item.planes)  # before the flat field moves the ceiling
         planes = apply_flat_field(item.planes, flat_field)
-        labels, bodies, threshold, smooth = segment_frame(planes, settings)
+        labels, bodies, threshold, smooth = segment_frame(planes, settings, saturated)
         if label_frames is not None:
             label_frames[item.frame] = labels
         table, background = measure_frame(planes, labels, bodies, settings, saturated)
