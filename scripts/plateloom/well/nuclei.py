@@ -5,7 +5,9 @@ intensity, which a few saturated cells cannot capture). Inside it, each nucleus 
 core: the pixels at least ``CORE_RATIO`` of the brightest value within ``CORE_WINDOW`` typical
 radii. A dim nucleus touching a bright one keeps a core of its own (its pixels are compared with
 its own neighbourhood, not with the bright one), chromatin spots only dent a core, and a rounded
-saturated cell's glow has no core. Cores that may hold two nuclei by shape are split by the
+saturated cell's glow has no core. Next to a large saturated region (known from the raw image)
+a core pixel needs ``SATURATED_CORE_RATIO`` of the ceiling instead, so a neighbour does not share
+the clipped cell's core. Cores that may hold two nuclei by shape are split by the
 distance-transform watershed of ``plateloom.well.segment``; the cores then grow over the
 foreground by a watershed on the gradient of log intensity, so two nuclei meet at their steepest
 edge. Each nucleus is finally cut at half its own height over its own local background (the ring
@@ -149,8 +151,9 @@ def _grow_cores(cores: np.ndarray, components: np.ndarray, surface: np.ndarray) 
     """Cores grown over their components by a watershed on ``surface``; a component with one core
     is that core's whole (what the watershed gives), so only components with several are flooded."""
     inside = cores > 0
-    pairs = np.unique(components[inside].astype(np.int64) * (int(cores.max()) + 1) + cores[inside])
-    owner_component, owner_core = np.divmod(pairs, int(cores.max()) + 1)
+    span = int(cores.max()) + 1
+    pairs = np.unique(components[inside].astype(np.int64) * span + cores[inside])  # (component, core)
+    owner_component, owner_core = np.divmod(pairs, span)
     n_cores = np.bincount(owner_component, minlength=int(components.max()) + 1)
     only_core = np.zeros(len(n_cores), np.int32)
     single = n_cores[owner_component] == 1
