@@ -25,6 +25,7 @@ import numpy as np
 import pandas as pd
 from scipy.spatial import cKDTree
 
+from plateloom.stats import MAD_TO_SD, mad
 from plateloom.well.tracking import Appearance, link_frames
 
 NEAR_CUTOFF = 0.8  # a link longer than this share of the cutoff is "near the cutoff"
@@ -40,11 +41,6 @@ def appearance_features(table: pd.DataFrame, nuclei_channel: str) -> np.ndarray:
     intensity = table[f"mean_intensity_{nuclei_channel}"].to_numpy(float)
     area = table["area_um2"].to_numpy(float)
     return np.log(np.column_stack([np.maximum(intensity, 1.0), np.maximum(area, 1e-6)]))
-
-
-def robust_sd(values: np.ndarray) -> np.ndarray:
-    """1.4826 x the median absolute deviation of each column (the SD for Gaussian data)."""
-    return 1.4826 * np.median(np.abs(values - np.median(values, axis=0)), axis=0)
 
 
 def unambiguous_displacements(previous_um: np.ndarray, current_um: np.ndarray) -> np.ndarray:
@@ -135,7 +131,7 @@ class FrameLinker:
         changes = np.concatenate(self.feature_changes) if self.feature_changes else np.empty((0, 0))
         if len(changes) < MIN_UNAMBIGUOUS_PAIRS:
             return None
-        sd = np.maximum(robust_sd(changes), MIN_APPEARANCE_SD)
+        sd = np.maximum(MAD_TO_SD * np.array([mad(column) for column in changes.T]), MIN_APPEARANCE_SD)
         # per-axis variance of a step: for a 2-D Gaussian step, median(d^2) = 2 ln 2 x variance
         step_variance = float(np.median(np.square(self.link_lengths))) / (2 * np.log(2))
         return Appearance(self.previous_features / sd, features / sd, max(step_variance, 1e-6))
