@@ -39,6 +39,7 @@ from plateloom.well.thresholds import (
 
 CORE_RATIO = 0.5  # a core pixel is at least this share of the brightest value around it ...
 CORE_WINDOW = 0.8  # ... within this many typical nuclear radii (square window)
+CORE_SMOOTHING_PX = 1.0  # extra smoothing (Gaussian sigma, pixels) of the image the cores are found on
 CORE_MIN_AREA = 0.15  # cores smaller than this share of a typical nucleus are dropped
 EDGE_HEIGHT = 0.5  # the edge: half the nucleus's height over its local background
 RING_PX = 3  # width of the local-background ring around each nucleus
@@ -46,7 +47,6 @@ CORE_SPLIT_AREA = 1.5  # cores this many times the median core area, or filling 
 CORE_SPLIT_FILL = 0.96  # moment ellipse than this, go to the shape split
 MIN_EDGE_STEEPNESS = 0.15  # median log-intensity gradient (Sobel) along the edge facing the background:
 # glow and out-of-focus haze fall off slowly (about 0.05), nuclei steeply (0.2 and more)
-CANVAS_GAP_PX = 6  # empty columns and rows between packed boxes (wider than any filter reaches)
 # A saturated cell's real peak lies above the camera's ceiling, so half its height lies above half
 # the ceiling: pixels compared with a saturated region of at least SATURATED_MIN_AREA of a typical
 # nucleus (a clipped cell, not a clipped chromatin spot) are core pixels only from this share of it.
@@ -81,10 +81,10 @@ def _shelves(sizes: list[tuple[int, int]], width: int) -> tuple[list[tuple[int, 
     for i in order:
         height, box_width = sizes[i]
         if x and x + box_width > width:
-            y, x, shelf_height = y + shelf_height + CANVAS_GAP_PX, 0, 0
+            y, x, shelf_height = y + shelf_height, 0, 0
         corners[i] = (y, x)
         shelf_height = max(shelf_height, height)
-        x += box_width + CANVAS_GAP_PX
+        x += box_width
         canvas_width = max(canvas_width, x)
     return corners, y + shelf_height, canvas_width
 
@@ -100,17 +100,12 @@ def _pack(
 ) -> _Canvas:
     """The canvas of the components ``ids`` with ``margin`` pixels of image around each
     (``index``: flat indices of the foreground pixels; ``saturated``: the frame's saturated
-    pixels, packed alongside)."""
+    pixels, packed alongside). Boxes touch: every filter reads at most a margin's width around a
+    component. Where a margin runs off the frame it holds the frame mirrored at its edge (as the
+    filters' "reflect" mode) and is not valid image data."""
     boxes = _bounding_boxes(index, components.ravel()[index], ids, components.shape[1])
     height, width = components.shape
-    frames = [
-        (
-            slice(max(0, b[0].start - margin), min(height, b[0].stop + margin)),
-            slice(max(0, b[1].start - margin), min(width, b[1].stop + margin)),
-        )
-        for b in boxes
-    ]
-    sizes = [(f[0].stop - f[0].start, f[1].stop - f[1].start) for f in frames]
+    sizes = [(b[0].stop - b[0].start + 2 * margin, b[1].stop - b[1].start + 2 * margin) for b in boxes]
     corners, canvas_height, canvas_width = _shelves(sizes, max(width, max(s[1] for s in sizes)))
     image = np.zeros((canvas_height, canvas_width), np.float32)
     own = np.zeros((canvas_height, canvas_width), np.int32)
@@ -118,22 +113,35 @@ def _pack(
     valid = np.zeros((canvas_height, canvas_width), bool)
     sat = np.zeros((canvas_height, canvas_width), bool) if saturated is not None else None
     places = []
-    for component, frame, (y, x), (h, w) in zip(ids.tolist(), frames, corners, sizes):
+    for component, box, (y, x), (h, w) in zip(ids.tolist(), boxes, corners, sizes):
+        top, left = box[0].start - margin, box[1].start - margin
+        frame = (slice(max(0, top), min(height, top + h)), slice(max(0, left), min(width, left + w)))
+        pad = (
+            (frame[0].start - top, top + h - frame[0].stop),
+            (frame[1].start - left, left + w - frame[1].stop),
+        )
         place = (slice(y, y + h), slice(x, x + w))
-        image[place] = smooth[frame]
-        own[place] = np.where(components[frame] == component, component, 0)
-        fore[place] = foreground[frame]
-        valid[place] = True
+        inner = (slice(y + pad[0][0], y + h - pad[0][1]), slice(x + pad[1][0], x + w - pad[1][1]))
+        mirrored = any(pad[0]) or any(pad[1])
+        image[place] = np.pad(smooth[frame], pad, mode="symmetric") if mirrored else smooth[frame]
+        own[inner] = np.where(components[frame] == component, component, 0)
+        fore[place] = np.pad(foreground[frame], pad, mode="symmetric") if mirrored else foreground[frame]
+        valid[inner] = True
         if sat is not None:
-            sat[place] = saturated[frame]
-        places.append((frame, place))
+            sat[place] = np.pad(saturated[frame], pad, mode="symmetric") if mirrored else saturated[frame]
+        places.append((frame, inner))
     return _Canvas(image, own, fore, valid, sat, places)
+
+
+def _core_window(radius_px: float) -> int:
+    """Side (pixels, odd) of the square window whose brightest value a core pixel is compared with."""
+    return max(3, int(round(CORE_WINDOW * radius_px)) | 1)
 
 
 def _cores(canvas: _Canvas, floor: float, radius_px: float, min_distance_px: int) -> np.ndarray:
     """Labelled nucleus cores of the canvas (see the module docstring)."""
-    signal = smooth_image(canvas.image, 1.0) - np.float32(floor)
-    window = max(3, int(round(CORE_WINDOW * radius_px)) | 1)
+    signal = smooth_image(canvas.image, CORE_SMOOTHING_PX) - np.float32(floor)
+    window = _core_window(radius_px)
     ratio = signal / np.maximum(ndimage.maximum_filter(signal, size=window), 1.0)
     level = _core_levels(canvas.saturated, window, radius_px)
     cores = dilate_cross(erode_cross((ratio > level) & (canvas.own > 0)))  # binary opening
@@ -323,7 +331,7 @@ def segment_nuclei_on_edges(
     outside = ~foreground[::BACKGROUND_STRIDE, ::BACKGROUND_STRIDE]
     background = float(np.median(sample[outside])) if outside.any() else floor
     radius_px = 0.5 * nucleus_diameter_um / pixel_size_um
-    margin = max(RING_PX, int(np.ceil(CORE_WINDOW * radius_px / 2))) + 3
+    margin = max(RING_PX, _core_window(radius_px) // 2 + int(4.0 * CORE_SMOOTHING_PX + 0.5))  # what the filters read
     canvas = _pack(smooth, components, foreground, index, np.flatnonzero(keep), margin, saturated)
     min_distance_px = max(1, int(round(split_min_distance_um / pixel_size_um)))
     found = _nuclei_on_canvas(canvas, floor, background, radius_px, min_distance_px)
