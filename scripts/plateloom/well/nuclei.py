@@ -10,9 +10,11 @@ a core pixel needs ``SATURATED_CORE_RATIO`` of the ceiling instead, so a neighbo
 the clipped cell's core. Cores that may hold two nuclei by shape are split by the
 distance-transform watershed of ``plateloom.well.segment``; the cores then grow over the
 foreground by a watershed on the gradient of log intensity, so two nuclei meet at their steepest
-edge. Each nucleus is finally cut at half its own height over its own local background (the ring
+edge. Each nucleus is then cut at half its own height over its own local background (the ring
 of non-object pixels around it): the height is the median of its pixels, so neither spots nor
-the blurred rim move the edge, and a label is always one connected region.
+the blurred rim move the edge. A cut nucleus whose outline still looks like two (the waist a
+merged core hides) is split by the same shape rule, the boundary redrawn along the steepest edge;
+a label is always one connected region.
 
 All of this runs on the bounding boxes of the foreground components packed side by side into one
 canvas (shelf packing), so every filter passes over the objects and their margins only.
@@ -45,6 +47,11 @@ EDGE_HEIGHT = 0.5  # the edge: half the nucleus's height over its local backgrou
 RING_PX = 3  # width of the local-background ring around each nucleus
 CORE_SPLIT_AREA = 1.5  # cores this many times the median core area, or filling less of their
 CORE_SPLIT_FILL = 0.96  # moment ellipse than this, go to the shape split
+# After growth, a nucleus whose outline still looks like two (split_touching's rules) is split by
+# shape, and the boundary between the parts redrawn along the steepest edge within this many pixels
+# of the shape's cut. Measured on 320 realistic fields (5 sets of 64): average precision 0.918-0.930
+# -> 0.931-0.944, nuclei touching a saturated cell found 486 -> 492 of 518.
+REDRAW_PX = 3
 MIN_EDGE_STEEPNESS = 0.15  # median log-intensity gradient (Sobel) along the edge facing the background:
 # glow and out-of-focus haze fall off slowly (about 0.05), nuclei steeply (0.2 and more)
 # A saturated cell's real peak lies above the camera's ceiling, so half its height lies above half
@@ -281,7 +288,34 @@ def _nuclei_on_canvas(canvas: _Canvas, floor: float, background: float, radius_p
     surface = gradient_magnitude(np.log(np.maximum(canvas.image - np.float32(floor), 1.0)))
     grown = _grow_cores(cores, canvas.own, surface)
     nuclei = _largest_pieces(_cut_at_edges(grown, canvas.image, _ring_background(canvas, grown, background)))
+    nuclei = _split_grown(nuclei, surface, min_distance_px)  # its redrawn parts may come in pieces
     return _drop_shallow_edges(nuclei, surface, canvas.valid)
+
+
+def _split_grown(labels: np.ndarray, surface: np.ndarray, min_distance_px: int) -> np.ndarray:
+    """Nuclei that still look like two by shape split (``split_touching``'s rules, on the grown and
+    cut outlines, which show the waist that a merged core hides), their new boundary redrawn along
+    the steepest edge: the parts, eroded by REDRAW_PX, flood the pair again on ``surface``."""
+    count = int(labels.max())
+    split = split_touching(labels, count, min_distance_px)
+    if split.max() <= count:
+        return split
+    changed = np.isin(labels, np.unique(labels[split > count]))
+    inner = split
+    for _ in range(REDRAW_PX):
+        inner = np.where(_same_as_neighbours(inner), inner, 0)
+    redrawn = watershed(surface, np.where(changed, inner, 0), mask=changed)
+    return _largest_pieces(np.where(changed, redrawn, split))
+
+
+def _same_as_neighbours(labels: np.ndarray) -> np.ndarray:
+    """Whether each pixel's four neighbours hold its own label (outside the image counts as the same)."""
+    same = np.ones(labels.shape, bool)
+    same[1:] &= labels[1:] == labels[:-1]
+    same[:-1] &= labels[:-1] == labels[1:]
+    same[:, 1:] &= labels[:, 1:] == labels[:, :-1]
+    same[:, :-1] &= labels[:, :-1] == labels[:, 1:]
+    return same
 
 
 def _drop_shallow_edges(labels: np.ndarray, steepness: np.ndarray, valid: np.ndarray) -> np.ndarray:
