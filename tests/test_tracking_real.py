@@ -68,8 +68,8 @@ def _true_speeds(table: pd.DataFrame, min_frames: int = 3) -> pd.Series:
 def test_tracks_hold_at_every_speed_and_speed_is_unbiased(tmp_path, speed_um_per_min):
     # 2 um/min is a median true step of 8.8 um a frame (3 seeds), and 16% of steps are longer than
     # 16 um, twice the linking distance that was the default before it was estimated; at 3.2 um/min
-    # the median step is 16 um. Measured (3 seeds pooled): MOTA / IDF1 0.981/0.969, 0.974/0.975,
-    # 0.958/0.961, 0.936/0.929; on 6 other seeds at 3.2 um/min 0.926/0.930 and 0.904/0.907.
+    # the median step is 16 um. Measured (3 seeds pooled): MOTA / IDF1 0.984/0.979, 0.977/0.980,
+    # 0.961/0.961, 0.938/0.933; on 6 other seeds at 3.2 um/min 0.914/0.916 and 0.943/0.946.
     # Without the appearance term at 3.2 um/min: 0.881/0.801.
     accumulators, found_speeds, true_speeds = [], [], []
     for seed in SEEDS:
