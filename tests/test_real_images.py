@@ -40,7 +40,7 @@ def fields():
     return found
 
 
-def test_average_precision_at_iou_05_is_at_least_090(fields):
+def test_average_precision_at_iou_05_is_at_least_092(fields):
     # measured 0.931 here and 0.934-0.944 on five sets of 64 other fields (0.916 and 0.918-0.930
     # before grown nuclei were split by shape); most remaining errors are the middle nucleus of a
     # dense cluster merged into a neighbour
@@ -89,6 +89,51 @@ def test_nuclei_touching_a_saturated_cell_are_found(fields):
     # before grown nuclei were split by shape; 0.905
     # before cores near large saturated regions needed 0.7 of the ceiling); the goal is 0.95
     assert found / touching >= 0.9, (found, touching)
+
+
+def _disks(size: int, disks: list[tuple[int, int, float, float]]) -> tuple[np.ndarray, np.ndarray]:
+    """Planted truth: a label image of ``disks`` (centre y, x, radius px, brightness) and the
+    blurred image of them (PSF sigma 1.2 px) on a background of 200."""
+    yy, xx = np.mgrid[:size, :size]
+    truth = np.zeros((size, size), np.int32)
+    brightness = np.zeros((size, size))
+    for number, (y, x, radius, level) in enumerate(disks, start=1):
+        inside = ((yy - y) ** 2 + (xx - x) ** 2 <= radius**2) & (truth == 0)
+        truth[inside], brightness[inside] = number, level
+    return truth, ndimage.gaussian_filter(brightness, 1.2) + 200.0
+
+
+def _best_iou(truth: np.ndarray, labels: np.ndarray, number: int) -> float:
+    inside = truth == number
+    overlap = np.bincount(labels[inside], minlength=labels.max() + 1)
+    overlap[0] = 0
+    best = labels == overlap.argmax()
+    return float((best & inside).sum() / (best | inside).sum())
+
+
+def test_a_nucleus_cut_by_the_frame_edge_keeps_its_extent():
+    # planted truth: disks centred on the left and top edges and on the bottom row, others inside
+    centres = [(100, 0), (0, 100), (199, 150), (40, 40), (60, 150), (150, 60), (120, 120), (160, 170), (90, 60)]
+    truth, image = _disks(200, [(y, x, 9.0, 800.0) for y, x in centres])
+    rng = np.random.default_rng(4)
+    noisy = (rng.poisson(image) + rng.normal(0, 6, image.shape)).astype(np.float32)
+    labels, _ = segment_nuclei_on_edges(smooth_image(noisy, 1.0 / PIXEL_UM), PIXEL_UM, 20.0, 5.0, 12.0)
+    for number in (1, 2, 3):  # measured IoU 0.986, 0.971, 0.971
+        assert _best_iou(truth, labels, number) >= 0.9
+
+
+def test_a_grown_nucleus_shaped_like_two_is_split_along_the_edge():
+    from plateloom.well.nuclei import _split_grown, gradient_magnitude
+
+    # planted truth: a bright and a dim disk overlapping (one label, as a merged core grows), and a
+    # lone disk; the pair must come apart into two connected labels close to the disks
+    truth, image = _disks(120, [(40, 40, 10.0, 2000.0), (40, 57, 8.0, 600.0), (90, 90, 9.0, 1000.0)])
+    merged = np.where(truth == 3, 2, np.minimum(truth, 1)).astype(np.int32)
+    split = _split_grown(merged, gradient_magnitude(np.log(image)), 8)
+    assert len(np.unique(split)) - 1 == 3
+    assert connected_regions(split, background=0, connectivity=1).max() == 3
+    for number in (1, 2, 3):  # measured IoU 0.994, 0.990, 1.0
+        assert _best_iou(truth, split, number) >= 0.9
 
 
 def test_an_empty_field_gives_no_nuclei():
