@@ -94,11 +94,21 @@ def test_cross_morphology_by_slices_equals_scipy(seed, density, height, width):
     # reference: scipy.ndimage.binary_erosion / binary_dilation with their default structure
     from scipy import ndimage
 
-    from plateloom.well.thresholds import dilate_cross, erode_cross
+    from plateloom.well.morphology import dilate_cross, dilate_square, erode_cross, same_as_neighbours
 
-    mask = np.random.default_rng(seed).random((height, width)) < density
+    rng = np.random.default_rng(seed)
+    mask = rng.random((height, width)) < density
     assert np.array_equal(erode_cross(mask), ndimage.binary_erosion(mask))
     assert np.array_equal(dilate_cross(mask), ndimage.binary_dilation(mask))
+    assert np.array_equal(dilate_square(mask), ndimage.binary_dilation(mask, np.ones((3, 3), bool)))
+    # label erosion: a pixel keeps its label when the cross around it holds only that label, the
+    # image edge repeated (grey erosion and dilation by the cross, mode "nearest", agree with it)
+    labels = rng.integers(0, 4, (height, width))
+    cross = ndimage.generate_binary_structure(2, 1)
+    uniform = (ndimage.grey_erosion(labels, footprint=cross, mode="nearest") == labels) & (
+        ndimage.grey_dilation(labels, footprint=cross, mode="nearest") == labels
+    )
+    assert np.array_equal(same_as_neighbours(labels), uniform)
 
 
 @settings(max_examples=40, deadline=None)

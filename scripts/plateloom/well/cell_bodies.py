@@ -5,7 +5,8 @@ from __future__ import annotations
 import numpy as np
 from skimage.segmentation import watershed
 
-from plateloom.well.thresholds import block_reduce, object_threshold, smooth_image
+from plateloom.well.morphology import block_reduce, dilate_square
+from plateloom.well.thresholds import object_threshold, smooth_image
 
 # Cell bodies are found on the 2x2-binned body channel when its smoothing is at least this wide
 # (pixels) and the image at least twice BODY_BINNING_MIN_SIDE_PX on each side.
@@ -90,13 +91,7 @@ def _grow_cell_bodies_binned(
     # foreground pixels just outside the binned bodies take the largest label among their 8 neighbours;
     # they lie in empty blocks next to a body block, so only those blocks' pixels are looked at
     inside = bodies > 0
-    near = inside.copy()  # 3x3 dilation by shifted ORs, rows then columns
-    near[1:] |= inside[:-1]
-    near[:-1] |= inside[1:]
-    widened = near.copy()
-    widened[:, 1:] |= near[:, :-1]
-    widened[:, :-1] |= near[:, 1:]
-    edge_blocks = np.flatnonzero(widened & ~inside)
+    edge_blocks = np.flatnonzero(dilate_square(inside) & ~inside)
     block_y, block_x = np.divmod(edge_blocks, cols)
     y = (2 * block_y[:, None] + np.array([0, 0, 1, 1])).ravel()
     x = (2 * block_x[:, None] + np.array([0, 1, 0, 1])).ravel()

@@ -7,7 +7,8 @@ import numpy as np
 import pandas as pd
 from scipy import ndimage
 
-from plateloom.well.thresholds import BACKGROUND_STRIDE, block_reduce
+from plateloom.well.morphology import block_reduce
+from plateloom.well.thresholds import BACKGROUND_STRIDE
 
 # The focus score's Laplacian is taken on every FOCUS_ROW_STRIDE-th row.
 FOCUS_ROW_STRIDE = 4

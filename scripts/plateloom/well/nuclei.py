@@ -29,15 +29,9 @@ from scipy import ndimage
 from skimage.measure import label as connected_regions
 from skimage.segmentation import watershed
 
+from plateloom.well.morphology import dilate_cross, erode_cross, same_as_neighbours
 from plateloom.well.segment import _bounding_boxes, _drop_small, split_touching
-from plateloom.well.thresholds import (
-    BACKGROUND_STRIDE,
-    dilate_cross,
-    erode_cross,
-    fill_holes,
-    object_threshold,
-    smooth_image,
-)
+from plateloom.well.thresholds import BACKGROUND_STRIDE, fill_holes, object_threshold, smooth_image
 
 CORE_RATIO = 0.5  # a core pixel is at least this share of the brightest value around it ...
 CORE_WINDOW = 0.8  # ... within this many typical nuclear radii (square window)
@@ -303,19 +297,9 @@ def _split_grown(labels: np.ndarray, surface: np.ndarray, min_distance_px: int) 
     changed = np.isin(labels, np.unique(labels[split > count]))
     inner = split
     for _ in range(REDRAW_PX):
-        inner = np.where(_same_as_neighbours(inner), inner, 0)
+        inner = np.where(same_as_neighbours(inner), inner, 0)
     redrawn = watershed(surface, np.where(changed, inner, 0), mask=changed)
     return _largest_pieces(np.where(changed, redrawn, split))
-
-
-def _same_as_neighbours(labels: np.ndarray) -> np.ndarray:
-    """Whether each pixel's four neighbours hold its own label (outside the image counts as the same)."""
-    same = np.ones(labels.shape, bool)
-    same[1:] &= labels[1:] == labels[:-1]
-    same[:-1] &= labels[:-1] == labels[1:]
-    same[:, 1:] &= labels[:, 1:] == labels[:, :-1]
-    same[:, :-1] &= labels[:, :-1] == labels[:, 1:]
-    return same
 
 
 def _drop_shallow_edges(labels: np.ndarray, steepness: np.ndarray, valid: np.ndarray) -> np.ndarray:

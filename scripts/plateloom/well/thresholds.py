@@ -8,6 +8,8 @@ import numpy as np
 from scipy import ndimage
 from skimage.filters import threshold_li, threshold_otsu, threshold_triangle
 
+from plateloom.stats import MAD_TO_SD
+
 # Objects brighter than the background by fewer than this many robust noise SDs mean the field
 # holds no objects (Otsu always finds a threshold, even in pure noise).
 MIN_CONTRAST_NOISE_SDS = 5.0
@@ -101,7 +103,7 @@ def object_threshold(smooth: np.ndarray, method: str = "otsu") -> float:
     if len(below) < 16 or len(above) == 0:
         return float("nan")
     below_median = float(np.median(below))
-    noise_sd = 1.4826 * float(np.median(np.abs(below - below_median)))  # robust SD: 1.4826 x MAD
+    noise_sd = MAD_TO_SD * float(np.median(np.abs(below - below_median)))  # robust SD
     if np.median(above) - below_median < MIN_CONTRAST_NOISE_SDS * max(noise_sd, 1e-6):
         return float("nan")
     if method == "log_otsu":
@@ -120,41 +122,3 @@ def fill_holes(mask: np.ndarray) -> np.ndarray:
     outside = np.zeros(count + 1, bool)
     outside[edge] = True
     return mask | ~outside[background]
-
-
-def dilate_cross(mask: np.ndarray) -> np.ndarray:
-    """Binary dilation by the 3x3 cross (``ndimage.binary_dilation`` with its default structure),
-    by shifted slices: many times faster than scipy's binary morphology on large images."""
-    out = mask.copy()
-    out[1:] |= mask[:-1]
-    out[:-1] |= mask[1:]
-    out[:, 1:] |= mask[:, :-1]
-    out[:, :-1] |= mask[:, 1:]
-    return out
-
-
-def erode_cross(mask: np.ndarray) -> np.ndarray:
-    """Binary erosion by the 3x3 cross, outside the image counting as background (as
-    ``ndimage.binary_erosion`` with its defaults)."""
-    out = mask.copy()
-    out[1:] &= mask[:-1]
-    out[:-1] &= mask[1:]
-    out[:, 1:] &= mask[:, :-1]
-    out[:, :-1] &= mask[:, 1:]
-    out[0] = out[-1] = False
-    out[:, 0] = out[:, -1] = False
-    return out
-
-
-def block_reduce(image: np.ndarray, size: int, reduce: Callable) -> np.ndarray:
-    """size x size blocks of an image (edges repeated to whole blocks) combined by the binary ufunc
-    ``reduce`` (np.add, np.maximum, np.logical_or): one pass over strided views, no reshaped copy."""
-    height, width = image.shape
-    if height % size or width % size:
-        image = np.pad(image, ((0, -height % size), (0, -width % size)), mode="edge")
-    out = image[0::size, 0::size].copy()
-    for dy in range(size):
-        for dx in range(size):
-            if dy or dx:
-                reduce(out, image[dy::size, dx::size], out=out)
-    return out
