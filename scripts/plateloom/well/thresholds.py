@@ -83,15 +83,18 @@ def object_threshold(smooth: np.ndarray, method: str = "otsu") -> float:
 
     A field whose pixels above the Otsu split lie (in median) within MIN_CONTRAST_NOISE_SDS robust
     noise SDs of those below it is empty: every automatic threshold finds a level even in pure noise.
+    With ``log_otsu`` a field that fails this on the linear Otsu split is judged again on its own
+    log split: in a dense field (half or more of it nuclei) the linear split runs through the
+    nuclei, and the dim ones below it inflate the noise estimate.
     """
     if method not in THRESHOLD_METHODS:
         raise ValueError(f"unknown threshold method {method!r}; use one of {sorted(THRESHOLD_METHODS)}")
     low, high = float(smooth.min()), float(smooth.max())  # NaN anywhere makes both NaN
     if not (np.isfinite(low) and np.isfinite(high)) or high == low:
         return float("nan")
-    # Whether the field holds objects is judged on the Otsu split whatever the method: contrast
-    # and noise are measured on the pixels below it, so a dense field (a third or more of it
-    # cells) does not inflate the noise estimate.
+    # Whether the field holds objects is judged on the Otsu split whatever the method (contrast and
+    # noise measured on the pixels below it, so a field a third full of cells does not inflate the
+    # noise estimate); log_otsu takes a second look on its own split (see above).
     stride = int(np.ceil(np.sqrt(smooth.size / THRESHOLD_SAMPLE_PIXELS)))
     threshold = float(THRESHOLD_METHODS[method](smooth[::stride, ::stride] if stride > 1 else smooth))
     sample = smooth[::BACKGROUND_STRIDE, ::BACKGROUND_STRIDE]
@@ -99,16 +102,27 @@ def object_threshold(smooth: np.ndarray, method: str = "otsu") -> float:
         split = threshold
     else:
         split = float(threshold_otsu(sample)) if sample.max() > sample.min() else float(sample.max())
-    below, above = sample[sample <= split], sample[sample > split]
-    if len(below) < 16 or len(above) == 0:
-        return float("nan")
-    below_median = float(np.median(below))
-    noise_sd = MAD_TO_SD * float(np.median(np.abs(below - below_median)))  # robust SD
-    if np.median(above) - below_median < MIN_CONTRAST_NOISE_SDS * max(noise_sd, 1e-6):
+    contrast, below_median, noise_sd = _split_contrast(sample, split)
+    if not contrast >= MIN_CONTRAST_NOISE_SDS * noise_sd and method == "log_otsu":
+        # a dense field (half or more of it nuclei): the linear split runs through the nuclei, and
+        # the dim ones below it inflate the noise; the log split lies between background and nuclei
+        contrast, below_median, noise_sd = _split_contrast(sample, threshold)
+    if not contrast >= MIN_CONTRAST_NOISE_SDS * noise_sd:
         return float("nan")
     if method == "log_otsu":
         return max(threshold, below_median + LOG_THRESHOLD_FLOOR_SDS * noise_sd)
     return threshold
+
+
+def _split_contrast(sample: np.ndarray, split: float) -> tuple[float, float, float]:
+    """Median of the pixels above ``split`` minus that of the pixels below it, the median below, and
+    the robust SD (MAD_TO_SD x MAD, at least 1e-6) below it; NaNs when either side is (nearly) empty."""
+    below, above = sample[sample <= split], sample[sample > split]
+    if len(below) < 16 or len(above) == 0:
+        return float("nan"), float("nan"), float("nan")
+    below_median = float(np.median(below))
+    noise_sd = max(MAD_TO_SD * float(np.median(np.abs(below - below_median))), 1e-6)
+    return float(np.median(above)) - below_median, below_median, noise_sd
 
 
 def fill_holes(mask: np.ndarray) -> np.ndarray:
