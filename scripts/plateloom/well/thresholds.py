@@ -17,6 +17,10 @@ MIN_CONTRAST_NOISE_SDS = 5.0
 # SDs: in a sparse field (a few percent of pixels in nuclei) Otsu's split on log intensity can
 # fall inside a background made bimodal by uneven illumination.
 LOG_THRESHOLD_FLOOR_SDS = 3.0
+# With log_otsu, a field whose pixels below the linear Otsu split spread this many times more than
+# those below the log split is dense (half or more of it nuclei): the linear split runs through the
+# nuclei there, so contrast and noise are taken on the log split.
+DENSE_NOISE_RATIO = 2.0
 
 
 # Automatic thresholds are computed from at most this many pixels (a regular grid sample of larger
@@ -83,9 +87,10 @@ def object_threshold(smooth: np.ndarray, method: str = "otsu") -> float:
 
     A field whose pixels above the Otsu split lie (in median) within MIN_CONTRAST_NOISE_SDS robust
     noise SDs of those below it is empty: every automatic threshold finds a level even in pure noise.
-    With ``log_otsu`` a field that fails this on the linear Otsu split is judged again on its own
-    log split: in a dense field (half or more of it nuclei) the linear split runs through the
-    nuclei, and the dim ones below it inflate the noise estimate.
+    With ``log_otsu``, contrast and noise are taken on the log split instead when the objects stand
+    out on it and either not on the linear split or the pixels below the log split spread
+    DENSE_NOISE_RATIO times less: in a dense field the linear split runs through the nuclei, and the
+    dim ones below it inflate the noise estimate.
     """
     if method not in THRESHOLD_METHODS:
         raise ValueError(f"unknown threshold method {method!r}; use one of {sorted(THRESHOLD_METHODS)}")
@@ -94,7 +99,7 @@ def object_threshold(smooth: np.ndarray, method: str = "otsu") -> float:
         return float("nan")
     # Whether the field holds objects is judged on the Otsu split whatever the method (contrast and
     # noise measured on the pixels below it, so a field a third full of cells does not inflate the
-    # noise estimate); log_otsu takes a second look on its own split (see above).
+    # noise estimate); log_otsu may move to its own split (see above).
     stride = int(np.ceil(np.sqrt(smooth.size / THRESHOLD_SAMPLE_PIXELS)))
     threshold = float(THRESHOLD_METHODS[method](smooth[::stride, ::stride] if stride > 1 else smooth))
     sample = smooth[::BACKGROUND_STRIDE, ::BACKGROUND_STRIDE]
@@ -103,10 +108,16 @@ def object_threshold(smooth: np.ndarray, method: str = "otsu") -> float:
     else:
         split = float(threshold_otsu(sample)) if sample.max() > sample.min() else float(sample.max())
     contrast, below_median, noise_sd = _split_contrast(sample, split)
-    if not contrast >= MIN_CONTRAST_NOISE_SDS * noise_sd and method == "log_otsu":
-        # a dense field (half or more of it nuclei): the linear split runs through the nuclei, and
+    if method == "log_otsu":
+        # in a dense field (half or more of it nuclei) the linear split runs through the nuclei and
         # the dim ones below it inflate the noise; the log split lies between background and nuclei
-        contrast, below_median, noise_sd = _split_contrast(sample, threshold)
+        # (in a sparse field the log split may lie inside the background: it is used only when the
+        # objects stand out on it)
+        on_log = _split_contrast(sample, threshold)
+        linear_fails = not contrast >= MIN_CONTRAST_NOISE_SDS * noise_sd
+        prefer_log = linear_fails or on_log[2] * DENSE_NOISE_RATIO < noise_sd
+        if prefer_log and on_log[0] >= MIN_CONTRAST_NOISE_SDS * on_log[2]:
+            contrast, below_median, noise_sd = on_log
     if not contrast >= MIN_CONTRAST_NOISE_SDS * noise_sd:
         return float("nan")
     if method == "log_otsu":
