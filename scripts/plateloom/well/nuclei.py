@@ -31,7 +31,13 @@ from skimage.segmentation import watershed
 
 from plateloom.well.morphology import dilate_cross, erode_cross, same_as_neighbours
 from plateloom.well.segment import _bounding_boxes, _drop_small, split_touching
-from plateloom.well.thresholds import BACKGROUND_STRIDE, fill_holes, object_threshold, smooth_image
+from plateloom.well.thresholds import (
+    BACKGROUND_STRIDE,
+    fill_holes,
+    gaussian_reach_px,
+    object_threshold,
+    smooth_image,
+)
 
 CORE_RATIO = 0.5  # a core pixel is at least this share of the brightest value around it ...
 CORE_WINDOW = 0.8  # ... within this many typical nuclear radii (square window)
@@ -123,15 +129,19 @@ def _pack(
         )
         place = (slice(y, y + h), slice(x, x + w))
         inner = (slice(y + pad[0][0], y + h - pad[0][1]), slice(x + pad[1][0], x + w - pad[1][1]))
-        mirrored = any(pad[0]) or any(pad[1])
-        image[place] = np.pad(smooth[frame], pad, mode="symmetric") if mirrored else smooth[frame]
+        image[place] = _mirrored(smooth[frame], pad)
         own[inner] = np.where(components[frame] == component, component, 0)
-        fore[place] = np.pad(foreground[frame], pad, mode="symmetric") if mirrored else foreground[frame]
+        fore[place] = _mirrored(foreground[frame], pad)
         valid[inner] = True
         if sat is not None:
-            sat[place] = np.pad(saturated[frame], pad, mode="symmetric") if mirrored else saturated[frame]
+            sat[place] = _mirrored(saturated[frame], pad)
         places.append((frame, inner))
     return _Canvas(image, own, fore, valid, sat, places)
+
+
+def _mirrored(window: np.ndarray, pad: tuple[tuple[int, int], tuple[int, int]]) -> np.ndarray:
+    """``window`` extended by ``pad`` pixels mirrored at its edges (itself when nothing is to add)."""
+    return np.pad(window, pad, mode="symmetric") if any(pad[0]) or any(pad[1]) else window
 
 
 def _core_window(radius_px: float) -> int:
@@ -349,7 +359,7 @@ def segment_nuclei_on_edges(
     outside = ~foreground[::BACKGROUND_STRIDE, ::BACKGROUND_STRIDE]
     background = float(np.median(sample[outside])) if outside.any() else floor
     radius_px = 0.5 * nucleus_diameter_um / pixel_size_um
-    margin = max(RING_PX, _core_window(radius_px) // 2 + int(4.0 * CORE_SMOOTHING_PX + 0.5))  # what the filters read
+    margin = max(RING_PX, _core_window(radius_px) // 2 + gaussian_reach_px(CORE_SMOOTHING_PX))  # what the filters read
     canvas = _pack(smooth, components, foreground, index, np.flatnonzero(keep), margin, saturated)
     min_distance_px = max(1, int(round(split_min_distance_um / pixel_size_um)))
     found = _nuclei_on_canvas(canvas, floor, background, radius_px, min_distance_px)

@@ -53,6 +53,12 @@ THRESHOLD_METHODS: dict[str, Callable[[np.ndarray], float]] = {
 }
 
 
+def gaussian_reach_px(sigma_px: float) -> int:
+    """How far (pixels) ``smooth_image`` reads around a pixel: the kernel truncated at 4 sigma, as
+    ``scipy.ndimage.gaussian_filter``."""
+    return int(4.0 * sigma_px + 0.5)
+
+
 def smooth_image(image: np.ndarray, sigma_px: float) -> np.ndarray:
     """Gaussian smoothing in float32 (sigma in pixels; 0 returns a float32 copy).
 
@@ -64,7 +70,7 @@ def smooth_image(image: np.ndarray, sigma_px: float) -> np.ndarray:
     image = image.astype(np.float32, copy=False)
     if sigma_px <= 0:
         return image.copy()
-    radius = int(4.0 * sigma_px + 0.5)
+    radius = gaussian_reach_px(sigma_px)
     offsets = np.arange(-radius, radius + 1)
     kernel = np.exp(-0.5 * offsets**2 / sigma_px**2)
     kernel /= kernel.sum()
