@@ -112,6 +112,24 @@ def test_cross_morphology_by_slices_equals_scipy(seed, density, height, width):
 
 
 @settings(max_examples=40, deadline=None)
+@given(st.integers(0, 10_000), st.integers(0, 4), st.integers(1, 30), st.integers(1, 30))
+def test_square_maximum_by_slices_equals_scipy(seed, reach, height, width):
+    # reference: scipy.ndimage.maximum_filter (edges reflected) on float, integer label and boolean images
+    from scipy import ndimage
+
+    from plateloom.well.morphology import maximum_square
+
+    rng = np.random.default_rng(seed)
+    size = 2 * reach + 1
+    for image in (
+        rng.normal(0, 1, (height, width)).astype(np.float32),
+        rng.integers(0, 6, (height, width)).astype(np.int32),
+        rng.random((height, width)) < 0.1,
+    ):
+        assert np.array_equal(maximum_square(image, size), ndimage.maximum_filter(image, size=size))
+
+
+@settings(max_examples=40, deadline=None)
 @given(st.integers(0, 10_000), st.integers(1, 12))
 def test_label_medians_equal_numpy_per_label(seed, n_labels):
     # reference: numpy's median of each label's values (the lower middle value for an even count,

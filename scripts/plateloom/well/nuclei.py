@@ -29,7 +29,7 @@ from scipy import ndimage
 from skimage.measure import label as connected_regions
 from skimage.segmentation import watershed
 
-from plateloom.well.morphology import dilate_cross, erode_cross, same_as_neighbours
+from plateloom.well.morphology import dilate_cross, erode_cross, maximum_square, same_as_neighbours
 from plateloom.well.segment import _bounding_boxes, _drop_small, split_touching
 from plateloom.well.thresholds import (
     BACKGROUND_STRIDE,
@@ -153,7 +153,7 @@ def _cores(canvas: _Canvas, floor: float, radius_px: float, min_distance_px: int
     """Labelled nucleus cores of the canvas (see the module docstring)."""
     signal = smooth_image(canvas.image, CORE_SMOOTHING_PX) - np.float32(floor)
     window = _core_window(radius_px)
-    ratio = signal / np.maximum(ndimage.maximum_filter(signal, size=window), 1.0)
+    ratio = signal / np.maximum(maximum_square(signal, window), 1.0)
     level = _core_levels(canvas.saturated, window, radius_px)
     cores = dilate_cross(erode_cross((ratio > level) & (canvas.own > 0)))  # binary opening
     labelled, count = ndimage.label(cores)
@@ -204,14 +204,14 @@ def _core_levels(saturated: np.ndarray | None, window: int, radius_px: float) ->
     large[0] = False
     if not large.any():
         return CORE_RATIO
-    near = ndimage.maximum_filter(large[regions], size=window)
+    near = maximum_square(large[regions], window)
     return np.where(near, np.float32(SATURATED_CORE_RATIO), np.float32(CORE_RATIO))
 
 
 def _ring_background(canvas: _Canvas, labels: np.ndarray, fallback: float) -> np.ndarray:
     """Mean smoothed value of the non-foreground pixels within RING_PX of each label (``fallback``
     for a label with no such pixel); indexed by label."""
-    grown = ndimage.grey_dilation(labels, size=(2 * RING_PX + 1, 2 * RING_PX + 1))
+    grown = maximum_square(labels, 2 * RING_PX + 1)
     ring = (grown > 0) & ~canvas.foreground & canvas.valid
     owner, values = grown[ring], canvas.image[ring]
     count = np.bincount(owner, minlength=labels.max() + 1)
