@@ -96,32 +96,41 @@ def _split_components(masks: list[np.ndarray], min_distance_px: int) -> list[np.
     """Watershed split of components on their distance transform, all in one pass.
 
     ``masks`` are the components' bounding-box masks; they are laid side by side in one strip
-    image, so every whole-image step runs once. Seeds are the distance maxima at least
+    image, ``min_distance_px`` + 1 pixels apart so that maxima of neighbouring masks never suppress
+    each other, and every whole-image step runs once. Seeds are the distance maxima at least
     ``min_distance_px`` apart that rise SEED_DEPTH_PX above the saddle to the next one, so the
     long ridge of an elongated nucleus gives one seed; only the masks with two or more distance
     maxima (most have one) go on to that depth test. Returns, per mask, its parts numbered 1..k
     in raster order (all 1 when it is not split); the image edge counts as background.
     """
-    gap = min_distance_px + 1  # maxima of neighbouring masks never suppress each other
-    piece, _ = _strip(masks, gap)
+    gap = min_distance_px + 1
+    piece, starts = _strip(masks, gap)
+    # one search over the strip (skimage's per-label search, ``labels=``, loops over the labels)
     distance = ndimage.distance_transform_edt(piece > 0)
     peaks = peak_local_max(distance, min_distance=min_distance_px, exclude_border=False)
-    maxima = np.bincount(piece[tuple(peaks.T)], minlength=len(masks) + 1)
-    several = np.flatnonzero(maxima[1:] >= 2)
+    owner = piece[tuple(peaks.T)]
+    several = np.flatnonzero(np.bincount(owner, minlength=len(masks) + 1)[1:] >= 2)
     out = [mask.astype(np.int32) for mask in masks]
     if len(several) == 0:
         return out
-    for number, parts in zip(several, _split_by_depth([masks[i] for i in several], min_distance_px)):
+    # the peaks of those masks, moved to a strip of their own (1 pixel apart)
+    chosen = np.isin(owner, several + 1)
+    number_in_strip = np.zeros(len(masks) + 1, np.int64)
+    number_in_strip[several + 1] = np.arange(1, len(several) + 1)
+    _, new_starts = _strip([masks[i] for i in several], 1)
+    moved = peaks[chosen] - np.stack([np.full(chosen.sum(), gap - 1), starts[owner[chosen] - 1]], axis=1)
+    moved[:, 1] += new_starts[number_in_strip[owner[chosen]] - 1]
+    for number, parts in zip(several, _split_by_depth([masks[i] for i in several], moved)):
         out[number] = parts
     return out
 
 
-def _split_by_depth(masks: list[np.ndarray], min_distance_px: int) -> list[np.ndarray]:
-    """The split of masks that have several distance maxima: seeds as in ``_split_components``."""
+def _split_by_depth(masks: list[np.ndarray], peaks: np.ndarray) -> list[np.ndarray]:
+    """The split of masks that have several distance maxima (``peaks``: their positions in the
+    masks' strip, 1 pixel apart): seeds as in ``_split_components``."""
     piece, starts = _strip(masks, 1)
     strip = piece > 0
     distance = ndimage.distance_transform_edt(strip)
-    peaks = peak_local_max(distance, min_distance=min_distance_px, labels=piece, exclude_border=False)
     regions, n_regions = ndimage.label(h_maxima(distance, SEED_DEPTH_PX))
     region_piece = np.zeros(n_regions + 1, np.int64)
     region_piece[regions[strip]] = piece[strip]
