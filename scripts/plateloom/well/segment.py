@@ -92,13 +92,13 @@ def _strip(masks: list[np.ndarray], gap: int) -> tuple[np.ndarray, np.ndarray]:
     return piece, starts
 
 
-def _split_components(masks: list[np.ndarray], min_distance_px: int) -> list[np.ndarray]:
+def _split_components(masks: list[np.ndarray], min_distance_px: int, seed_depth_px: float) -> list[np.ndarray]:
     """Watershed split of components on their distance transform, all in one pass.
 
     ``masks`` are the components' bounding-box masks; they are laid side by side in one strip
     image, ``min_distance_px`` + 1 pixels apart so that maxima of neighbouring masks never suppress
     each other, and every whole-image step runs once. Seeds are the distance maxima at least
-    ``min_distance_px`` apart that rise SEED_DEPTH_PX above the saddle to the next one, so the
+    ``min_distance_px`` apart that rise ``seed_depth_px`` above the saddle to the next one, so the
     long ridge of an elongated nucleus gives one seed; only the masks with two or more distance
     maxima (most have one) go on to that depth test. Returns, per mask, its parts numbered 1..k
     in raster order (all 1 when it is not split); the image edge counts as background.
@@ -120,18 +120,18 @@ def _split_components(masks: list[np.ndarray], min_distance_px: int) -> list[np.
     _, new_starts = _strip([masks[i] for i in several], 1)
     moved = peaks[chosen] - np.stack([np.full(chosen.sum(), gap - 1), starts[owner[chosen] - 1]], axis=1)
     moved[:, 1] += new_starts[number_in_strip[owner[chosen]] - 1]
-    for number, parts in zip(several, _split_by_depth([masks[i] for i in several], moved)):
+    for number, parts in zip(several, _split_by_depth([masks[i] for i in several], moved, seed_depth_px)):
         out[number] = parts
     return out
 
 
-def _split_by_depth(masks: list[np.ndarray], peaks: np.ndarray) -> list[np.ndarray]:
+def _split_by_depth(masks: list[np.ndarray], peaks: np.ndarray, seed_depth_px: float) -> list[np.ndarray]:
     """The split of masks that have several distance maxima (``peaks``: their positions in the
     masks' strip, 1 pixel apart): seeds as in ``_split_components``."""
     piece, starts = _strip(masks, 1)
     strip = piece > 0
     distance = ndimage.distance_transform_edt(strip)
-    regions, n_regions = ndimage.label(h_maxima(distance, SEED_DEPTH_PX))
+    regions, n_regions = ndimage.label(h_maxima(distance, seed_depth_px))
     region_piece = np.zeros(n_regions + 1, np.int64)
     region_piece[regions[strip]] = piece[strip]
     seeded = np.zeros(n_regions + 1, bool)
@@ -165,13 +165,15 @@ def split_touching(
     index: np.ndarray | None = None,
     area_factor: float = SPLIT_AREA_FACTOR,
     min_fill: float = SPLIT_ELLIPSE_FILL,
+    seed_depth_px: float = SEED_DEPTH_PX,
 ) -> np.ndarray:
     """Labels after splitting the components that may hold touching nuclei; the rest are kept whole.
 
     ``components`` holds ids 1..count, some of which may be unused (area 0); ``index``, if
     given, holds the flat indices of every component pixel (maybe more). A component is a
     candidate when its area is above ``area_factor`` x the median or it fills less than
-    ``min_fill`` of its moment ellipse.
+    ``min_fill`` of its moment ellipse; its seeds are distance maxima rising ``seed_depth_px``
+    (pixels) above the saddle to the next one.
     """
     area, fill = _component_shapes(components, count, index)
     present = area > 0
@@ -185,7 +187,8 @@ def split_touching(
     boxes = _bounding_boxes(index, label_of_pixel, candidates, components.shape[1])
     masks = [components[box] == label for label, box in zip(candidates, boxes)]
     next_label = count + 1
-    for label, box, mask, parts in zip(candidates, boxes, masks, _split_components(masks, min_distance_px)):
+    split = _split_components(masks, min_distance_px, seed_depth_px)
+    for label, box, mask, parts in zip(candidates, boxes, masks, split):
         n_parts = int(parts.max())
         if n_parts < 2:
             continue
