@@ -14,7 +14,7 @@ import numpy as np
 import pandas as pd
 from scipy.spatial import cKDTree
 
-from plateloom.well.object_pixels import ObjectPixels, neighbour_label
+from plateloom.well.object_pixels import ObjectPixels, neighbour_values
 from plateloom.well.texture import GLCM_PROPERTIES, TextureSettings, glcm_measures
 
 SQRT2 = np.sqrt(2.0)
@@ -31,12 +31,13 @@ def perimeters(labels: np.ndarray, pixels: ObjectPixels) -> tuple[np.ndarray, np
     and, per object pixel, whether it lies on the object's 4-connected border."""
     padded = np.pad(labels, 1)
     own = pixels.label
+    at = pixels.in_padded(1)
     interior = np.ones(len(own), bool)
     for dy, dx in ((-1, 0), (1, 0), (0, -1), (0, 1)):
-        interior &= neighbour_label(padded, pixels, 1, dy, dx) == own
+        interior &= neighbour_values(padded, at, dy, dx) == own
     border_image = np.zeros(np.add(labels.shape, 2), bool)
-    border_image[pixels.row[~interior] + 1, pixels.col[~interior] + 1] = True
-    rows, cols, lab = pixels.row[~interior] + 1, pixels.col[~interior] + 1, own[~interior]
+    on_border, lab = at[~interior], own[~interior]
+    border_image.ravel()[on_border] = True
     code = np.ones(len(lab), np.int64)
     for dy, dx, weight in (
         (-1, 0, 2),
@@ -48,7 +49,7 @@ def perimeters(labels: np.ndarray, pixels: ObjectPixels) -> tuple[np.ndarray, np
         (1, -1, 10),
         (1, 1, 10),
     ):
-        same = (padded[rows + dy, cols + dx] == lab) & border_image[rows + dy, cols + dx]
+        same = (neighbour_values(padded, on_border, dy, dx) == lab) & neighbour_values(border_image, on_border, dy, dx)
         code += weight * same
     return np.bincount(lab, PERIMETER_WEIGHTS[code], minlength=pixels.count + 1)[1:], ~interior
 

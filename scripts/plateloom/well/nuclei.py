@@ -191,11 +191,16 @@ def _grow_cores(cores: np.ndarray, components: np.ndarray, surface: np.ndarray) 
     only_core = np.zeros(len(n_cores), np.int32)
     single = n_cores[owner_component] == 1
     only_core[owner_component[single]] = owner_core[single]
-    grown = only_core[components]
-    several = n_cores[components] >= 2
-    if several.any():
+    index = np.flatnonzero(components)  # the components' pixels: a fraction of the canvas
+    component = components.ravel()[index]
+    grown = np.zeros_like(cores)
+    grown.ravel()[index] = only_core[component]
+    flood = index[n_cores[component] >= 2]
+    if len(flood):
+        several = np.zeros(components.shape, bool)
+        several.ravel()[flood] = True
         flooded = watershed(surface, np.where(several, cores, 0), mask=several)
-        grown[several] = flooded[several]
+        grown.ravel()[flood] = flooded.ravel()[flood]
     return grown
 
 

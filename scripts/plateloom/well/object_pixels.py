@@ -32,6 +32,10 @@ class ObjectPixels:
         starts = np.searchsorted(label, np.arange(1, count + 1))
         return cls(labels.shape, count, index, label, row, col, starts)
 
+    def in_padded(self, pad: int) -> np.ndarray:
+        """Flat index of each object pixel in the image padded by ``pad`` pixels on every side."""
+        return (self.row + pad) * (self.shape[1] + 2 * pad) + (self.col + pad)
+
     def sums(self, weights: np.ndarray | None = None) -> np.ndarray:
         """Per-label sums (labels 1..count) of ``weights`` over the object pixels (or pixel counts)."""
         return np.bincount(self.label, weights, minlength=self.count + 1)[1:]
@@ -45,6 +49,8 @@ def stable_label_order(label: np.ndarray) -> np.ndarray:
     return np.argsort(label, kind="stable")
 
 
-def neighbour_label(labels_padded: np.ndarray, pixels: ObjectPixels, pad: int, dy: int, dx: int) -> np.ndarray:
-    """Label of the pixel at offset (dy, dx) from each object pixel, in a label image padded by ``pad``."""
-    return labels_padded[pixels.row + pad + dy, pixels.col + pad + dx]
+def neighbour_values(padded: np.ndarray, at: np.ndarray, dy: int, dx: int) -> np.ndarray:
+    """Value at offset (dy, dx) from each object pixel in a padded image (labels, levels, flags; ``at``:
+    the pixels' flat indices in it, ``ObjectPixels.in_padded``); a flat gather, about twice as fast
+    as indexing by rows and columns."""
+    return padded.ravel()[at + (dy * padded.shape[1] + dx)]

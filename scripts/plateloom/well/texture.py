@@ -8,7 +8,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from plateloom.well.object_pixels import ObjectPixels, neighbour_label
+from plateloom.well.object_pixels import ObjectPixels, neighbour_values
 
 GLCM_ANGLES = (0.0, np.pi / 4, np.pi / 2, 3 * np.pi / 4)
 
@@ -45,13 +45,14 @@ def glcm_measures(
     level = np.clip(((value - low[pixels.label]) / span[pixels.label] * levels).astype(np.int64), 0, levels - 1)
     # levels <= 64 (config schema); only pixels of the same object are read back, so no fill is needed
     quantised = np.empty(np.add(labels.shape, 2 * distance_px), np.int16)
-    quantised[pixels.row + distance_px, pixels.col + distance_px] = level
+    at = pixels.in_padded(distance_px)
+    quantised.ravel()[at] = level
     padded_labels = np.pad(labels, distance_px)
     keys = []
     for angle_index, angle in enumerate(GLCM_ANGLES):
         dy, dx = int(np.round(np.sin(angle) * distance_px)), int(np.round(np.cos(angle) * distance_px))
-        same = neighbour_label(padded_labels, pixels, distance_px, dy, dx) == pixels.label
-        j = quantised[pixels.row[same] + distance_px + dy, pixels.col[same] + distance_px + dx]
+        same = neighbour_values(padded_labels, at, dy, dx) == pixels.label
+        j = neighbour_values(quantised, at[same], dy, dx)
         keys.append(((angle_index * (n + 1) + pixels.label[same]) * levels + level[same]) * levels + j)
     # the co-occurrence matrices of every angle and object at once: (angles, objects, levels, levels)
     counts = np.bincount(np.concatenate(keys), minlength=len(GLCM_ANGLES) * (n + 1) * levels * levels)
