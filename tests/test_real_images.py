@@ -40,13 +40,13 @@ def fields():
     return found
 
 
-def test_average_precision_at_iou_05_is_at_least_093(fields):
-    # measured 0.944 here and 0.946-0.953 on five sets of 64 other fields (0.930 and 0.934-0.943
-    # with a 1 px seed depth in the shape splits; 0.916 and 0.918-0.930 before grown nuclei were
-    # split by shape); most remaining errors are the middle nucleus of a dense cluster merged into
-    # a neighbour
+def test_average_precision_at_iou_05_is_at_least_092(fields):
+    # measured 0.931 here and 0.943-0.948 on five sets of 64 other fields (0.930 and 0.934-0.943
+    # with a 1 px seed depth in the split after growth; 0.916 and 0.918-0.930 before grown nuclei
+    # were split by shape); most remaining errors are the middle nucleus of a dense cluster merged
+    # into a neighbour
     ap = pooled_average_precision([(truth, labels) for _, truth, _, labels in fields])
-    assert ap[0.5] >= 0.93, ap[0.5]  # the goal is 0.90; 0.93 keeps what the shallower seed depth gained
+    assert ap[0.5] >= 0.92, ap[0.5]  # the goal is 0.90; 0.92 keeps what the shape split after growth gained
 
 
 def test_the_earlier_default_fails_these_fields():
@@ -86,8 +86,8 @@ def test_nuclei_touching_a_saturated_cell_are_found(fields):
         touching += len(neighbours)
         found += int((iou[neighbours - 1] > 0.5).any(axis=1).sum())
     assert touching >= 10, touching  # the fields do hold such neighbours
-    # measured: 20 of 21 here; pooled over 320 other fields (5 sets of 64) 497 of 518 = 0.959 (492
-    # with a 1 px seed depth in the shape splits, 486 before grown nuclei were split by shape, 0.905
+    # measured: 19 of 21 here; pooled over 320 other fields (5 sets of 64) 494 of 518 = 0.954 (492
+    # with a 1 px seed depth in the split after growth, 486 before grown nuclei were split, 0.905
     # before cores near large saturated regions needed 0.7 of the ceiling); the goal is 0.95, which
     # these 21 cannot resolve (one miss is 0.952), so the pooled figure is the measurement
     assert found / touching >= 0.9, (found, touching)

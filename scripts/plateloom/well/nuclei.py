@@ -52,13 +52,14 @@ CORE_SPLIT_FILL = 0.96  # moment ellipse than this, go to the shape split
 # of the shape's cut. Measured on 320 realistic fields (5 sets of 64): average precision 0.918-0.930
 # -> 0.934-0.944 (0.916 -> 0.931 on the test's 16), nuclei touching a saturated cell found 486 -> 492 of 518.
 REDRAW_PX = 3
-# Both shape splits (cores, and outlines after growth) take as seeds the distance maxima that rise
-# this many pixels above the saddle to the next one (the half-maximum path's outlines use 1 px,
-# ``segment.SEED_DEPTH_PX``): a nucleus squeezed against a neighbour in a cluster leaves a shallow
-# waist. Measured on 320 realistic fields (5 sets of 64): average precision 0.934-0.943 ->
-# 0.946-0.953 (0.930 -> 0.944 on the test's 16), nuclei touching a saturated cell found 492 -> 497
-# of 518; 0.75 px gave less (0.939-0.946 on two sets), 0.25 px the same as 0.5.
-SEED_DEPTH_PX = 0.5
+# The shape split after growth takes as seeds the distance maxima that rise this many pixels above
+# the saddle to the next one (the cores' split keeps ``segment.SEED_DEPTH_PX``, 1 px): a nucleus
+# squeezed against a neighbour in a cluster leaves a shallow waist. Measured on 320 realistic fields
+# (5 sets of 64): average precision 0.934-0.943 -> 0.943-0.948 (0.930 -> 0.931 on the test's 16),
+# nuclei touching a saturated cell found 492 -> 494 of 518. Half a pixel in the cores' split too
+# gave more (0.946-0.953, 497) but lost 2 of 41 planted divisions and added a false death;
+# 0.75 px there kept the divisions and gave 0.945-0.951, 494.
+GROWN_SEED_DEPTH_PX = 0.5
 MIN_EDGE_STEEPNESS = 0.15  # median log-intensity gradient (Sobel) along the edge facing the background:
 # glow and out-of-focus haze fall off slowly (about 0.05), nuclei steeply (0.2 and more)
 # A saturated cell's real peak lies above the camera's ceiling, so half its height lies above half
@@ -170,14 +171,7 @@ def _cores(canvas: _Canvas, floor: float, radius_px: float, min_distance_px: int
     labelled[small[labelled]] = 0
     if not labelled.any():
         return labelled
-    return split_touching(
-        labelled,
-        count,
-        min_distance_px,
-        area_factor=CORE_SPLIT_AREA,
-        min_fill=CORE_SPLIT_FILL,
-        seed_depth_px=SEED_DEPTH_PX,
-    )
+    return split_touching(labelled, count, min_distance_px, area_factor=CORE_SPLIT_AREA, min_fill=CORE_SPLIT_FILL)
 
 
 def _grow_cores(cores: np.ndarray, components: np.ndarray, surface: np.ndarray) -> np.ndarray:
@@ -320,7 +314,7 @@ def _split_grown(labels: np.ndarray, surface: np.ndarray, min_distance_px: int) 
     cut outlines, which show the waist that a merged core hides), their new boundary redrawn along
     the steepest edge: the parts, eroded by REDRAW_PX, flood the pair again on ``surface``."""
     count = int(labels.max())
-    split = split_touching(labels, count, min_distance_px, seed_depth_px=SEED_DEPTH_PX)
+    split = split_touching(labels, count, min_distance_px, seed_depth_px=GROWN_SEED_DEPTH_PX)
     if split.max() <= count:
         return split
     changed = np.isin(labels, np.unique(labels[split > count]))

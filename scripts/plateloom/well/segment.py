@@ -18,7 +18,7 @@ from plateloom.well.object_pixels import stable_label_order
 from plateloom.well.thresholds import BACKGROUND_STRIDE, fill_holes, object_threshold, smooth_image
 
 # Seeds of the shape split rise this many pixels (distance transform) above the saddle to the next
-# seed (the default; the edges path of plateloom.well.nuclei uses its own SEED_DEPTH_PX).
+# seed (the default; the edges path splits grown outlines at plateloom.well.nuclei.GROWN_SEED_DEPTH_PX).
 SEED_DEPTH_PX = 1.0
 
 
