@@ -115,22 +115,22 @@ def _split_components(masks: list[np.ndarray], min_distance_px: int, seed_depth_
     out = [mask.astype(np.int32) for mask in masks]
     if len(several) == 0:
         return out
-    # the peaks of those masks, moved to a strip of their own (1 pixel apart)
+    # the peaks of those masks: which of them (0..) and where in its own mask
     chosen = np.isin(owner, several + 1)
-    number_in_strip = np.zeros(len(masks) + 1, np.int64)
-    number_in_strip[several + 1] = np.arange(1, len(several) + 1)
-    _, new_starts = _strip([masks[i] for i in several], 1)
-    moved = peaks[chosen] - np.stack([np.full(chosen.sum(), gap - 1), starts[owner[chosen] - 1]], axis=1)
-    moved[:, 1] += new_starts[number_in_strip[owner[chosen]] - 1]
-    for number, parts in zip(several, _split_by_depth([masks[i] for i in several], moved, seed_depth_px)):
+    which = np.searchsorted(several, owner[chosen] - 1)
+    local = peaks[chosen] - np.stack([np.full(len(which), gap), starts[several[which]]], axis=1)
+    for number, parts in zip(several, _split_by_depth([masks[i] for i in several], which, local, seed_depth_px)):
         out[number] = parts
     return out
 
 
-def _split_by_depth(masks: list[np.ndarray], peaks: np.ndarray, seed_depth_px: float) -> list[np.ndarray]:
-    """The split of masks that have several distance maxima (``peaks``: their positions in the
-    masks' strip, 1 pixel apart): seeds as in ``_split_components``."""
+def _split_by_depth(
+    masks: list[np.ndarray], which: np.ndarray, local: np.ndarray, seed_depth_px: float
+) -> list[np.ndarray]:
+    """The split of masks that have several distance maxima (``which`` mask, 0.., and ``local``
+    position in it of each maximum): seeds as in ``_split_components``."""
     piece, starts = _strip(masks, 1)
+    peaks = local + np.stack([np.ones(len(which), np.int64), starts[which]], axis=1)
     strip = piece > 0
     distance = ndimage.distance_transform_edt(strip)
     regions, n_regions = ndimage.label(h_maxima(distance, seed_depth_px))

@@ -24,7 +24,7 @@ DENSE_NOISE_RATIO = 2.0
 
 
 # Automatic thresholds are computed from at most this many pixels (a regular grid sample of larger
-# images): for a 1024x1024 frame that is the background statistics' grid of every 4th pixel, whose
+# images): for a 1024x1024 frame the grid of every 4th pixel (as the background statistics), whose
 # log_otsu threshold lay within half a histogram bin (0.7%) of the whole frame's on the benchmark site.
 THRESHOLD_SAMPLE_PIXELS = 1 << 16
 # Statistics of the background are taken on every BACKGROUND_STRIDE-th pixel in each direction:
@@ -107,8 +107,8 @@ def object_threshold(smooth: np.ndarray, method: str = "otsu") -> float:
     # noise measured on the pixels below it, so a field a third full of cells does not inflate the
     # noise estimate); log_otsu may move to its own split (see above).
     stride = int(np.ceil(np.sqrt(smooth.size / THRESHOLD_SAMPLE_PIXELS)))
+    threshold = float(THRESHOLD_METHODS[method](smooth[::stride, ::stride]))
     sample = smooth[::BACKGROUND_STRIDE, ::BACKGROUND_STRIDE]
-    threshold = float(THRESHOLD_METHODS[method](sample if stride == BACKGROUND_STRIDE else smooth[::stride, ::stride]))
     if method == "otsu":
         split = threshold
     else:
