@@ -308,17 +308,18 @@ def _stream_tiff_site(
         files = _TiffSite(index, well, site, channels, stack)
         shape = shape or files.usual_shape(channels)
         for frame in range(files.n_frames):
-            planes, saturated, problem = [], [], ""
-            for channel in channels:
+            planes, saturated, problem = None, [], ""
+            for number, channel in enumerate(channels):
                 try:
                     plane, path = files.raw_plane(channel, frame)
                     saturated.append(saturated_fraction(plane))
-                    plane = check_plane(plane, path, shape, pixel_type)
+                    if planes is None:  # converted straight into the frame's array: one copy, not two
+                        planes = np.empty((len(channels),) + (shape or plane.shape), np.float32)
+                    check_plane(plane, path, planes.shape[1:], pixel_type, out=planes[number])
                 except InputError as error:
                     problem = f"{files.where}, frame {files.start + frame}: {error}"
                     break
-                planes.append(plane)
             if problem:
                 yield SiteFrame(files.start + frame, None, np.full(len(channels), np.nan), problem)
             else:
-                yield SiteFrame(files.start + frame, np.stack(planes), np.array(saturated))
+                yield SiteFrame(files.start + frame, planes, np.array(saturated))

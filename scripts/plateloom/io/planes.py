@@ -67,8 +67,15 @@ def saturation_masks(planes: np.ndarray) -> np.ndarray | None:
 
 
 def check_plane(
-    plane: np.ndarray, path: str, shape: tuple[int, ...] | None, pixel_type: str | None = None
+    plane: np.ndarray,
+    path: str,
+    shape: tuple[int, ...] | None,
+    pixel_type: str | None = None,
+    out: np.ndarray | None = None,
 ) -> np.ndarray:
+    """``plane`` as float32 (written into ``out`` if given), after checking that it is one 2-D plane
+    of ``shape`` and ``pixel_type`` (when given) with finite numeric pixels; InputError naming
+    ``path`` and the fix otherwise."""
     if plane.ndim != 2:
         raise InputError(
             path,
@@ -94,7 +101,11 @@ def check_plane(
             path, f"pixel type {plane.dtype} is not numeric.", "save grey-level images (uint8, uint16 or float)."
         )
     is_float = np.issubdtype(plane.dtype, np.floating)
-    plane = plane.astype(np.float32, copy=False)
+    if out is None:
+        plane = plane.astype(np.float32, copy=False)
+    else:
+        np.copyto(out, plane, casting="unsafe")  # float64 input is rounded to float32 as astype does
+        plane = out
     if is_float and not np.isfinite(plane).all():  # integer pixels are always finite
         raise InputError(
             path, "image holds NaN or infinite pixels.", "re-export the images; plateloom expects finite grey levels."
