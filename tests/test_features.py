@@ -14,12 +14,12 @@ from skimage.measure import regionprops_table
 from plateloom.demo.scenario import QUANTITIES, load_scenario
 from plateloom.demo.simulate import simulate_site
 from plateloom.well.cell_bodies import grow_cell_bodies
-from plateloom.well.features import measure_objects
+from plateloom.well.features import convex_areas, measure_objects, perimeters
 from plateloom.well.image_qc import focus_score
 from plateloom.well.object_pixels import ObjectPixels
 from plateloom.well.segment import segment_label_free, segment_nuclei
 from plateloom.well.texture import GLCM_ANGLES, glcm_measures
-from plateloom.well.thresholds import object_threshold
+from plateloom.well.thresholds import object_threshold, otsu_of_sorted, threshold_log_otsu
 
 
 def _demo_frame(cells=60, size=256, seed=3):
@@ -205,6 +205,31 @@ def test_threshold_from_a_grid_sample_of_a_large_frame_matches_the_whole_frame()
     assert abs(object_threshold(smooth) - threshold_otsu(smooth)) <= bin_width
 
 
+def test_thresholds_from_sorted_values_equal_skimage_and_numpy():
+    # Reference: skimage.filters.threshold_otsu and numpy.percentile on the unsorted values. The
+    # sorted-sample forms must give the same floats on awkward samples: ties, two levels, a
+    # constant, a few huge outliers, float32 and float64.
+    rng = np.random.default_rng(8)
+    samples = [
+        rng.lognormal(3, 1, 5000).astype(np.float32),
+        np.round(rng.lognormal(3, 1, 4001)).astype(np.float32),  # ties on histogram edges
+        np.repeat([10.0, 30.0], [900, 100]),
+        np.full(50, 7.0, np.float32),
+        np.concatenate([rng.normal(100, 5, 3000), [60000.0] * 3]),
+        rng.normal(0, 1, 17),
+    ]
+    for values in samples:
+        ordered = np.sort(values)
+        if values.min() < values.max():
+            assert otsu_of_sorted(ordered) == float(threshold_otsu(values))
+        else:
+            assert otsu_of_sorted(ordered) == values[0]
+        floor = float(np.percentile(values, 0.5))
+        logs = np.log1p(np.maximum(values.astype(np.float64) - floor, 0.0))
+        expected = float(np.expm1(threshold_otsu(logs)) + floor) if logs.max() > logs.min() else float(values.max())
+        assert threshold_log_otsu(values) == expected
+
+
 @pytest.mark.parametrize("sigma_um", [1.0, 2.5])
 def test_cell_bodies_match_planted_bodies_on_full_and_binned_grids(sigma_um):
     # Planted truth: 12 cells on a 256x256 field, bodies of radius 22 px, some touching, around
@@ -324,3 +349,37 @@ def test_cell_bodies_on_a_field_without_body_signal_are_the_nuclei():
     nuclei[disk((90, 70), 8)] = 2
     flat = (500 + np.random.default_rng(13).normal(0, 5, nuclei.shape)).astype(np.float32)
     np.testing.assert_array_equal(grow_cell_bodies(nuclei, flat, 0.5, 1.25), nuclei)
+
+
+def test_convex_areas_equal_regionprops_on_awkward_shapes():
+    # Reference: skimage.measure.regionprops' area_convex, object by object. Shapes that stress the
+    # hull: random walks (concave, with holes and notches), single pixels, one-pixel lines in every
+    # direction, and objects touching the image edge.
+    rng = np.random.default_rng(11)
+    labels = np.zeros((160, 160), np.int32)
+    label = 0
+    for top in range(0, 160, 20):
+        for left in range(0, 160, 20):
+            label += 1
+            kind = label % 4
+            if kind == 0:  # a single pixel
+                labels[top + 10, left + 10] = label
+            elif kind == 1:  # a line, horizontal, vertical or diagonal
+                length = int(rng.integers(2, 18))
+                step = [(0, 1), (1, 0), (1, 1), (1, -1)][label % 16 // 4]
+                rows = top + 1 + step[0] * np.arange(length) // (2 if step[1] == 0 else 1)
+                cols = left + 9 + step[1] * np.arange(length) // 2
+                labels[np.clip(rows, top, top + 19), np.clip(cols, left, left + 19)] = label
+            else:  # a random walk of fat steps
+                y, x = top + 9, left + 9
+                for _ in range(int(rng.integers(5, 60))):
+                    y = int(np.clip(y + rng.integers(-2, 3), top, top + 18))
+                    x = int(np.clip(x + rng.integers(-2, 3), left, left + 18))
+                    labels[y : y + 2, x : x + int(rng.integers(1, 3))] = label
+    pixels = ObjectPixels.of(labels)
+    _, border = perimeters(labels, pixels)
+    ours = convex_areas(pixels, border)
+    reference = regionprops_table(labels, properties=("label", "area_convex"))
+    present = np.bincount(labels.ravel(), minlength=pixels.count + 1)[1:] > 0
+    assert present.sum() == len(reference["label"]) == 64
+    np.testing.assert_array_equal(ours[present], reference["area_convex"])

@@ -54,32 +54,24 @@ def perimeters(labels: np.ndarray, pixels: ObjectPixels) -> tuple[np.ndarray, np
     return np.bincount(lab, PERIMETER_WEIGHTS[code], minlength=pixels.count + 1)[1:], ~interior
 
 
-def _convex_minorant(y: np.ndarray, x: np.ndarray, count: np.ndarray) -> np.ndarray:
-    """Per row of the padded (objects, points) arrays, sorted by y: which points lie on the convex
-    minorant of x as a function of y (Andrew's monotone chain, run for all objects at once)."""
-    objects, points = y.shape
-    stack = np.zeros((objects, points), np.int64)
-    size = np.zeros(objects, np.int64)
-    every = np.arange(objects)
-    for k in range(points):
-        active = k < count
-        while True:
-            rows = np.flatnonzero(active & (size >= 2))
-            if len(rows) == 0:
-                break
-            a, b = stack[rows, size[rows] - 2], stack[rows, size[rows] - 1]
-            cross = (y[rows, b] - y[rows, a]) * (x[rows, k] - x[rows, a]) - (x[rows, b] - x[rows, a]) * (
-                y[rows, k] - y[rows, a]
-            )
-            pop = cross <= 0  # b is not left of the chord a-k: not on the minorant
-            if not pop.any():
-                break
-            size[rows[pop]] -= 1
-        rows = every[active]
-        stack[rows, size[rows]] = k
-        size[rows] += 1
-    on_chain = np.zeros((objects, points), bool)
-    on_chain[np.repeat(every, size), stack[np.arange(points)[None, :] < size[:, None]]] = True
+def _convex_minorant(group: np.ndarray, y: np.ndarray, x: np.ndarray) -> np.ndarray:
+    """Which points lie on the convex minorant of x as a function of y, per group (points sorted
+    by group, then y): every point not strictly left of the chord between its neighbours on the
+    chain is dropped, all groups and all such points at once, until none is (the vertices that
+    Andrew's monotone chain keeps)."""
+    alive = np.arange(len(group))
+    while len(alive) >= 3:
+        a, b, c = alive[:-2], alive[1:-1], alive[2:]
+        same = (group[a] == group[b]) & (group[b] == group[c])
+        cross = (y[b] - y[a]) * (x[c] - x[a]) - (x[b] - x[a]) * (y[c] - y[a])
+        drop = same & (cross <= 0)
+        if not drop.any():
+            break
+        keep = np.ones(len(alive), bool)
+        keep[1:-1] = ~drop
+        alive = alive[keep]
+    on_chain = np.zeros(len(group), bool)
+    on_chain[alive] = True
     return on_chain
 
 
@@ -124,20 +116,14 @@ def convex_areas(pixels: ObjectPixels, border: np.ndarray) -> np.ndarray:
     line_label, line_y = point_label[starts], point_y[starts]
     leftmost = point_x[starts]
     rightmost = np.maximum.reduceat(point_x, starts)
-    counts = np.bincount(line_label, minlength=n + 1)[1:]
-    position = np.arange(len(line_label)) - np.repeat(np.cumsum(counts) - counts, counts)
-    padded_y = np.zeros((n, counts.max() if n else 0))
-    padded_left, padded_right = np.zeros_like(padded_y), np.zeros_like(padded_y)
-    padded_y[line_label - 1, position] = line_y
-    padded_left[line_label - 1, position] = leftmost
-    padded_right[line_label - 1, position] = -rightmost
-    # both chains in one run of the monotone chain (its cost is per step, not per object)
+    # both chains in one run (its cost is per round, not per object): the right one as the
+    # minorant of -x, in groups n + label
     on_chain = _convex_minorant(
-        np.concatenate([padded_y, padded_y]),
-        np.concatenate([padded_left, padded_right]),
-        np.concatenate([counts, counts]),
+        np.concatenate([line_label, line_label + n]),
+        np.concatenate([line_y, line_y]),
+        np.concatenate([leftmost, -rightmost]),
     )
-    keep_left, keep_right = on_chain[line_label - 1, position], on_chain[n + line_label - 1, position]
+    keep_left, keep_right = on_chain[: len(line_label)], on_chain[len(line_label) :]
     pixel_rows = line_y % 2 == 0  # doubled y of pixel centres is even
     query_label, query_y = line_label[pixel_rows], line_y[pixel_rows]
     low = _envelope_at(
