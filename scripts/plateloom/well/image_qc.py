@@ -5,10 +5,9 @@ from __future__ import annotations
 
 import numpy as np
 import pandas as pd
-from scipy import ndimage
 
-from plateloom.well.morphology import block_reduce
-from plateloom.well.thresholds import BACKGROUND_STRIDE
+from plateloom.well.morphology import block_reduce, maximum_square
+from plateloom.well.thresholds import BACKGROUND_STRIDE, median_of_sorted
 
 # The focus score's Laplacian is taken on every FOCUS_ROW_STRIDE-th row.
 FOCUS_ROW_STRIDE = 4
@@ -24,12 +23,12 @@ def background_levels(planes: np.ndarray, labels: np.ndarray, margin_px: int = 3
     stride = BACKGROUND_STRIDE
     occupied = block_reduce(labels > 0, stride, np.logical_or)
     reach = -(-margin_px // stride)
-    near = ndimage.maximum_filter(occupied, size=2 * reach + 1) if occupied.any() else occupied
+    near = maximum_square(occupied, 2 * reach + 1) if occupied.any() else occupied
     background = ~near
     sample = planes[:, ::stride, ::stride]
     if background.sum() < 0.05 * background.size:
         return np.percentile(sample.reshape(len(planes), -1), 5, axis=1)
-    return np.median(sample[:, background], axis=1)
+    return np.array([median_of_sorted(np.sort(plane[background])) for plane in sample])
 
 
 def focus_score(smooth: np.ndarray) -> float:
@@ -44,9 +43,10 @@ def focus_score(smooth: np.ndarray) -> float:
     mean = float(smooth.mean())
     if not mean > 0 or min(smooth.shape) < 3:
         return float("nan")
-    rows = np.arange(1, smooth.shape[0] - 1, FOCUS_ROW_STRIDE)
-    centre = smooth[rows]
-    laplacian = smooth[rows - 1, 1:-1] + smooth[rows + 1, 1:-1] + centre[:, :-2] + centre[:, 2:] - 4 * centre[:, 1:-1]
+    last = smooth.shape[0] - 1  # the rows 1, 1 + FOCUS_ROW_STRIDE, ... before it and their neighbours, as views
+    centre = smooth[1:last:FOCUS_ROW_STRIDE]
+    above, below = smooth[0 : last - 1 : FOCUS_ROW_STRIDE], smooth[2::FOCUS_ROW_STRIDE]
+    laplacian = above[:, 1:-1] + below[: len(centre), 1:-1] + centre[:, :-2] + centre[:, 2:] - 4 * centre[:, 1:-1]
     return float(laplacian.var(dtype=np.float64) / mean**2)
 
 

@@ -177,10 +177,12 @@ def _cores(canvas: _Canvas, floor: float, radius_px: float, min_distance_px: int
 def _grow_cores(cores: np.ndarray, components: np.ndarray, surface: np.ndarray) -> np.ndarray:
     """Cores grown over their components by a watershed on ``surface``; a component with one core
     is that core's whole (what the watershed gives), so only components with several are flooded."""
-    inside = cores > 0
-    span = int(cores.max()) + 1
-    pairs = np.unique(components[inside].astype(np.int64) * span + cores[inside])  # (component, core)
-    owner_component, owner_core = np.divmod(pairs, span)
+    inside = np.flatnonzero(cores)
+    core = cores.ravel()[inside]
+    component_of_core = np.zeros(int(core.max()) + 1, np.int64)  # a core lies in one component
+    component_of_core[core] = components.ravel()[inside]
+    owner_core = np.flatnonzero(component_of_core)
+    owner_component = component_of_core[owner_core]
     n_cores = np.bincount(owner_component, minlength=int(components.max()) + 1)
     only_core = np.zeros(len(n_cores), np.int32)
     single = n_cores[owner_component] == 1
@@ -193,9 +195,21 @@ def _grow_cores(cores: np.ndarray, components: np.ndarray, surface: np.ndarray) 
     if len(flood):
         several = np.zeros(components.shape, bool)
         several.ravel()[flood] = True
-        flooded = watershed(surface, np.where(several, cores, 0), mask=several)
+        flooded = _watershed_in_box(surface, np.where(several, cores, 0), several)
         grown.ravel()[flood] = flooded.ravel()[flood]
     return grown
+
+
+def _watershed_in_box(surface: np.ndarray, markers: np.ndarray, mask: np.ndarray) -> np.ndarray:
+    """``skimage.segmentation.watershed(surface, markers, mask=mask)`` run on the bounding box of
+    ``mask`` only (the same labels: the flooding never leaves the mask, and cropping keeps the
+    pixels' raster order, which breaks ties); zero outside the box."""
+    rows, cols = np.flatnonzero(mask.any(axis=1)), np.flatnonzero(mask.any(axis=0))
+    out = np.zeros(markers.shape, np.int32)
+    if len(rows):
+        box = (slice(rows[0], rows[-1] + 1), slice(cols[0], cols[-1] + 1))
+        out[box] = watershed(surface[box], markers[box], mask=mask[box])
+    return out
 
 
 def gradient_magnitude(image: np.ndarray) -> np.ndarray:
@@ -230,12 +244,6 @@ def _ring_background(canvas: _Canvas, labels: np.ndarray, fallback: float) -> np
     count = np.bincount(owner, minlength=labels.max() + 1)
     total = np.bincount(owner, values, minlength=labels.max() + 1)
     return np.where(count > 0, total / np.maximum(count, 1), fallback)
-
-
-def _label_medians(labels: np.ndarray, values: np.ndarray, n_labels: int) -> np.ndarray:
-    """Median of ``values`` over each label's pixels (0 for an empty label); indexed by label."""
-    index = np.flatnonzero(labels)
-    return _medians_by_owner(labels.ravel()[index], values.ravel()[index], n_labels)
 
 
 def _medians_by_owner(owner: np.ndarray, value: np.ndarray, n_labels: int) -> np.ndarray:
@@ -321,21 +329,23 @@ def _split_grown(labels: np.ndarray, surface: np.ndarray, min_distance_px: int) 
     inner = split
     for _ in range(REDRAW_PX):
         inner = np.where(same_as_neighbours(inner), inner, 0)
-    redrawn = watershed(surface, np.where(changed, inner, 0), mask=changed)
+    redrawn = _watershed_in_box(surface, np.where(changed, inner, 0), changed)
     return _largest_pieces(np.where(changed, redrawn, split))
 
 
 def _drop_shallow_edges(labels: np.ndarray, steepness: np.ndarray, valid: np.ndarray) -> np.ndarray:
     """Labels whose edge towards the background rises less steeply than MIN_EDGE_STEEPNESS (median
     over the edge pixels) removed: glow and haze, not nuclei."""
-    edge = (labels > 0) & dilate_cross((labels == 0) & valid)
-    if not edge.any():
+    edge = np.flatnonzero((labels > 0) & dilate_cross((labels == 0) & valid))
+    if not len(edge):
         return labels
     n_labels = int(labels.max())
-    edge_labels = np.where(edge, labels, 0)
-    has_edge = np.bincount(edge_labels.ravel(), minlength=n_labels + 1) > 0
-    shallow = has_edge & (_label_medians(edge_labels, steepness, n_labels) < MIN_EDGE_STEEPNESS)
+    owner = labels.ravel()[edge]
+    has_edge = np.bincount(owner, minlength=n_labels + 1) > 0
+    shallow = has_edge & (_medians_by_owner(owner, steepness.ravel()[edge], n_labels) < MIN_EDGE_STEEPNESS)
     shallow[0] = False
+    if not shallow.any():
+        return labels
     out = labels.copy()
     out[shallow[labels]] = 0
     return out

@@ -66,12 +66,10 @@ def _bounding_boxes(index: np.ndarray, label: np.ndarray, wanted: np.ndarray, wi
     return [(slice(found[w][0], found[w][1]), slice(found[w][2], found[w][3])) for w in wanted.tolist()]
 
 
-def _component_shapes(
-    components: np.ndarray, count: int, index: np.ndarray | None = None
-) -> tuple[np.ndarray, np.ndarray]:
-    """Area (pixels) and fill of the moment ellipse (area / (4 pi sqrt(det covariance))) of labels 1..count."""
-    index, label = _object_pixels(components, index)
-    y, x = np.divmod(index, components.shape[1])
+def _component_shapes(index: np.ndarray, label: np.ndarray, width: int, count: int) -> tuple[np.ndarray, np.ndarray]:
+    """Area (pixels) and fill of the moment ellipse (area / (4 pi sqrt(det covariance))) of labels
+    1..count, from their pixels' flat indices and labels in an image ``width`` pixels wide."""
+    y, x = np.divmod(index, width)
     area = np.bincount(label, minlength=count + 1).astype(float)
     safe = np.maximum(area, 1)
     my, mx = np.bincount(label, y, count + 1) / safe, np.bincount(label, x, count + 1) / safe
@@ -177,7 +175,8 @@ def split_touching(
     ``min_fill`` of its moment ellipse; its seeds are distance maxima rising ``seed_depth_px``
     (pixels) above the saddle to the next one.
     """
-    area, fill = _component_shapes(components, count, index)
+    index, label_of_pixel = _object_pixels(components, index)
+    area, fill = _component_shapes(index, label_of_pixel, components.shape[1], count)
     present = area > 0
     if not present.any():
         return components
@@ -185,7 +184,6 @@ def split_touching(
     labels = components.astype(np.int32, copy=True)
     if len(candidates) == 0:
         return labels
-    index, label_of_pixel = _object_pixels(components, index)
     boxes = _bounding_boxes(index, label_of_pixel, candidates, components.shape[1])
     masks = [components[box] == label for label, box in zip(candidates, boxes)]
     next_label = count + 1

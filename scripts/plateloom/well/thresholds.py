@@ -184,14 +184,14 @@ def _split_contrast(ordered: np.ndarray, split: float) -> tuple[float, float, fl
     below, above = ordered[:count_below], ordered[count_below:]
     if len(below) < 16 or len(above) == 0:
         return float("nan"), float("nan"), float("nan")
-    below_median = _median_of_sorted(below)
+    below_median = median_of_sorted(below)
     deviations = np.abs(below - below_median)
     middle = (len(deviations) - 1) // 2, len(deviations) // 2
-    noise_sd = max(MAD_TO_SD * _median_of_sorted(np.partition(deviations, middle)), 1e-6)
-    return _median_of_sorted(above) - below_median, below_median, noise_sd
+    noise_sd = max(MAD_TO_SD * median_of_sorted(np.partition(deviations, middle)), 1e-6)
+    return median_of_sorted(above) - below_median, below_median, noise_sd
 
 
-def _median_of_sorted(values: np.ndarray) -> float:
+def median_of_sorted(values: np.ndarray) -> float:
     """``np.median`` of ``values`` whose two middle positions hold their middle values (sorted, or
     partitioned at them)."""
     return float(np.mean(values[[(len(values) - 1) // 2, len(values) // 2]]))
