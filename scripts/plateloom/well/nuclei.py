@@ -22,20 +22,21 @@ canvas (shelf packing), so every filter passes over the objects and their margin
 
 from __future__ import annotations
 
-from dataclasses import dataclass
-
 import numpy as np
 from scipy import ndimage
 from skimage.measure import label as connected_regions
 from skimage.segmentation import watershed
 
+from plateloom.well.canvas import Canvas, labels_in_frame, pack_components
 from plateloom.well.morphology import dilate_cross, erode_cross, maximum_square, same_as_neighbours
-from plateloom.well.segment import _bounding_boxes, _drop_small, split_touching
+from plateloom.well.segment import split_touching
 from plateloom.well.thresholds import (
     BACKGROUND_STRIDE,
     fill_holes,
     gaussian_reach_px,
+    median_of_sorted,
     object_threshold,
+    percentile_of_sorted,
     smooth_image,
 )
 
@@ -71,93 +72,12 @@ SATURATED_CORE_RATIO = 0.7
 SATURATED_MIN_AREA = 0.2
 
 
-@dataclass(frozen=True)
-class _Canvas:
-    """Component boxes (with margins) packed into one image: the smoothed values, the component
-    each pixel belongs to (0 elsewhere), whether a pixel is any foreground, which canvas pixels
-    hold image data, and which are saturated (None: not known); ``places`` maps each box back to
-    the frame."""
-
-    image: np.ndarray
-    own: np.ndarray
-    foreground: np.ndarray
-    valid: np.ndarray
-    saturated: np.ndarray | None
-    places: list[tuple[tuple[slice, slice], tuple[slice, slice]]]
-
-
-def _shelves(sizes: list[tuple[int, int]], width: int) -> tuple[list[tuple[int, int]], int, int]:
-    """Top-left corners of boxes of ``sizes`` (height, width) packed in shelves of at most
-    ``width`` columns, tallest first; and the canvas height and width."""
-    order = sorted(range(len(sizes)), key=lambda i: -sizes[i][0])
-    corners: list[tuple[int, int]] = [(0, 0)] * len(sizes)
-    y = x = shelf_height = 0
-    canvas_width = 0
-    for i in order:
-        height, box_width = sizes[i]
-        if x and x + box_width > width:
-            y, x, shelf_height = y + shelf_height, 0, 0
-        corners[i] = (y, x)
-        shelf_height = max(shelf_height, height)
-        x += box_width
-        canvas_width = max(canvas_width, x)
-    return corners, y + shelf_height, canvas_width
-
-
-def _pack(
-    smooth: np.ndarray,
-    components: np.ndarray,
-    foreground: np.ndarray,
-    index: np.ndarray,
-    ids: np.ndarray,
-    margin: int,
-    saturated: np.ndarray | None = None,
-) -> _Canvas:
-    """The canvas of the components ``ids`` with ``margin`` pixels of image around each
-    (``index``: flat indices of the foreground pixels; ``saturated``: the frame's saturated
-    pixels, packed alongside). Boxes touch: every filter reads at most a margin's width around a
-    component. Where a margin runs off the frame it holds the frame mirrored at its edge (as the
-    filters' "reflect" mode) and is not valid image data."""
-    boxes = _bounding_boxes(index, components.ravel()[index], ids, components.shape[1])
-    height, width = components.shape
-    sizes = [(b[0].stop - b[0].start + 2 * margin, b[1].stop - b[1].start + 2 * margin) for b in boxes]
-    corners, canvas_height, canvas_width = _shelves(sizes, max(width, max(s[1] for s in sizes)))
-    image = np.zeros((canvas_height, canvas_width), np.float32)
-    own = np.zeros((canvas_height, canvas_width), np.int32)
-    fore = np.zeros((canvas_height, canvas_width), bool)
-    valid = np.zeros((canvas_height, canvas_width), bool)
-    sat = np.zeros((canvas_height, canvas_width), bool) if saturated is not None else None
-    places = []
-    for component, box, (y, x), (h, w) in zip(ids.tolist(), boxes, corners, sizes):
-        top, left = box[0].start - margin, box[1].start - margin
-        frame = (slice(max(0, top), min(height, top + h)), slice(max(0, left), min(width, left + w)))
-        pad = (
-            (frame[0].start - top, top + h - frame[0].stop),
-            (frame[1].start - left, left + w - frame[1].stop),
-        )
-        place = (slice(y, y + h), slice(x, x + w))
-        inner = (slice(y + pad[0][0], y + h - pad[0][1]), slice(x + pad[1][0], x + w - pad[1][1]))
-        image[place] = _mirrored(smooth[frame], pad)
-        own[inner] = np.where(components[frame] == component, component, 0)
-        fore[place] = _mirrored(foreground[frame], pad)
-        valid[inner] = True
-        if sat is not None:
-            sat[place] = _mirrored(saturated[frame], pad)
-        places.append((frame, inner))
-    return _Canvas(image, own, fore, valid, sat, places)
-
-
-def _mirrored(window: np.ndarray, pad: tuple[tuple[int, int], tuple[int, int]]) -> np.ndarray:
-    """``window`` extended by ``pad`` pixels mirrored at its edges (itself when nothing is to add)."""
-    return np.pad(window, pad, mode="symmetric") if any(pad[0]) or any(pad[1]) else window
-
-
 def _core_window(radius_px: float) -> int:
     """Side (pixels, odd) of the square window whose brightest value a core pixel is compared with."""
     return max(3, int(round(CORE_WINDOW * radius_px)) | 1)
 
 
-def _cores(canvas: _Canvas, floor: float, radius_px: float, min_distance_px: int) -> np.ndarray:
+def _cores(canvas: Canvas, floor: float, radius_px: float, min_distance_px: int) -> np.ndarray:
     """Labelled nucleus cores of the canvas (see the module docstring)."""
     signal = smooth_image(canvas.image, CORE_SMOOTHING_PX) - np.float32(floor)
     window = _core_window(radius_px)
@@ -165,13 +85,17 @@ def _cores(canvas: _Canvas, floor: float, radius_px: float, min_distance_px: int
     level = _core_levels(canvas.saturated, window, radius_px)
     cores = dilate_cross(erode_cross((ratio > level) & (canvas.own > 0)))  # binary opening
     labelled, count = ndimage.label(cores)
-    area = np.bincount(labelled.ravel(), minlength=count + 1)
-    small = area < CORE_MIN_AREA * np.pi * radius_px**2
-    small[0] = False
-    labelled[small[labelled]] = 0
-    if not labelled.any():
-        return labelled
-    return split_touching(labelled, count, min_distance_px, area_factor=CORE_SPLIT_AREA, min_fill=CORE_SPLIT_FILL)
+    index = np.flatnonzero(cores)
+    core = labelled.ravel()[index]
+    small = np.bincount(core, minlength=count + 1) < CORE_MIN_AREA * np.pi * radius_px**2
+    dropped = small[core]
+    if dropped.all():
+        return np.zeros_like(labelled)
+    labelled.ravel()[index[dropped]] = 0
+    index = index[~dropped]
+    return split_touching(
+        labelled, count, min_distance_px, index=index, area_factor=CORE_SPLIT_AREA, min_fill=CORE_SPLIT_FILL
+    )
 
 
 def _grow_cores(cores: np.ndarray, components: np.ndarray, surface: np.ndarray) -> np.ndarray:
@@ -235,7 +159,7 @@ def _core_levels(saturated: np.ndarray | None, window: int, radius_px: float) ->
     return np.where(near, np.float32(SATURATED_CORE_RATIO), np.float32(CORE_RATIO))
 
 
-def _ring_background(canvas: _Canvas, labels: np.ndarray, fallback: float) -> np.ndarray:
+def _ring_background(canvas: Canvas, labels: np.ndarray, fallback: float) -> np.ndarray:
     """Mean smoothed value of the non-foreground pixels within RING_PX of each label (``fallback``
     for a label with no such pixel); indexed by label."""
     grown = maximum_square(labels, 2 * RING_PX + 1)
@@ -305,7 +229,7 @@ def _largest_pieces(labels: np.ndarray) -> np.ndarray:
     return out
 
 
-def _nuclei_on_canvas(canvas: _Canvas, floor: float, background: float, radius_px: float, min_distance_px: int):
+def _nuclei_on_canvas(canvas: Canvas, floor: float, background: float, radius_px: float, min_distance_px: int):
     """Nucleus labels on the canvas: cores, growth on the log-intensity gradient, edge cut."""
     cores = _cores(canvas, floor, radius_px, min_distance_px)
     if not cores.any():
@@ -378,16 +302,12 @@ def segment_nuclei_on_edges(
     if not keep.any():
         return empty, threshold
     sample = smooth[::BACKGROUND_STRIDE, ::BACKGROUND_STRIDE]
-    floor = float(np.percentile(sample, 0.5))
+    floor = percentile_of_sorted(np.sort(sample, axis=None), 0.5)
     outside = ~foreground[::BACKGROUND_STRIDE, ::BACKGROUND_STRIDE]
-    background = float(np.median(sample[outside])) if outside.any() else floor
+    background = median_of_sorted(np.sort(sample[outside])) if outside.any() else floor
     radius_px = 0.5 * nucleus_diameter_um / pixel_size_um
     margin = max(RING_PX, _core_window(radius_px) // 2 + gaussian_reach_px(CORE_SMOOTHING_PX))  # what the filters read
-    canvas = _pack(smooth, components, foreground, index, np.flatnonzero(keep), margin, saturated)
+    canvas = pack_components(smooth, components, foreground, index, np.flatnonzero(keep), margin, saturated)
     min_distance_px = max(1, int(round(split_min_distance_um / pixel_size_um)))
     found = _nuclei_on_canvas(canvas, floor, background, radius_px, min_distance_px)
-    labels = empty
-    for frame, place in canvas.places:
-        part = found[place]
-        np.copyto(labels[frame], part, where=part > 0)
-    return _drop_small(labels, min_area_px), threshold
+    return labels_in_frame(found, canvas, min_area_px, smooth.shape), threshold

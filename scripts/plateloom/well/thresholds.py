@@ -43,7 +43,7 @@ def threshold_log_otsu(image: np.ndarray) -> float:
 
 def _log_otsu_of_sorted(ordered: np.ndarray) -> float:
     """``threshold_log_otsu`` of the values ``ordered`` (1-D, ascending)."""
-    floor = _percentile_of_sorted(ordered, 0.5)
+    floor = percentile_of_sorted(ordered, 0.5)
     logs = np.log1p(np.maximum(ordered.astype(np.float64) - floor, 0.0))  # still ascending
     if logs[-1] <= logs[0]:
         return float(ordered[-1])
@@ -62,7 +62,7 @@ def otsu_of_sorted(ordered: np.ndarray, bins: int = 256) -> float:
     return float(threshold_otsu(hist=(counts, (edges[:-1] + edges[1:]) / 2.0)))
 
 
-def _percentile_of_sorted(ordered: np.ndarray, q: float) -> float:
+def percentile_of_sorted(ordered: np.ndarray, q: float) -> float:
     """``np.percentile(values, q)`` (its default linear interpolation, the same arithmetic) of the
     values ``ordered`` (1-D, ascending)."""
     virtual = (len(ordered) - 1) * (q / 100.0)
