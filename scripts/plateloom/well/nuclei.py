@@ -138,11 +138,17 @@ def _watershed_in_box(surface: np.ndarray, markers: np.ndarray, mask: np.ndarray
 
 def gradient_magnitude(image: np.ndarray) -> np.ndarray:
     """Sobel gradient magnitude, scaled as ``skimage.filters.sobel`` (sqrt of the mean of the two
-    squared derivatives, each kernel normalised to unit weight), by scipy's separable filters in
-    float32: equal to skimage's within float32 rounding, at about half the time."""
-    along_y = ndimage.sobel(image, axis=0, mode="reflect")
-    along_x = ndimage.sobel(image, axis=1, mode="reflect")
-    return np.sqrt((along_y * along_y + along_x * along_x) * np.float32(1 / 32))
+    squared derivatives, each kernel normalised to unit weight; edges reflected), by shifted slices
+    in float32: equal to skimage's within float32 rounding, at about a third of the time of
+    scipy's separable filters."""
+    padded = np.pad(image.astype(np.float32, copy=False), 1, mode="symmetric")  # numpy's "symmetric" = "reflect"
+    along_y = padded[2:] - padded[:-2]
+    smooth_y = along_y[:, :-2] + along_y[:, 2:]
+    smooth_y += 2 * along_y[:, 1:-1]
+    along_x = padded[:, 2:] - padded[:, :-2]
+    smooth_x = along_x[:-2] + along_x[2:]
+    smooth_x += 2 * along_x[1:-1]
+    return np.sqrt((smooth_y * smooth_y + smooth_x * smooth_x) * np.float32(1 / 32))
 
 
 def _core_levels(saturated: np.ndarray | None, window: int, radius_px: float) -> float | np.ndarray:
