@@ -29,7 +29,7 @@ PERIMETER_WEIGHTS[[13, 23]] = (1 + SQRT2) / 2
 def perimeters(labels: np.ndarray, pixels: ObjectPixels) -> tuple[np.ndarray, np.ndarray]:
     """Perimeter of every object in pixels (as ``skimage.measure.perimeter(mask, 4)`` of each object's mask)
     and, per object pixel, whether it lies on the object's 4-connected border."""
-    padded = np.pad(labels, 1)
+    padded = pixels.padded_labels(1)
     own = pixels.label
     at = pixels.in_padded(1)
     interior = np.ones(len(own), bool)

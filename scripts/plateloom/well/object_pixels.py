@@ -36,6 +36,13 @@ class ObjectPixels:
         """Flat index of each object pixel in the image padded by ``pad`` pixels on every side."""
         return (self.row + pad) * (self.shape[1] + 2 * pad) + (self.col + pad)
 
+    def padded_labels(self, pad: int) -> np.ndarray:
+        """The label image padded by ``pad`` zero pixels on every side (int32), written from the
+        object pixels into zeros: cheaper than copying the whole image."""
+        out = np.zeros((self.shape[0] + 2 * pad, self.shape[1] + 2 * pad), np.int32)
+        out.ravel()[self.in_padded(pad)] = self.label
+        return out
+
     def sums(self, weights: np.ndarray | None = None) -> np.ndarray:
         """Per-label sums (labels 1..count) of ``weights`` over the object pixels (or pixel counts)."""
         return np.bincount(self.label, weights, minlength=self.count + 1)[1:]

@@ -185,9 +185,15 @@ def measure_frame(
     distance_px = max(1, int(round(settings.texture_distance_um / settings.pixel_size_um)))
     texture = TextureSettings(tuple(settings.measured_texture_channels), distance_px, settings.texture_levels)
     table = measure_objects(labels, planes, channels, background, settings.pixel_size_um, bodies, texture, saturated)
-    xy = table[["centroid_x_um", "centroid_y_um"]].to_numpy()
+    xy = centroids_um(table)
     table["neighbours"], table["nearest_neighbour_um"] = neighbourhood(xy, settings.neighbour_radius_um)
     return table, background
+
+
+def centroids_um(table: pd.DataFrame) -> np.ndarray:
+    """(n, 2) centroid x, y (um) of a measurement table's objects (by column: a two-column
+    selection would build a new table first)."""
+    return np.column_stack([table["centroid_x_um"].to_numpy(float), table["centroid_y_um"].to_numpy(float)])
 
 
 def _site_frames(frames: Iterator[SiteFrame], well: str, site: int, n_channels: int) -> Iterator[SiteFrame]:
@@ -296,7 +302,7 @@ def analyse_site(
         if label_frames is not None:
             label_frames[item.frame] = labels
         table, background = measure_frame(planes, labels, bodies, settings, saturated)
-        xy = table[["centroid_x_um", "centroid_y_um"]].to_numpy()
+        xy = centroids_um(table)
         tracks = linker.tracks_of(xy, appearance_features(table, settings.nuclei_channel))
         table.insert(0, "frame", item.frame)
         table.insert(1, "track", tracks)

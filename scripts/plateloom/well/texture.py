@@ -47,7 +47,7 @@ def glcm_measures(
     quantised = np.empty(np.add(labels.shape, 2 * distance_px), np.int16)
     at = pixels.in_padded(distance_px)
     quantised.ravel()[at] = level
-    padded_labels = np.pad(labels, distance_px)
+    padded_labels = pixels.padded_labels(distance_px)
     keys = []
     for angle_index, angle in enumerate(GLCM_ANGLES):
         dy, dx = int(np.round(np.sin(angle) * distance_px)), int(np.round(np.cos(angle) * distance_px))
