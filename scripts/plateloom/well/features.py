@@ -317,6 +317,12 @@ def object_columns(channels: list[str], texture_channels: list[str], with_cells:
     return columns
 
 
+def centroids_um(table: pd.DataFrame) -> np.ndarray:
+    """(n, 2) centroid x, y (um) of a measurement table's objects (by column: a two-column
+    selection would build a new table first)."""
+    return np.column_stack([table["centroid_x_um"].to_numpy(float), table["centroid_y_um"].to_numpy(float)])
+
+
 def neighbourhood(xy_um: np.ndarray, radius_um: float) -> tuple[np.ndarray, np.ndarray]:
     """Per object: neighbours within ``radius_um`` (itself not counted) and nearest-neighbour distance (um).
 

@@ -15,7 +15,7 @@ from plateloom.settings import FromSchema
 from plateloom.well.cell_bodies import grow_cell_bodies
 from plateloom.well.divisions import DivisionRule, find_divisions
 from plateloom.well.events import DAUGHTER_REACH_DIAMETERS, DeathRule, division_distance_um
-from plateloom.well.features import measure_objects, neighbourhood
+from plateloom.well.features import centroids_um, measure_objects, neighbourhood
 from plateloom.well.illumination import apply_flat_field
 from plateloom.well.image_qc import background_levels, focus_score, segmentation_jumps
 from plateloom.well.linking import FrameLinker, appearance_features
@@ -188,12 +188,6 @@ def measure_frame(
     xy = centroids_um(table)
     table["neighbours"], table["nearest_neighbour_um"] = neighbourhood(xy, settings.neighbour_radius_um)
     return table, background
-
-
-def centroids_um(table: pd.DataFrame) -> np.ndarray:
-    """(n, 2) centroid x, y (um) of a measurement table's objects (by column: a two-column
-    selection would build a new table first)."""
-    return np.column_stack([table["centroid_x_um"].to_numpy(float), table["centroid_y_um"].to_numpy(float)])
 
 
 def _site_frames(frames: Iterator[SiteFrame], well: str, site: int, n_channels: int) -> Iterator[SiteFrame]:
