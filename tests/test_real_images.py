@@ -156,6 +156,30 @@ def test_a_dense_field_is_not_taken_for_an_empty_one(spacing_px):
     assert pooled_average_precision([(truth, labels)])[0.5] >= 0.9
 
 
+def test_nuclei_packed_edge_to_edge_are_split_at_their_blobs():
+    # planted truth: dome-shaped nuclei (brightness falling to 40% at the rim, as a sphere's
+    # projected thickness over a dim rim), radius 8-9 px, brightness 600-1500, packed hexagonally
+    # 17 px apart: 84% of the field, neighbours touching, their cores joined into sheets with no
+    # waist. Measured AP 0.714 (0.20 before the blob split), 126 of 150 nuclei found.
+    rng = np.random.default_rng(5)
+    yy, xx = np.mgrid[:200, :200]
+    truth, brightness = np.zeros((200, 200), np.int32), np.zeros((200, 200))
+    centres = [
+        (y, x) for row, y in enumerate(np.arange(9, 200, 17 * 0.88)) for x in np.arange(9 + (row % 2) * 8.5, 200, 17)
+    ]
+    for number, (y, x) in enumerate(centres, start=1):
+        radius, level = 8.5 + rng.uniform(-0.5, 0.5), rng.uniform(600, 1500)
+        squared = ((yy - y) ** 2 + (xx - x) ** 2) / radius**2
+        inside = (squared <= 1) & (truth == 0)
+        truth[inside], brightness[inside] = number, level * (0.4 + 0.6 * np.sqrt(1 - squared[inside]))
+    image = ndimage.gaussian_filter(brightness, 1.2) + 200.0
+    noisy = (rng.poisson(image) + rng.normal(0, 6, image.shape)).astype(np.float32)
+    labels, _ = segment_nuclei_on_edges(smooth_image(noisy, 1.0 / PIXEL_UM), PIXEL_UM, 20.0, 5.0, 12.0)
+    assert (truth > 0).mean() > 0.8
+    assert pooled_average_precision([(truth, labels)])[0.5] >= 0.65
+    assert connected_regions(labels, background=0, connectivity=1).max() == labels.max()
+
+
 @pytest.mark.parametrize("shape", ["ramp", "vignette"])
 def test_an_empty_unevenly_lit_field_gives_no_nuclei(shape):
     # planted truth: no nuclei, a background rising by 3000 grey levels across the field (or towards

@@ -24,6 +24,7 @@ from __future__ import annotations
 
 import numpy as np
 from scipy import ndimage
+from skimage.feature import peak_local_max
 from skimage.measure import label as connected_regions
 from skimage.segmentation import watershed
 
@@ -68,6 +69,17 @@ MIN_EDGE_STEEPNESS = 0.15  # median log-intensity gradient (Sobel) along the edg
 # nucleus (a clipped cell, not a clipped chromatin spot) are core pixels only from this share of it.
 # Measured on 320 realistic fields (5 sets of 64): nuclei touching a saturated cell found 0.905 ->
 # 0.938, average precision up in every set (0.915-0.925 -> 0.918-0.930).
+# Cores of more than PACKED_CORE_AREA typical nuclear areas are nuclei packed edge to edge (a field
+# over three quarters full): their cores join and the joined outline has no waist for the shape
+# split, so they are split at the blobs of the image (negative Laplacian of Gaussian, sigma
+# PACKED_BLOB_SIGMA typical radii). Measured on planted hexagonal fields of dome-shaped nuclei
+# (radius 8-9 px) 84% and 91% full: average precision 0.20 -> 0.72 and 0.01 -> 0.47; on the 320
+# realistic fields (5 sets of 64) one core of this size in all, AP unchanged in every set.
+PACKED_CORE_AREA = 4.0
+PACKED_BLOB_SIGMA = 0.5
+# A seed's scale-normalised response (log-intensity units): packed nuclei 0.1-0.6 at their centres,
+# the dim haze of out-of-focus nuclei (which is no nucleus to segment) 0.02 at most.
+PACKED_MIN_BLOB = 0.1
 SATURATED_CORE_RATIO = 0.7
 SATURATED_MIN_AREA = 0.2
 
@@ -93,9 +105,47 @@ def _cores(canvas: Canvas, floor: float, radius_px: float, min_distance_px: int)
         return np.zeros_like(labelled)
     labelled.ravel()[index[dropped]] = 0
     index = index[~dropped]
-    return split_touching(
+    split = split_touching(
         labelled, count, min_distance_px, index=index, area_factor=CORE_SPLIT_AREA, min_fill=CORE_SPLIT_FILL
     )
+    return _split_packed(split, canvas, floor, radius_px, min_distance_px)
+
+
+def _split_packed(cores: np.ndarray, canvas: Canvas, floor: float, radius_px: float, min_distance_px: int):
+    """Cores of more than PACKED_CORE_AREA typical nuclei (nuclei packed edge to edge, whose cores
+    join and whose outline shows no waist) split at the blobs of the log image: seeds are the maxima
+    of its negative Laplacian of Gaussian (sigma PACKED_BLOB_SIGMA typical radii) at least
+    ``min_distance_px`` apart, flooded over the core on that response. A core holding saturated
+    pixels (a rounded cell and its glow) is left whole."""
+    area = np.bincount(cores.ravel())
+    packed = area > PACKED_CORE_AREA * np.pi * radius_px**2
+    packed[0] = False
+    if canvas.saturated is not None and packed.any():
+        packed &= np.bincount(cores[canvas.saturated], minlength=len(area)) == 0
+    if not packed.any():
+        return cores
+    mask = packed[cores]
+    rows, cols = np.flatnonzero(mask.any(axis=1)), np.flatnonzero(mask.any(axis=0))
+    box = (slice(rows[0], rows[-1] + 1), slice(cols[0], cols[-1] + 1))
+    inside = np.where(mask[box], cores[box], 0)
+    logs = np.log(np.maximum(canvas.image[box].astype(np.float64) - floor, 1.0))
+    sigma = PACKED_BLOB_SIGMA * radius_px
+    blob = -(sigma**2) * ndimage.gaussian_laplace(logs, sigma)  # scale-normalised (Lindeberg 1998)
+    peaks = peak_local_max(
+        np.where(inside > 0, blob, blob.min()), min_distance=min_distance_px, labels=inside, exclude_border=False
+    )
+    peaks = peaks[blob[tuple(peaks.T)] > PACKED_MIN_BLOB]
+    several = np.bincount(inside[tuple(peaks.T)], minlength=len(area)) >= 2
+    several[0] = False
+    if not several.any():
+        return cores
+    seeds = np.zeros(inside.shape, np.int32)
+    seeds[tuple(peaks.T)] = np.arange(1, len(peaks) + 1)
+    flood = several[inside]
+    parts = watershed(-blob, np.where(flood, seeds, 0), mask=flood)
+    out = cores.copy()
+    out[box][flood] = parts[flood] + len(area)  # new ids above every existing one
+    return out
 
 
 def _grow_cores(cores: np.ndarray, components: np.ndarray, surface: np.ndarray) -> np.ndarray:
