@@ -108,16 +108,18 @@ def _cores(canvas: Canvas, floor: float, radius_px: float, min_distance_px: int)
     split = split_touching(
         labelled, count, min_distance_px, index=index, area_factor=CORE_SPLIT_AREA, min_fill=CORE_SPLIT_FILL
     )
-    return _split_packed(split, canvas, floor, radius_px, min_distance_px)
+    return _split_packed(split, index, canvas, floor, radius_px, min_distance_px)
 
 
-def _split_packed(cores: np.ndarray, canvas: Canvas, floor: float, radius_px: float, min_distance_px: int):
+def _split_packed(
+    cores: np.ndarray, index: np.ndarray, canvas: Canvas, floor: float, radius_px: float, min_distance_px: int
+) -> np.ndarray:
     """Cores of more than PACKED_CORE_AREA typical nuclei (nuclei packed edge to edge, whose cores
     join and whose outline shows no waist) split at the blobs of the log image: seeds are the maxima
     of its negative Laplacian of Gaussian (sigma PACKED_BLOB_SIGMA typical radii) at least
     ``min_distance_px`` apart, flooded over the core on that response. A core holding saturated
-    pixels (a rounded cell and its glow) is left whole."""
-    area = np.bincount(cores.ravel())
+    pixels (a rounded cell and its glow) is left whole. ``index``: flat indices of the core pixels."""
+    area = np.bincount(cores.ravel()[index])
     packed = area > PACKED_CORE_AREA * np.pi * radius_px**2
     packed[0] = False
     if canvas.saturated is not None and packed.any():
