@@ -8,7 +8,8 @@ its own neighbourhood, not with the bright one), chromatin spots only dent a cor
 saturated cell's glow has no core. Next to a large saturated region (known from the raw image)
 a core pixel needs ``SATURATED_CORE_RATIO`` of the ceiling instead, so a neighbour does not share
 the clipped cell's core. Cores that may hold two nuclei by shape are split by the
-distance-transform watershed of ``plateloom.well.segment``; the cores then grow over the
+distance-transform watershed of ``plateloom.well.segment``, and cores of nuclei packed edge to
+edge (joined with no waist) at the blobs of the image; the cores then grow over the
 foreground by a watershed on the gradient of log intensity, so two nuclei meet at their steepest
 edge. Each nucleus is then cut at half its own height over its own local background (the ring
 of non-object pixels around it): the height is the median of its pixels, so neither spots nor
@@ -17,7 +18,7 @@ merged core hides) is split by the same shape rule, the boundary redrawn along t
 a label is always one connected region.
 
 All of this runs on the bounding boxes of the foreground components packed side by side into one
-canvas (shelf packing), so every filter passes over the objects and their margins only.
+canvas (``plateloom.well.canvas``), so every filter passes over the objects and their margins only.
 """
 
 from __future__ import annotations
