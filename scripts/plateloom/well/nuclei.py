@@ -70,19 +70,19 @@ MIN_EDGE_STEEPNESS = 0.15  # median log-intensity gradient (Sobel) along the edg
 # nucleus (a clipped cell, not a clipped chromatin spot) are core pixels only from this share of it.
 # Measured on 320 realistic fields (5 sets of 64): nuclei touching a saturated cell found 0.905 ->
 # 0.938, average precision up in every set (0.915-0.925 -> 0.918-0.930).
+SATURATED_CORE_RATIO = 0.7
+SATURATED_MIN_AREA = 0.2
 # Cores of more than PACKED_CORE_AREA typical nuclear areas are nuclei packed edge to edge (a field
 # over three quarters full): their cores join and the joined outline has no waist for the shape
 # split, so they are split at the blobs of the image (negative Laplacian of Gaussian, sigma
 # PACKED_BLOB_SIGMA typical radii). Measured on planted hexagonal fields of dome-shaped nuclei
-# (radius 8-9 px) 84% and 91% full: average precision 0.20 -> 0.72 and 0.01 -> 0.47; on the 320
-# realistic fields (5 sets of 64) one core of this size in all, AP unchanged in every set.
+# (radius 8-9 px) 84% and 91% full: average precision 0.20 -> 0.71 and 0.01 -> 0.46; the 320
+# realistic fields (5 sets of 64) unchanged in every set.
 PACKED_CORE_AREA = 4.0
 PACKED_BLOB_SIGMA = 0.5
 # A seed's scale-normalised response (log-intensity units): packed nuclei 0.1-0.6 at their centres,
-# the dim haze of out-of-focus nuclei (which is no nucleus to segment) 0.02 at most.
+# the dim haze of out-of-focus nuclei in the realistic fields (no nucleus to segment) 0.02 at most.
 PACKED_MIN_BLOB = 0.1
-SATURATED_CORE_RATIO = 0.7
-SATURATED_MIN_AREA = 0.2
 
 
 def _core_window(radius_px: float) -> int:
